@@ -1,0 +1,37 @@
+# One command to test, one to run the demo; the same locally and in CI.
+PY ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed
+
+.PHONY: test demo bench lint typecheck clean check-mosquitto
+
+$(STAMP): pyproject.toml
+	$(PY) -m venv $(VENV)
+	$(BIN)/pip install --quiet --upgrade pip
+	$(BIN)/pip install --quiet -e '.[dev,plot]'
+	touch $(STAMP)
+
+check-mosquitto:
+	@command -v mosquitto >/dev/null 2>&1 || [ -x /usr/sbin/mosquitto ] || { \
+	  if [ "$$(id -u)" = 0 ]; then apt-get update -qq && apt-get install -y -qq mosquitto; \
+	  else echo "mosquitto is missing: run 'sudo apt-get install -y mosquitto' and try again" >&2; exit 1; fi; }
+
+test: $(STAMP) check-mosquitto
+	$(BIN)/ruff check agent simulator tests
+	$(BIN)/pytest -q
+
+demo: $(STAMP)
+	$(BIN)/watchkeep demo --duration $${DURATION:-180}
+
+bench: $(STAMP) check-mosquitto
+	$(BIN)/python -m tests.bench
+
+lint: $(STAMP)
+	$(BIN)/ruff check agent simulator tests
+
+typecheck: $(STAMP)
+	$(BIN)/mypy agent simulator
+
+clean:
+	rm -rf $(VENV) build *.egg-info .pytest_cache .ruff_cache .mypy_cache

@@ -1,0 +1,286 @@
+"""Model bundles: a directory with `model.onnx` and `model.json` (contract in DESIGN.md).
+
+`model.json` keys (format version 1):
+
+    format            "watchkeep-bundle"
+    format_version    1
+    asset, mode       what the model is for ("default" when the asset has one mode)
+    model_id          stable name, e.g. "P-101/default"
+    version           integer, grows with every retrain
+    feature_names     input order of the model, "<channel>.<feature>"
+    scaler            {"mean": [F], "scale": [F]}: the model sees (x - mean) / scale
+    score             {"function": "mse"}: mean squared error of standardised features
+    threshold         raise level of the score
+    clear_threshold   clear level (<= threshold)
+    calibration       how the thresholds were set, e.g. {"method": "quantile",
+                      "quantile": 0.995, "margin": 1.25, "clear_ratio": 0.8, "n_windows": 400}
+    training          {"n_windows": int, "data_sha256": str, ...} summary of the data
+    onnx              {"input": name, "output": name, "opset": int, "ir_version": int}
+    created           RFC 3339 UTC time
+    watchkeep_version the version that wrote the bundle
+
+Any ONNX model whose input is `[N, F]` float32 and whose first output is a
+reconstruction `[N, F]` is accepted, so a model trained elsewhere works once its
+`model.json` is written. Nothing here unpickles anything.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+import shutil
+import tempfile
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from agent.errors import BundleError
+
+FORMAT = "watchkeep-bundle"
+FORMAT_VERSION = 1
+MODEL_JSON = "model.json"
+MODEL_ONNX = "model.onnx"
+
+
+@dataclass(frozen=True)
+class BundleMeta:
+    """The validated contents of `model.json`."""
+
+    asset: str
+    mode: str
+    model_id: str
+    version: int
+    feature_names: tuple[str, ...]
+    scaler_mean: np.ndarray
+    scaler_scale: np.ndarray
+    threshold: float
+    clear_threshold: float
+    calibration: Mapping[str, Any]
+    training: Mapping[str, Any]
+    onnx_input: str
+    onnx_output: str
+    created: str
+    watchkeep_version: str
+    raw: Mapping[str, Any] = field(repr=False, default_factory=dict)
+
+
+def _need(doc: Mapping[str, Any], key: str, kind: type | tuple[type, ...], path: str) -> Any:
+    if key not in doc:
+        raise BundleError(path, f"model.json: missing key {key!r}")
+    value = doc[key]
+    if not isinstance(value, kind) or (isinstance(value, bool) and kind is not bool):
+        raise BundleError(path, f"model.json: {key} has the wrong type ({type(value).__name__})")
+    return value
+
+
+def parse_meta(doc: Mapping[str, Any], path: str) -> BundleMeta:
+    """Check a decoded `model.json` and return it as typed values."""
+    if doc.get("format") != FORMAT:
+        raise BundleError(path, f"model.json: format is not {FORMAT!r}")
+    if doc.get("format_version") != FORMAT_VERSION:
+        raise BundleError(path, f"model.json: format_version {doc.get('format_version')!r} "
+                                f"is not supported (this watchkeep reads {FORMAT_VERSION})")
+    names = _need(doc, "feature_names", list, path)
+    if not names or not all(isinstance(n, str) and n for n in names):
+        raise BundleError(path, "model.json: feature_names must be a non-empty list of names")
+    if len(set(names)) != len(names):
+        raise BundleError(path, "model.json: feature_names has duplicates")
+    scaler = _need(doc, "scaler", dict, path)
+    mean = np.asarray(scaler.get("mean", []), dtype=np.float64)
+    scale = np.asarray(scaler.get("scale", []), dtype=np.float64)
+    if mean.shape != (len(names),) or scale.shape != (len(names),):
+        raise BundleError(path, f"model.json: scaler mean/scale must have {len(names)} values")
+    if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(scale)) and np.all(scale > 0)):
+        raise BundleError(path, "model.json: scaler values must be finite, scale > 0")
+    score = _need(doc, "score", dict, path)
+    if score.get("function") != "mse":
+        raise BundleError(path, f"model.json: score function {score.get('function')!r} "
+                                "is not supported (only 'mse')")
+    threshold = float(_need(doc, "threshold", (int, float), path))
+    clear = float(_need(doc, "clear_threshold", (int, float), path))
+    if not (math.isfinite(threshold) and threshold > 0):
+        raise BundleError(path, "model.json: threshold must be a positive number")
+    if not (math.isfinite(clear) and 0 < clear <= threshold):
+        raise BundleError(path, "model.json: clear_threshold must be in (0, threshold]")
+    onnx_info = _need(doc, "onnx", dict, path)
+    return BundleMeta(
+        asset=str(_need(doc, "asset", str, path)),
+        mode=str(doc.get("mode", "default")),
+        model_id=str(_need(doc, "model_id", str, path)),
+        version=int(_need(doc, "version", int, path)),
+        feature_names=tuple(names),
+        scaler_mean=mean,
+        scaler_scale=scale,
+        threshold=threshold,
+        clear_threshold=clear,
+        calibration=dict(doc.get("calibration", {})),
+        training=dict(doc.get("training", {})),
+        onnx_input=str(onnx_info.get("input", "")),
+        onnx_output=str(onnx_info.get("output", "")),
+        created=str(doc.get("created", "")),
+        watchkeep_version=str(doc.get("watchkeep_version", "")),
+        raw=dict(doc),
+    )
+
+
+def _session_options() -> Any:
+    import onnxruntime as ort
+
+    opts = ort.SessionOptions()
+    # One thread, no spinning: the gateway's two cores also run the broker (PITFALLS.md).
+    opts.intra_op_num_threads = 1
+    opts.inter_op_num_threads = 1
+    opts.add_session_config_entry("session.intra_op.allow_spinning", "0")
+    opts.add_session_config_entry("session.inter_op.allow_spinning", "0")
+    opts.graph_optimization_level = ort.GraphOptimizationLevel.ORT_ENABLE_ALL
+    return opts
+
+
+class Bundle:
+    """A loaded, checked bundle: `reconstruct` runs the model on standardised features."""
+
+    def __init__(self, path: Path, meta: BundleMeta, session: Any) -> None:
+        self.path = path
+        self.meta = meta
+        self._session = session
+        self._input = meta.onnx_input
+        self._output = meta.onnx_output
+        self.digest = ""
+
+    @property
+    def n_features(self) -> int:
+        return len(self.meta.feature_names)
+
+    def standardise(self, x: np.ndarray) -> np.ndarray:
+        """Raw feature rows [N, F] -> standardised float32 rows."""
+        z = (np.asarray(x, dtype=np.float64) - self.meta.scaler_mean) / self.meta.scaler_scale
+        return z.astype(np.float32)
+
+    def reconstruct(self, z: np.ndarray) -> np.ndarray:
+        """Standardised rows [N, F] float32 -> the model's reconstruction [N, F] float32."""
+        z = np.ascontiguousarray(z, dtype=np.float32)
+        out = self._session.run([self._output], {self._input: z})[0]
+        return np.asarray(out, dtype=np.float32)
+
+    def score(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Raw feature rows -> (score per row, squared error per feature per row)."""
+        z = self.standardise(x)
+        err = (z - self.reconstruct(z)).astype(np.float64) ** 2
+        return err.mean(axis=1), err
+
+
+def load_bundle(path: str | os.PathLike[str]) -> Bundle:
+    """Load and check a bundle; raises BundleError with a clear reason on any fault."""
+    p = Path(path)
+    sp = str(p)
+    if not p.is_dir():
+        raise BundleError(sp, "is not a directory")
+    meta_path = p / MODEL_JSON
+    onnx_path = p / MODEL_ONNX
+    if not meta_path.is_file():
+        raise BundleError(sp, f"{MODEL_JSON} is missing")
+    if not onnx_path.is_file():
+        raise BundleError(sp, f"{MODEL_ONNX} is missing")
+    try:
+        doc = json.loads(meta_path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise BundleError(sp, f"{MODEL_JSON} is not valid JSON ({exc})") from exc
+    if not isinstance(doc, dict):
+        raise BundleError(sp, f"{MODEL_JSON} is not a JSON object")
+    meta = parse_meta(doc, sp)
+
+    import onnxruntime as ort
+
+    model_bytes = onnx_path.read_bytes()
+    try:
+        session = ort.InferenceSession(model_bytes, sess_options=_session_options(),
+                                       providers=["CPUExecutionProvider"])
+    except Exception as exc:  # onnxruntime raises several unrelated types
+        raise BundleError(sp, f"{MODEL_ONNX} is not a loadable ONNX model "
+                              f"({type(exc).__name__}: {str(exc).splitlines()[0][:200]})") from exc
+    inputs = session.get_inputs()
+    outputs = session.get_outputs()
+    if len(inputs) != 1:
+        raise BundleError(sp, f"the model has {len(inputs)} inputs, expected 1")
+    n = len(meta.feature_names)
+    inp = inputs[0]
+    if inp.type != "tensor(float)":
+        raise BundleError(sp, f"model input {inp.name!r} is {inp.type}, expected tensor(float)")
+    if len(inp.shape) != 2 or (isinstance(inp.shape[1], int) and inp.shape[1] != n):
+        raise BundleError(sp, f"model input {inp.name!r} has shape {inp.shape}, "
+                              f"expected [N, {n}] for {n} feature names")
+    if meta.onnx_input and meta.onnx_input != inp.name:
+        raise BundleError(sp, f"model.json names input {meta.onnx_input!r}, "
+                              f"the model's is {inp.name!r}")
+    out_names = [o.name for o in outputs]
+    out_name = meta.onnx_output or out_names[0]
+    if out_name not in out_names:
+        raise BundleError(sp, f"model.json names output {out_name!r}, the model has {out_names}")
+    meta = BundleMeta(**{**meta.__dict__, "onnx_input": inp.name, "onnx_output": out_name})
+    bundle = Bundle(p, meta, session)
+    # Probe: a batch of zeros (the training mean) and a batch of ones must give finite
+    # [N, F] reconstructions; this also warms the session up before READY.
+    for probe in (np.zeros((2, n), np.float32), np.ones((3, n), np.float32)):
+        try:
+            out = bundle.reconstruct(probe)
+        except Exception as exc:
+            raise BundleError(sp, f"the model fails on a probe batch of shape {probe.shape} "
+                                  f"({type(exc).__name__}: {str(exc).splitlines()[0][:200]})"
+                              ) from exc
+        if out.shape != probe.shape:
+            raise BundleError(sp, f"the model's output has shape {list(out.shape)} for input "
+                                  f"{list(probe.shape)}, expected the same shape")
+        if not np.all(np.isfinite(out)):
+            raise BundleError(sp, "the model gives non-finite output on a probe batch")
+    h = hashlib.sha256(model_bytes)
+    h.update(meta_path.read_bytes())
+    bundle.digest = h.hexdigest()
+    return bundle
+
+
+def write_bundle(dest: str | os.PathLike[str], model_bytes: bytes, meta: Mapping[str, Any]) -> Path:
+    """Write a bundle by temp-and-rename, so a reader never sees half a bundle.
+
+    If `dest` exists it is replaced in two renames (old moved aside, new moved in,
+    old removed); a crash in between leaves either the old or the new bundle whole
+    plus a `.old-*` directory beside it.
+    """
+    dest = Path(dest)
+    dest.parent.mkdir(parents=True, exist_ok=True)
+    doc = {"format": FORMAT, "format_version": FORMAT_VERSION, **meta}
+    tmp = Path(tempfile.mkdtemp(prefix=f".{dest.name}.tmp-", dir=dest.parent))
+    try:
+        for name, data in ((MODEL_ONNX, model_bytes),
+                           (MODEL_JSON, (json.dumps(doc, indent=2) + "\n").encode())):
+            with open(tmp / name, "wb") as fh:
+                fh.write(data)
+                fh.flush()
+                os.fsync(fh.fileno())
+        old = None
+        if dest.exists():
+            old = dest.parent / f".{dest.name}.old-{os.getpid()}"
+            os.rename(dest, old)
+        os.rename(tmp, dest)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+        _fsync_dir(dest.parent)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return dest
+
+
+def _fsync_dir(path: Path) -> None:
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)

@@ -1,0 +1,1 @@
+"""Commissioning toolkit: record, train, evaluate, replay."""

@@ -1,0 +1,100 @@
+"""State detection: k-of-n raise, m-consecutive clear, with a deadband between.
+
+Pure: a detector takes scores and returns transitions. The raise rule is "k of the
+last n scored windows above the threshold"; the clear rule is "m consecutive scored
+windows below the clear threshold" (a deadband, as alarm-management practice
+recommends against chattering: ISA-18.2 / IEC 62682, numbers from memory).
+"""
+
+from __future__ import annotations
+
+from collections import deque
+from dataclasses import dataclass
+from enum import StrEnum
+
+import numpy as np
+
+
+class State(StrEnum):
+    """Detector state of one asset (and its mode)."""
+
+    NORMAL = "normal"
+    ANOMALOUS = "anomalous"
+
+
+class Transition(StrEnum):
+    RAISED = "raised"
+    CLEARED = "cleared"
+
+
+@dataclass(frozen=True)
+class DetectorParams:
+    """Raise after `raise_k` of the last `raise_n` windows above threshold;
+    clear after `clear_m` consecutive windows below the clear threshold."""
+
+    raise_k: int = 2
+    raise_n: int = 3
+    clear_m: int = 3
+
+    def __post_init__(self) -> None:
+        if not (1 <= self.raise_k <= self.raise_n):
+            raise ValueError("need 1 <= raise_k <= raise_n")
+        if self.clear_m < 1:
+            raise ValueError("need clear_m >= 1")
+
+
+class Detector:
+    """One asset's detector; `step` is called once per scored window, in time order."""
+
+    def __init__(self, params: DetectorParams) -> None:
+        self.params = params
+        self.state = State.NORMAL
+        self._recent: deque[bool] = deque(maxlen=params.raise_n)
+        self._below = 0
+        self.peak_score = 0.0
+
+    def step(self, score: float, threshold: float, clear_threshold: float) -> Transition | None:
+        """Feed one window's score; return the transition it causes, if any."""
+        above = score > threshold
+        if self.state is State.NORMAL:
+            self._recent.append(above)
+            if sum(self._recent) >= self.params.raise_k:
+                self.state = State.ANOMALOUS
+                self._below = 0
+                self.peak_score = score
+                return Transition.RAISED
+            return None
+        self.peak_score = max(self.peak_score, score)
+        if score < clear_threshold:
+            self._below += 1
+            if self._below >= self.params.clear_m:
+                self.state = State.NORMAL
+                self._recent.clear()
+                self._below = 0
+                return Transition.CLEARED
+        else:
+            self._below = 0
+        return None
+
+    def reset(self) -> None:
+        """Forget history (after a model change or a gap)."""
+        self.state = State.NORMAL
+        self._recent.clear()
+        self._below = 0
+        self.peak_score = 0.0
+
+
+def run_detector(scores: np.ndarray, threshold: float, clear_threshold: float,
+                 params: DetectorParams) -> list[tuple[int, Transition]]:
+    """Run a fresh detector over a score series; return (index, transition) pairs.
+
+    The offline tools (evaluate, replay checks) use this so they judge with exactly
+    the daemon's rule.
+    """
+    det = Detector(params)
+    out: list[tuple[int, Transition]] = []
+    for i, s in enumerate(np.asarray(scores, dtype=np.float64)):
+        t = det.step(float(s), threshold, clear_threshold)
+        if t is not None:
+            out.append((i, t))
+    return out

@@ -1,0 +1,216 @@
+"""The composition root: builds the real parts and runs start / stop.
+
+Start: load bundles (a bad one fails its asset only) -> upstream -> pipeline loop
+-> ingest -> HTTP -> READY=1. Stop: ingest stops taking messages, the pipeline
+finishes its tick and runs one last one, the upstream side publishes the offline
+status and disconnects, the HTTP server closes.
+"""
+
+from __future__ import annotations
+
+import logging
+import os
+import signal
+import threading
+import time
+from collections.abc import Callable, Mapping
+from typing import Any
+
+from prometheus_client import CollectorRegistry
+
+from agent import __version__
+from agent.bundle import Bundle, load_bundle
+from agent.config import AssetConfig, Config
+from agent.errors import BundleError
+from agent.ingest import Buffers, Ingest, IngestHandler
+from agent.logs import kv
+from agent.metrics import HttpServer, Metrics
+from agent.notify import Notifier
+from agent.pipeline import AssetRuntime, Pipeline, Sink
+from agent.upstream import Upstream
+
+
+def load_asset_bundle(asset: AssetConfig, logger: logging.Logger
+                      ) -> tuple[Bundle | None, str | None]:
+    """The asset's bundle, or the reason it has none (logged, never raised)."""
+    if asset.bundle is None:
+        return None, None
+    try:
+        b = load_bundle(asset.bundle)
+    except BundleError as exc:
+        logger.error(kv("model bundle rejected; the asset runs without a model",
+                        asset=asset.name, error=str(exc)))
+        return None, str(exc)
+    logger.info(kv("model loaded", asset=asset.name, model=b.meta.model_id,
+                   version=b.meta.version, features=b.n_features))
+    return b, None
+
+
+class PipelineLoop:
+    """Ticks the pipeline every `tick_s` on its own thread; the watchdog follows it."""
+
+    def __init__(self, pipeline: Pipeline, tick_s: float, metrics: Metrics,
+                 notifier: Notifier, logger: logging.Logger,
+                 clock: Callable[[], float] = time.time) -> None:
+        self.pipeline = pipeline
+        self.tick_s = tick_s
+        self.metrics = metrics
+        self.notifier = notifier
+        self.log = logger
+        self.clock = clock
+        self.last_tick_mono = time.monotonic()
+        self.ticks = 0
+        self.wedged = threading.Event()  # a test hook: wedges the loop to test the watchdog
+        self._stop = threading.Event()
+        self._lock = threading.Lock()
+        self._thread = threading.Thread(target=self._run, name="watchkeep-pipeline",
+                                        daemon=True)
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def stop(self, timeout_s: float = 10.0) -> None:
+        self._stop.set()
+        self.wedged.clear()
+        self._thread.join(timeout_s)
+        self.tick_once()  # flush windows whose samples arrived before ingest stopped
+
+    def tick_once(self) -> None:
+        with self._lock:
+            t0 = time.perf_counter()
+            try:
+                self.pipeline.tick(self.clock())
+            except Exception:
+                self.log.exception("pipeline tick failed")
+                self.metrics.callback_errors.labels("pipeline").inc()
+            self.metrics.tick_seconds.observe(time.perf_counter() - t0)
+            self.last_tick_mono = time.monotonic()
+            self.ticks += 1
+
+    def _run(self) -> None:
+        next_at = time.monotonic()
+        last_wd = 0.0
+        while not self._stop.is_set():
+            while self.wedged.is_set() and not self._stop.is_set():
+                time.sleep(0.05)
+            now = time.monotonic()
+            self.metrics.tick_lag.set(max(0.0, now - next_at))
+            self.tick_once()
+            if now - last_wd >= 1.0:
+                self.notifier.watchdog()
+                last_wd = now
+            next_at += self.tick_s
+            if next_at < time.monotonic() - self.tick_s:
+                next_at = time.monotonic()  # fell behind: do not burst to catch up
+            self._stop.wait(max(0.0, next_at - time.monotonic()))
+
+
+class Daemon:
+    """watchkeep's running parts for one config."""
+
+    def __init__(self, cfg: Config, *, logger: logging.Logger | None = None,
+                 registry: CollectorRegistry | None = None,
+                 env: Mapping[str, str] | None = None,
+                 clock: Callable[[], float] = time.time,
+                 sink_factory: Callable[[Upstream], Sink] | None = None) -> None:
+        self.cfg = cfg
+        self.log = logger or logging.getLogger("watchkeep")
+        self.registry = registry or CollectorRegistry()
+        self.metrics = Metrics(self.registry)
+        self.env = dict(os.environ if env is None else env)
+        self.clock = clock
+        self.notifier = Notifier(self.env)
+        self.metrics.info.info({"version": __version__})
+        self._sink_factory = sink_factory
+        self._stopped = threading.Event()
+        self.http: HttpServer | None = None
+
+    def start(self) -> None:
+        cfg = self.cfg
+        cfg.state_dir.mkdir(parents=True, exist_ok=True)
+        runtimes = []
+        for a in cfg.assets:
+            bundle, err = load_asset_bundle(a, self.log)
+            rt = AssetRuntime.build(a, bundle, err)
+            if rt.bundle_error and not err:
+                self.log.error(kv("model bundle rejected; the asset runs without a model",
+                                  asset=a.name, error=rt.bundle_error))
+            runtimes.append(rt)
+        self.buffers = Buffers(cfg)
+        self.upstream = Upstream(cfg, self.metrics, self.log, clock=self.clock)
+        sink: Sink = self._sink_factory(self.upstream) if self._sink_factory else self.upstream
+        self.pipeline = Pipeline(cfg, self.buffers, sink, self.metrics, self.log, runtimes)
+        self.handler = IngestHandler(cfg, self.buffers, self.metrics, self.log)
+        self.ingest = Ingest(cfg, self.handler, self.metrics, self.log, clock=self.clock)
+        self.loop = PipelineLoop(self.pipeline, cfg.tick_s, self.metrics, self.notifier,
+                                 self.log, clock=self.clock)
+        self.upstream.start()
+        self.loop.start()
+        self.ingest.start()
+        if cfg.http.enabled:
+            self.http = HttpServer(cfg.http.host, cfg.http.port, self.registry,
+                                   healthy=self.healthy, ready=self.ready, status=self.status)
+            self.http.start()
+        loaded = sum(1 for rt in runtimes if rt.bundle is not None)
+        summary = f"{len(runtimes)} assets, {loaded} models loaded"
+        self.log.info(kv("watchkeep started", version=__version__, assets=len(runtimes),
+                         models=loaded,
+                         http=f"{cfg.http.host}:{self.http.port}" if self.http else "off"))
+        self.notifier.ready(summary)
+
+    def healthy(self) -> tuple[bool, str]:
+        age = time.monotonic() - self.loop.last_tick_mono
+        limit = max(5.0, 20 * self.cfg.tick_s)
+        if age > limit:
+            return False, f"pipeline has not ticked for {age:.1f} s"
+        return True, f"ok: last tick {age:.2f} s ago"
+
+    def ready(self) -> tuple[bool, str]:
+        if not self.ingest.connected.is_set():
+            return False, "local broker not connected"
+        missing = [rt.cfg.name for rt in self.pipeline.runtimes
+                   if rt.cfg.bundle is not None and rt.bundle is None]
+        if missing:
+            return False, "models not loaded: " + ", ".join(missing)
+        return True, "ready"
+
+    def status(self) -> dict[str, Any]:
+        doc = self.pipeline.status()
+        doc["version"] = __version__
+        doc["local_connected"] = self.ingest.connected.is_set()
+        doc["upstream_connected"] = self.upstream.connected.is_set()
+        return doc
+
+    def stop(self) -> None:
+        """Drain and stop; safe to call more than once."""
+        if self._stopped.is_set():
+            return
+        self._stopped.set()
+        self.notifier.stopping()
+        self.log.info("watchkeep stopping")
+        self.ingest.stop()
+        self.loop.stop()
+        self.upstream.stop()
+        if self.http is not None:
+            self.http.stop()
+        self.log.info("watchkeep stopped")
+
+
+def run_daemon(cfg: Config, logger: logging.Logger) -> int:
+    """`watchkeep run`: start, wait for SIGTERM/SIGINT, stop cleanly."""
+    done = threading.Event()
+
+    def _on_signal(signum: int, frame: Any) -> None:
+        logger.info(kv("signal received", signal=signal.Signals(signum).name))
+        done.set()
+
+    signal.signal(signal.SIGTERM, _on_signal)
+    signal.signal(signal.SIGINT, _on_signal)
+    daemon = Daemon(cfg, logger=logger)
+    daemon.start()
+    try:
+        while not done.wait(1.0):
+            pass
+    finally:
+        daemon.stop()
+    return 0

@@ -1,0 +1,233 @@
+"""Ingest: the local broker's network loop decodes messages and appends samples.
+
+The paho callbacks only decode, append to per-channel buffers and return; they
+never touch disk or the upstream network, and every exception is caught and
+counted, because one escaping exception kills paho's network thread while the
+process looks alive (PITFALLS.md).
+"""
+
+from __future__ import annotations
+
+import array
+import logging
+import threading
+import time
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+import paho.mqtt.client as mqtt
+from paho.mqtt.enums import CallbackAPIVersion
+
+from agent.config import BrokerConfig, Config, Decoder, MqttProtocol, read_secret
+from agent.core.decode import Reason, Rejected, decode
+from agent.core.routing import Route, build_routes
+from agent.logs import RateLimited, kv
+from agent.metrics import Metrics
+
+Clock = Callable[[], float]
+
+
+class ChannelBuffer:
+    """Samples of one channel waiting for the pipeline; filled by ingest, emptied by ticks."""
+
+    __slots__ = ("_blocks", "_lock", "_ts", "_vals", "last_arrival", "next_block_ts")
+
+    def __init__(self) -> None:
+        self._lock = threading.Lock()
+        self._ts = array.array("d")
+        self._vals = array.array("d")
+        self._blocks: list[tuple[np.ndarray, np.ndarray]] = []
+        self.last_arrival = 0.0
+        self.next_block_ts: float | None = None
+
+    def append(self, ts: float, value: float, arrival: float) -> None:
+        with self._lock:
+            self._ts.append(ts)
+            self._vals.append(value)
+            self.last_arrival = arrival
+
+    def append_block(self, ts: np.ndarray, values: np.ndarray, arrival: float) -> None:
+        with self._lock:
+            self._blocks.append((ts, values))
+            self.last_arrival = arrival
+
+    def take(self) -> tuple[np.ndarray, np.ndarray] | None:
+        """Everything appended since the last take, as (timestamps, values)."""
+        with self._lock:
+            if not self._ts and not self._blocks:
+                return None
+            ts_s, vals_s, blocks = self._ts, self._vals, self._blocks
+            self._ts = array.array("d")
+            self._vals = array.array("d")
+            self._blocks = []
+        parts_t = [b[0] for b in blocks]
+        parts_v = [b[1] for b in blocks]
+        if ts_s:
+            parts_t.append(np.frombuffer(ts_s, dtype=np.float64))
+            parts_v.append(np.frombuffer(vals_s, dtype=np.float64))
+        if len(parts_t) == 1:
+            return parts_t[0], parts_v[0]
+        return np.concatenate(parts_t), np.concatenate(parts_v)
+
+
+class Buffers:
+    """One ChannelBuffer per configured (asset, channel)."""
+
+    def __init__(self, cfg: Config) -> None:
+        self.by_asset: list[list[ChannelBuffer]] = [
+            [ChannelBuffer() for _ in a.channels] for a in cfg.assets]
+
+    def get(self, route: Route) -> ChannelBuffer:
+        return self.by_asset[route.asset_index][route.channel_index]
+
+
+class IngestHandler:
+    """Decode-and-append for one message; free of MQTT so it can be driven directly
+    (by `replay`, and by tests)."""
+
+    def __init__(self, cfg: Config, buffers: Buffers, metrics: Metrics,
+                 logger: logging.Logger) -> None:
+        self.cfg = cfg
+        self.routes = build_routes(cfg.assets)
+        self.buffers = buffers
+        self.metrics = metrics
+        self.log = RateLimited(logger)
+        self._rejected = {r: metrics.messages_rejected.labels(r.value) for r in Reason}
+        self._received = {a.name: metrics.messages_received.labels(a.name) for a in cfg.assets}
+        self._samples = {t: metrics.samples.labels(r.asset, r.channel.name)
+                         for t, r in self.routes.items()}
+        self._gaps = {t: metrics.gaps.labels(r.asset, r.channel.name)
+                      for t, r in self.routes.items()}
+        self._max_bytes = cfg.ingest.max_payload_bytes
+        self._max_skew = cfg.ingest.max_clock_skew_s
+
+    def handle(self, topic: str, payload: bytes, arrival: float) -> None:
+        route = self.routes.get(topic)
+        if route is None:
+            self._rejected[Reason.UNKNOWN_TOPIC].inc()
+            self.log.warning("unknown_topic", "message on a topic no channel uses",
+                             reason="unknown_topic")
+            return
+        self._received[route.asset].inc()
+        ch = route.channel
+        try:
+            ts, vals = decode(payload, ch, arrival, max_payload_bytes=self._max_bytes,
+                              max_skew_s=self._max_skew)
+        except Rejected as rej:
+            self._rejected[rej.reason].inc()
+            self.log.warning(f"{rej.reason.value}:{route.asset}", "message rejected",
+                             reason=rej.reason.value, asset=route.asset, channel=ch.name,
+                             detail=rej.detail)
+            return
+        buf = self.buffers.get(route)
+        if isinstance(ts, np.ndarray):
+            assert isinstance(vals, np.ndarray)
+            expected = buf.next_block_ts
+            if expected is not None and ch.decoder is Decoder.JSON_BATCH:
+                step = (ts[1] - ts[0]) if ts.size > 1 else 1.0 / ch.rate_hz
+                if abs(float(ts[0]) - expected) > 0.5 * step:
+                    self._gaps[topic].inc()
+            buf.next_block_ts = float(ts[-1]) + ((ts[1] - ts[0]) if ts.size > 1
+                                                 else 1.0 / ch.rate_hz)
+            buf.append_block(ts, vals, arrival)
+            self._samples[topic].inc(ts.size)
+        else:
+            buf.append(float(ts), float(vals), arrival)
+            self._samples[topic].inc()
+
+
+def make_client(broker: BrokerConfig, env: dict[str, str] | None = None) -> mqtt.Client:
+    """A paho client for a configured broker: VERSION2 callbacks, credentials, TLS."""
+    import os
+    import ssl
+
+    proto = mqtt.MQTTv5 if broker.protocol is MqttProtocol.V5 else mqtt.MQTTv311
+    client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=broker.client_id,
+                         protocol=proto, clean_session=None if proto == mqtt.MQTTv5 else True)
+    if broker.username:
+        client.username_pw_set(broker.username, read_secret(broker, env or dict(os.environ)))
+    if broker.tls is not None:
+        t = broker.tls
+        ctx = ssl.create_default_context(cafile=str(t.ca_file) if t.ca_file else None)
+        if t.cert_file and t.key_file:
+            ctx.load_cert_chain(str(t.cert_file), str(t.key_file))
+        if not t.verify:
+            ctx.check_hostname = False
+            ctx.verify_mode = ssl.CERT_NONE
+        client.tls_set_context(ctx)
+    client.reconnect_delay_set(min_delay=1, max_delay=30)
+    return client
+
+
+class Ingest:
+    """The local-broker side: connects, (re)subscribes on every connect, feeds the handler."""
+
+    def __init__(self, cfg: Config, handler: IngestHandler, metrics: Metrics,
+                 logger: logging.Logger, *, clock: Clock = time.time,
+                 client_factory: Callable[[BrokerConfig], mqtt.Client] = make_client) -> None:
+        self.cfg = cfg
+        self.handler = handler
+        self.metrics = metrics
+        self.log = logger
+        self.clock = clock
+        self._client = client_factory(cfg.local_broker)
+        self._client.on_connect = self._on_connect
+        self._client.on_disconnect = self._on_disconnect
+        self._client.on_message = self._on_message
+        self._connects = 0
+        self.connected = threading.Event()
+        self._errors = metrics.callback_errors.labels("ingest")
+        self._gauge = metrics.connected.labels("local")
+        self.disconnected_since: float | None = None
+
+    def start(self) -> None:
+        b = self.cfg.local_broker
+        self._client.connect_async(b.host, b.port, keepalive=b.keepalive_s)
+        self._client.loop_start()
+
+    def stop(self) -> None:
+        """Stop taking messages: unsubscribe-free disconnect, then end the loop thread."""
+        try:
+            self._client.disconnect()
+        finally:
+            self._client.loop_stop()
+
+    def _on_connect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any,
+                    props: Any) -> None:
+        try:
+            if reason.is_failure:
+                self.log.warning(kv("local broker refused the connection", reason=str(reason)))
+                return
+            self._connects += 1
+            if self._connects > 1:
+                self.metrics.reconnects.labels("local").inc()
+            topics = list(self.cfg.ingest.subscriptions) or sorted(self.handler.routes)
+            if topics:
+                client.subscribe([(t, 0) for t in topics])
+            self.connected.set()
+            self._gauge.set(1)
+            self.disconnected_since = None
+            self.log.info(kv("local broker connected", host=self.cfg.local_broker.host,
+                             port=self.cfg.local_broker.port, topics=len(topics)))
+        except Exception:
+            self._errors.inc()
+            self.log.exception("error in local on_connect")
+
+    def _on_disconnect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any,
+                       props: Any) -> None:
+        try:
+            if self.connected.is_set():
+                self.log.warning(kv("local broker connection lost", reason=str(reason)))
+            self.connected.clear()
+            self._gauge.set(0)
+            self.disconnected_since = self.clock()
+        except Exception:
+            self._errors.inc()
+
+    def _on_message(self, client: mqtt.Client, userdata: Any, msg: mqtt.MQTTMessage) -> None:
+        try:
+            self.handler.handle(msg.topic, msg.payload, self.clock())
+        except Exception:
+            self._errors.inc()
+            self.log.exception("error in local on_message")

@@ -1,0 +1,35 @@
+"""What the pipeline hands to the upstream side: topic, payload, and how to treat it."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from enum import IntEnum
+
+
+class Kind(IntEnum):
+    """Message kinds, in the order they are dropped when the outbox is full (lowest first)."""
+
+    SCORE = 0  # per-window score telemetry
+    STATE = 1  # retained asset state; a newer one supersedes it
+    EVENT = 2  # sensor, limit and model events
+    ANOMALY = 3  # anomaly.raised / anomaly.cleared: dropped last
+
+    @property
+    def label(self) -> str:
+        return self.name.lower()
+
+
+@dataclass(frozen=True)
+class OutMessage:
+    """One message for the upstream broker.
+
+    `key` names what a newer message of the same key supersedes (the state topic);
+    `None` for messages that must each be delivered.
+    """
+
+    topic: str
+    payload: bytes
+    kind: Kind
+    qos: int = 1
+    retain: bool = False
+    key: str | None = None

@@ -1,0 +1,171 @@
+"""Every metric watchkeep exports, on an injected registry, and the HTTP endpoints.
+
+Names follow the Prometheus naming rules (prometheus.io, "Metric and label
+naming"): `watchkeep_` prefix, base units, `_total` counters, `_seconds`
+histograms. Labels come only from bounded sets (asset, channel, reason, kind,
+broker) — never ids, values or topics from the wire.
+"""
+
+from __future__ import annotations
+
+import json
+import threading
+from collections.abc import Callable
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
+from typing import Any
+
+from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, Info
+from prometheus_client.exposition import CONTENT_TYPE_LATEST, generate_latest
+
+# Sub-millisecond to a few seconds: features and inference for one tick.
+WORK_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1,
+                0.25, 0.5, 1.0, 2.5)
+
+
+class Metrics:
+    """The daemon's metrics; build one per daemon with its own registry."""
+
+    def __init__(self, registry: CollectorRegistry) -> None:
+        self.registry = registry
+        r = registry
+        self.info = Info("watchkeep", "watchkeep build and model versions", registry=r)
+        self.messages_received = Counter(
+            "watchkeep_messages_received_total", "MQTT messages received from the local broker",
+            ["asset"], registry=r)
+        self.messages_rejected = Counter(
+            "watchkeep_messages_rejected_total", "Messages rejected, by reason", ["reason"],
+            registry=r)
+        self.callback_errors = Counter(
+            "watchkeep_callback_errors_total", "Exceptions caught in MQTT callbacks", ["loop"],
+            registry=r)
+        self.samples = Counter(
+            "watchkeep_samples_total", "Samples accepted per channel", ["asset", "channel"],
+            registry=r)
+        self.late_samples = Counter(
+            "watchkeep_late_samples_total", "Samples older than the oldest open window",
+            ["asset"], registry=r)
+        self.windows_closed = Counter(
+            "watchkeep_windows_closed_total", "Windows closed", ["asset"], registry=r)
+        self.windows_scored = Counter(
+            "watchkeep_windows_scored_total", "Windows scored by a model", ["asset"], registry=r)
+        self.windows_skipped = Counter(
+            "watchkeep_windows_skipped_total", "Windows not scored, by reason",
+            ["asset", "reason"], registry=r)
+        self.feature_seconds = Histogram(
+            "watchkeep_feature_seconds", "Feature extraction time per tick",
+            buckets=WORK_BUCKETS, registry=r)
+        self.inference_seconds = Histogram(
+            "watchkeep_inference_seconds", "Model inference time per batch",
+            buckets=WORK_BUCKETS, registry=r)
+        self.tick_seconds = Histogram(
+            "watchkeep_pipeline_tick_seconds", "Duration of one pipeline tick",
+            buckets=WORK_BUCKETS, registry=r)
+        self.tick_lag = Gauge(
+            "watchkeep_pipeline_tick_lag_seconds", "How late the last tick started", registry=r)
+        self.score = Gauge(
+            "watchkeep_anomaly_score", "Anomaly score of the last scored window", ["asset"],
+            registry=r)
+        self.threshold = Gauge(
+            "watchkeep_anomaly_threshold", "Raise threshold of the asset's model", ["asset"],
+            registry=r)
+        self.anomalous = Gauge(
+            "watchkeep_asset_anomalous", "1 while the asset's detector is raised", ["asset"],
+            registry=r)
+        self.model_loaded = Gauge(
+            "watchkeep_model_loaded", "1 when the asset's model bundle is loaded", ["asset"],
+            registry=r)
+        self.events = Counter(
+            "watchkeep_events_total", "Events emitted, by type", ["type"], registry=r)
+        self.connected = Gauge(
+            "watchkeep_broker_connected", "1 while connected to the broker", ["broker"],
+            registry=r)
+        self.reconnects = Counter(
+            "watchkeep_broker_reconnects_total", "Connections made after the first", ["broker"],
+            registry=r)
+        self.sample_age = Gauge(
+            "watchkeep_sensor_last_sample_age_seconds", "Seconds since the channel's last sample",
+            ["asset", "channel"], registry=r)
+        self.outbox_rows = Gauge(
+            "watchkeep_outbox_rows", "Messages waiting in the outbox", registry=r)
+        self.outbox_bytes = Gauge(
+            "watchkeep_outbox_bytes", "Payload bytes waiting in the outbox", registry=r)
+        self.outbox_oldest_age = Gauge(
+            "watchkeep_outbox_oldest_age_seconds", "Age of the oldest waiting message",
+            registry=r)
+        self.outbox_drops = Counter(
+            "watchkeep_outbox_dropped_total", "Messages dropped from a full outbox, by kind",
+            ["kind"], registry=r)
+        self.outbox_errors = Counter(
+            "watchkeep_outbox_write_errors_total", "Outbox writes that failed (retried)",
+            ["reason"], registry=r)
+        self.outbox_resets = Counter(
+            "watchkeep_outbox_corrupt_resets_total", "Corrupt outbox files moved aside",
+            registry=r)
+        self.published = Counter(
+            "watchkeep_upstream_published_total", "Messages acknowledged by the upstream broker",
+            ["kind"], registry=r)
+        self.since_ack = Gauge(
+            "watchkeep_upstream_seconds_since_last_ack",
+            "Seconds since the upstream broker last acknowledged a message", registry=r)
+        self.reloads = Counter(
+            "watchkeep_config_reloads_total", "Config reloads, by result", ["result"],
+            registry=r)
+        self.gaps = Counter(
+            "watchkeep_sample_gaps_total", "Waveform blocks that do not follow on from the last",
+            ["asset", "channel"], registry=r)
+
+
+StatusFn = Callable[[], dict[str, Any]]
+CheckFn = Callable[[], tuple[bool, str]]
+
+
+class HttpServer:
+    """`/metrics`, `/healthz`, `/readyz`, `/status` on one small threaded HTTP server."""
+
+    def __init__(self, host: str, port: int, registry: CollectorRegistry, *,
+                 healthy: CheckFn, ready: CheckFn, status: StatusFn) -> None:
+        outer = self
+
+        class Handler(BaseHTTPRequestHandler):
+            def do_GET(self) -> None:
+                path = self.path.split("?", 1)[0]
+                try:
+                    if path == "/metrics":
+                        self._send(200, generate_latest(outer.registry), CONTENT_TYPE_LATEST)
+                    elif path in ("/healthz", "/readyz"):
+                        ok, why = (healthy if path == "/healthz" else ready)()
+                        self._send(200 if ok else 503, (why + "\n").encode(), "text/plain")
+                    elif path == "/status":
+                        body = json.dumps(status(), indent=2).encode()
+                        self._send(200, body, "application/json")
+                    else:
+                        self._send(404, b"not found\n", "text/plain")
+                except Exception as exc:  # never let a scrape kill the server thread
+                    self._send(500, f"error: {exc}\n".encode(), "text/plain")
+
+            def _send(self, code: int, body: bytes, ctype: str) -> None:
+                self.send_response(code)
+                self.send_header("Content-Type", ctype)
+                self.send_header("Content-Length", str(len(body)))
+                self.end_headers()
+                self.wfile.write(body)
+
+            def log_message(self, format: str, *args: Any) -> None:
+                return
+
+        self.registry = registry
+        self._server = ThreadingHTTPServer((host, port), Handler)
+        self._server.daemon_threads = True
+        self._thread = threading.Thread(target=self._server.serve_forever,
+                                        name="watchkeep-http", daemon=True)
+
+    @property
+    def port(self) -> int:
+        return int(self._server.server_address[1])
+
+    def start(self) -> None:
+        self._thread.start()
+
+    def stop(self) -> None:
+        self._server.shutdown()
+        self._server.server_close()

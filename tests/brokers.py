@@ -1,0 +1,95 @@
+"""Real Mosquitto brokers for tests: free loopback ports, temp configs, stop/restart by PID."""
+
+from __future__ import annotations
+
+import shutil
+import socket
+import subprocess
+import time
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any
+
+MOSQUITTO = shutil.which("mosquitto") or "/usr/sbin/mosquitto"
+
+
+def free_port() -> int:
+    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def wait_for(pred: Callable[[], Any], timeout_s: float = 10.0, interval_s: float = 0.02,
+             what: str = "condition") -> Any:
+    """Poll `pred` until it returns something truthy; fail after `timeout_s`."""
+    deadline = time.monotonic() + timeout_s
+    while True:
+        v = pred()
+        if v:
+            return v
+        if time.monotonic() > deadline:
+            raise AssertionError(f"timed out after {timeout_s} s waiting for {what}")
+        time.sleep(interval_s)
+
+
+def _port_open(port: int) -> bool:
+    try:
+        with socket.create_connection(("127.0.0.1", port), timeout=0.2):
+            return True
+    except OSError:
+        return False
+
+
+class Broker:
+    """One Mosquitto process on a loopback port; `extra` lines go into its config."""
+
+    def __init__(self, workdir: Path, extra: str = "", port: int | None = None) -> None:
+        self.workdir = workdir
+        self.workdir.mkdir(parents=True, exist_ok=True)
+        self.port = port or free_port()
+        self.extra = extra
+        self.proc: subprocess.Popen[bytes] | None = None
+        self.conf = self.workdir / "mosquitto.conf"
+        self.log = self.workdir / "mosquitto.log"
+
+    def write_conf(self) -> None:
+        self.conf.write_text(
+            f"listener {self.port} 127.0.0.1\n"
+            "allow_anonymous true\n"
+            "persistence false\n"
+            f"log_dest file {self.log}\n"
+            "log_type error\nlog_type warning\nlog_type notice\n"
+            "max_queued_messages 100000\n"
+            f"{self.extra}\n")
+
+    def start(self, wait_port: int | None = None) -> Broker:
+        self.write_conf()
+        self.proc = subprocess.Popen([MOSQUITTO, "-c", str(self.conf)],
+                                     stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        port = wait_port or self.port
+        deadline = time.monotonic() + 10
+        while not _port_open(port):
+            if self.proc.poll() is not None:
+                err = self.proc.stderr.read().decode() if self.proc.stderr else ""
+                raise RuntimeError(f"mosquitto exited: {err} {self.log_text()}")
+            if time.monotonic() > deadline:
+                raise RuntimeError("mosquitto did not open its port")
+            time.sleep(0.02)
+        return self
+
+    def stop(self) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(5)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(5)
+        self.proc = None
+
+    def restart(self) -> None:
+        self.stop()
+        self.start()
+
+    def log_text(self) -> str:
+        return self.log.read_text() if self.log.exists() else ""
