@@ -1,0 +1,475 @@
+"""`watchkeep evaluate`: score a dataset with a bundle and judge it as the daemon would.
+
+Scenarios: `recorded` is the dataset as it is, its faults taken from a labels file or
+the dataset's own `label` array (none: every window is normal). Each `--inject KIND`
+adds a scenario: the dataset's normal windows with synthetic faults of that kind
+(`agent.commission.inject`). Every scenario is scored by the bundle
+(`agent.bundle.Bundle.score`) and run through `agent.core.detector.run_detector`
+with the bundle's thresholds — the daemon's rule, not a copy of it.
+
+Definitions (window indices are in time order within the scenario):
+- a fault *event* is one labelled span (or one run of labelled / injected windows); its
+  windows are those overlapping the span;
+- an event is *detected* when the detector is in the anomalous state at any of its
+  windows; the *delay* runs from the fault's onset to the end of the first such window
+  (0 windows if the detector was already anomalous at onset);
+- a *false alarm* is a raise whose evidence — the raising window and the n-1 before
+  it — holds no faulty window; false alarms per day divide by the time covered by
+  normal windows (the union of their intervals, so hopping windows count once);
+- ROC AUC per kind compares that kind's windows with the scenario's normal windows.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import os
+import sys
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, TextIO
+
+import numpy as np
+
+from agent.bundle import Bundle, load_bundle
+from agent.commission.dataset import Dataset, read_dataset
+from agent.commission.inject import FaultKind, InjectSpec, inject, parse_inject
+from agent.core.detector import DetectorParams, Transition, run_detector
+from agent.errors import DatasetError
+
+SECONDS_PER_DAY = 86400.0
+DEFAULT_ALTERNATIVES: tuple[tuple[int, int, int], ...] = tuple(
+    (k, n, m) for (k, n) in ((1, 1), (2, 3), (3, 5), (5, 8)) for m in (1, 3, 6))
+_SCORE_CHUNK = 4096
+
+
+# --- metrics (pure) ---------------------------------------------------------------------
+
+def rank_average(x: np.ndarray) -> np.ndarray:
+    """1-based ranks with ties given their average rank."""
+    x = np.asarray(x, np.float64)
+    order = np.argsort(x, kind="mergesort")
+    sx = x[order]
+    # boundaries of runs of equal values
+    starts = np.concatenate([[0], np.nonzero(np.diff(sx))[0] + 1])
+    ends = np.concatenate([starts[1:], [sx.size]])
+    avg = (starts + ends + 1) / 2.0  # mean of ranks starts+1 .. ends
+    ranks = np.empty(x.size, np.float64)
+    ranks[order] = np.repeat(avg, ends - starts)
+    return ranks
+
+
+def roc_auc(scores: np.ndarray, positive: np.ndarray) -> float:
+    """ROC AUC by the Mann-Whitney rank statistic: P(score_pos > score_neg) + P(tie)/2.
+
+    NaN when one class is empty.
+    """
+    s = np.asarray(scores, np.float64)
+    y = np.asarray(positive, bool)
+    n_pos = int(y.sum())
+    n_neg = int(y.size - n_pos)
+    if n_pos == 0 or n_neg == 0:
+        return math.nan
+    r = rank_average(s)
+    u = r[y].sum() - n_pos * (n_pos + 1) / 2.0
+    return float(u / (n_pos * n_neg))
+
+
+def union_duration_s(start: np.ndarray, end: np.ndarray) -> float:
+    """Length of the union of intervals [start, end) in seconds."""
+    if len(start) == 0:
+        return 0.0
+    order = np.argsort(start, kind="mergesort")
+    s, e = np.asarray(start, np.float64)[order], np.asarray(end, np.float64)[order]
+    total, cur_s, cur_e = 0.0, s[0], e[0]
+    for a, b in zip(s[1:], e[1:], strict=True):
+        if a > cur_e:
+            total += cur_e - cur_s
+            cur_s, cur_e = a, b
+        else:
+            cur_e = max(cur_e, b)
+    return float(total + cur_e - cur_s)
+
+
+# --- ground truth -----------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class FaultSpan:
+    """One labelled fault: [start, end) unix seconds on an asset."""
+
+    asset: str
+    kind: str
+    start: float
+    end: float
+    fault_class: str = "machine"
+
+
+@dataclass(frozen=True)
+class TruthEvent:
+    kind: str
+    fault_class: str
+    onset_s: float
+    first: int
+    last: int  # inclusive
+
+
+def load_labels(path: str | os.PathLike[str]) -> list[FaultSpan]:
+    """Read a labels file: a JSON list of {"asset","kind","start","end","class"}."""
+    p = Path(path)
+    try:
+        doc = json.loads(p.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise DatasetError(f"labels {p}: cannot be read as JSON ({exc})") from exc
+    if not isinstance(doc, list):
+        raise DatasetError(f"labels {p}: expected a JSON list of fault spans")
+    spans: list[FaultSpan] = []
+    problems: list[str] = []
+    for i, item in enumerate(doc):
+        if not isinstance(item, dict):
+            problems.append(f"[{i}]: expected an object")
+            continue
+        try:
+            start, end = float(item["start"]), float(item["end"])
+            cls = str(item.get("class", "machine"))
+            span = FaultSpan(asset=str(item["asset"]), kind=str(item["kind"]), start=start,
+                             end=end, fault_class=cls)
+        except (KeyError, TypeError, ValueError) as exc:
+            problems.append(f"[{i}]: needs asset, kind, start, end ({exc})")
+            continue
+        if not (math.isfinite(start) and math.isfinite(end) and end > start):
+            problems.append(f"[{i}]: end must be after start")
+        elif cls not in ("machine", "sensor"):
+            problems.append(f"[{i}].class: expected 'machine' or 'sensor', got {cls!r}")
+        else:
+            spans.append(span)
+    if problems:
+        raise DatasetError(f"labels {p}: " + "; ".join(problems[:10]))
+    return spans
+
+
+def truth_from_spans(window_start: np.ndarray, window_end: np.ndarray,
+                     spans: Sequence[FaultSpan], asset: str
+                     ) -> tuple[np.ndarray, list[TruthEvent]]:
+    """Per-window kind ('' = normal) and the events; a window overlapping a span is faulty."""
+    ws, we = np.asarray(window_start), np.asarray(window_end)
+    kinds = np.full(ws.shape, "", dtype=object)
+    events: list[TruthEvent] = []
+    for sp in sorted((s for s in spans if s.asset == asset), key=lambda s: s.start):
+        hit = np.nonzero((ws < sp.end) & (we > sp.start))[0]
+        if hit.size == 0:
+            continue
+        kinds[hit] = np.where(kinds[hit] == "", sp.kind, kinds[hit])
+        events.append(TruthEvent(sp.kind, sp.fault_class, sp.start, int(hit[0]), int(hit[-1])))
+    return kinds, events
+
+
+def truth_from_runs(window_start: np.ndarray, kinds: np.ndarray,
+                    fault_class: str = "machine") -> list[TruthEvent]:
+    """Events as maximal runs of equal non-empty kinds."""
+    events: list[TruthEvent] = []
+    i, n = 0, len(kinds)
+    while i < n:
+        if kinds[i] == "":
+            i += 1
+            continue
+        j = i
+        while j + 1 < n and kinds[j + 1] == kinds[i]:
+            j += 1
+        events.append(TruthEvent(str(kinds[i]), fault_class, float(window_start[i]), i, j))
+        i = j + 1
+    return events
+
+
+# --- judging ----------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class EventOutcome:
+    event: TruthEvent
+    detected: bool
+    delay_windows: int | None
+    delay_s: float | None
+
+
+@dataclass(frozen=True)
+class Detection:
+    """How one (k, n, m) setting did on one scenario."""
+
+    params: DetectorParams
+    events: list[EventOutcome]
+    false_alarms: int
+    normal_s: float
+    raises: int
+
+    @property
+    def n_events(self) -> int:
+        return len(self.events)
+
+    @property
+    def n_detected(self) -> int:
+        return sum(e.detected for e in self.events)
+
+    @property
+    def detection_rate(self) -> float:
+        return self.n_detected / self.n_events if self.events else math.nan
+
+    def delays(self) -> tuple[list[int], list[float]]:
+        w = [e.delay_windows for e in self.events if e.delay_windows is not None]
+        s = [e.delay_s for e in self.events if e.delay_s is not None]
+        return w, s
+
+    @property
+    def false_alarms_per_day(self) -> float:
+        return self.false_alarms / (self.normal_s / SECONDS_PER_DAY) if self.normal_s else math.nan
+
+
+def judge(scores: np.ndarray, window_start: np.ndarray, window_end: np.ndarray,
+          kinds: np.ndarray, events: Sequence[TruthEvent], threshold: float,
+          clear_threshold: float, params: DetectorParams) -> Detection:
+    """Run the daemon's detector over `scores` and score it against the truth."""
+    n = len(scores)
+    faulty = np.asarray([k != "" for k in kinds], bool)
+    transitions = run_detector(scores, threshold, clear_threshold, params)
+    anomalous = np.zeros(n, bool)
+    state, last = False, 0
+    for idx, t in transitions:
+        anomalous[last:idx] = state
+        state = t is Transition.RAISED
+        last = idx
+    anomalous[last:] = state
+    raises = [i for i, t in transitions if t is Transition.RAISED]
+    false_alarms = sum(1 for i in raises
+                       if not faulty[max(0, i - params.raise_n + 1):i + 1].any())
+    outcomes = []
+    for ev in events:
+        hit = np.nonzero(anomalous[ev.first:ev.last + 1])[0]
+        if hit.size:
+            j = ev.first + int(hit[0])
+            outcomes.append(EventOutcome(ev, True, j - ev.first,
+                                         max(0.0, float(window_end[j]) - ev.onset_s)))
+        else:
+            outcomes.append(EventOutcome(ev, False, None, None))
+    normal_s = union_duration_s(np.asarray(window_start)[~faulty],
+                                np.asarray(window_end)[~faulty])
+    return Detection(params, outcomes, false_alarms, normal_s, len(raises))
+
+
+# --- scenarios --------------------------------------------------------------------------
+
+@dataclass(frozen=True)
+class Scenario:
+    """One judged series: the recorded data or one injected fault kind."""
+
+    name: str
+    source: str  # "recorded" | "injected"
+    scores: np.ndarray = field(repr=False)
+    window_start: np.ndarray = field(repr=False)
+    window_end: np.ndarray = field(repr=False)
+    kinds: np.ndarray = field(repr=False)
+    events: list[TruthEvent]
+    auc: dict[str, float]
+    detection: Detection
+    alternatives: list[Detection]
+
+
+@dataclass(frozen=True)
+class Evaluation:
+    bundle: dict[str, Any]
+    dataset: dict[str, Any]
+    params: DetectorParams
+    threshold: float
+    clear_threshold: float
+    scenarios: list[Scenario]
+    notes: list[str]
+
+    def overall(self) -> list[dict[str, Any]]:
+        """Per (k, n, m): detection and delay over every scenario's fault events, false
+        alarms per day from the recorded scenario's normal windows, and apart from those
+        the share of injected one-window spikes that raised (lower is better: a k-of-n
+        rule is meant to ride through a transient)."""
+        rows = []
+        base = next((s for s in self.scenarios if s.source == "recorded"), None)
+        for i, alt in enumerate(self.scenarios[0].alternatives):
+            evs = [e for s in self.scenarios for e in s.alternatives[i].events
+                   if not _is_spike(e.event)]
+            spikes = [e for s in self.scenarios for e in s.alternatives[i].events
+                      if _is_spike(e.event)]
+            w = [e.delay_windows for e in evs if e.delay_windows is not None]
+            sec = [e.delay_s for e in evs if e.delay_s is not None]
+            fa = base.alternatives[i] if base is not None else None
+            rows.append({
+                "raise_k": alt.params.raise_k, "raise_n": alt.params.raise_n,
+                "clear_m": alt.params.clear_m,
+                "events": len(evs), "detected": sum(e.detected for e in evs),
+                "detection_rate": (sum(e.detected for e in evs) / len(evs)) if evs else None,
+                "median_delay_windows": float(np.median(w)) if w else None,
+                "median_delay_s": float(np.median(sec)) if sec else None,
+                "false_alarms": fa.false_alarms if fa else None,
+                "false_alarms_per_day": _num(fa.false_alarms_per_day) if fa else None,
+                "spike_events": len(spikes),
+                "spikes_raised": (sum(e.detected for e in spikes) / len(spikes))
+                if spikes else None,
+                "current": alt.params == self.params,
+            })
+        return rows
+
+
+def _is_spike(ev: TruthEvent) -> bool:
+    return ev.fault_class == "injected" and ev.kind == FaultKind.SPIKE.value and \
+        ev.last - ev.first < 2
+
+
+def _num(x: float) -> float | None:
+    return None if x is None or not math.isfinite(x) else float(x)
+
+
+def _score(bundle: Bundle, x: np.ndarray) -> np.ndarray:
+    parts = [bundle.score(x[i:i + _SCORE_CHUNK])[0] for i in range(0, len(x), _SCORE_CHUNK)]
+    return np.concatenate(parts) if parts else np.zeros(0)
+
+
+def _auc_by_kind(scores: np.ndarray, kinds: np.ndarray) -> dict[str, float]:
+    normal = kinds == ""
+    out: dict[str, float] = {}
+    for kind in sorted({str(k) for k in kinds if k != ""}):
+        mask = kinds == kind
+        out[kind] = roc_auc(scores[mask | normal], mask[mask | normal])
+    if len(out) > 1:
+        out["all"] = roc_auc(scores, ~normal)
+    return out
+
+
+def _scenario(name: str, source: str, scores: np.ndarray, ds: Dataset, kinds: np.ndarray,
+              events: list[TruthEvent], threshold: float, clear: float,
+              params: DetectorParams, alternatives: Sequence[DetectorParams]) -> Scenario:
+    alts = [judge(scores, ds.window_start, ds.window_end, kinds, events, threshold, clear, p)
+            for p in alternatives]
+    return Scenario(name, source, scores, ds.window_start, ds.window_end, kinds, events,
+                    _auc_by_kind(scores, kinds),
+                    judge(scores, ds.window_start, ds.window_end, kinds, events, threshold,
+                          clear, params), alts)
+
+
+def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | None = None,
+             inject_specs: Sequence[InjectSpec] = (),
+             params: DetectorParams | None = None,
+             alternatives: Sequence[tuple[int, int, int]] = DEFAULT_ALTERNATIVES,
+             seed: int = 0) -> Evaluation:
+    """Score `dataset` with `bundle`, judge each scenario (see the module docstring)."""
+    params = params or DetectorParams()
+    meta = bundle.meta
+    notes: list[str] = []
+    ds = dataset
+    modes = ds.modes
+    if meta.mode in modes:
+        if len(modes) > 1:
+            notes.append(f"evaluated the {meta.mode!r} windows only (dataset modes "
+                         f"{list(modes)})")
+            ds = ds.select(ds.mode == meta.mode)
+    elif len(modes) == 1:
+        notes.append(f"the dataset's mode {modes[0]!r} differs from the bundle's "
+                     f"{meta.mode!r}; evaluated anyway")
+    else:
+        raise DatasetError(f"dataset {ds.path} has no windows in the bundle's mode "
+                           f"{meta.mode!r} (its modes: {list(modes)})")
+    if ds.asset and ds.asset != meta.asset:
+        notes.append(f"dataset asset {ds.asset!r} differs from the bundle's {meta.asset!r}")
+    x = ds.columns(meta.feature_names)
+    extra = [n for n in ds.feature_names if n not in set(meta.feature_names)]
+    if extra:
+        notes.append(f"{len(extra)} dataset feature(s) the model does not use were ignored")
+    thr, clear = meta.threshold, meta.clear_threshold
+    alt_params = [DetectorParams(k, n, m) for (k, n, m) in alternatives]
+    if params not in alt_params:
+        alt_params.append(params)
+
+    if spans is not None:
+        kinds, events = truth_from_spans(ds.window_start, ds.window_end, spans,
+                                         ds.asset or meta.asset)
+        if not events:
+            notes.append("no labelled fault overlaps the dataset's windows of this asset")
+    elif ds.label is not None:
+        kinds = np.asarray(["" if v == 0 else f"label_{int(v)}" for v in ds.label], object)
+        events = truth_from_runs(ds.window_start, kinds)
+    else:
+        kinds = np.full(ds.n_windows, "", dtype=object)
+        events = []
+    scores = _score(bundle, x)
+    scenarios = [_scenario("recorded", "recorded", scores, ds, kinds, events, thr, clear,
+                           params, alt_params)]
+
+    if inject_specs:
+        normal = kinds == ""
+        base = ds.select(normal)
+        xb = x[normal]
+        sigma = meta.scaler_scale
+        for spec in inject_specs:
+            xi, injected = inject(xb, sigma, meta.feature_names, spec, seed=seed)
+            ik = np.full(base.n_windows, "", dtype=object)
+            for ev in injected:
+                ik[ev.first:ev.last + 1] = spec.name
+            ievents = [TruthEvent(spec.name, "injected", float(base.window_start[ev.first]),
+                                  ev.first, ev.last) for ev in injected]
+            label = f"{spec.name} {spec.severity:g} sigma x {spec.length} windows"
+            scenarios.append(_scenario(f"inject:{label}", "injected", _score(bundle, xi),
+                                       base, ik, ievents, thr, clear, params, alt_params))
+    info_b = {"path": str(bundle.path), "model_id": meta.model_id, "version": meta.version,
+              "threshold": thr, "clear_threshold": clear, "n_features": bundle.n_features}
+    info_d = {"path": str(ds.path) if ds.path else "", "asset": ds.asset,
+              "n_windows": ds.n_windows, "content_sha256": ds.content_sha256,
+              "time_span": [float(ds.window_start.min()), float(ds.window_end.max())]}
+    return Evaluation(info_b, info_d, params, thr, clear, scenarios, notes)
+
+
+# --- CLI --------------------------------------------------------------------------------
+
+def _inject_type(text: str) -> InjectSpec:
+    try:
+        return parse_inject(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from exc
+
+
+def add_evaluate_arguments(parser: argparse.ArgumentParser) -> None:
+    """Arguments of `watchkeep evaluate BUNDLE DATASET ...`."""
+    d = DetectorParams()
+    parser.add_argument("bundle", help="model bundle directory")
+    parser.add_argument("dataset", help="dataset directory")
+    parser.add_argument("--labels", help="JSON list of fault spans {asset, kind, start, end, "
+                        "class} (default: the dataset's own labels, if any)")
+    parser.add_argument("--inject", type=_inject_type, nargs="+", action="extend",
+                        default=[], metavar="KIND[:SIGMA[:WINDOWS]]",
+                        help="inject synthetic faults into normal windows: step, drift, "
+                             "noise, stuck, spike")
+    parser.add_argument("--report", help="directory for report.json and report.png")
+    parser.add_argument("--raise-k", type=int, default=d.raise_k)
+    parser.add_argument("--raise-n", type=int, default=d.raise_n)
+    parser.add_argument("--clear-m", type=int, default=d.clear_m)
+    parser.add_argument("--seed", type=int, default=0, help="seed for injected faults")
+
+
+def cmd_evaluate(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
+    """Run `evaluate` from parsed arguments; print the summary; return the exit code.
+
+    WatchkeepError subclasses propagate: the CLI turns them into one line.
+    """
+    from agent.commission.report import format_summary, write_report
+
+    stream = out or sys.stdout
+    try:
+        params = DetectorParams(args.raise_k, args.raise_n, args.clear_m)
+    except ValueError as exc:
+        raise DatasetError(f"detector settings: {exc}") from exc
+    bundle = load_bundle(args.bundle)
+    ds = read_dataset(args.dataset)
+    spans = load_labels(args.labels) if args.labels else None
+    result = evaluate(bundle, ds, spans=spans, inject_specs=list(args.inject), params=params,
+                      seed=args.seed)
+    print(format_summary(result), file=stream)
+    if args.report:
+        written = write_report(result, args.report)
+        print(f"report: {written.json_path}", file=stream)
+        print(f"plot: {written.png_path}" if written.png_path else f"plot skipped: "
+              f"{written.plot_note}", file=stream)
+    return 0
