@@ -125,6 +125,12 @@ class WindowAssembler:
                 # sample (or as far as the data clock allows) without materialising
                 # every empty window of a long gap.
                 target = start + hop
+                if first is None and self._last_arrival != -math.inf:
+                    # No data at all: jump to just after the last window that is due now
+                    # (a clock step or a long outage must not loop window by window).
+                    vwm = self._max_ts + max(0.0, now - self._last_arrival)
+                    last_due = math.floor((vwm - length - self.cfg.timeout_s) / hop + 1e-9) * hop
+                    target = max(target, last_due + hop)
                 if first is not None:
                     # The first window holding `first`: smallest k*hop with k*hop+length > first.
                     target = max(target, (math.floor((first - length) / hop + 1e-9) + 1) * hop)
