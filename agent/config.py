@@ -157,7 +157,8 @@ def _describe(v: Any) -> str:
     if isinstance(v, str):
         return repr(v) if len(v) < 60 else f"a string of {len(v)} characters"
     if isinstance(v, int | float):
-        return str(v)
+        text = str(v)
+        return text if len(text) <= 24 else f"a number of {len(text)} digits"
     if isinstance(v, list):
         return f"a list of {len(v)}"
     if isinstance(v, dict):
@@ -172,8 +173,10 @@ class _Reader:
         self.problems: list[ConfigProblem] = []
         self.base_dir = base_dir
 
-    def bad(self, path: str, expected: str, got: Any = ...) -> None:
-        self.problems.append(ConfigProblem(path, expected, "" if got is ... else _describe(got)))
+    def bad(self, path: str, expected: str, got: Any = ..., *, found: str = "") -> None:
+        """Record a problem; `got` is a config value to describe, `found` ready-made words."""
+        said = found or ("" if got is ... else _describe(got))
+        self.problems.append(ConfigProblem(path, expected, said))
 
     def mapping(self, node: Any, path: str, allowed: tuple[str, ...]) -> dict[str, Any]:
         if node is None:
@@ -185,27 +188,26 @@ class _Reader:
             if k not in allowed:
                 where = f"{path}.{k}" if path else str(k)
                 self.bad(where, f"one of the known keys ({', '.join(allowed)})",
-                         f"unknown key {k!r}")
+                         found=f"unknown key {k!r}")
         return node
 
     def get(self, node: dict[str, Any], key: str, path: str, kind: str, default: Any,
             check: Callable[[Any], bool] | None = None, expected: str = "") -> Any:
         where = f"{path}.{key}" if path else key
+        names = {"str": "a string", "int": "an integer", "num": "a number",
+                 "bool": "true or false", "list": "a list"}
         if key not in node or node[key] is None:
             if default is _REQUIRED:
-                self.bad(where, expected or f"{kind} (required)")
+                self.bad(where, f"{expected or names[kind]} (required)")
             return None if default is _REQUIRED else default
         v = node[key]
         ok = {
             "str": isinstance(v, str) and v != "",
             "int": isinstance(v, int) and not isinstance(v, bool),
-            "num": isinstance(v, int | float) and not isinstance(v, bool)
-            and math.isfinite(float(v)),
+            "num": _finite_number(v),
             "bool": isinstance(v, bool),
             "list": isinstance(v, list),
         }[kind]
-        names = {"str": "a string", "int": "an integer", "num": "a number",
-                 "bool": "true or false", "list": "a list"}
         if not ok:
             self.bad(where, expected or names[kind], v)
             return None if default is _REQUIRED else default
@@ -222,6 +224,15 @@ class _Reader:
 
 
 _REQUIRED = object()
+
+
+def _finite_number(v: Any) -> bool:
+    if isinstance(v, bool) or not isinstance(v, int | float):
+        return False
+    try:
+        return math.isfinite(float(v))
+    except OverflowError:  # an integer too large for a float
+        return False
 
 
 def _name(v: Any) -> bool:
@@ -277,11 +288,14 @@ def _broker(r: _Reader, node: Any, path: str, default_id: str, default_port: int
         key = r.path(r.get(t, "key_file", tpath, "str", None))
         for label, p in (("ca_file", ca), ("cert_file", cert), ("key_file", key)):
             if p is not None and not p.is_file():
-                r.bad(f"{tpath}.{label}", "an existing file", str(p))
+                r.bad(f"{tpath}.{label}", "an existing file", found=str(p))
         if (cert is None) != (key is None):
             r.bad(f"{tpath}.cert_file", "cert_file and key_file together (mutual TLS)")
         tls = TlsConfig(ca, cert, key, r.get(t, "verify", tpath, "bool", True))
     pw_file = r.path(r.get(n, "password_file", path, "str", None))
+    if pw_file is not None and n.get("password") is not None:
+        # Two sources for one secret: which one wins would be a silent surprise.
+        r.bad(f"{path}.password_file", "either password or password_file, not both")
     return BrokerConfig(host=host, port=port, client_id=client_id, keepalive_s=keepalive,
                         username=r.get(n, "username", path, "str", None),
                         password=r.get(n, "password", path, "str", None),
@@ -307,9 +321,12 @@ def _window(r: _Reader, node: Any, path: str) -> WindowConfig:
 
 def _channel(r: _Reader, name: Any, node: Any, path: str) -> ChannelConfig | None:
     if not _name(name):
-        r.bad(path, "a channel name of letters, digits, '_', '.', '-'", name)
+        r.bad(path, "a channel name of letters, digits, '_', '.', '-' (at most 64)", name)
     keys = ("topic", "decoder", "rate_hz", "features", "unit", "ts_field", "value_field",
             "values_field", "rate_field")
+    if not isinstance(node, dict):
+        r.bad(path, "a mapping of channel settings (topic, decoder, rate_hz, ...)", node)
+        return None
     n = r.mapping(node, path, keys)
     topic = r.get(n, "topic", path, "str", _REQUIRED, _topic_ok,
                   "a topic string without wildcards")
@@ -317,15 +334,16 @@ def _channel(r: _Reader, name: Any, node: Any, path: str) -> ChannelConfig | Non
                 "one of json, json-batch, text")
     decoder = Decoder(dec) if dec in {d.value for d in Decoder} else Decoder.JSON
     rate = r.get(n, "rate_hz", path, "num", _REQUIRED, lambda v: 0 < v <= 1e6,
-                 "the expected sample rate in Hz (> 0)")
+                 "a sample rate in Hz, > 0 and at most 1000000")
     default_feats = WAVEFORM_DEFAULT_FEATURES if decoder is Decoder.JSON_BATCH \
         else DEFAULT_FEATURES
     feats = r.get(n, "features", path, "list", list(default_feats))
     for i, f in enumerate(feats):
         if f not in FEATURES:
             r.bad(f"{path}.features[{i}]", f"one of {', '.join(FEATURES)}", f)
-    if len(set(feats)) != len(feats):
-        r.bad(f"{path}.features", "each feature once", feats)
+    dupes = sorted({f for i, f in enumerate(feats) if isinstance(f, str) and f in feats[:i]})
+    if dupes:
+        r.bad(f"{path}.features", "each feature once", found=f"{', '.join(dupes)} repeated")
     if not feats:
         r.bad(f"{path}.features", "at least one feature", feats)
     if topic is None or rate is None:
@@ -340,6 +358,9 @@ def _channel(r: _Reader, name: Any, node: Any, path: str) -> ChannelConfig | Non
 
 
 def _asset(r: _Reader, node: Any, path: str) -> AssetConfig | None:
+    if not isinstance(node, dict):
+        r.bad(path, "an asset mapping (name, channels, window, detector, bundle)", node)
+        return None
     n = r.mapping(node, path, ("name", "channels", "window", "detector", "bundle"))
     name = r.get(n, "name", path, "str", _REQUIRED, _name,
                  "an asset name of letters, digits, '_', '.', '-' (at most 64)")
@@ -364,7 +385,7 @@ def _asset(r: _Reader, node: Any, path: str) -> AssetConfig | None:
         k = nn
     bundle = r.path(r.get(n, "bundle", path, "str", None))
     if bundle is not None and not bundle.is_dir():
-        r.bad(f"{path}.bundle", "an existing model bundle directory", str(bundle))
+        r.bad(f"{path}.bundle", "an existing model bundle directory", found=str(bundle))
     if name is None:
         return None
     return AssetConfig(name, tuple(channels), window, DetectorParams(k, nn, m), bundle)
@@ -377,6 +398,10 @@ TOP_KEYS = ("site", "gateway", "topic_prefix", "state_dir", "local_broker", "ups
 def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config:
     """Check a decoded YAML document and build the frozen config; raise ConfigError."""
     r = _Reader(base_dir)
+    if doc is not None and not isinstance(doc, dict):
+        raise ConfigError([ConfigProblem("(top level)", "a mapping of settings (site, gateway, "
+                                         "assets, ...)", _describe(doc))],
+                          str(source) if source else "")
     top = r.mapping(doc, "", TOP_KEYS)
     site = r.get(top, "site", "", "str", _REQUIRED, _name, "a site name (letters, digits, _.-)")
     gateway = r.get(top, "gateway", "", "str", _REQUIRED, _name,
@@ -425,7 +450,7 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
                       r.get(h, "host", "http", "str", "127.0.0.1"),
                       r.get(h, "port", "http", "int", 9310, lambda v: 0 <= v < 65536,
                             "a TCP port (0 picks a free one)"))
-    assets: list[AssetConfig] = []
+    indexed: list[tuple[int, AssetConfig]] = []
     anode = top.get("assets")
     if not isinstance(anode, list) or not anode:
         r.bad("assets", "a non-empty list of assets", anode)
@@ -433,8 +458,9 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
         for i, a in enumerate(anode):
             ac = _asset(r, a, f"assets[{i}]")
             if ac is not None:
-                assets.append(ac)
-    _cross_checks(r, assets, anode if isinstance(anode, list) else [])
+                indexed.append((i, ac))
+    _cross_checks(r, indexed)
+    assets = [a for _, a in indexed]
     if ingest.subscriptions:
         for a in assets:
             for ch in a.channels:
@@ -449,21 +475,20 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
                   source=source)
 
 
-def _cross_checks(r: _Reader, assets: list[AssetConfig], nodes: list[Any]) -> None:
+def _cross_checks(r: _Reader, assets: list[tuple[int, AssetConfig]]) -> None:
+    """Asset names are unique and no two channels share a topic; `idx` is the list index."""
     seen_names: dict[str, int] = {}
     seen_topics: dict[str, str] = {}
-    for i, a in enumerate(assets):
-        idx = next((j for j, n in enumerate(nodes)
-                    if isinstance(n, dict) and n.get("name") == a.name), i)
+    for idx, a in assets:
         if a.name in seen_names:
             r.bad(f"assets[{idx}].name", "a name no other asset has",
-                  f"{a.name!r}, also assets[{seen_names[a.name]}]")
+                  found=f"{a.name!r}, also assets[{seen_names[a.name]}]")
         seen_names.setdefault(a.name, idx)
         for ch in a.channels:
             where = f"assets[{idx}].channels.{ch.name}.topic"
             if ch.topic in seen_topics:
                 r.bad(where, "a topic no other channel uses",
-                      f"{ch.topic!r}, also {seen_topics[ch.topic]}")
+                      found=f"{ch.topic!r}, also {seen_topics[ch.topic]}")
             else:
                 seen_topics[ch.topic] = where
 
@@ -480,7 +505,8 @@ def load_config(path: str | Path) -> Config:
         doc = yaml.safe_load(text)
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
-        where = f"line {mark.line + 1}" if mark is not None else "(file)"
+        where = (f"line {mark.line + 1}, column {mark.column + 1}" if mark is not None
+                 else "(file)")
         raise ConfigError([ConfigProblem(where, "valid YAML", str(getattr(exc, "problem", exc)))],
                           str(p)) from exc
     return parse_config(doc, p.resolve().parent, p)
