@@ -1,0 +1,34 @@
+"""Run every benchmark module `tests/bench/bench_*.py` in turn (`make bench`)."""
+
+from __future__ import annotations
+
+import importlib
+import pkgutil
+import sys
+import time
+
+import tests.bench as pkg
+
+
+def main(argv: list[str]) -> int:
+    names = sorted(m.name for m in pkgutil.iter_modules(pkg.__path__)
+                   if m.name.startswith("bench_"))
+    if argv:
+        names = [n for n in names if any(a in n for a in argv)]
+    failed = 0
+    for name in names:
+        t0 = time.monotonic()
+        print(f"\n=== {name} ===", flush=True)
+        mod = importlib.import_module(f"tests.bench.{name}")
+        try:
+            rc = mod.main()
+        except Exception as exc:  # one broken benchmark must not hide the others
+            print(f"{name} failed: {type(exc).__name__}: {exc}")
+            rc = 1
+        failed += bool(rc)
+        print(f"({name}: {time.monotonic() - t0:.1f} s)", flush=True)
+    return 1 if failed else 0
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv[1:]))

@@ -1,0 +1,62 @@
+"""Shared bits of the benchmarks: alternating timing, tables, JSON results."""
+
+from __future__ import annotations
+
+import json
+import os
+import platform
+import statistics
+import time
+from collections.abc import Callable
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+RESULTS = Path(os.environ.get("WATCHKEEP_BENCH_OUT", "bench-results"))
+
+
+def alternate(fns: dict[str, Callable[[], float]], rounds: int) -> dict[str, list[float]]:
+    """Run each function once per round, in turn, so machine noise hits all alike.
+
+    Each function returns a rate (things per second); the lists hold every round's rate.
+    """
+    out: dict[str, list[float]] = {k: [] for k in fns}
+    for _ in range(rounds):
+        for k, f in fns.items():
+            out[k].append(f())
+    return out
+
+
+def median(xs: list[float]) -> float:
+    return float(statistics.median(xs))
+
+
+def machine() -> dict[str, Any]:
+    return {"cpu_count": os.cpu_count(), "machine": platform.machine(),
+            "python": platform.python_version(), "system": platform.system(),
+            "date": datetime.now(UTC).strftime("%Y-%m-%d")}
+
+
+def table(rows: list[list[str]], header: list[str]) -> str:
+    widths = [max(len(str(r[i])) for r in [header, *rows]) for i in range(len(header))]
+    line = "  ".join(h.ljust(w) for h, w in zip(header, widths, strict=True))
+    sep = "  ".join("-" * w for w in widths)
+    body = "\n".join("  ".join(str(c).ljust(w) for c, w in zip(r, widths, strict=True))
+                     for r in rows)
+    return f"{line}\n{sep}\n{body}"
+
+
+def save(name: str, doc: dict[str, Any]) -> Path:
+    RESULTS.mkdir(parents=True, exist_ok=True)
+    p = RESULTS / f"{name}.json"
+    tmp = p.with_suffix(".json.tmp")
+    tmp.write_text(json.dumps({"machine": machine(), **doc}, indent=2))
+    tmp.replace(p)
+    return p
+
+
+def timed(fn: Callable[[], int]) -> float:
+    """Call fn (which returns a count of things done) and return things per second."""
+    t0 = time.perf_counter()
+    n = fn()
+    return n / (time.perf_counter() - t0)
