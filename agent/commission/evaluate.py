@@ -116,14 +116,19 @@ class TruthEvent:
 
 
 def load_labels(path: str | os.PathLike[str]) -> list[FaultSpan]:
-    """Read a labels file: a JSON list of {"asset","kind","start","end","class"}."""
+    """Read a labels file: a JSON list of {"asset","kind","start","end","class"}, or the
+    simulator's `{"labels": [...]}` document, whose entries name the class `fault_class`.
+    CSV labels are not read here."""
     p = Path(path)
     try:
         doc = json.loads(p.read_text(encoding="utf-8"))
     except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise DatasetError(f"labels {p}: cannot be read as JSON ({exc})") from exc
+    if isinstance(doc, dict) and isinstance(doc.get("labels"), list):
+        doc = doc["labels"]
     if not isinstance(doc, list):
-        raise DatasetError(f"labels {p}: expected a JSON list of fault spans")
+        raise DatasetError(f"labels {p}: expected a JSON list of fault spans (or an object "
+                           "with a 'labels' list)")
     spans: list[FaultSpan] = []
     problems: list[str] = []
     for i, item in enumerate(doc):
@@ -132,7 +137,7 @@ def load_labels(path: str | os.PathLike[str]) -> list[FaultSpan]:
             continue
         try:
             start, end = float(item["start"]), float(item["end"])
-            cls = str(item.get("class", "machine"))
+            cls = str(item.get("class", item.get("fault_class", "machine")))
             span = FaultSpan(asset=str(item["asset"]), kind=str(item["kind"]), start=start,
                              end=end, fault_class=cls)
         except (KeyError, TypeError, ValueError) as exc:

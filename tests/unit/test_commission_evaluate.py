@@ -132,6 +132,15 @@ def test_load_labels(tmp_path: Path) -> None:
                               FaultSpan("P-101", "stuck", 30.0, 40.0, "sensor")]
 
 
+def test_load_simulator_labels(tmp_path: Path) -> None:
+    """The simulator's labels document ({"labels": [...]}, `fault_class`) loads too."""
+    p = tmp_path / "labels.json"
+    p.write_text(json.dumps({"schema_version": 1, "scenario": "demo", "labels": [
+        {"asset": "C-301", "kind": "stuck", "fault_class": "sensor", "channel": "vib",
+         "start": 150.0, "end": 210.0, "severity": None}]}))
+    assert load_labels(p) == [FaultSpan("C-301", "stuck", 150.0, 210.0, "sensor")]
+
+
 @pytest.mark.parametrize(("doc", "message"), [
     ('{"asset": "P-101"}', "expected a JSON list"),
     ('[{"asset": "P-101", "kind": "x", "start": 5}]', r"\[0\]: needs asset, kind, start, end"),
