@@ -95,6 +95,15 @@ def _add_optional_commands(sub: argparse._SubParsersAction) -> None:  # type: ig
         t.set_defaults(func=train_mod.cmd_train)
     except ImportError:
         pass
+    from agent.commission import record as record_mod
+    from agent.commission import replay as replay_mod
+
+    rec = sub.add_parser("record", help="record an asset's feature windows from live topics")
+    record_mod.add_record_arguments(rec)
+    rec.set_defaults(func=record_mod.cmd_record)
+    rep = sub.add_parser("replay", help="run a raw capture through the daemon pipeline")
+    replay_mod.add_replay_arguments(rep)
+    rep.set_defaults(func=replay_mod.cmd_replay)
     try:
         from agent.commission import evaluate as eval_mod
 
