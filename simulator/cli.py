@@ -7,9 +7,12 @@ from __future__ import annotations
 
 import argparse
 import datetime as dt
+import signal
 import sys
+import threading
 import time
 from collections.abc import Sequence
+from typing import NoReturn
 
 import yaml
 
@@ -47,10 +50,25 @@ def _start(text: str) -> float:
     return (d if d.tzinfo else d.replace(tzinfo=dt.UTC)).timestamp()
 
 
+class _Parser(argparse.ArgumentParser):
+    """argparse, but usage errors are one line too."""
+
+    def error(self, message: str) -> NoReturn:
+        self.exit(2, f"{self.prog}: {message} (see --help)\n")
+
+
+class _Terminated(BaseException):
+    """SIGTERM, raised in the main thread so `finally` blocks close broker and files."""
+
+
+def _on_sigterm(_signum: int, _frame: object) -> None:
+    raise _Terminated
+
+
 def _parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="watchkeep-sim",
+    p = _Parser(prog="watchkeep-sim",
                                 description="Simulate the Fernbrook plant's sensors.")
-    sub = p.add_subparsers(dest="command", required=True)
+    sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
     run = sub.add_parser("run", help="publish a scenario's messages")
     run.add_argument("--scenario", required=True, help="scenario YAML file")
     run.add_argument("--broker", help="HOST:PORT of the MQTT broker")
@@ -115,6 +133,8 @@ def _config(args: argparse.Namespace) -> int:
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = _parser().parse_args(argv)
+    if threading.current_thread() is threading.main_thread():
+        signal.signal(signal.SIGTERM, _on_sigterm)
     try:
         return _run(args) if args.command == "run" else _config(args)
     except (SimulatorError, CaptureError) as e:
@@ -126,6 +146,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         print("watchkeep-sim: interrupted", file=sys.stderr)
         return 130
+    except _Terminated:
+        print("watchkeep-sim: terminated", file=sys.stderr)
+        return 143
 
 
 if __name__ == "__main__":

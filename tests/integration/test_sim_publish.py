@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import collections
 import os
+import signal
 import socket
 import subprocess
 import sys
@@ -190,3 +191,24 @@ def test_stop_event_ends_a_paced_run_early(broker: int) -> None:
     stats = publish(simulate(s), host="127.0.0.1", port=broker, speed=1.0, on_sent=on_sent,
                     stop=stop, sim_origin=0.0)
     assert 0 < stats.sent < 100
+
+
+def test_sigterm_stops_a_live_run_cleanly(broker: int, tmp_path: Path) -> None:
+    """SIGTERM mid-run: exit 143, one line on stderr, the capture holds whole lines only."""
+    scenario = _scenario_file(tmp_path, f"itplant{uuid.uuid4().hex[:8]}", 600)
+    out = tmp_path / "cap.jsonl"
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "simulator.cli", "run", "--scenario", str(scenario),
+         "--broker", f"127.0.0.1:{broker}", "--speed", "1", "--out", str(out)],
+        stderr=subprocess.PIPE, text=True)
+    try:
+        _wait_until(lambda: out.exists() and out.stat().st_size > 0, 30, "capture lines")
+        proc.send_signal(signal.SIGTERM)
+        _, err = proc.communicate(timeout=30)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+            proc.wait(timeout=10)
+    assert proc.returncode == 143, err
+    assert err.strip() == "watchkeep-sim: terminated"
+    assert len(list(read_capture(out))) > 0
