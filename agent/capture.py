@@ -54,6 +54,7 @@ def write_capture(
     fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".tmp", dir=p.parent)
     n = 0
     try:
+        os.fchmod(fd, 0o644)  # mkstemp's 0600 would hide the capture from other users
         with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as f:
             for t, topic, payload in messages:
                 f.write(_line(str(p), t, topic, payload))

@@ -581,6 +581,7 @@ def read_labels(path: str | os.PathLike[str]) -> list[Label]:
 def _write_atomic(path: Path, text: str) -> None:
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent or ".")
     try:
+        os.fchmod(fd, 0o644)  # mkstemp's 0600 would hide the labels from other users
         with os.fdopen(fd, "w", encoding="utf-8") as f:
             f.write(text)
             f.flush()

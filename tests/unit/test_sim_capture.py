@@ -26,6 +26,7 @@ def test_write_read_roundtrip(tmp_path: Path) -> None:
                                     "topic": "fernbrook/raw-water/P-101/pressure",
                                     "payload": "4.697"}
     assert [p.name for p in tmp_path.iterdir()] == ["cap.jsonl"]
+    assert path.stat().st_mode & 0o777 == 0o644
 
 
 def test_failed_write_leaves_no_file(tmp_path: Path) -> None:
