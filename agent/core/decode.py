@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import math
+import re
 from enum import StrEnum
 from typing import Any
 
@@ -46,11 +47,19 @@ class Rejected(Exception):
         self.detail = detail
 
 
+# A plain decimal number as publishers write it; Python's float() also takes "1_000".
+_TEXT_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
+_TEXT_NON_FINITE = re.compile(r"[+-]?(?:nan|inf|infinity)", re.IGNORECASE)
+_NUMBER_TYPES = frozenset({int, float})
+_MISSING = object()
+
+
 def _field(doc: Any, dotted: str) -> Any:
+    """The value at a dotted path; `_MISSING` when any level is absent."""
     cur = doc
     for part in dotted.split("."):
         if not isinstance(cur, dict) or part not in cur:
-            return None
+            return _MISSING
         cur = cur[part]
     return cur
 
@@ -58,7 +67,10 @@ def _field(doc: Any, dotted: str) -> Any:
 def _number(v: Any, what: str) -> float:
     if isinstance(v, bool) or not isinstance(v, int | float):
         raise Rejected(Reason.WRONG_TYPE, f"{what} is {type(v).__name__}, expected a number")
-    f = float(v)
+    try:
+        f = float(v)
+    except OverflowError:  # an integer literal beyond float range, read by the stdlib parser
+        raise Rejected(Reason.NON_FINITE, f"{what} overflows a float") from None
     if not math.isfinite(f):
         raise Rejected(Reason.NON_FINITE, f"{what} is {f}")
     return f
@@ -80,7 +92,7 @@ def _loads_relaxed(payload: bytes) -> Any:
 def _timestamp(doc: dict[str, Any], ch: ChannelConfig, arrival: float,
                max_skew_s: float) -> float:
     raw = _field(doc, ch.ts_field)
-    if raw is None:
+    if raw is _MISSING or raw is None:
         return arrival
     ts = _number(raw, ch.ts_field)
     if abs(ts - arrival) > max_skew_s:
@@ -100,10 +112,14 @@ def decode(payload: bytes, ch: ChannelConfig, arrival: float, *, max_payload_byt
     if ch.decoder is Decoder.TEXT:
         try:
             text = payload.decode("ascii").strip()
-            v = float(text)
-        except (UnicodeDecodeError, ValueError):
+        except UnicodeDecodeError:
             raise Rejected(Reason.MALFORMED, "not an ASCII number") from None
-        if not math.isfinite(v):
+        if _TEXT_NON_FINITE.fullmatch(text):
+            raise Rejected(Reason.NON_FINITE, text)
+        if not _TEXT_NUMBER.fullmatch(text):
+            raise Rejected(Reason.MALFORMED, "not an ASCII number")
+        v = float(text)
+        if not math.isfinite(v):  # e.g. 1e400
             raise Rejected(Reason.NON_FINITE, text)
         return arrival, v
     doc = _loads_relaxed(payload)
@@ -115,22 +131,26 @@ def decode(payload: bytes, ch: ChannelConfig, arrival: float, *, max_payload_byt
     ts = _timestamp(doc, ch, arrival, max_skew_s)
     if ch.decoder is Decoder.JSON:
         raw = _field(doc, ch.value_field)
-        if raw is None:
+        if raw is _MISSING:
             raise Rejected(Reason.MALFORMED, f"no {ch.value_field!r} field")
         return ts, _number(raw, ch.value_field)
     values = _field(doc, ch.values_field)
     if not isinstance(values, list) or not values:
         raise Rejected(Reason.WRONG_TYPE, f"{ch.values_field!r} is not a non-empty list")
     rate_raw = _field(doc, ch.rate_field)
-    rate = ch.rate_hz if rate_raw is None else _number(rate_raw, ch.rate_field)
+    rate = ch.rate_hz if rate_raw is _MISSING or rate_raw is None \
+        else _number(rate_raw, ch.rate_field)
     if rate <= 0:
         raise Rejected(Reason.WRONG_TYPE, f"{ch.rate_field} must be > 0")
+    # numpy would quietly turn true, "1.5" and null into numbers (or NaN); a single
+    # reading with those is a wrong type, so a block element is one too.
+    if not set(map(type, values)) <= _NUMBER_TYPES:
+        raise Rejected(Reason.WRONG_TYPE,
+                       f"{ch.values_field!r} is not a flat list of numbers")
     try:
         arr = np.asarray(values, dtype=np.float64)
-    except (TypeError, ValueError):
-        raise Rejected(Reason.WRONG_TYPE, f"{ch.values_field!r} holds non-numbers") from None
-    if arr.ndim != 1:
-        raise Rejected(Reason.WRONG_TYPE, f"{ch.values_field!r} is not a flat list")
+    except OverflowError:  # an integer literal beyond float range
+        raise Rejected(Reason.NON_FINITE, f"{ch.values_field!r} overflows") from None
     if not np.all(np.isfinite(arr)):
         raise Rejected(Reason.NON_FINITE, f"{int(np.sum(~np.isfinite(arr)))} samples")
     t = ts + np.arange(arr.size, dtype=np.float64) / rate
