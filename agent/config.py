@@ -86,6 +86,8 @@ class TlsConfig:
     cert_file: Path | None = None
     key_file: Path | None = None
     verify: bool = True
+    # Verification off is refused unless this says so explicitly (warned at every start).
+    allow_insecure: bool = False
 
 
 @dataclass(frozen=True)
@@ -160,9 +162,9 @@ def _describe(v: Any) -> str:
         text = str(v)
         return text if len(text) <= 24 else f"a number of {len(text)} digits"
     if isinstance(v, list):
-        return f"a list of {len(v)}"
+        return f"a list of {len(v)}" if v else "an empty list"
     if isinstance(v, dict):
-        return "a mapping"
+        return "a mapping" if v else "an empty mapping"
     return type(v).__name__
 
 
@@ -273,7 +275,7 @@ def _broker(r: _Reader, node: Any, path: str, default_id: str, default_port: int
     n = r.mapping(node, path, keys)
     host = r.get(n, "host", path, "str", "127.0.0.1")
     port = r.get(n, "port", path, "int", default_port, lambda v: 0 < v < 65536,
-                 "a TCP port (1-65535)")
+                 "a TCP port 1-65535")
     client_id = r.get(n, "client_id", path, "str", default_id)
     keepalive = r.get(n, "keepalive_s", path, "int", 20, lambda v: 5 <= v <= 3600,
                       "seconds between 5 and 3600")
@@ -282,7 +284,8 @@ def _broker(r: _Reader, node: Any, path: str, default_id: str, default_port: int
     tls = None
     if n.get("tls") is not None:
         tpath = f"{path}.tls"
-        t = r.mapping(n["tls"], tpath, ("ca_file", "cert_file", "key_file", "verify"))
+        t = r.mapping(n["tls"], tpath,
+                      ("ca_file", "cert_file", "key_file", "verify", "allow_insecure"))
         ca = r.path(r.get(t, "ca_file", tpath, "str", None))
         cert = r.path(r.get(t, "cert_file", tpath, "str", None))
         key = r.path(r.get(t, "key_file", tpath, "str", None))
@@ -291,7 +294,12 @@ def _broker(r: _Reader, node: Any, path: str, default_id: str, default_port: int
                 r.bad(f"{tpath}.{label}", "an existing file", found=str(p))
         if (cert is None) != (key is None):
             r.bad(f"{tpath}.cert_file", "cert_file and key_file together (mutual TLS)")
-        tls = TlsConfig(ca, cert, key, r.get(t, "verify", tpath, "bool", True))
+        verify = r.get(t, "verify", tpath, "bool", True)
+        insecure = r.get(t, "allow_insecure", tpath, "bool", False)
+        if not verify and not insecure:
+            r.bad(f"{tpath}.verify", "true (set allow_insecure: true as well to accept an "
+                  "unverified TLS connection)", verify)
+        tls = TlsConfig(ca, cert, key, verify, insecure)
     pw_file = r.path(r.get(n, "password_file", path, "str", None))
     if pw_file is not None and n.get("password") is not None:
         # Two sources for one secret: which one wins would be a silent surprise.
@@ -308,12 +316,12 @@ def _window(r: _Reader, node: Any, path: str) -> WindowConfig:
     length = r.get(n, "length_s", path, "num", 10.0, lambda v: 0 < v <= 86400, pos)
     hop = r.get(n, "hop_s", path, "num", length, lambda v: v > 0, pos)
     if hop > length:
-        r.bad(f"{path}.hop_s", f"at most length_s ({length})", hop)
+        r.bad(f"{path}.hop_s", f"at most length_s ({length:g})", found=f"{hop:g}")
     late = r.get(n, "lateness_s", path, "num", min(1.0, length),
                  lambda v: v >= 0, "a number of seconds >= 0")
     timeout = r.get(n, "timeout_s", path, "num", max(5.0, late), lambda v: v > 0, pos)
     if timeout < late:
-        r.bad(f"{path}.timeout_s", f"at least lateness_s ({late})", timeout)
+        r.bad(f"{path}.timeout_s", f"at least lateness_s ({late:g})", found=f"{timeout:g}")
     cov = r.get(n, "min_coverage", path, "num", 0.8, lambda v: 0 < v <= 1,
                 "a fraction in (0, 1]")
     return WindowConfig(length, hop, late, timeout, cov)
@@ -403,9 +411,10 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
                                          "assets, ...)", _describe(doc))],
                           str(source) if source else "")
     top = r.mapping(doc, "", TOP_KEYS)
-    site = r.get(top, "site", "", "str", _REQUIRED, _name, "a site name (letters, digits, _.-)")
+    site = r.get(top, "site", "", "str", _REQUIRED, _name,
+                 "a site name of letters, digits, '_', '.', '-' (at most 64)")
     gateway = r.get(top, "gateway", "", "str", _REQUIRED, _name,
-                    "a gateway name (letters, digits, _.-)")
+                    "a gateway name of letters, digits, '_', '.', '-' (at most 64)")
     prefix = r.get(top, "topic_prefix", "", "str", f"watchkeep/{site}/{gateway}", _topic_ok,
                    "a topic prefix without wildcards")
     prefix = prefix.rstrip("/")
@@ -449,7 +458,7 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
     http = HttpConfig(r.get(h, "enabled", "http", "bool", True),
                       r.get(h, "host", "http", "str", "127.0.0.1"),
                       r.get(h, "port", "http", "int", 9310, lambda v: 0 <= v < 65536,
-                            "a TCP port (0 picks a free one)"))
+                            "a TCP port 0-65535 (0 picks a free one)"))
     indexed: list[tuple[int, AssetConfig]] = []
     anode = top.get("assets")
     if not isinstance(anode, list) or not anode:
