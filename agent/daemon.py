@@ -1,9 +1,10 @@
 """The composition root: builds the real parts and runs start / stop.
 
-Start: load bundles (a bad one fails its asset only) -> upstream -> pipeline loop
--> ingest -> HTTP -> READY=1. Stop: ingest stops taking messages, the pipeline
-finishes its tick and runs one last one, the upstream side publishes the offline
-status and disconnects, the HTTP server closes.
+Start: load bundles (a bad one fails its asset only) -> outbox (checked; sequence
+numbers restored) -> upstream -> pipeline loop -> ingest -> HTTP -> READY=1.
+Stop: ingest stops taking messages, the pipeline finishes its tick and runs one
+last one, the upstream side delivers what it can in a few seconds, publishes the
+offline status and disconnects, the outbox closes, the HTTP server closes.
 """
 
 from __future__ import annotations
@@ -26,6 +27,7 @@ from agent.ingest import Buffers, Ingest, IngestHandler
 from agent.logs import kv
 from agent.metrics import HttpServer, Metrics
 from agent.notify import Notifier
+from agent.outbox import Outbox
 from agent.pipeline import AssetRuntime, Pipeline, Sink
 from agent.upstream import Upstream
 
@@ -137,8 +139,12 @@ class Daemon:
                                   asset=a.name, error=rt.bundle_error))
             runtimes.append(rt)
         self.buffers = Buffers(cfg)
-        self.upstream = Upstream(cfg, self.metrics, self.log, clock=self.clock)
-        sink: Sink = self._sink_factory(self.upstream) if self._sink_factory else self.upstream
+        self.outbox = Outbox(cfg.outbox, self.metrics, self.log, clock=self.clock).open()
+        stored = self.outbox.sequences()
+        for rt in runtimes:  # event sequence numbers continue across restarts
+            rt.sequence = stored.get(rt.cfg.name, rt.sequence)
+        self.upstream = Upstream(cfg, self.outbox, self.metrics, self.log, clock=self.clock)
+        sink: Sink = self._sink_factory(self.upstream) if self._sink_factory else self.outbox
         self.pipeline = Pipeline(cfg, self.buffers, sink, self.metrics, self.log, runtimes)
         self.handler = IngestHandler(cfg, self.buffers, self.metrics, self.log)
         self.ingest = Ingest(cfg, self.handler, self.metrics, self.log, clock=self.clock)
@@ -179,6 +185,7 @@ class Daemon:
         doc["version"] = __version__
         doc["local_connected"] = self.ingest.connected.is_set()
         doc["upstream_connected"] = self.upstream.connected.is_set()
+        doc["outbox"] = self.outbox.status()
         return doc
 
     def stop(self) -> None:
@@ -191,6 +198,7 @@ class Daemon:
         self.ingest.stop()
         self.loop.stop()
         self.upstream.stop()
+        self.outbox.close()
         if self.http is not None:
             self.http.stop()
         self.log.info("watchkeep stopped")

@@ -11,7 +11,7 @@ from __future__ import annotations
 import json
 import logging
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any, Protocol
 
@@ -33,7 +33,11 @@ _NF = len(FEATURES)
 
 
 class Sink(Protocol):
-    def submit(self, msgs: Sequence[OutMessage]) -> None: ...
+    """Takes one tick's messages; `sequences` are the assets' event sequence numbers
+    after the tick (only those that changed), stored with the messages."""
+
+    def submit(self, msgs: Sequence[OutMessage],
+               sequences: Mapping[str, int] | None = None) -> None: ...
 
 
 WindowObserver = Callable[[str, str, ClosedWindow, np.ndarray, tuple[str, ...]], None]
@@ -158,6 +162,7 @@ class Pipeline:
     def tick(self, now: float) -> TickStats:
         """Run one tick at wall-clock time `now` (seconds)."""
         stats = TickStats()
+        seq_before = [rt.sequence for rt in self.runtimes]
         pending: list[tuple[AssetRuntime, ClosedWindow]] = []
         for ai, rt in enumerate(self.runtimes):
             asm = rt.assembler
@@ -183,7 +188,12 @@ class Pipeline:
         if pending:
             self._score(pending, out, stats)
         if out:
-            self.sink.submit(out)
+            seqs = {rt.cfg.name: rt.sequence for rt, b in zip(self.runtimes, seq_before,
+                                                              strict=True) if rt.sequence != b}
+            if seqs:
+                self.sink.submit(out, sequences=seqs)
+            else:
+                self.sink.submit(out)
             stats.messages = len(out)
         return stats
 

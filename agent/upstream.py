@@ -1,26 +1,90 @@
-"""Upstream broker side: status with Last Will, and publishing of outgoing messages.
+"""Upstream broker side: drains the outbox in id order at QoS 1, with status and Last Will.
 
-This first version publishes what the pipeline submits straight away at QoS 1;
-the durable outbox takes the submit side over (issue 4).
+Two threads, so no SQLite work ever runs on the MQTT network thread:
+
+- the **network** thread owns the paho client and runs its loop by hand
+  (`client.loop()`), so it owns reconnection too: exponential backoff with
+  jitter, capped at `RECONNECT_MAX_S`, and every failure explained in one line
+  (a wrong CA, a refused client certificate, a refused CONNECT). Between loop
+  passes it publishes rows from an in-memory hand-over queue while fewer than
+  `outbox.inflight` are unacknowledged. paho callbacks only append the
+  acknowledged message ids to a list; they never block.
+- the **store** thread fetches the next rows from the outbox into the hand-over
+  queue (at most 2 x inflight ahead), and deletes acknowledged rows in batches,
+  one transaction per batch. A row is deleted only after its PUBACK
+  (`on_publish` for its mid with a reason code that is not `.is_failure`).
+
+After a reconnect paho itself resends the messages that were in flight, with
+the DUP flag and their old message ids, before anything newer: delivery resumes
+from the oldest unacknowledged row, in order. After a restart the outbox
+starts again from its oldest row. Either way, duplicates can only be messages
+that were in flight at the cut; event ids are stable, so consumers de-duplicate.
 """
 
 from __future__ import annotations
 
+import contextlib
 import json
 import logging
+import queue
+import random
+import sqlite3
+import ssl
 import threading
 import time
-from collections.abc import Callable, Sequence
+from collections import deque
+from collections.abc import Callable
 from typing import Any
 
 import paho.mqtt.client as mqtt
 
 from agent import __version__
 from agent.config import BrokerConfig, Config
+from agent.errors import ConfigError, ConfigProblem
 from agent.ingest import make_client
-from agent.logs import kv
-from agent.messages import OutMessage
+from agent.logs import RateLimited, kv
+from agent.messages import Kind
 from agent.metrics import Metrics
+from agent.outbox import Outbox, Row
+
+RECONNECT_MIN_S = 0.5
+# Capped low: a gateway talks to one broker on a plant network, and after an outage
+# events should flow again within seconds; the jitter spreads a fleet's reconnects.
+RECONNECT_MAX_S = 10.0
+LOOP_TIMEOUT_S = 0.05
+STOP_DRAIN_S = 3.0
+REFUSED_RETRY_S = 5.0
+GAUGE_EVERY_S = 0.5
+MAINTAIN_EVERY_S = 60.0
+
+
+def backoff_delay(attempt: int, u: float, min_s: float = RECONNECT_MIN_S,
+                  max_s: float = RECONNECT_MAX_S) -> float:
+    """Seconds to wait before reconnect attempt `attempt` (1, 2, ...).
+
+    `min_s * 2**(attempt-1)` capped at `max_s`, scaled by a jitter factor in
+    [0.5, 1.0) from `u` in [0, 1) ("equal jitter"): never 0, never above the cap.
+    """
+    base = min(max_s, min_s * 2.0 ** min(max(attempt, 1) - 1, 30))
+    return base * (0.5 + 0.5 * u)
+
+
+def describe_connect_error(exc: BaseException, broker: BrokerConfig) -> str:
+    """One line that says what failed and what to check."""
+    where = f"{broker.host}:{broker.port}"
+    if isinstance(exc, ssl.SSLCertVerificationError):
+        return (f"TLS certificate verification failed for {where}: {exc.verify_message} "
+                f"(check upstream_broker.tls.ca_file and that the broker's certificate "
+                f"names {broker.host})")
+    if isinstance(exc, ssl.SSLError):
+        return f"TLS handshake with {where} failed: {exc.reason or exc}"
+    if isinstance(exc, ConnectionRefusedError):
+        return f"connection to {where} refused (is the broker running and listening?)"
+    if isinstance(exc, TimeoutError):
+        return f"connection to {where} timed out"
+    if isinstance(exc, OSError):
+        return f"cannot connect to {where}: {exc.strerror or exc}"
+    return f"cannot connect to {where}: {type(exc).__name__}: {exc}"
 
 
 def status_payload(cfg: Config, state: str, started: float, **extra: Any) -> bytes:
@@ -30,68 +94,203 @@ def status_payload(cfg: Config, state: str, started: float, **extra: Any) -> byt
 
 
 class Upstream:
-    """Connects to the upstream broker and publishes submitted messages."""
+    """Connects to the upstream broker and delivers the outbox's rows."""
 
-    def __init__(self, cfg: Config, metrics: Metrics, logger: logging.Logger, *,
-                 clock: Callable[[], float] = time.time,
-                 client_factory: Callable[[BrokerConfig], mqtt.Client] = make_client) -> None:
+    def __init__(self, cfg: Config, outbox: Outbox, metrics: Metrics, logger: logging.Logger,
+                 *, clock: Callable[[], float] = time.time,
+                 client_factory: Callable[[BrokerConfig], mqtt.Client] = make_client,
+                 rand: Callable[[], float] = random.random) -> None:
         self.cfg = cfg
+        self.broker = cfg.upstream_broker
+        self.outbox = outbox
         self.metrics = metrics
         self.log = logger
         self.clock = clock
+        self.rand = rand
+        self.window = cfg.outbox.inflight
         self.started = clock()
         self.status_topic = f"{cfg.topic_prefix}/status"
-        self._client = client_factory(cfg.upstream_broker)
+        try:
+            self._client = client_factory(self.broker)
+        except (ssl.SSLError, OSError) as exc:
+            raise ConfigError([ConfigProblem(
+                "upstream_broker.tls", "a readable CA file, and a certificate and key that "
+                "belong together", str(exc))]) from exc
+        # Room for the status messages beside the window of rows.
+        self._client.max_inflight_messages_set(self.window + 4)
         self._client.will_set(self.status_topic,
                               status_payload(cfg, "offline", self.started, reason="lost"),
                               qos=1, retain=True)
         self._client.on_connect = self._on_connect
         self._client.on_disconnect = self._on_disconnect
         self._client.on_publish = self._on_publish
+        self._client.on_log = self._on_log
         self.connected = threading.Event()
+        self.last_error: str | None = None
+        self._paho_error: str | None = None
         self._gauge = metrics.connected.labels("upstream")
         self._errors = metrics.callback_errors.labels("upstream")
+        self._published = {k: metrics.published.labels(k.label) for k in Kind}
+        self._rl = RateLimited(logger)
         self._connects = 0
-        self.last_ack: float | None = None
+        self._last_ack_mono = time.monotonic()
+        # Network thread only:
+        self._inflight: dict[int, Row] = {}
+        self._acked: list[tuple[int, bool, str]] = []
+        # Hand-over between the threads (deque and SimpleQueue are thread-safe):
+        self._ready: deque[Row] = deque()
+        self._acks: queue.SimpleQueue[tuple[Row, bool]] = queue.SimpleQueue()
+        self._stop_net = threading.Event()
+        self._stop_store = threading.Event()
+        self._net = threading.Thread(target=self._net_run, name="watchkeep-upstream",
+                                     daemon=True)
+        self._store = threading.Thread(target=self._store_run,
+                                       name="watchkeep-upstream-store", daemon=True)
+
+    # -- life cycle ----------------------------------------------------------------
 
     def start(self) -> None:
-        b = self.cfg.upstream_broker
+        b = self.broker
+        if b.tls is not None and not b.tls.verify:
+            self.log.warning(kv("TLS VERIFICATION IS OFF for the upstream broker "
+                                "(upstream_broker.tls.allow_insecure): anyone on the path "
+                                "can read and forge events", host=b.host, port=b.port))
+        if not 15 <= b.keepalive_s <= 30:
+            self.log.warning(kv("upstream keepalive outside 15-30 s: a half-open "
+                                "connection is noticed late or pings are frequent",
+                                keepalive_s=b.keepalive_s))
         self._client.connect_async(b.host, b.port, keepalive=b.keepalive_s)
-        self._client.loop_start()
-
-    def submit(self, msgs: Sequence[OutMessage]) -> None:
-        for m in msgs:
-            self._client.publish(m.topic, m.payload, qos=m.qos, retain=m.retain)
+        self._store.start()
+        self._net.start()
 
     def stop(self, timeout_s: float = 5.0) -> None:
-        """Publish offline status, give it time to be acknowledged, disconnect."""
+        """Give waiting rows a moment to go out, publish offline status, disconnect."""
+        deadline = time.monotonic() + min(timeout_s, STOP_DRAIN_S)
+        while (self.connected.is_set() and self.outbox.counts()[0] > 0
+               and time.monotonic() < deadline):
+            time.sleep(0.02)
+        self._stop_net.set()
+        self._net.join(timeout_s)
+        self._stop_store.set()
+        self._store.join(timeout_s)
+
+    def seconds_since_ack(self) -> float:
+        return time.monotonic() - self._last_ack_mono
+
+    def status(self) -> dict[str, Any]:
+        return {"connected": self.connected.is_set(), "last_error": self.last_error,
+                "inflight": len(self._inflight),
+                "seconds_since_ack": round(self.seconds_since_ack(), 3),
+                "protocol": self.broker.protocol.value, "tls": self.broker.tls is not None}
+
+    # -- the network thread --------------------------------------------------------
+
+    def _net_run(self) -> None:
+        attempt = 0
+        while not self._stop_net.is_set():
+            try:
+                self._client.reconnect()
+            except Exception as exc:  # every way a connect can fail: explained, retried
+                self._note_error(describe_connect_error(exc, self.broker))
+                attempt += 1
+                self._stop_net.wait(backoff_delay(attempt, self.rand()))
+                continue
+            self._paho_error = None
+            while not self._stop_net.is_set():
+                try:
+                    rc = self._client.loop(timeout=LOOP_TIMEOUT_S)
+                except Exception as exc:
+                    self._note_error(describe_connect_error(exc, self.broker))
+                    rc = mqtt.MQTT_ERR_CONN_LOST
+                if self.connected.is_set():
+                    attempt = 0
+                self._pump()
+                if rc != mqtt.MQTT_ERR_SUCCESS:
+                    break
+            if self._stop_net.is_set():
+                break
+            if self._paho_error:
+                b = self.broker
+                self._note_error(f"connection to {b.host}:{b.port} closed: {self._paho_error}")
+            self._set_disconnected()
+            attempt += 1
+            self._stop_net.wait(backoff_delay(attempt, self.rand()))
+        self._shutdown()
+
+    def _pump(self) -> None:
+        """Hand acknowledgements to the store thread; publish while the window has room."""
+        acked, self._acked = self._acked, []
+        for mid, failed, reason in acked:
+            row = self._inflight.pop(mid, None)
+            if row is None:
+                continue  # a status message
+            if failed:
+                self._rl.warning(f"refused:{reason}", "upstream broker refused a message; "
+                                 "it stays in the outbox and is retried", reason=reason)
+            else:
+                self._last_ack_mono = time.monotonic()
+            self._acks.put((row, not failed))
+        while self.connected.is_set() and len(self._inflight) < self.window and self._ready:
+            row = self._ready.popleft()
+            info = self._client.publish(row.topic, row.payload, qos=row.qos, retain=row.retain)
+            if info.rc not in (mqtt.MQTT_ERR_SUCCESS, mqtt.MQTT_ERR_NO_CONN):
+                self._ready.appendleft(row)  # paho did not take it; try again next pass
+                break
+            # paho keeps a QoS 1 message it took, even when the link just dropped, and
+            # sends it after the reconnect: track its mid either way.
+            self._inflight[info.mid] = row
+
+    def _shutdown(self) -> None:
         try:
             if self.connected.is_set():
                 info = self._client.publish(
                     self.status_topic,
                     status_payload(self.cfg, "offline", self.started, reason="stopped"),
                     qos=1, retain=True)
-                info.wait_for_publish(timeout_s)
+                deadline = time.monotonic() + 2.0
+                while not info.is_published() and time.monotonic() < deadline:
+                    if self._client.loop(timeout=LOOP_TIMEOUT_S) != mqtt.MQTT_ERR_SUCCESS:
+                        break
+                self._pump()
             self._client.disconnect()
+            self._client.loop(timeout=LOOP_TIMEOUT_S)
+        except Exception:
+            self.log.exception("error while disconnecting from the upstream broker")
         finally:
-            self._client.loop_stop()
+            self._set_disconnected(log=False)
+
+    def _note_error(self, msg: str) -> None:
+        self.last_error = msg
+        self._rl.warning(f"connect:{msg}", "upstream broker: " + msg)
+
+    def _set_disconnected(self, log: bool = True) -> None:
+        if self.connected.is_set() and log:
+            self.log.warning(kv("upstream broker connection lost", error=self.last_error or "",
+                                inflight=len(self._inflight)))
+        self.connected.clear()
+        self._gauge.set(0)
+
+    # -- paho callbacks (network thread; never block, never raise) ----------------
 
     def _on_connect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any,
                     props: Any) -> None:
         try:
             if reason.is_failure:
-                self.log.warning(kv("upstream broker refused the connection",
-                                    reason=str(reason)))
+                self._note_error(f"upstream broker refused the connection: {reason}")
                 return
             self._connects += 1
             if self._connects > 1:
                 self.metrics.reconnects.labels("upstream").inc()
             client.publish(self.status_topic,
-                           status_payload(self.cfg, "online", self.started), qos=1, retain=True)
+                           status_payload(self.cfg, "online", self.started,
+                                          outbox=self.outbox.status()),
+                           qos=1, retain=True)
+            self.last_error = None
             self.connected.set()
             self._gauge.set(1)
-            self.log.info(kv("upstream broker connected", host=self.cfg.upstream_broker.host,
-                             port=self.cfg.upstream_broker.port))
+            self.log.info(kv("upstream broker connected", host=self.broker.host,
+                             port=self.broker.port, protocol=self.broker.protocol.value,
+                             tls=self.broker.tls is not None, resending=len(self._inflight)))
         except Exception:
             self._errors.inc()
             self.log.exception("error in upstream on_connect")
@@ -99,16 +298,94 @@ class Upstream:
     def _on_disconnect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any,
                        props: Any) -> None:
         try:
-            if self.connected.is_set():
-                self.log.warning(kv("upstream broker connection lost", reason=str(reason)))
-            self.connected.clear()
-            self._gauge.set(0)
+            if getattr(reason, "is_failure", False) and self.last_error is None:
+                self.last_error = f"disconnected: {reason}"
+            self._set_disconnected()
         except Exception:
             self._errors.inc()
 
     def _on_publish(self, client: mqtt.Client, userdata: Any, mid: int, reason: Any,
                     props: Any) -> None:
         try:
-            self.last_ack = self.clock()
+            failed = bool(getattr(reason, "is_failure", False))
+            self._acked.append((mid, failed, str(reason) if failed else ""))
         except Exception:
             self._errors.inc()
+
+    def _on_log(self, client: mqtt.Client, userdata: Any, level: int, buf: str) -> None:
+        # paho reports socket and TLS errors met inside loop() only here.
+        if level == mqtt.MQTT_LOG_ERR:
+            self._paho_error = buf
+
+    # -- the store thread ----------------------------------------------------------
+
+    def _store_run(self) -> None:
+        cursor = 0
+        handed: set[int] = set()
+        to_delete: list[Row] = []
+        rescan_at: float | None = None
+        next_gauges = next_maintain = 0.0
+        while True:
+            stopping = self._stop_store.is_set()
+            refused = self._take_acks(to_delete, handed, block=not stopping)
+            if refused:
+                rescan_at = rescan_at or time.monotonic() + REFUSED_RETRY_S
+            if to_delete:
+                try:
+                    self.outbox.delete([r.id for r in to_delete])
+                    for r in to_delete:
+                        self._published[r.kind].inc()
+                    to_delete = []
+                except sqlite3.Error as exc:  # counted by the outbox; kept and retried
+                    self._rl.warning("delete", "outbox delete failed; retrying",
+                                     error=str(exc))
+            if stopping:
+                break
+            if rescan_at is not None and time.monotonic() >= rescan_at:
+                cursor, rescan_at = 0, None  # refused rows are still there: offer them again
+            cursor = self._refill(cursor, handed)
+            now = time.monotonic()
+            if now >= next_gauges:
+                next_gauges = now + GAUGE_EVERY_S
+                self.metrics.since_ack.set(self.seconds_since_ack())
+                with contextlib.suppress(sqlite3.Error):
+                    self.outbox.update_gauges()
+            if now >= next_maintain:
+                next_maintain = now + MAINTAIN_EVERY_S
+                self.outbox.maintain()
+
+    def _take_acks(self, to_delete: list[Row], handed: set[int], block: bool) -> bool:
+        refused = False
+        try:
+            item: tuple[Row, bool] | None = self._acks.get(timeout=0.02) if block \
+                else self._acks.get_nowait()
+            while item is not None:
+                row, ok = item
+                handed.discard(row.id)
+                if ok:
+                    to_delete.append(row)
+                else:
+                    refused = True
+                item = self._acks.get_nowait()
+        except queue.Empty:
+            pass
+        return refused
+
+    def _refill(self, cursor: int, handed: set[int]) -> int:
+        room = 2 * self.window - len(handed)
+        top = self.outbox.max_id
+        if room <= 0 or top <= cursor:
+            return cursor
+        try:
+            rows = self.outbox.fetch_after(cursor, room)
+        except sqlite3.Error as exc:
+            self._rl.warning("fetch", "outbox read failed; retrying", error=str(exc))
+            return cursor
+        for r in rows:
+            if r.id not in handed:
+                handed.add(r.id)
+                self._ready.append(r)
+            cursor = max(cursor, r.id)
+        if len(rows) < room:
+            cursor = max(cursor, top)  # everything up to `top` has been seen
+        return cursor

@@ -1,0 +1,461 @@
+"""The SQLite store-and-forward queue between the pipeline and the upstream broker.
+
+Contract:
+- `submit(msgs, sequences)` writes one tick's messages (and the assets' event
+  sequence numbers) in ONE `BEGIN IMMEDIATE` transaction, before anything is
+  published; it never raises. A write that fails ("database or disk is full",
+  "database is locked", ...) is counted, its rows are kept in memory and retried
+  first on the next submit, so order is kept and the daemon stays up.
+- Rows are delivered in id order (`fetch_after`) and removed only by `delete`,
+  which the upstream side calls once the broker has acknowledged them.
+- The outbox is bounded by rows and bytes; past a bound, rows are dropped in
+  priority order (`DROP_ORDER`), oldest first within a class, and every drop is
+  counted by kind and logged.
+- One connection, one lock: a single writer by construction. WAL journal,
+  `synchronous` from the config (FULL by default: a power cut on an SD card or
+  eMMC must not lose a committed tick), `PRAGMA user_version` is the schema
+  version, `PRAGMA quick_check` runs at open, and a corrupt file is moved aside
+  (`<name>.corrupt-<UTC time>`) and replaced by a new, empty outbox.
+- File growth: `auto_vacuum=INCREMENTAL` on new files and a bounded
+  `incremental_vacuum` when many pages are free; never a full VACUUM at start-up.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import sqlite3
+import threading
+import time
+from collections import Counter
+from collections.abc import Callable, Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+
+from agent.config import OutboxConfig
+from agent.errors import OutboxError
+from agent.logs import kv
+from agent.messages import Kind, OutMessage
+from agent.metrics import Metrics
+
+SCHEMA_VERSION = 1
+
+# Drop classes in the order a full outbox gives them up: score telemetry, retained
+# states a newer state of the same key supersedes, non-anomaly events, the current
+# (unsuperseded) states, anomaly events last.
+DROP_ORDER = ("score", "state_superseded", "event", "state_current", "anomaly")
+
+_CLASS_SQL = {
+    "score": f"kind = {int(Kind.SCORE)}",
+    "state_superseded": f"kind = {int(Kind.STATE)} AND key IS NOT NULL AND EXISTS "
+                        "(SELECT 1 FROM outbox n WHERE n.key = outbox.key AND n.id > outbox.id)",
+    "event": f"kind = {int(Kind.EVENT)}",
+    "state_current": f"kind = {int(Kind.STATE)}",
+    "anomaly": f"kind = {int(Kind.ANOMALY)}",
+}
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS outbox (
+    id INTEGER PRIMARY KEY AUTOINCREMENT,  -- never reused, so a delivery cursor only grows
+    created REAL NOT NULL,
+    kind INTEGER NOT NULL,
+    topic TEXT NOT NULL,
+    payload BLOB NOT NULL,
+    qos INTEGER NOT NULL,
+    retain INTEGER NOT NULL,
+    key TEXT,
+    size INTEGER NOT NULL
+);
+CREATE INDEX IF NOT EXISTS outbox_kind ON outbox (kind, id);
+CREATE INDEX IF NOT EXISTS outbox_key ON outbox (key, id) WHERE key IS NOT NULL;
+CREATE TABLE IF NOT EXISTS sequences (asset TEXT PRIMARY KEY, seq INTEGER NOT NULL);
+"""
+
+# Free pages above which a bounded incremental vacuum runs (4 KiB pages: 16 MiB).
+VACUUM_FREE_PAGES = 4096
+VACUUM_STEP_PAGES = 1024
+DROP_LOG_INTERVAL_S = 10.0
+
+
+@dataclass(frozen=True)
+class Row:
+    """One stored message, as the upstream side publishes it."""
+
+    id: int
+    kind: Kind
+    topic: str
+    payload: bytes
+    qos: int
+    retain: bool
+
+
+def message_size(m: OutMessage) -> int:
+    """The bytes a message counts against `outbox.max_bytes` (topic + payload)."""
+    return len(m.topic.encode()) + len(m.payload)
+
+
+def plan_drops(candidates: Iterable[tuple[int, int]], rows: int, nbytes: int,
+               max_rows: int, max_bytes: int) -> tuple[list[int], int]:
+    """Ids to drop, taken in the given order, until `rows`/`nbytes` are within bounds.
+
+    `candidates` are (id, size) in drop order. Returns (ids, bytes freed); stops as
+    soon as both bounds hold, so no more is dropped than needed.
+    """
+    ids: list[int] = []
+    freed = 0
+    for rid, size in candidates:
+        if rows - len(ids) <= max_rows and nbytes - freed <= max_bytes:
+            break
+        ids.append(rid)
+        freed += size
+    return ids, freed
+
+
+def corrupt_name(path: Path, now: float) -> Path:
+    stamp = datetime.fromtimestamp(now, UTC).strftime("%Y%m%dT%H%M%SZ")
+    return path.with_name(f"{path.name}.corrupt-{stamp}")
+
+
+def _error_reason(exc: sqlite3.Error) -> str:
+    text = str(exc).lower()
+    if "full" in text:
+        return "disk_full"
+    if "locked" in text or "busy" in text:
+        return "locked"
+    if "malformed" in text or "not a database" in text:
+        return "corrupt"
+    if "readonly" in text or "read-only" in text:
+        return "readonly"
+    return "other"
+
+
+class Outbox:
+    """The durable queue; thread-safe (one connection behind one lock)."""
+
+    def __init__(self, cfg: OutboxConfig, metrics: Metrics, logger: logging.Logger, *,
+                 clock: Callable[[], float] = time.time) -> None:
+        self.cfg = cfg
+        self.metrics = metrics
+        self.log = logger
+        self.clock = clock
+        self.path = cfg.path
+        self.corrupt_reset: dict[str, Any] | None = None
+        self.last_write_ok = True
+        self._lock = threading.Lock()
+        self._db: sqlite3.Connection | None = None
+        self._rows = 0
+        self._bytes = 0
+        self.max_id = 0
+        self._pending: list[tuple[OutMessage, float]] = []
+        self._pending_seqs: dict[str, int] = {}
+        self._drops_unlogged: Counter[str] = Counter()
+        self._drop_logged_at = -float("inf")
+        self._drop_counters = {k.label: metrics.outbox_drops.labels(k.label) for k in Kind}
+
+    # -- opening -------------------------------------------------------------------
+
+    def open(self) -> Outbox:
+        """Open (or create) the file; move a corrupt one aside. Raises OutboxError only
+        when no usable outbox can be made at all (e.g. the directory is not writable)."""
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        problem = self._check_existing()
+        if problem is not None:
+            self._move_aside(problem)
+        try:
+            self._db = self._connect()
+        except sqlite3.Error as exc:
+            raise OutboxError(f"outbox {self.path}: cannot open: {exc}") from exc
+        self._refresh_counts()
+        return self
+
+    def _check_existing(self) -> str | None:
+        """Why the existing file cannot be used (corrupt), or None."""
+        if not self.path.exists():
+            return None
+        try:
+            db = sqlite3.connect(self.path, isolation_level=None)
+            try:
+                res = [r[0] for r in db.execute("PRAGMA quick_check").fetchall()]
+                version = db.execute("PRAGMA user_version").fetchone()[0]
+            finally:
+                db.close()
+        except sqlite3.DatabaseError as exc:
+            return str(exc)
+        if res != ["ok"]:
+            return "; ".join(str(r) for r in res[:5])
+        if version > SCHEMA_VERSION:
+            raise OutboxError(f"outbox {self.path}: schema version {version} was written by a "
+                              f"newer watchkeep (this one knows {SCHEMA_VERSION}); refusing "
+                              f"to touch it")
+        return None
+
+    def _move_aside(self, problem: str) -> None:
+        now = self.clock()
+        dest = corrupt_name(self.path, now)
+        for suffix in ("", "-wal", "-shm"):
+            src = Path(f"{self.path}{suffix}")
+            if src.exists():
+                src.replace(Path(f"{dest}{suffix}"))
+        self.metrics.outbox_resets.inc()
+        self.corrupt_reset = {"moved_to": str(dest), "at": now, "problem": problem[:200]}
+        self.log.error(kv("OUTBOX CORRUPT: moved aside and started a new, empty outbox; "
+                          "undelivered messages in it are not sent", path=str(self.path),
+                          moved_to=str(dest), problem=problem[:200]))
+
+    def _connect(self) -> sqlite3.Connection:
+        new = not self.path.exists() or self.path.stat().st_size == 0
+        # isolation_level=None: we issue BEGIN IMMEDIATE ourselves; check_same_thread
+        # off because the one connection is shared behind self._lock.
+        db = sqlite3.connect(self.path, isolation_level=None, check_same_thread=False,
+                             timeout=5.0)
+        if new:
+            db.execute("PRAGMA auto_vacuum = INCREMENTAL")  # only takes effect before tables
+        db.execute("PRAGMA journal_mode = WAL")
+        db.execute(f"PRAGMA synchronous = {self.cfg.synchronous.value}")
+        db.execute("PRAGMA journal_size_limit = 4194304")
+        db.executescript(_SCHEMA)
+        version = db.execute("PRAGMA user_version").fetchone()[0]
+        if version < SCHEMA_VERSION:
+            db.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
+        return db
+
+    def _refresh_counts(self) -> None:
+        db = self._conn()
+        rows, nbytes = db.execute("SELECT count(*), coalesce(sum(size), 0) FROM outbox"
+                                  ).fetchone()
+        self._rows, self._bytes = int(rows), int(nbytes)
+        seq = db.execute("SELECT seq FROM sqlite_sequence WHERE name = 'outbox'").fetchone()
+        self.max_id = int(seq[0]) if seq else 0
+        self._gauges()
+
+    def _conn(self) -> sqlite3.Connection:
+        if self._db is None:
+            raise OutboxError("outbox is not open")
+        return self._db
+
+    # -- writing -------------------------------------------------------------------
+
+    def submit(self, msgs: Sequence[OutMessage],
+               sequences: Mapping[str, int] | None = None) -> None:
+        """Store one tick's messages in one transaction (`last_write_ok` says if it was).
+
+        Never raises: a failed write is counted and kept in memory (bounded by
+        `max_rows`, with the same drop policy) to be retried first next time.
+        """
+        now = self.clock()
+        with self._lock:
+            self._pending.extend((m, now) for m in msgs)
+            self._pending_seqs.update(sequences or {})
+            if not self._pending and not self._pending_seqs:
+                return
+            try:
+                self._write_pending()
+            except sqlite3.Error as exc:
+                self._rollback()
+                reason = _error_reason(exc)
+                self.metrics.outbox_errors.labels(reason).inc()
+                self.log.error(kv("outbox write failed; kept in memory and retried next tick",
+                                  reason=reason, error=str(exc), pending=len(self._pending)))
+                self._bound_pending()
+                self._log_drops(now)
+                self.last_write_ok = False
+                return
+            self.last_write_ok = True
+            self._log_drops(now)
+            self._gauges()
+
+    def _write_pending(self) -> None:
+        db = self._conn()
+        db.execute("BEGIN IMMEDIATE")
+        added_rows, added_bytes, last_id = 0, 0, self.max_id
+        for m, created in self._pending:
+            size = message_size(m)
+            cur = db.execute(
+                "INSERT INTO outbox (created, kind, topic, payload, qos, retain, key, size) "
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                (created, int(m.kind), m.topic, m.payload, m.qos, int(m.retain), m.key, size))
+            last_id = int(cur.lastrowid or last_id)
+            added_rows += 1
+            added_bytes += size
+        if self._pending_seqs:
+            db.executemany(
+                "INSERT INTO sequences (asset, seq) VALUES (?, ?) "
+                "ON CONFLICT (asset) DO UPDATE SET seq = excluded.seq",
+                list(self._pending_seqs.items()))
+        rows, nbytes = self._rows + added_rows, self._bytes + added_bytes
+        dropped: Counter[str] = Counter()
+        if rows > self.cfg.max_rows or nbytes > self.cfg.max_bytes:
+            rows, nbytes, dropped = self._enforce_bounds(db, rows, nbytes)
+        db.execute("COMMIT")
+        # Only now, after COMMIT, is the state in memory updated.
+        self._rows, self._bytes, self.max_id = rows, nbytes, last_id
+        self._pending = []
+        self._pending_seqs = {}
+        self._count_drops(dropped)
+
+    def _enforce_bounds(self, db: sqlite3.Connection, rows: int, nbytes: int
+                        ) -> tuple[int, int, Counter[str]]:
+        dropped: Counter[str] = Counter()
+        for cls in DROP_ORDER:
+            while rows > self.cfg.max_rows or nbytes > self.cfg.max_bytes:
+                chunk = db.execute(f"SELECT id, size, kind FROM outbox WHERE {_CLASS_SQL[cls]} "
+                                   "ORDER BY id LIMIT 512").fetchall()
+                if not chunk:
+                    break
+                ids, freed = plan_drops(((r[0], r[1]) for r in chunk), rows, nbytes,
+                                        self.cfg.max_rows, self.cfg.max_bytes)
+                if not ids:
+                    break
+                db.executemany("DELETE FROM outbox WHERE id = ?", [(i,) for i in ids])
+                kinds = {r[0]: r[2] for r in chunk}
+                for i in ids:
+                    dropped[Kind(kinds[i]).label] += 1
+                rows -= len(ids)
+                nbytes -= freed
+        return rows, nbytes, dropped
+
+    def _count_drops(self, dropped: Counter[str]) -> None:
+        for label, n in dropped.items():
+            self._drop_counters[label].inc(n)
+        self._drops_unlogged.update(dropped)
+
+    def _log_drops(self, now: float) -> None:
+        """Every drop is logged: at once the first time, then summed at most every 10 s."""
+        if not self._drops_unlogged or now - self._drop_logged_at < DROP_LOG_INTERVAL_S:
+            return
+        self._drop_logged_at = now
+        counts = dict(sorted(self._drops_unlogged.items()))
+        self._drops_unlogged.clear()
+        self.log.warning(kv("outbox full: messages dropped", **counts,
+                            max_rows=self.cfg.max_rows, max_bytes=self.cfg.max_bytes))
+
+    def _bound_pending(self) -> None:
+        """Keep the in-memory retry list within `max_rows` by the same drop policy."""
+        excess = len(self._pending) - self.cfg.max_rows
+        if excess <= 0:
+            return
+        order = {c: i for i, c in enumerate(DROP_ORDER)}
+        latest: dict[str, int] = {}
+        for i, (m, _) in enumerate(self._pending):
+            if m.kind is Kind.STATE and m.key is not None:
+                latest[m.key] = i
+
+        def cls(i: int, m: OutMessage) -> str:
+            if m.kind is Kind.STATE:
+                return "state_current" if latest.get(m.key or "") == i or m.key is None \
+                    else "state_superseded"
+            return m.kind.label
+
+        ranked = sorted(range(len(self._pending)),
+                        key=lambda i: (order[cls(i, self._pending[i][0])], i))
+        drop = set(ranked[:excess])
+        dropped: Counter[str] = Counter(self._pending[i][0].kind.label for i in drop)
+        self._pending = [p for i, p in enumerate(self._pending) if i not in drop]
+        self._count_drops(dropped)
+
+    def _rollback(self) -> None:
+        with contextlib.suppress(sqlite3.Error):  # no transaction was open
+            self._conn().execute("ROLLBACK")
+
+    # -- delivery ------------------------------------------------------------------
+
+    def fetch_after(self, after_id: int, limit: int) -> list[Row]:
+        """Up to `limit` rows with id > `after_id`, in id order."""
+        with self._lock:
+            cur = self._conn().execute(
+                "SELECT id, kind, topic, payload, qos, retain FROM outbox WHERE id > ? "
+                "ORDER BY id LIMIT ?", (after_id, limit))
+            return [Row(r[0], Kind(r[1]), r[2], bytes(r[3]), r[4], bool(r[5]))
+                    for r in cur.fetchall()]
+
+    def delete(self, ids: Sequence[int]) -> int:
+        """Remove acknowledged rows in one transaction; returns how many existed.
+
+        Raises sqlite3.Error (after rolling back) so the caller can keep the ids and
+        retry; ids already gone (dropped while in flight) are ignored.
+        """
+        if not ids:
+            return 0
+        with self._lock:
+            db = self._conn()
+            try:
+                db.execute("BEGIN IMMEDIATE")
+                n, freed = 0, 0
+                for i in ids:
+                    r = db.execute("DELETE FROM outbox WHERE id = ? RETURNING size",
+                                   (i,)).fetchone()
+                    if r is not None:
+                        n += 1
+                        freed += int(r[0])
+                db.execute("COMMIT")
+            except sqlite3.Error as exc:
+                self._rollback()
+                self.metrics.outbox_errors.labels(_error_reason(exc)).inc()
+                raise
+            self._rows -= n
+            self._bytes -= freed
+            return n
+
+    def sequences(self) -> dict[str, int]:
+        """The last event sequence number stored per asset."""
+        with self._lock:
+            return {a: int(s) for a, s in
+                    self._conn().execute("SELECT asset, seq FROM sequences").fetchall()}
+
+    # -- housekeeping --------------------------------------------------------------
+
+    def counts(self) -> tuple[int, int]:
+        """(rows, bytes) waiting."""
+        return self._rows, self._bytes
+
+    def oldest_created(self) -> float | None:
+        with self._lock:
+            r = self._conn().execute("SELECT created FROM outbox ORDER BY id LIMIT 1").fetchone()
+            return float(r[0]) if r else None
+
+    def maintain(self) -> int:
+        """A bounded incremental vacuum when many pages are free; returns pages freed."""
+        with self._lock:
+            db = self._conn()
+            try:
+                free = db.execute("PRAGMA freelist_count").fetchone()[0]
+                if free < VACUUM_FREE_PAGES:
+                    return 0
+                db.execute(f"PRAGMA incremental_vacuum({VACUUM_STEP_PAGES})").fetchall()
+                return int(free - db.execute("PRAGMA freelist_count").fetchone()[0])
+            except sqlite3.Error as exc:
+                self.metrics.outbox_errors.labels(_error_reason(exc)).inc()
+                return 0
+
+    def update_gauges(self) -> None:
+        oldest = self.oldest_created()
+        self.metrics.outbox_oldest_age.set(0.0 if oldest is None
+                                           else max(0.0, self.clock() - oldest))
+        self._gauges()
+
+    def _gauges(self) -> None:
+        self.metrics.outbox_rows.set(self._rows)
+        self.metrics.outbox_bytes.set(self._bytes)
+
+    def status(self) -> dict[str, Any]:
+        """For `/status` and the retained status topic."""
+        doc: dict[str, Any] = {"rows": self._rows, "bytes": self._bytes,
+                               "pending_in_memory": len(self._pending)}
+        if self.corrupt_reset is not None:
+            doc["corrupt_reset"] = self.corrupt_reset
+        return doc
+
+    def close(self) -> None:
+        with self._lock:
+            if self._db is not None:
+                try:
+                    if self._pending:
+                        self.log.error(kv("outbox closing with unwritten messages",
+                                          pending=len(self._pending)))
+                    self._db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+                except sqlite3.Error:
+                    pass
+                self._db.close()
+                self._db = None
