@@ -13,6 +13,24 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+import yaml
+
+CONFIG_DIR = Path(__file__).resolve().parents[2] / "config"
+
+
+def is_watchkeep_config(doc: Any) -> bool:
+    """A watchkeep config has top-level `assets`; simulator scenarios (which also list
+    assets) are told apart by their `timeline` and `duration_s`."""
+    return (isinstance(doc, dict) and "assets" in doc
+            and "timeline" not in doc and "duration_s" not in doc)
+
+
+def shipped_configs() -> list[Path]:
+    """Every watchkeep config under config/ (example.yaml, demo configs), not scenarios."""
+    paths = sorted(CONFIG_DIR.rglob("*.yaml")) + sorted(CONFIG_DIR.rglob("*.yml"))
+    return [p for p in paths if is_watchkeep_config(yaml.safe_load(p.read_text()))]
+
+
 FEATURE_LIST = "mean, std, min, max, rms, peak_to_peak, crest_factor, skewness, kurtosis"
 TOP_KEYS = ("site, gateway, topic_prefix, state_dir, local_broker, upstream_broker, ingest, "
             "pipeline, outbox, http, publish, assets")
@@ -197,6 +215,15 @@ BROKEN: tuple[Broken, ...] = (
     Broken("client certificate without its key", _cert_without_key,
            ("upstream_broker.tls.cert_file: expected cert_file and key_file together "
             "(mutual TLS)",)),
+    Broken("TLS verification off without allow_insecure",
+           _set("upstream_broker", {"tls": {"verify": False}}),
+           ("upstream_broker.tls.verify: expected true (set allow_insecure: true as well to "
+            "accept an unverified TLS connection), got false (a boolean)",)),
+    Broken("allow_insecure not a boolean",
+           _set("upstream_broker", {"tls": {"verify": False, "allow_insecure": "yes please"}}),
+           ("upstream_broker.tls.allow_insecure: expected true or false, got 'yes please'",
+            "upstream_broker.tls.verify: expected true (set allow_insecure: true as well to "
+            "accept an unverified TLS connection), got false (a boolean)")),
     Broken("bad decoder", _set("assets.0.channels.current.decoder", "xml"),
            (f"{P0}.decoder: expected one of json, json-batch, text, got 'xml'",)),
     Broken("bad feature name", _set("assets.0.channels.current.features", ["mean", "median"]),
