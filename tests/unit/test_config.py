@@ -19,21 +19,15 @@ from agent.config import (
     parse_config,
 )
 from agent.errors import ConfigError
-from tests.unit.config_cases import BAD_YAML, BAD_YAML_WHERE, BROKEN, Broken, base_doc
-
-CONFIG_DIR = Path(__file__).resolve().parents[2] / "config"
-
-
-def is_watchkeep_config(doc: Any) -> bool:
-    """A watchkeep config has top-level `assets`; simulator scenarios (which also list
-    assets) are told apart by their `timeline` and `duration_s`."""
-    return (isinstance(doc, dict) and "assets" in doc
-            and "timeline" not in doc and "duration_s" not in doc)
-
-
-def shipped_configs() -> list[Path]:
-    paths = sorted(CONFIG_DIR.rglob("*.yaml")) + sorted(CONFIG_DIR.rglob("*.yml"))
-    return [p for p in paths if is_watchkeep_config(yaml.safe_load(p.read_text()))]
+from tests.unit.config_cases import (
+    BAD_YAML,
+    BAD_YAML_WHERE,
+    BROKEN,
+    CONFIG_DIR,
+    Broken,
+    base_doc,
+    shipped_configs,
+)
 
 
 def write(tmp_path: Path, doc: Any) -> Path:
