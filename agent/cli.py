@@ -104,6 +104,11 @@ def _add_optional_commands(sub: argparse._SubParsersAction) -> None:  # type: ig
     rep = sub.add_parser("replay", help="run a raw capture through the daemon pipeline")
     replay_mod.add_replay_arguments(rep)
     rep.set_defaults(func=replay_mod.cmd_replay)
+    from agent import demo as demo_mod
+
+    d = sub.add_parser("demo", help="run the simulated demo plant with a live view")
+    demo_mod.add_demo_arguments(d)
+    d.set_defaults(func=demo_mod.cmd_demo)
     try:
         from agent.commission import evaluate as eval_mod
 

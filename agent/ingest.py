@@ -180,6 +180,7 @@ class Ingest:
         self._errors = metrics.callback_errors.labels("ingest")
         self._gauge = metrics.connected.labels("local")
         self.disconnected_since: float | None = None
+        self._stopping = False
 
     def start(self) -> None:
         b = self.cfg.local_broker
@@ -188,6 +189,7 @@ class Ingest:
 
     def stop(self) -> None:
         """Stop taking messages: unsubscribe-free disconnect, then end the loop thread."""
+        self._stopping = True
         try:
             self._client.disconnect()
         finally:
@@ -217,7 +219,7 @@ class Ingest:
     def _on_disconnect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any,
                        props: Any) -> None:
         try:
-            if self.connected.is_set():
+            if self.connected.is_set() and not self._stopping:
                 self.log.warning(kv("local broker connection lost", reason=str(reason)))
             self.connected.clear()
             self._gauge.set(0)

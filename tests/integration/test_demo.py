@@ -1,0 +1,57 @@
+"""`watchkeep demo` (what `make demo` wraps): runs, detects the fault, leaves nothing behind."""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+from pathlib import Path
+
+WATCHKEEP = str(Path(sys.executable).with_name("watchkeep"))
+
+
+def _children(pid: int) -> list[int]:
+    out = []
+    for p in Path("/proc").iterdir():
+        if p.name.isdigit():
+            try:
+                stat = (p / "stat").read_text()
+            except OSError:
+                continue
+            if int(stat.rsplit(")", 1)[1].split()[1]) == pid:
+                out.append(int(p.name))
+    return out
+
+
+def _demo_brokers() -> list[int]:
+    """Processes whose command line names a demo broker config (orphans included)."""
+    found = []
+    for p in Path("/proc").iterdir():
+        if p.name.isdigit():
+            try:
+                cmd = (p / "cmdline").read_bytes()
+            except OSError:
+                continue
+            if b"watchkeep-demo-" in cmd:
+                found.append(int(p.name))
+    return found
+
+
+def test_short_demo_detects_the_bearing_fault(tmp_path: Path) -> None:
+    """`watchkeep demo --duration 20` exits 0, reports the fault detected, no child left."""
+    summary = tmp_path / "summary.json"
+    proc = subprocess.Popen(
+        [WATCHKEEP, "demo", "--duration", "20", "--plain", "--train-minutes", "20",
+         "--state-dir", str(tmp_path / "state"), "--summary-json", str(summary)],
+        stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
+        env={**os.environ, "PYTHONUNBUFFERED": "1"})
+    out, _ = proc.communicate(timeout=240)
+    assert proc.returncode == 0, out
+    assert _children(os.getpid()) == [], "demo left processes behind"
+    assert _demo_brokers() == [], "demo left its broker running"
+    assert "summary" in out
+    s = json.loads(summary.read_text())
+    machine = [f for f in s["faults"] if f["class"] == "machine"]
+    assert machine and all(f["detected"] for f in machine), (s, out)
+    assert "P-101" in out and "anomaly.raised" in out
