@@ -128,6 +128,7 @@ class Upstream:
         self.connected = threading.Event()
         self.last_error: str | None = None
         self._paho_error: str | None = None
+        self._connack_seen = False
         self._gauge = metrics.connected.labels("upstream")
         self._errors = metrics.callback_errors.labels("upstream")
         self._published = {k: metrics.published.labels(k.label) for k in Kind}
@@ -196,6 +197,7 @@ class Upstream:
                 self._stop_net.wait(backoff_delay(attempt, self.rand()))
                 continue
             self._paho_error = None
+            self._connack_seen = False
             while not self._stop_net.is_set():
                 try:
                     rc = self._client.loop(timeout=LOOP_TIMEOUT_S)
@@ -209,9 +211,11 @@ class Upstream:
                     break
             if self._stop_net.is_set():
                 break
-            if self._paho_error:
+            if not self._connack_seen:
+                self._note_error(self._closed_early_message())
+            elif self._paho_error:
                 b = self.broker
-                self._note_error(f"connection to {b.host}:{b.port} closed: {self._paho_error}")
+                self._note_error(f"connection to {b.host}:{b.port} lost: {self._paho_error}")
             self._set_disconnected()
             attempt += 1
             self._stop_net.wait(backoff_delay(attempt, self.rand()))
@@ -259,6 +263,16 @@ class Upstream:
         finally:
             self._set_disconnected(log=False)
 
+    def _closed_early_message(self) -> str:
+        b = self.broker
+        msg = f"connection to {b.host}:{b.port} closed before the broker accepted it"
+        if self._paho_error:
+            msg += f" ({self._paho_error})"
+        if b.tls is not None:
+            msg += ("; over TLS this is how a broker turns away a missing or untrusted client "
+                    "certificate: check upstream_broker.tls.cert_file and key_file")
+        return msg
+
     def _note_error(self, msg: str) -> None:
         self.last_error = msg
         self._rl.warning(f"connect:{msg}", "upstream broker: " + msg)
@@ -275,6 +289,7 @@ class Upstream:
     def _on_connect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any,
                     props: Any) -> None:
         try:
+            self._connack_seen = True
             if reason.is_failure:
                 self._note_error(f"upstream broker refused the connection: {reason}")
                 return
@@ -313,8 +328,9 @@ class Upstream:
             self._errors.inc()
 
     def _on_log(self, client: mqtt.Client, userdata: Any, level: int, buf: str) -> None:
-        # paho reports socket and TLS errors met inside loop() only here.
-        if level == mqtt.MQTT_LOG_ERR:
+        # paho reports socket and TLS errors met inside loop() only here; the first one
+        # of a connection is the cause, later ones are consequences.
+        if level == mqtt.MQTT_LOG_ERR and self._paho_error is None:
             self._paho_error = buf
 
     # -- the store thread ----------------------------------------------------------
