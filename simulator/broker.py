@@ -319,6 +319,10 @@ class EmbeddedBroker:
             log.warning("client %r: protocol error, closing: %s", client.client_id, e)
         except (asyncio.IncompleteReadError, ConnectionError):
             pass  # the peer went away; its will (if any) goes out below
+        except asyncio.CancelledError:
+            # Only stop() cancels; ending normally keeps Python 3.11's streams from
+            # logging the cancelled connection task as an error.
+            publish_will = False
         finally:
             self._close(client, publish_will=publish_will and not self._stopping)
             if pump is not None:
