@@ -18,7 +18,7 @@ def cmd_run(args: argparse.Namespace) -> int:
     from agent.logs import setup_logging
 
     cfg = load_config(args.config)
-    return run_daemon(cfg, setup_logging(args.log_level))
+    return run_daemon(cfg, setup_logging(args.log_level, args.log_format))
 
 
 def cmd_check_config(args: argparse.Namespace) -> int:
@@ -75,7 +75,15 @@ def build_parser() -> argparse.ArgumentParser:
     run.add_argument("--config", "-c", required=True)
     run.add_argument("--log-level", default="INFO",
                      choices=["DEBUG", "INFO", "WARNING", "ERROR"])
+    run.add_argument("--log-format", default="kv", choices=["kv", "json"],
+                     help="one line per record: key=value (default) or JSON")
     run.set_defaults(func=cmd_run)
+
+    from agent import status_cmd
+
+    st = sub.add_parser("status", help="show the running daemon's assets as a table")
+    status_cmd.add_status_arguments(st)
+    st.set_defaults(func=status_cmd.cmd_status)
 
     chk = sub.add_parser("check-config", help="check a config file and summarise it")
     chk.add_argument("config")

@@ -12,14 +12,26 @@ import json
 import threading
 from collections.abc import Callable
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-from prometheus_client import CollectorRegistry, Counter, Gauge, Histogram, Info
+from prometheus_client import (
+    CollectorRegistry,
+    Counter,
+    Gauge,
+    Histogram,
+    Info,
+    PlatformCollector,
+    ProcessCollector,
+)
 from prometheus_client.exposition import CONTENT_TYPE_LATEST, generate_latest
 
-# Sub-millisecond to a few seconds: features and inference for one tick.
-WORK_BUCKETS = (0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1,
-                0.25, 0.5, 1.0, 2.5)
+if TYPE_CHECKING:
+    from agent.pipeline import Pipeline
+
+# 50 µs to 5 s: one tick's features and a batch's inference run from well under a
+# millisecond (a few assets) to seconds (a slow gateway with many waveform channels).
+WORK_BUCKETS = (0.00005, 0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05,
+                0.1, 0.25, 0.5, 1.0, 2.5, 5.0)
 
 
 class Metrics:
@@ -28,7 +40,17 @@ class Metrics:
     def __init__(self, registry: CollectorRegistry) -> None:
         self.registry = registry
         r = registry
-        self.info = Info("watchkeep", "watchkeep build and model versions", registry=r)
+        # process_* (CPU, memory, open fds) and python_info, on our registry, not the global one.
+        ProcessCollector(registry=r)
+        PlatformCollector(registry=r)
+        self.info = Info("watchkeep", "watchkeep build version", registry=r)
+        self.model_info = Info(
+            "watchkeep_model", "The model serving each asset: id and version", ["asset"],
+            registry=r)
+        self.start_time = Gauge(
+            "watchkeep_start_time_seconds", "Unix time the daemon started", registry=r)
+        self.ticks = Counter(
+            "watchkeep_pipeline_ticks_total", "Pipeline ticks run", registry=r)
         self.messages_received = Counter(
             "watchkeep_messages_received_total", "MQTT messages received from the local broker",
             ["asset"], registry=r)
@@ -69,7 +91,8 @@ class Metrics:
             "watchkeep_anomaly_threshold", "Raise threshold of the asset's model", ["asset"],
             registry=r)
         self.anomalous = Gauge(
-            "watchkeep_asset_anomalous", "1 while the asset's detector is raised", ["asset"],
+            "watchkeep_asset_anomalous",
+            "Detector state: 1 while the asset's anomaly is raised, 0 when normal", ["asset"],
             registry=r)
         self.model_loaded = Gauge(
             "watchkeep_model_loaded", "1 when the asset's model bundle is loaded", ["asset"],
@@ -92,6 +115,12 @@ class Metrics:
         self.outbox_oldest_age = Gauge(
             "watchkeep_outbox_oldest_age_seconds", "Age of the oldest waiting message",
             registry=r)
+        self.outbox_capacity_rows = Gauge(
+            "watchkeep_outbox_capacity_rows", "Configured maximum rows in the outbox",
+            registry=r)
+        self.outbox_capacity_bytes = Gauge(
+            "watchkeep_outbox_capacity_bytes", "Configured maximum payload bytes in the outbox",
+            registry=r)
         self.outbox_drops = Counter(
             "watchkeep_outbox_dropped_total", "Messages dropped from a full outbox, by kind",
             ["kind"], registry=r)
@@ -108,11 +137,99 @@ class Metrics:
             "watchkeep_upstream_seconds_since_last_ack",
             "Seconds since the upstream broker last acknowledged a message", registry=r)
         self.reloads = Counter(
-            "watchkeep_config_reloads_total", "Config reloads, by result", ["result"],
+            "watchkeep_config_reloads_total", "Config reloads, by result (success, failure)",
+            ["result"], registry=r)
+        for result in ("success", "failure"):
+            self.reloads.labels(result)  # both series exist from the start, at 0
+        self.reload_ok = Gauge(
+            "watchkeep_config_last_reload_successful",
+            "1 if the last reload (or the start) applied the config, 0 if it was rejected",
             registry=r)
+        self.reload_ok.set(1)
+        self.reload_time = Gauge(
+            "watchkeep_config_last_reload_success_timestamp_seconds",
+            "Unix time the running config was applied", registry=r)
         self.gaps = Counter(
             "watchkeep_sample_gaps_total", "Waveform blocks that do not follow on from the last",
             ["asset", "channel"], registry=r)
+
+
+
+def _forget(metric: Any, **labels: str) -> None:
+    """Remove every series of `metric` whose labels include `labels`."""
+    metric.remove_by_labels(labels)
+
+
+class TickGauges:
+    """Gauges the pipeline loop refreshes every tick, and the series that follow the config.
+
+    `update(pipeline, now)` sets each configured channel's last-sample age (seconds
+    since its last sample arrived, or since `started_s` when none has yet), and,
+    whenever the pipeline object changes (start, reload), republishes per-asset
+    model info, detector state and outbox capacity and removes the series of assets
+    and channels the new config no longer has, so label sets stay bounded by the
+    running config.
+    """
+
+    def __init__(self, metrics: Metrics, started_s: float) -> None:
+        self.metrics = metrics
+        self.started_s = started_s
+        metrics.start_time.set(started_s)
+        metrics.reload_time.set(started_s)
+        self._pipeline: Pipeline | None = None
+        self._ages: list[tuple[Any, Any]] = []  # (ChannelBuffer, its age gauge child)
+
+    def update(self, pipeline: Pipeline, now: float) -> None:
+        if pipeline is not self._pipeline:
+            self._rebind(pipeline)
+        for buf, gauge in self._ages:
+            last = buf.last_arrival or self.started_s
+            gauge.set(max(0.0, now - last))
+
+    def _rebind(self, pipeline: Pipeline) -> None:
+        m = self.metrics
+        old = self._pipeline
+        now_assets = {rt.cfg.name: rt for rt in pipeline.runtimes}
+        if old is not None:
+            for rt in old.runtimes:
+                name = rt.cfg.name
+                if name not in now_assets:
+                    self._forget_asset(name)
+                    continue
+                keep = {ch.name for ch in now_assets[name].cfg.channels}
+                for ch in rt.cfg.channels:
+                    if ch.name not in keep:
+                        for metric in (m.samples, m.sample_age, m.gaps):
+                            _forget(metric, asset=name, channel=ch.name)
+        for rt in pipeline.runtimes:
+            name = rt.cfg.name
+            if rt.bundle is not None:
+                meta = rt.bundle.meta
+                m.model_info.labels(name).info({"model_id": meta.model_id,
+                                                "version": str(meta.version),
+                                                "mode": meta.mode})
+            else:
+                _forget(m.model_info, asset=name)
+                _forget(m.threshold, asset=name)
+            if rt.last_score is None:  # a fresh runtime: no score until its first window
+                _forget(m.score, asset=name)
+            m.model_loaded.labels(name).set(1 if rt.bundle is not None else 0)
+            m.anomalous.labels(name).set(1 if rt.state.value == "anomalous" else 0)
+        cfg = pipeline.cfg
+        m.outbox_capacity_rows.set(cfg.outbox.max_rows)
+        m.outbox_capacity_bytes.set(cfg.outbox.max_bytes)
+        self._ages = [
+            (buf, m.sample_age.labels(rt.cfg.name, ch.name))
+            for rt, bufs in zip(pipeline.runtimes, pipeline.buffers.by_asset, strict=True)
+            for buf, ch in zip(bufs, rt.cfg.channels, strict=True)]
+        self._pipeline = pipeline
+
+    def _forget_asset(self, name: str) -> None:
+        m = self.metrics
+        for metric in (m.messages_received, m.samples, m.late_samples, m.windows_closed,
+                       m.windows_scored, m.windows_skipped, m.score, m.threshold, m.anomalous,
+                       m.model_loaded, m.model_info, m.sample_age, m.gaps):
+            _forget(metric, asset=name)
 
 
 StatusFn = Callable[[], dict[str, Any]]
