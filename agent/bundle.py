@@ -91,8 +91,12 @@ def parse_meta(doc: Mapping[str, Any], path: str) -> BundleMeta:
     if len(set(names)) != len(names):
         raise BundleError(path, "model.json: feature_names has duplicates")
     scaler = _need(doc, "scaler", dict, path)
-    mean = np.asarray(scaler.get("mean", []), dtype=np.float64)
-    scale = np.asarray(scaler.get("scale", []), dtype=np.float64)
+    try:
+        mean = np.asarray(scaler.get("mean", []), dtype=np.float64)
+        scale = np.asarray(scaler.get("scale", []), dtype=np.float64)
+    except (TypeError, ValueError):
+        raise BundleError(path, "model.json: scaler mean/scale must be lists of numbers"
+                          ) from None
     if mean.shape != (len(names),) or scale.shape != (len(names),):
         raise BundleError(path, f"model.json: scaler mean/scale must have {len(names)} values")
     if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(scale)) and np.all(scale > 0)):
@@ -108,6 +112,13 @@ def parse_meta(doc: Mapping[str, Any], path: str) -> BundleMeta:
     if not (math.isfinite(clear) and 0 < clear <= threshold):
         raise BundleError(path, "model.json: clear_threshold must be in (0, threshold]")
     onnx_info = _need(doc, "onnx", dict, path)
+    for key, kind in (("mode", str), ("calibration", dict), ("training", dict),
+                      ("created", str), ("watchkeep_version", str)):
+        if key in doc:
+            _need(doc, key, kind, path)
+    for key in ("input", "output"):
+        if not isinstance(onnx_info.get(key, ""), str):
+            raise BundleError(path, f"model.json: onnx.{key} must be a tensor name")
     return BundleMeta(
         asset=str(_need(doc, "asset", str, path)),
         mode=str(doc.get("mode", "default")),
@@ -196,7 +207,10 @@ def load_bundle(path: str | os.PathLike[str]) -> Bundle:
 
     import onnxruntime as ort
 
-    model_bytes = onnx_path.read_bytes()
+    try:
+        model_bytes = onnx_path.read_bytes()
+    except OSError as exc:
+        raise BundleError(sp, f"{MODEL_ONNX} cannot be read ({exc.strerror or exc})") from exc
     try:
         session = ort.InferenceSession(model_bytes, sess_options=_session_options(),
                                        providers=["CPUExecutionProvider"])
@@ -214,6 +228,10 @@ def load_bundle(path: str | os.PathLike[str]) -> Bundle:
     if len(inp.shape) != 2 or (isinstance(inp.shape[1], int) and inp.shape[1] != n):
         raise BundleError(sp, f"model input {inp.name!r} has shape {inp.shape}, "
                               f"expected [N, {n}] for {n} feature names")
+    if isinstance(inp.shape[0], int):
+        raise BundleError(sp, f"model input {inp.name!r} has a fixed batch size "
+                              f"{inp.shape[0]}; windows are scored in batches, so the first "
+                              "dimension must be dynamic")
     if meta.onnx_input and meta.onnx_input != inp.name:
         raise BundleError(sp, f"model.json names input {meta.onnx_input!r}, "
                               f"the model's is {inp.name!r}")
