@@ -1,0 +1,242 @@
+"""Ingest throughput through a real Mosquitto: watchkeep's ingest beside a bare subscriber.
+
+Two rows, each alternating rounds of watchkeep / bare on the same broker and the same
+publishers:
+
+* scalar: `json` readings of 200 assets x 8 channels; the bare subscriber only
+  `json.loads` each message;
+* waveform: `json-batch` blocks of 256 samples; the bare subscriber decodes each
+  block into a numpy array.
+
+Publishers run in separate processes (one paho publisher tops out well below what a
+subscriber can take), QoS 0, pre-encoded payloads. Every round counts received
+against sent: Mosquitto drops QoS 0 messages silently once a subscriber's queue is
+full, so a rate without a loss count means nothing. Run:
+`python -m tests.bench ingest`.
+"""
+
+from __future__ import annotations
+
+import json
+import logging
+import multiprocessing as mp
+import tempfile
+import threading
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import paho.mqtt.client as mqtt
+from paho.mqtt.enums import CallbackAPIVersion
+from prometheus_client import CollectorRegistry
+
+from agent.config import parse_config
+from agent.ingest import Buffers, Ingest, IngestHandler
+from agent.metrics import Metrics
+from tests.bench.common import median, save, table
+from tests.brokers import Broker
+
+N_ASSETS, N_CHANNELS = 200, 8
+ROUNDS = 3
+PUBLISHERS = 3
+
+
+def _topics(kind: str) -> list[str]:
+    return [f"bench/{kind}/A{a:03d}/c{c}" for a in range(N_ASSETS) for c in range(N_CHANNELS)]
+
+
+def _payloads(kind: str, n: int) -> list[tuple[str, bytes]]:
+    topics = _topics(kind)
+    out = []
+    t0 = time.time()
+    rng = np.random.default_rng(0)
+    if kind == "scalar":
+        for i in range(n):
+            out.append((topics[i % len(topics)],
+                        json.dumps({"ts": t0 + i * 1e-4, "value": float(rng.normal())}).encode()))
+    else:
+        block = [round(float(v), 5) for v in rng.normal(size=256)]
+        for i in range(n):
+            k = i // len(topics)
+            out.append((topics[i % len(topics)],
+                        json.dumps({"ts": t0 + k * 0.1, "rate_hz": 2560.0,
+                                    "values": block}).encode()))
+    return out
+
+
+def _publisher(port: int, kind: str, n: int, seed: int, go: Any, done: Any) -> None:
+    msgs = _payloads(kind, n)
+    c = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=f"bench-pub-{kind}-{seed}")
+    c.max_queued_messages_set(0)
+    c.connect("127.0.0.1", port)
+    c.loop_start()
+    go.wait()
+    t0 = time.perf_counter()
+    last = None
+    for topic, payload in msgs:
+        last = c.publish(topic, payload, qos=0)
+    if last is not None:
+        last.wait_for_publish(60)
+    done.put(n / (time.perf_counter() - t0))
+    c.disconnect()
+    c.loop_stop()
+
+
+class _Counter:
+    def __init__(self) -> None:
+        self.n = 0
+        self.first = 0.0
+        self.last = 0.0
+
+    def hit(self, k: int = 1) -> None:
+        now = time.perf_counter()
+        if self.n == 0:
+            self.first = now
+        self.n += k
+        self.last = now
+
+
+def _bare(port: int, kind: str, counter: _Counter) -> mqtt.Client:
+    c = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=f"bench-bare-{kind}")
+    ready = threading.Event()
+
+    def on_message(cl: Any, u: Any, msg: mqtt.MQTTMessage) -> None:
+        doc = json.loads(msg.payload)
+        if kind == "waveform":
+            np.asarray(doc["values"], dtype=np.float64)
+        counter.hit()
+
+    c.on_message = on_message
+    c.on_subscribe = lambda *a: ready.set()
+    c.connect("127.0.0.1", port)
+    c.subscribe(f"bench/{kind}/#", qos=0)
+    c.loop_start()
+    ready.wait(10)
+    return c
+
+
+def _config(kind: str, port: int, tmp: Path):
+    decoder = "json" if kind == "scalar" else "json-batch"
+    rate = 10 if kind == "scalar" else 2560
+    doc = {"site": "bench", "gateway": "gw", "state_dir": str(tmp),
+           "local_broker": {"port": port, "client_id": f"bench-wk-{kind}"},
+           "ingest": {"max_clock_skew_s": 1e6},
+           "assets": [{"name": f"A{a:03d}", "channels": {
+               f"c{c}": {"topic": f"bench/{kind}/A{a:03d}/c{c}", "decoder": decoder,
+                         "rate_hz": rate} for c in range(N_CHANNELS)}}
+               for a in range(N_ASSETS)]}
+    return parse_config(doc, tmp)
+
+
+def _watchkeep(port: int, kind: str, counter: _Counter, tmp: Path):
+    cfg = _config(kind, port, tmp)
+    metrics = Metrics(CollectorRegistry())
+    buffers = Buffers(cfg)
+    log = logging.getLogger("bench")
+    handler = IngestHandler(cfg, buffers, metrics, log)
+    inner = handler.handle
+
+    def handle(topic: str, payload: bytes, arrival: float) -> None:
+        inner(topic, payload, arrival)
+        counter.hit()
+
+    handler.handle = handle  # type: ignore[method-assign]
+    ingest = Ingest(cfg, handler, metrics, log)
+    stop = threading.Event()
+
+    def drain() -> None:  # the pipeline's share of the buffers: take every 100 ms
+        while not stop.wait(0.1):
+            for chans in buffers.by_asset:
+                for b in chans:
+                    b.take()
+
+    th = threading.Thread(target=drain, daemon=True)
+    th.start()
+    ingest.start()
+    ingest.connected.wait(10)
+    time.sleep(0.5)  # subscriptions are sent in on_connect; give the SUBACK time
+    return ingest, stop, metrics
+
+
+def _round(port: int, kind: str, which: str, n_per_pub: int, tmp: Path) -> dict[str, float]:
+    counter = _Counter()
+    if which == "bare":
+        sub = _bare(port, kind, counter)
+        closer = lambda: (sub.disconnect(), sub.loop_stop())  # noqa: E731
+        rejected = lambda: 0.0  # noqa: E731
+    else:
+        ingest, stop, metrics = _watchkeep(port, kind, counter, tmp)
+
+        def closer() -> None:
+            stop.set()
+            ingest.stop()
+
+        def rejected() -> float:
+            return sum(s.value for f in metrics.registry.collect()
+                       if f.name == "watchkeep_messages_rejected" for s in f.samples
+                       if s.name.endswith("_total"))
+    ctx = mp.get_context("spawn")
+    go, done = ctx.Event(), ctx.Queue()
+    procs = [ctx.Process(target=_publisher, args=(port, kind, n_per_pub, i, go, done))
+             for i in range(PUBLISHERS)]
+    for p in procs:
+        p.start()
+    time.sleep(2.0 if kind == "scalar" else 3.0)  # publishers build their payloads
+    go.set()
+    pub_rates = [done.get(timeout=300) for _ in procs]
+    for p in procs:
+        p.join(60)
+    sent = n_per_pub * PUBLISHERS
+    deadline = time.monotonic() + 30
+    prev = -1
+    while counter.n < sent and time.monotonic() < deadline:
+        if counter.n == prev and time.perf_counter() - counter.last > 2.0:
+            break  # nothing more is coming: the rest was dropped
+        prev = counter.n
+        time.sleep(0.2)
+    closer()
+    span = max(1e-9, counter.last - counter.first)
+    return {"rate": counter.n / span, "received": counter.n, "sent": sent,
+            "lost": sent - counter.n, "rejected": rejected(),
+            "publishers_rate": sum(pub_rates)}
+
+
+def main() -> int:
+    rows, doc = [], {}
+    with tempfile.TemporaryDirectory() as d:
+        tmp = Path(d)
+        broker = Broker(tmp / "broker", extra="max_queued_messages 0\n"
+                        "max_queued_bytes 0\n").start()
+        try:
+            for kind, n_per_pub in (("scalar", 60_000), ("waveform", 6_000)):
+                res: dict[str, list[dict[str, float]]] = {"watchkeep": [], "bare": []}
+                for _ in range(ROUNDS):
+                    for which in ("watchkeep", "bare"):
+                        res[which].append(_round(broker.port, kind, which, n_per_pub, tmp))
+                wk = median([r["rate"] for r in res["watchkeep"]])
+                br = median([r["rate"] for r in res["bare"]])
+                lost_wk = sum(r["lost"] for r in res["watchkeep"])
+                lost_br = sum(r["lost"] for r in res["bare"])
+                pub = median([r["publishers_rate"] for r in res["watchkeep"] + res["bare"]])
+                unit = "msg/s" if kind == "scalar" else "samples/s"
+                mult = 1 if kind == "scalar" else 256
+                limited = "subscriber" if pub > 1.2 * max(wk, br) else "publishers"
+                rows.append([f"{kind} ingest ({unit})", f"{wk * mult:,.0f}",
+                             f"{br * mult:,.0f}", f"{wk / br:.2f}", ">= 0.8",
+                             f"{lost_wk}/{lost_br}", f"{pub:,.0f} msg/s", limited])
+                doc[kind] = {"watchkeep_per_s": wk * mult, "bare_per_s": br * mult,
+                             "ratio": wk / br, "goal": 0.8, "rounds": res,
+                             "publishers_msg_per_s": pub, "limited_by": limited}
+        finally:
+            broker.stop()
+    print(f"{N_ASSETS} assets x {N_CHANNELS} channels, {PUBLISHERS} publisher processes, "
+          f"{ROUNDS} alternating rounds, QoS 0")
+    print(table(rows, ["benchmark", "watchkeep", "bare", "ratio", "goal",
+                       "lost wk/bare", "publishers", "limited by"]))
+    save("ingest", doc)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
