@@ -52,6 +52,7 @@ RECONNECT_MIN_S = 0.5
 # events should flow again within seconds; the jitter spreads a fleet's reconnects.
 RECONNECT_MAX_S = 10.0
 LOOP_TIMEOUT_S = 0.05
+BUSY_LOOP_TIMEOUT_S = 0.002
 STOP_DRAIN_S = 3.0
 REFUSED_RETRY_S = 5.0
 GAUGE_EVERY_S = 0.5
@@ -200,7 +201,7 @@ class Upstream:
             self._connack_seen = False
             while not self._stop_net.is_set():
                 try:
-                    rc = self._client.loop(timeout=LOOP_TIMEOUT_S)
+                    rc = self._client.loop(timeout=self._loop_timeout())
                 except Exception as exc:
                     self._note_error(describe_connect_error(exc, self.broker))
                     rc = mqtt.MQTT_ERR_CONN_LOST
@@ -220,6 +221,13 @@ class Upstream:
             attempt += 1
             self._stop_net.wait(backoff_delay(attempt, self.rand()))
         self._shutdown()
+
+    def _loop_timeout(self) -> float:
+        """Short while rows wait in the outbox: the store thread's hand-over cannot wake
+        paho's select(), so poll briskly while draining and slowly when idle."""
+        if self._ready or self._inflight or self.outbox.counts()[0] > 0:
+            return BUSY_LOOP_TIMEOUT_S
+        return LOOP_TIMEOUT_S
 
     def _pump(self) -> None:
         """Hand acknowledgements to the store thread; publish while the window has room."""
