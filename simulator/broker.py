@@ -15,7 +15,8 @@ Last Will, PINGREQ, DISCONNECT, a maximum packet size. Every session is treated 
 nothing survives a disconnect, and nothing survives `stop()` (like Mosquitto without
 persistence). Any protocol violation closes that one connection (spec section 4.8).
 Each subscriber has a bounded outbound queue, so a slow reader never blocks a publisher;
-messages that do not fit are dropped and counted in `dropped`.
+messages that do not fit are dropped and counted in `dropped`. A client that sends faster
+than it reads its own acknowledgements is not read from until it catches up.
 """
 
 from __future__ import annotations
@@ -37,6 +38,7 @@ log = logging.getLogger(__name__)
 HOST = "127.0.0.1"
 MAX_REMAINING_LENGTH = 268_435_455  # four length bytes, spec section 2.2.3
 CONNECT_TIMEOUT_S = 10.0  # a socket that never sends CONNECT is closed (spec 3.1.4)
+_PAUSE_READING_BYTES = 1 << 20
 
 CONNECT, CONNACK, PUBLISH, PUBACK, PUBREC, PUBREL, PUBCOMP = 1, 2, 3, 4, 5, 6, 7
 SUBSCRIBE, SUBACK, UNSUBSCRIBE, UNSUBACK, PINGREQ, PINGRESP, DISCONNECT = range(8, 15)
@@ -179,7 +181,7 @@ class _Client:
     closed: bool = False
 
     def send(self, data: bytes) -> None:
-        if not self.closed:
+        if not self.closed and not self.writer.transport.is_closing():
             self.writer.write(data)
 
 
@@ -197,6 +199,8 @@ class EmbeddedBroker:
                  max_queued: int = 100_000, max_inflight: int = 1000) -> None:
         if not 0 < max_packet_bytes <= MAX_REMAINING_LENGTH + 5:
             raise ValueError("max_packet_bytes must be in 1 .. 256 MB")
+        if not 0 < max_inflight < 65536 or max_queued < 1:
+            raise ValueError("max_inflight must be in 1 .. 65535 and max_queued at least 1")
         self.port = port
         self.max_packet_bytes = max_packet_bytes
         self.max_queued = max_queued
@@ -206,6 +210,7 @@ class EmbeddedBroker:
         self._loop: asyncio.AbstractEventLoop | None = None
         self._stop_event: asyncio.Event | None = None
         self._ready = threading.Event()
+        self._start_error: BaseException | None = None
         self._clients: dict[str, _Client] = {}
         self._retained: dict[str, Message] = {}
         self._tasks: set[asyncio.Task[None]] = set()
@@ -231,8 +236,8 @@ class EmbeddedBroker:
             sock.close()
             raise
         self.port = sock.getsockname()[1]
-        self._clients, self._retained, self._stopping = {}, {}, False
-        self._start_error: BaseException | None = None
+        self._clients, self._retained, self._tasks, self._stopping = {}, {}, set(), False
+        self._start_error = None
         self._ready.clear()
         self._thread = threading.Thread(target=asyncio.run, args=(self._main(sock),),
                                         name=f"embedded-mqtt-broker-{self.port}", daemon=True)
@@ -269,7 +274,7 @@ class EmbeddedBroker:
         self._stopping = True
         server.close()
         for client in list(self._clients.values()):
-            client.writer.transport.abort()
+            self._close(client, publish_will=False)
         for task in list(self._tasks):
             task.cancel()
         await asyncio.gather(*self._tasks, return_exceptions=True)
@@ -297,15 +302,15 @@ class EmbeddedBroker:
         self._tasks.add(task)
         client = _Client(writer)
         pump: asyncio.Task[None] | None = None
-        publish_will = True
+        publish_will, flush = True, False
         try:
             first = await asyncio.wait_for(self._read_packet(reader), CONNECT_TIMEOUT_S)
             if not self._on_connect(client, *first):
-                publish_will = False
+                publish_will, flush = False, True  # the refusing CONNACK must get out
                 return
             pump = asyncio.create_task(self._pump(client))
             timeout_s = 1.5 * client.keepalive_s or None
-            while True:
+            while not client.closed:  # closed by a takeover
                 ptype, flags, body = await asyncio.wait_for(self._read_packet(reader), timeout_s)
                 if ptype == DISCONNECT:
                     if flags or body:
@@ -313,6 +318,10 @@ class EmbeddedBroker:
                     publish_will = False
                     return
                 self._dispatch(client, ptype, flags, _Body(body))
+                if writer.transport.get_write_buffer_size() > _PAUSE_READING_BYTES:
+                    # It sends faster than it reads our replies: stop reading until it
+                    # catches up, so its backlog stays bounded (and only it waits).
+                    await asyncio.wait_for(writer.drain(), timeout_s)
         except TimeoutError:
             log.info("client %r: keepalive or CONNECT timeout, closing", client.client_id)
         except ProtocolError as e:
@@ -324,19 +333,26 @@ class EmbeddedBroker:
             # logging the cancelled connection task as an error.
             publish_will = False
         finally:
-            self._close(client, publish_will=publish_will and not self._stopping)
+            self._close(client, publish_will=publish_will and not self._stopping, flush=flush)
             if pump is not None:
                 pump.cancel()
             self._tasks.discard(task)
 
-    def _close(self, client: _Client, *, publish_will: bool) -> None:
-        """Forget `client` and close its socket; idempotent. Publishes its will if asked."""
+    def _close(self, client: _Client, *, publish_will: bool, flush: bool = False) -> None:
+        """Forget `client` and close its socket; idempotent. Publishes its will if asked.
+
+        Without `flush` the socket is aborted: waiting to flush would keep a peer that does
+        not read (or is gone) connected indefinitely.
+        """
         if client.closed:
             return
         client.closed = True
         if self._clients.get(client.client_id) is client:
             del self._clients[client.client_id]
-        client.writer.close()
+        if flush:
+            client.writer.close()
+        else:
+            client.writer.transport.abort()
         will, client.will = client.will, None
         if will is not None and publish_will:
             self._route(will)
