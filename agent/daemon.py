@@ -14,7 +14,8 @@ import os
 import signal
 import threading
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
+from contextlib import contextmanager
 from typing import Any
 
 from prometheus_client import CollectorRegistry
@@ -25,10 +26,11 @@ from agent.config import AssetConfig, Config
 from agent.errors import BundleError
 from agent.ingest import Buffers, Ingest, IngestHandler
 from agent.logs import kv
-from agent.metrics import HttpServer, Metrics
-from agent.notify import Notifier
+from agent.metrics import HttpServer, Metrics, TickGauges
+from agent.notify import MAX_WATCHDOG_INTERVAL_S, Notifier
 from agent.outbox import Outbox
 from agent.pipeline import AssetRuntime, Pipeline, Sink
+from agent.reload import Reloader
 from agent.upstream import Upstream
 
 
@@ -63,6 +65,8 @@ class PipelineLoop:
         self.last_tick_mono = time.monotonic()
         self.ticks = 0
         self.wedged = threading.Event()  # a test hook: wedges the loop to test the watchdog
+        self.gauges = TickGauges(metrics, started_s=clock())
+        self.watchdog_every_s = notifier.watchdog_interval_s or MAX_WATCHDOG_INTERVAL_S
         self._stop = threading.Event()
         self._lock = threading.Lock()
         self._thread = threading.Thread(target=self._run, name="watchkeep-pipeline",
@@ -70,6 +74,12 @@ class PipelineLoop:
 
     def start(self) -> None:
         self._thread.start()
+
+    @contextmanager
+    def paused(self) -> Iterator[None]:
+        """Hold the loop between two ticks (reload swaps the runtimes in here)."""
+        with self._lock:
+            yield
 
     def stop(self, timeout_s: float = 10.0) -> None:
         self._stop.set()
@@ -86,6 +96,11 @@ class PipelineLoop:
                 self.log.exception("pipeline tick failed")
                 self.metrics.callback_errors.labels("pipeline").inc()
             self.metrics.tick_seconds.observe(time.perf_counter() - t0)
+            try:
+                self.gauges.update(self.pipeline, self.clock())
+            except Exception:  # metrics must never stop the pipeline
+                self.log.exception("updating tick gauges failed")
+            self.metrics.ticks.inc()
             self.last_tick_mono = time.monotonic()
             self.ticks += 1
 
@@ -98,7 +113,7 @@ class PipelineLoop:
             now = time.monotonic()
             self.metrics.tick_lag.set(max(0.0, now - next_at))
             self.tick_once()
-            if now - last_wd >= 1.0:
+            if now - last_wd >= self.watchdog_every_s:
                 self.notifier.watchdog()
                 last_wd = now
             next_at += self.tick_s
@@ -125,6 +140,7 @@ class Daemon:
         self.metrics.info.info({"version": __version__})
         self._sink_factory = sink_factory
         self._stopped = threading.Event()
+        self._reloader: Reloader | None = None
         self.http: HttpServer | None = None
 
     def start(self) -> None:
@@ -171,7 +187,16 @@ class Daemon:
             return False, f"pipeline has not ticked for {age:.1f} s"
         return True, f"ok: last tick {age:.2f} s ago"
 
+    def reload(self) -> bool:
+        """SIGHUP: apply the config file and bundles now on disk, or keep the running ones
+        (the contract is in agent/reload.py). Call from one thread at a time."""
+        if self._reloader is None:
+            self._reloader = Reloader(self, clock=self.clock)
+        return self._reloader.reload().ok
+
     def ready(self) -> tuple[bool, str]:
+        if self._stopped.is_set():
+            return False, "stopping"
         if not self.ingest.connected.is_set():
             return False, "local broker not connected"
         missing = [rt.cfg.name for rt in self.pipeline.runtimes
@@ -204,21 +229,69 @@ class Daemon:
         self.log.info("watchkeep stopped")
 
 
+# Test hook, read only by `run_daemon`: after this many seconds the pipeline loop stops
+# ticking, as a hung model or a deadlock would, so tests can see WATCHDOG=1 stop.
+TEST_WEDGE_ENV = "WATCHKEEP_TEST_WEDGE_AFTER_S"
+STATUS_EVERY_S = 10.0  # how often STATUS= (systemctl status) is refreshed
+
+
+def status_line(daemon: Daemon) -> str:
+    """The one-line summary systemd shows in `systemctl status`."""
+    rts = daemon.pipeline.runtimes
+    loaded = sum(1 for rt in rts if rt.bundle is not None)
+    anomalous = sum(1 for rt in rts if rt.state.value == "anomalous")
+    local = "up" if daemon.ingest.connected.is_set() else "down"
+    up = "up" if daemon.upstream.connected.is_set() else "down"
+    return (f"{len(rts)} assets, {loaded} models loaded, {anomalous} anomalous; "
+            f"local broker {local}, upstream {up}")
+
+
+def _install_test_hooks(daemon: Daemon, env: Mapping[str, str], logger: logging.Logger) -> None:
+    wedge = env.get(TEST_WEDGE_ENV, "")
+    if not wedge:
+        return
+    logger.warning(kv("test hook armed: the pipeline will wedge", after_s=wedge))
+    timer = threading.Timer(float(wedge), daemon.loop.wedged.set)
+    timer.daemon = True
+    timer.start()
+
+
 def run_daemon(cfg: Config, logger: logging.Logger) -> int:
-    """`watchkeep run`: start, wait for SIGTERM/SIGINT, stop cleanly."""
-    done = threading.Event()
+    """`watchkeep run`: start; SIGHUP reloads (on this, the main thread); SIGTERM/SIGINT
+    drain and stop, then return 0 (`Daemon.stop` is bounded: about 15 s at most)."""
+    wake = threading.Event()
+    stop = threading.Event()
+    hup = threading.Event()
 
-    def _on_signal(signum: int, frame: Any) -> None:
+    def _on_stop(signum: int, frame: Any) -> None:
         logger.info(kv("signal received", signal=signal.Signals(signum).name))
-        done.set()
+        stop.set()
+        wake.set()
 
-    signal.signal(signal.SIGTERM, _on_signal)
-    signal.signal(signal.SIGINT, _on_signal)
+    def _on_hup(signum: int, frame: Any) -> None:
+        hup.set()  # the reload itself runs in the loop below, not inside the handler
+        wake.set()
+
+    signal.signal(signal.SIGTERM, _on_stop)
+    signal.signal(signal.SIGINT, _on_stop)
+    signal.signal(signal.SIGHUP, _on_hup)
     daemon = Daemon(cfg, logger=logger)
     daemon.start()
+    _install_test_hooks(daemon, os.environ, logger)
+    next_status = time.monotonic() + STATUS_EVERY_S
     try:
-        while not done.wait(1.0):
-            pass
+        while not stop.is_set():
+            wake.wait(1.0)
+            wake.clear()
+            if stop.is_set():
+                break
+            if hup.is_set():
+                hup.clear()
+                logger.info(kv("signal received", signal="SIGHUP"))
+                daemon.reload()
+            if time.monotonic() >= next_status:
+                daemon.notifier.status(status_line(daemon))
+                next_status = time.monotonic() + STATUS_EVERY_S
     finally:
         daemon.stop()
     return 0
