@@ -9,6 +9,7 @@ broker) — never ids, values or topics from the wire.
 from __future__ import annotations
 
 import json
+import math
 import threading
 from collections.abc import Callable
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
@@ -166,9 +167,11 @@ class TickGauges:
     `update(pipeline, now)` sets each configured channel's last-sample age (seconds
     since its last sample arrived, or since `started_s` when none has yet), and,
     whenever the pipeline object changes (start, reload), republishes per-asset
-    model info, detector state and outbox capacity and removes the series of assets
-    and channels the new config no longer has, so label sets stay bounded by the
-    running config.
+    model info, detector state and outbox capacity (score and threshold are NaN
+    until there is one) and removes the series of assets and channels the new
+    config no longer has, so label sets stay bounded by the running config. Series
+    of assets that stay are never removed: the pipeline and ingest hold their
+    children, and a removed child would go on counting unseen.
     """
 
     def __init__(self, metrics: Metrics, started_s: float) -> None:
@@ -210,9 +213,9 @@ class TickGauges:
                                                 "mode": meta.mode})
             else:
                 _forget(m.model_info, asset=name)
-                _forget(m.threshold, asset=name)
+                m.threshold.labels(name).set(math.nan)
             if rt.last_score is None:  # a fresh runtime: no score until its first window
-                _forget(m.score, asset=name)
+                m.score.labels(name).set(math.nan)
             m.model_loaded.labels(name).set(1 if rt.bundle is not None else 0)
             m.anomalous.labels(name).set(1 if rt.state.value == "anomalous" else 0)
         cfg = pipeline.cfg

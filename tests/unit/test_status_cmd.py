@@ -1,0 +1,56 @@
+"""`watchkeep status` rendering (pure) and its one-line error."""
+
+from __future__ import annotations
+
+import pytest
+
+from agent.cli import main
+from agent.status_cmd import render_status, status_url
+
+DOC = {"version": "0.1.0", "site": "fernbrook", "gateway": "gw2", "local_connected": True,
+       "upstream_connected": False, "outbox": {"rows": 12},
+       "assets": [
+           {"asset": "P-101", "mode": "default", "state": "anomalous", "score": 3.21987,
+            "threshold": 1.5, "model": {"id": "P-101/default", "version": 3},
+            "last_event": {"type": "io.watchkeep.anomaly.raised", "id": "x",
+                           "time": "2026-03-01T10:00:00.000Z"}, "model_error": None},
+           {"asset": "F-7", "mode": "default", "state": "normal", "score": None,
+            "threshold": None, "model": None, "last_event": None,
+            "model_error": "model bundle /m: model.onnx is missing"}]}
+
+
+def test_render_status_table() -> None:
+    """Header, connection line, one aligned row per asset, model errors listed."""
+    out = render_status(DOC).splitlines()
+    assert out[0] == "watchkeep 0.1.0  site fernbrook  gateway gw2"
+    assert out[1] == "local broker connected  upstream DISCONNECTED  outbox 12 rows"
+    header = out[3]
+    assert header.split()[:3] == ["ASSET", "MODE", "STATE"]
+    p101 = out[4]
+    assert p101.split()[:5] == ["P-101", "default", "ANOMALOUS", "3.22", "1.5"]
+    assert "P-101/default v3" in p101 and "anomaly.raised 2026-03-01T10:00:00.000Z" in p101
+    assert out[5].split()[:6] == ["F-7", "default", "normal", "-", "-", "ERROR"]
+    assert out[-1] == "  F-7: model bundle /m: model.onnx is missing"
+    assert header.index("STATE") == p101.index("ANOMALOUS")  # columns line up
+
+
+def test_no_assets() -> None:
+    assert render_status({"assets": []}).endswith("no assets configured\n")
+
+
+@pytest.mark.parametrize(("url", "expected"), [
+    ("http://127.0.0.1:9310", "http://127.0.0.1:9310/status"),
+    ("http://gw:9310/", "http://gw:9310/status"),
+    ("http://gw:9310/status", "http://gw:9310/status"),
+])
+def test_status_url(url: str, expected: str) -> None:
+    assert status_url(url) == expected
+
+
+def test_unreachable_daemon_is_one_line(capsys: pytest.CaptureFixture[str]) -> None:
+    """Nothing listening: exit 6 and one line on stderr, no traceback."""
+    from tests.brokers import free_port
+
+    assert main(["status", "--url", f"http://127.0.0.1:{free_port()}"]) == 6
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and err.startswith("watchkeep: cannot reach")
