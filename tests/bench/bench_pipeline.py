@@ -34,7 +34,7 @@ class NullSink:
     def __init__(self) -> None:
         self.n = 0
 
-    def submit(self, msgs) -> None:  # type: ignore[no-untyped-def]
+    def submit(self, msgs, **_) -> None:  # type: ignore[no-untyped-def]
         self.n += len(msgs)
 
 

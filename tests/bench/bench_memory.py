@@ -1,0 +1,126 @@
+"""Memory: the daemon's RSS in steady state, 200 assets x 8 channels, 10 s windows.
+
+The daemon runs as a subprocess (`watchkeep run`) with a model per asset, fed by a
+publisher process at 2 Hz per channel (3,200 messages/s) for a minute; RSS is read
+from /proc every 2 s and the steady state is the median of the last half. Beside it:
+a bare Python process that imports the same libraries. Goal: <= 150 MB total.
+Run: `python -m tests.bench memory`.
+"""
+
+from __future__ import annotations
+
+import json
+import multiprocessing as mp
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import paho.mqtt.client as mqtt
+import yaml
+from paho.mqtt.enums import CallbackAPIVersion
+
+from agent.bundle import write_bundle
+from agent.commission.export import export_dense, pca_autoencoder
+from tests.bench.common import median, save, table
+from tests.brokers import Broker
+
+N_ASSETS, N_CHANNELS, RATE_HZ = 200, 8, 2.0
+FEATS = ["mean", "std", "min", "max", "rms"]
+RUN_S = 60.0
+BARE = ("import time, numpy, onnxruntime, onnx, paho.mqtt.client, prometheus_client, yaml, "
+        "orjson; time.sleep(4)")
+
+
+def rss_mb(pid: int) -> float:
+    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+        if line.startswith("VmRSS:"):
+            return int(line.split()[1]) / 1024
+    return float("nan")
+
+
+def _publisher(port: int, run_s: float) -> None:
+    c = mqtt.Client(CallbackAPIVersion.VERSION2, client_id="bench-mem-pub")
+    c.connect("127.0.0.1", port)
+    c.loop_start()
+    rng = np.random.default_rng(1)
+    topics = [f"mem/A{a:03d}/c{ch}" for a in range(N_ASSETS) for ch in range(N_CHANNELS)]
+    t_end = time.time() + run_s
+    step = 1.0 / RATE_HZ
+    nxt = time.time()
+    while nxt < t_end:
+        vals = rng.normal(50, 2, len(topics))
+        for topic, v in zip(topics, vals, strict=True):
+            c.publish(topic, json.dumps({"ts": nxt, "value": float(v)}), qos=0)
+        nxt += step
+        time.sleep(max(0.0, nxt - time.time()))
+    c.disconnect()
+    c.loop_stop()
+
+
+def main() -> int:
+    with tempfile.TemporaryDirectory() as d:
+        tmp = Path(d)
+        broker = Broker(tmp / "broker", extra="max_queued_messages 0\n").start()
+        names = [f"c{c}.{f}" for c in range(N_CHANNELS) for f in FEATS]
+        meta = {"asset": "A", "mode": "default", "model_id": "A/default", "version": 1,
+                "feature_names": names,
+                "scaler": {"mean": [50.0] * len(names), "scale": [1.0] * len(names)},
+                "score": {"function": "mse"}, "threshold": 1e9, "clear_threshold": 1e8,
+                "onnx": {"input": "x", "output": "recon"}}
+        z = np.random.default_rng(0).normal(size=(400, len(names)))
+        bdir = write_bundle(tmp / "bundle", export_dense(pca_autoencoder(z, 8)), meta)
+        cfg = {"site": "bench", "gateway": "mem", "state_dir": str(tmp / "state"),
+               "local_broker": {"port": broker.port},
+               "upstream_broker": {"port": broker.port},
+               "http": {"port": 0},
+               "assets": [{"name": f"A{a:03d}", "bundle": str(bdir),
+                           "window": {"length_s": 10.0},
+                           "channels": {f"c{c}": {"topic": f"mem/A{a:03d}/c{c}",
+                                                  "decoder": "json", "rate_hz": RATE_HZ,
+                                                  "features": FEATS}
+                                        for c in range(N_CHANNELS)}}
+                          for a in range(N_ASSETS)]}
+        cpath = tmp / "watchkeep.yaml"
+        cpath.write_text(yaml.safe_dump(cfg))
+        exe = str(Path(sys.executable).with_name("watchkeep"))
+        daemon = subprocess.Popen([exe, "run", "--config", str(cpath), "--log-level",
+                                   "WARNING"], stdout=subprocess.DEVNULL,
+                                  stderr=subprocess.DEVNULL)
+        samples: list[float] = []
+        try:
+            time.sleep(5.0)  # models load
+            pub = mp.get_context("spawn").Process(target=_publisher, args=(broker.port, RUN_S))
+            pub.start()
+            t_end = time.monotonic() + RUN_S
+            while time.monotonic() < t_end:
+                time.sleep(2.0)
+                samples.append(rss_mb(daemon.pid))
+            pub.join(30)
+        finally:
+            daemon.terminate()
+            daemon.wait(30)
+            broker.stop()
+    bare_p = subprocess.Popen([sys.executable, "-c", BARE])
+    time.sleep(3.0)
+    bare = rss_mb(bare_p.pid)
+    bare_p.wait(10)
+    steady = median(samples[len(samples) // 2:])
+    peak = max(samples)
+    rows = [["memory (RSS, MB)", f"{steady:.0f} (peak {peak:.0f})", f"{bare:.0f}",
+             f"{steady / bare:.2f}", "<= 150 MB total"]]
+    print(f"{N_ASSETS} assets x {N_CHANNELS} channels at {RATE_HZ:g} Hz, 10 s windows, "
+          f"one ONNX session per asset, {RUN_S:.0f} s")
+    print(table(rows, ["benchmark", "watchkeep", "bare imports", "ratio", "goal"]))
+    doc: dict[str, Any] = {"steady_rss_mb": steady, "peak_rss_mb": peak, "bare_rss_mb": bare,
+                           "samples_mb": samples, "goal_mb": 150,
+                           "meets_goal": steady <= 150}
+    save("memory", doc)
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())
