@@ -153,6 +153,9 @@ class Outbox:
         self._drops_unlogged: Counter[str] = Counter()
         self._drop_logged_at = -float("inf")
         self._drop_counters = {k.label: metrics.outbox_drops.labels(k.label) for k in Kind}
+        # Called (outside the lock) after rows were committed, so the delivery side can
+        # start at once instead of finding them at its next poll.
+        self.on_written: list[Callable[[], None]] = []
 
     # -- opening -------------------------------------------------------------------
 
@@ -265,6 +268,8 @@ class Outbox:
             self.last_write_ok = True
             self._log_drops(now)
             self._gauges()
+        for fn in self.on_written:
+            fn()
 
     def _write_pending(self) -> None:
         db = self._conn()

@@ -141,7 +141,9 @@ class Upstream:
         self._acked: list[tuple[int, bool, str]] = []
         # Hand-over between the threads (deque and SimpleQueue are thread-safe):
         self._ready: deque[Row] = deque()
-        self._acks: queue.SimpleQueue[tuple[Row, bool]] = queue.SimpleQueue()
+        # Acknowledged rows for the store thread; `None` only wakes it (new rows written).
+        self._acks: queue.SimpleQueue[tuple[Row, bool] | None] = queue.SimpleQueue()
+        outbox.on_written.append(lambda: self._acks.put(None))
         self._stop_net = threading.Event()
         self._stop_store = threading.Event()
         self._net = threading.Thread(target=self._net_run, name="watchkeep-upstream",
@@ -381,19 +383,31 @@ class Upstream:
     def _take_acks(self, to_delete: list[Row], handed: set[int], block: bool) -> bool:
         refused = False
         try:
-            item: tuple[Row, bool] | None = self._acks.get(timeout=0.02) if block \
-                else self._acks.get_nowait()
-            while item is not None:
-                row, ok = item
-                handed.discard(row.id)
-                if ok:
-                    to_delete.append(row)
-                else:
-                    refused = True
+            item = self._acks.get(timeout=0.1) if block else self._acks.get_nowait()
+            while True:
+                if item is not None:
+                    row, ok = item
+                    handed.discard(row.id)
+                    if ok:
+                        to_delete.append(row)
+                    else:
+                        refused = True
                 item = self._acks.get_nowait()
         except queue.Empty:
             pass
         return refused
+
+    def _wake_network(self) -> None:
+        """Break the network thread out of paho's select() so handed rows go out now.
+
+        paho wakes its own loop this way when `publish` is called from another thread
+        (a byte on its internal socket pair); the attribute is private, so without it
+        the network thread still finds the rows at its next (short) poll.
+        """
+        sock = getattr(self._client, "_sockpairW", None)
+        if sock is not None:
+            with contextlib.suppress(OSError):
+                sock.send(b"\0")
 
     def _refill(self, cursor: int, handed: set[int]) -> int:
         room = 2 * self.window - len(handed)
@@ -410,6 +424,8 @@ class Upstream:
                 handed.add(r.id)
                 self._ready.append(r)
             cursor = max(cursor, r.id)
+        if rows:
+            self._wake_network()
         if len(rows) < room:
             cursor = max(cursor, top)  # everything up to `top` has been seen
         return cursor
