@@ -10,6 +10,7 @@ offline status and disconnects, the outbox closes, the HTTP server closes.
 from __future__ import annotations
 
 import logging
+import math
 import os
 import signal
 import threading
@@ -68,6 +69,10 @@ class PipelineLoop:
         self.gauges = TickGauges(metrics, started_s=clock())
         self.watchdog_every_s = notifier.watchdog_interval_s or MAX_WATCHDOG_INTERVAL_S
         self._stop = threading.Event()
+        # Set by ingest when a sample closes a window, so the tick runs at once instead of
+        # at the next `tick_s` (the window's latency is then not the tick period).
+        self.wake = threading.Event()
+        self.after_tick: Callable[[], None] | None = None
         self._lock = threading.Lock()
         self._thread = threading.Thread(target=self._run, name="watchkeep-pipeline",
                                         daemon=True)
@@ -83,6 +88,7 @@ class PipelineLoop:
 
     def stop(self, timeout_s: float = 10.0) -> None:
         self._stop.set()
+        self.wake.set()
         self.wedged.clear()
         self._thread.join(timeout_s)
         self.tick_once()  # flush windows whose samples arrived before ingest stopped
@@ -103,6 +109,11 @@ class PipelineLoop:
             self.metrics.ticks.inc()
             self.last_tick_mono = time.monotonic()
             self.ticks += 1
+            if self.after_tick is not None:
+                try:
+                    self.after_tick()
+                except Exception:
+                    self.log.exception("after-tick hook failed")
 
     def _run(self) -> None:
         next_at = time.monotonic()
@@ -119,7 +130,9 @@ class PipelineLoop:
             next_at += self.tick_s
             if next_at < time.monotonic() - self.tick_s:
                 next_at = time.monotonic()  # fell behind: do not burst to catch up
-            self._stop.wait(max(0.0, next_at - time.monotonic()))
+            if self.wake.wait(max(0.0, next_at - time.monotonic())):
+                self.wake.clear()
+                next_at = time.monotonic()  # woken early: the regular beat restarts here
 
 
 class Daemon:
@@ -166,6 +179,7 @@ class Daemon:
         self.ingest = Ingest(cfg, self.handler, self.metrics, self.log, clock=self.clock)
         self.loop = PipelineLoop(self.pipeline, cfg.tick_s, self.metrics, self.notifier,
                                  self.log, clock=self.clock)
+        self.loop.after_tick = self._share_close_times
         self.upstream.start()
         self.loop.start()
         self.ingest.start()
@@ -179,6 +193,17 @@ class Daemon:
                          models=loaded,
                          http=f"{cfg.http.host}:{self.http.port}" if self.http else "off"))
         self.notifier.ready(summary)
+
+    def _share_close_times(self) -> None:
+        """Tell ingest the sample time that closes each asset's next window (so it can
+        wake the pipeline loop); runs on the pipeline thread after every tick."""
+        times = []
+        for rt in self.pipeline.runtimes:
+            start, w = rt.assembler.next_start, rt.cfg.window
+            times.append(math.inf if start is None else start + w.length_s + w.lateness_s)
+        handler = self.handler
+        handler.wake = self.loop.wake
+        handler.close_at = times
 
     def healthy(self) -> tuple[bool, str]:
         age = time.monotonic() - self.loop.last_tick_mono

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import array
 import logging
+import math
 import threading
 import time
 from collections.abc import Callable
@@ -101,6 +102,10 @@ class IngestHandler:
                       for t, r in self.routes.items()}
         self._max_bytes = cfg.ingest.max_payload_bytes
         self._max_skew = cfg.ingest.max_clock_skew_s
+        # Per asset, the sample time that closes its next window (set by the pipeline
+        # after each tick); a sample at or past it sets `wake`.
+        self.close_at: list[float] = [math.inf] * len(cfg.assets)
+        self.wake: threading.Event | None = None
 
     def handle(self, topic: str, payload: bytes, arrival: float) -> None:
         route = self.routes.get(topic)
@@ -132,9 +137,14 @@ class IngestHandler:
                                                  else 1.0 / ch.rate_hz)
             buf.append_block(ts, vals, arrival)
             self._samples[topic].inc(ts.size)
+            last = float(ts[-1])
         else:
-            buf.append(float(ts), float(vals), arrival)
+            last = float(ts)
+            buf.append(last, float(vals), arrival)
             self._samples[topic].inc()
+        wake = self.wake
+        if wake is not None and last >= self.close_at[route.asset_index]:
+            wake.set()
 
 
 def make_client(broker: BrokerConfig, env: dict[str, str] | None = None) -> mqtt.Client:

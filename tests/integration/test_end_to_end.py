@@ -13,8 +13,7 @@ import pytest
 from agent.config import load_config
 from agent.daemon import Daemon
 from tests.brokers import Broker, wait_for
-from tests.helpers import Collector, asset_doc, publisher, readings, train_pca_bundle, \
-    write_config
+from tests.helpers import Collector, asset_doc, publisher, readings, train_pca_bundle, write_config
 
 # CloudEvents 1.0 spec, "Required Attributes": id, source, specversion, type; ids are
 # non-empty strings; specversion is "1.0". `time` is RFC 3339.
