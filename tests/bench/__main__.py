@@ -20,6 +20,7 @@ def main(argv: list[str]) -> int:
         t0 = time.monotonic()
         print(f"\n=== {name} ===", flush=True)
         mod = importlib.import_module(f"tests.bench.{name}")
+        sys.argv = [name]  # a benchmark with options of its own runs with its defaults
         try:
             rc = mod.main()
         except Exception as exc:  # one broken benchmark must not hide the others
