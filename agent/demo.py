@@ -59,8 +59,9 @@ class SimClock:
 class DemoBroker:
     """Mosquitto when installed, else the embedded broker; loopback, a free port."""
 
-    def __init__(self, workdir: Path) -> None:
+    def __init__(self, workdir: Path, prefer: str = "auto") -> None:
         self.workdir = workdir
+        self.prefer = prefer
         self.kind = ""
         self.port = 0
         self._proc: subprocess.Popen[bytes] | None = None
@@ -70,6 +71,10 @@ class DemoBroker:
         exe = shutil.which("mosquitto") or ("/usr/sbin/mosquitto"
                                             if os.access("/usr/sbin/mosquitto", os.X_OK)
                                             else None)
+        if self.prefer == "embedded":
+            exe = None
+        elif self.prefer == "mosquitto" and not exe:
+            raise RuntimeError("--broker mosquitto: the mosquitto binary is not installed")
         if exe:
             import socket
 
@@ -93,9 +98,9 @@ class DemoBroker:
                         raise RuntimeError("mosquitto did not start") from None
                     time.sleep(0.05)
         else:
-            from simulator.broker import Broker
+            from simulator.broker import EmbeddedBroker
 
-            self._embedded = Broker(port=0)
+            self._embedded = EmbeddedBroker(port=0)
             self._embedded.start()
             self.port = self._embedded.port
             self.kind = "embedded"
@@ -307,7 +312,7 @@ def format_summary(s: dict[str, Any]) -> str:
 
 def run_demo(duration_s: float, state_dir: Path, out: TextIO, *,
              interactive: bool | None = None, summary_json: Path | None = None,
-             train_s: float = TRAIN_NORMAL_S) -> int:
+             train_s: float = TRAIN_NORMAL_S, broker_kind: str = "auto") -> int:
     from agent.daemon import Daemon
     from simulator.plant import simulate
     from simulator.publish import publish
@@ -323,7 +328,7 @@ def run_demo(duration_s: float, state_dir: Path, out: TextIO, *,
     truth = labels(scenario, start_unix=start)
     log = setup_logging("WARNING")
     with tempfile.TemporaryDirectory(prefix="watchkeep-demo-") as tmp:
-        broker = DemoBroker(Path(tmp))
+        broker = DemoBroker(Path(tmp), broker_kind)
         broker.start()
         daemon = None
         events = None
@@ -414,6 +419,8 @@ def add_demo_arguments(p: argparse.ArgumentParser) -> None:
                    help="where demo models and the outbox live (default ./.demo)")
     p.add_argument("--summary-json", help="also write the summary as JSON to this file")
     p.add_argument("--plain", action="store_true", help="no full-screen view, log lines only")
+    p.add_argument("--broker", choices=["auto", "mosquitto", "embedded"], default="auto",
+                   help="auto: mosquitto when installed, else the embedded Python broker")
     p.add_argument("--train-minutes", type=float, default=TRAIN_NORMAL_S / 60,
                    help="minutes of simulated normal running to train on at first run "
                         f"(default {TRAIN_NORMAL_S / 60:.0f})")
@@ -425,4 +432,4 @@ def cmd_demo(args: argparse.Namespace) -> int:
     return run_demo(args.duration, Path(args.state_dir), sys.stdout,
                     interactive=False if args.plain else None,
                     summary_json=Path(args.summary_json) if args.summary_json else None,
-                    train_s=60 * args.train_minutes)
+                    train_s=60 * args.train_minutes, broker_kind=args.broker)

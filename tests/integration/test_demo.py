@@ -8,6 +8,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
 WATCHKEEP = str(Path(sys.executable).with_name("watchkeep"))
 
 
@@ -24,8 +26,8 @@ def _children(pid: int) -> list[int]:
     return out
 
 
-def _demo_brokers() -> list[int]:
-    """Processes whose command line names a demo broker config (orphans included)."""
+def _demo_brokers(under: Path) -> list[int]:
+    """Processes whose command line names a file below `under` (orphans included)."""
     found = []
     for p in Path("/proc").iterdir():
         if p.name.isdigit():
@@ -33,25 +35,36 @@ def _demo_brokers() -> list[int]:
                 cmd = (p / "cmdline").read_bytes()
             except OSError:
                 continue
-            if b"watchkeep-demo-" in cmd:
+            if str(under).encode() in cmd:
                 found.append(int(p.name))
     return found
 
 
-def test_short_demo_detects_the_bearing_fault(tmp_path: Path) -> None:
+@pytest.fixture(scope="module")
+def state_dir(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """Shared between the runs: the second one reuses the models the first trained."""
+    return tmp_path_factory.mktemp("demo-state")
+
+
+@pytest.mark.parametrize("broker", ["auto", "embedded"])
+def test_short_demo_detects_the_bearing_fault(tmp_path: Path, state_dir: Path,
+                                              broker: str) -> None:
     """`watchkeep demo --duration 20` exits 0, reports the fault detected, no child left."""
     summary = tmp_path / "summary.json"
     proc = subprocess.Popen(
         [WATCHKEEP, "demo", "--duration", "20", "--plain", "--train-minutes", "20",
-         "--state-dir", str(tmp_path / "state"), "--summary-json", str(summary)],
+         "--broker", broker,
+         "--state-dir", str(state_dir), "--summary-json", str(summary)],
         stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
-        env={**os.environ, "PYTHONUNBUFFERED": "1"})
+        env={**os.environ, "PYTHONUNBUFFERED": "1", "TMPDIR": str(tmp_path)})
     out, _ = proc.communicate(timeout=240)
     assert proc.returncode == 0, out
     assert _children(os.getpid()) == [], "demo left processes behind"
-    assert _demo_brokers() == [], "demo left its broker running"
+    assert _demo_brokers(tmp_path) == [], "demo left its broker running"
     assert "summary" in out
     s = json.loads(summary.read_text())
     machine = [f for f in s["faults"] if f["class"] == "machine"]
     assert machine and all(f["detected"] for f in machine), (s, out)
     assert "P-101" in out and "anomaly.raised" in out
+    if broker == "embedded":
+        assert "broker embedded" in out
