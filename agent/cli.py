@@ -93,7 +93,7 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
-def _add_optional_commands(sub: argparse._SubParsersAction) -> None:  # type: ignore[type-arg]
+def _add_optional_commands(sub: argparse._SubParsersAction) -> None:
     """Commands whose modules are imported only when they run."""
     try:
         from agent.commission import train as train_mod

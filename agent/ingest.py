@@ -239,7 +239,7 @@ class Ingest:
 
     def _on_message(self, client: mqtt.Client, userdata: Any, msg: mqtt.MQTTMessage) -> None:
         try:
-            self.handler.handle(msg.topic, msg.payload, self.clock())
+            self.handler.handle(msg.topic, bytes(msg.payload), self.clock())
         except Exception:
             self._errors.inc()
             self.log.exception("error in local on_message")

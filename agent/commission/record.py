@@ -15,7 +15,7 @@ import os
 import sys
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any, TextIO
 
@@ -29,6 +29,7 @@ from agent.core.windows import ClosedWindow
 from agent.errors import ConfigError, ConfigProblem, DatasetError
 from agent.ingest import Buffers, Ingest, IngestHandler
 from agent.logs import setup_logging
+from agent.messages import OutMessage
 from agent.metrics import Metrics
 from agent.pipeline import AssetRuntime, Pipeline
 
@@ -36,7 +37,8 @@ RAW_NAME = "raw.jsonl"
 
 
 class _NullSink:
-    def submit(self, msgs: Any, **_: Any) -> None:
+    def submit(self, msgs: Sequence[OutMessage],
+               sequences: Mapping[str, int] | None = None) -> None:
         return
 
 

@@ -15,7 +15,7 @@ import json
 import logging
 import sys
 import time
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, TextIO
@@ -36,7 +36,8 @@ class CollectingSink:
     messages: list[OutMessage] = field(default_factory=list)
     on_event: Callable[[dict[str, Any]], None] | None = None
 
-    def submit(self, msgs: Sequence[OutMessage], **_: Any) -> None:
+    def submit(self, msgs: Sequence[OutMessage],
+               sequences: Mapping[str, int] | None = None) -> None:
         self.messages.extend(msgs)
         if self.on_event is not None:
             for m in msgs:

@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 import math
 import re
+from collections.abc import Callable
 from enum import StrEnum
 from typing import Any
 
@@ -19,7 +20,7 @@ from agent.config import ChannelConfig, Decoder
 try:  # orjson is several times faster at json.loads and does the same job
     import orjson
 
-    _loads = orjson.loads
+    _loads: Callable[[bytes], Any] = orjson.loads
     _JSON_ERRORS: tuple[type[Exception], ...] = (orjson.JSONDecodeError, ValueError)
 except ImportError:  # pragma: no cover - orjson is a core dependency
     _loads = json.loads
