@@ -30,8 +30,6 @@ import hashlib
 import json
 import math
 import os
-import shutil
-import tempfile
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -40,6 +38,7 @@ from typing import Any
 import numpy as np
 
 from agent.errors import BundleError
+from agent.fsutil import fsync_dir, replace_dir
 
 FORMAT = "watchkeep-bundle"
 FORMAT_VERSION = 1
@@ -268,37 +267,9 @@ def write_bundle(dest: str | os.PathLike[str], model_bytes: bytes, meta: Mapping
     old removed); a crash in between leaves either the old or the new bundle whole
     plus a `.old-*` directory beside it.
     """
-    dest = Path(dest)
-    dest.parent.mkdir(parents=True, exist_ok=True)
     doc = {"format": FORMAT, "format_version": FORMAT_VERSION, **meta}
-    tmp = Path(tempfile.mkdtemp(prefix=f".{dest.name}.tmp-", dir=dest.parent))
-    try:
-        for name, data in ((MODEL_ONNX, model_bytes),
-                           (MODEL_JSON, (json.dumps(doc, indent=2) + "\n").encode())):
-            with open(tmp / name, "wb") as fh:
-                fh.write(data)
-                fh.flush()
-                os.fsync(fh.fileno())
-        old = None
-        if dest.exists():
-            old = dest.parent / f".{dest.name}.old-{os.getpid()}"
-            os.rename(dest, old)
-        os.rename(tmp, dest)
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
-        _fsync_dir(dest.parent)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return dest
+    return replace_dir(dest, {MODEL_ONNX: model_bytes,
+                              MODEL_JSON: (json.dumps(doc, indent=2) + "\n").encode()})
 
 
-def _fsync_dir(path: Path) -> None:
-    try:
-        fd = os.open(path, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
+_fsync_dir = fsync_dir  # kept for callers that imported the old private name

@@ -26,8 +26,6 @@ import hashlib
 import json
 import math
 import os
-import shutil
-import tempfile
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
@@ -39,6 +37,7 @@ import numpy as np
 
 from agent import __version__
 from agent.errors import DatasetError
+from agent.fsutil import replace_dir
 
 FORMAT = "watchkeep-dataset"
 FORMAT_VERSION = 1
@@ -215,28 +214,9 @@ def write_dataset(dest: str | os.PathLike[str], features: np.ndarray,
         "watchkeep_version": __version__,
         "extra": dict(extra or {}),
     }
-    dest.parent.mkdir(parents=True, exist_ok=True)
-    tmp = Path(tempfile.mkdtemp(prefix=f".{dest.name}.tmp-", dir=dest.parent))
-    try:
-        with open(tmp / FEATURES_NPZ, "wb") as fh:
-            np.savez_compressed(fh, **arrays)  # type: ignore[arg-type]
-            fh.flush()
-            os.fsync(fh.fileno())
-        with open(tmp / MANIFEST_JSON, "w", encoding="utf-8") as fh:
-            fh.write(json.dumps(manifest, indent=2, allow_nan=False) + "\n")
-            fh.flush()
-            os.fsync(fh.fileno())
-        old = None
-        if dest.exists():
-            old = dest.parent / f".{dest.name}.old-{os.getpid()}"
-            os.rename(dest, old)
-        os.rename(tmp, dest)
-        if old is not None:
-            shutil.rmtree(old, ignore_errors=True)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return dest
+    return replace_dir(dest, {
+        FEATURES_NPZ: lambda fh: np.savez_compressed(fh, **arrays),  # type: ignore[arg-type]
+        MANIFEST_JSON: (json.dumps(manifest, indent=2, allow_nan=False) + "\n").encode()})
 
 
 def read_dataset(path: str | os.PathLike[str], *,

@@ -1,0 +1,58 @@
+"""Durable file writes: a directory replaced whole by temp-and-rename, fsynced."""
+
+from __future__ import annotations
+
+import os
+import shutil
+import tempfile
+from collections.abc import Callable, Mapping
+from pathlib import Path
+from typing import BinaryIO
+
+FileContent = bytes | Callable[[BinaryIO], None]
+
+
+def fsync_dir(path: Path) -> None:
+    """Make a rename inside `path` durable (best effort where directories cannot be opened)."""
+    try:
+        fd = os.open(path, os.O_RDONLY)
+    except OSError:
+        return
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def replace_dir(dest: str | os.PathLike[str], files: Mapping[str, FileContent]) -> Path:
+    """Write `files` (name -> bytes, or a function writing to the open file) into a new
+    directory and move it to `dest` by rename, so a reader sees the old or the new
+    directory whole, never half of one.
+
+    An existing `dest` is replaced in two renames (old aside, new in, old removed); a
+    crash in between leaves one of them whole plus a `.old-*` directory beside it.
+    """
+    dest = Path(dest)
+    dest.parent.mkdir(parents=True, exist_ok=True)
+    tmp = Path(tempfile.mkdtemp(prefix=f".{dest.name}.tmp-", dir=dest.parent))
+    try:
+        for name, content in files.items():
+            with open(tmp / name, "wb") as fh:
+                if isinstance(content, bytes):
+                    fh.write(content)
+                else:
+                    content(fh)
+                fh.flush()
+                os.fsync(fh.fileno())
+        old = None
+        if dest.exists():
+            old = dest.parent / f".{dest.name}.old-{os.getpid()}"
+            os.rename(dest, old)
+        os.rename(tmp, dest)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+        fsync_dir(dest.parent)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return dest
