@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from agent.errors import ConfigProblem
 
 
 class SimulatorError(Exception):
@@ -11,17 +11,9 @@ class SimulatorError(Exception):
     exit_code = 1
 
 
-@dataclass(frozen=True)
-class Problem:
-    """One problem in a scenario file: where it is, what was expected, what was found."""
-
-    key_path: str
-    expected: str
-    got: str = ""
-
-    def __str__(self) -> str:
-        tail = f", got {self.got}" if self.got else ""
-        return f"{self.key_path}: expected {self.expected}{tail}"
+# One problem in a scenario file (key path, what was expected, what was found): the
+# same value type the daemon's config loader reports with.
+Problem = ConfigProblem
 
 
 class ScenarioError(SimulatorError):
