@@ -6,6 +6,7 @@ expected and what was found, and all of them are reported at once.
 
 from __future__ import annotations
 
+import itertools
 import math
 import re
 from collections.abc import Callable, Mapping
@@ -42,6 +43,57 @@ class Synchronous(StrEnum):
     NORMAL = "NORMAL"
 
 
+class Support(StrEnum):
+    """Machine support per ISO 10816-3: rigid or flexible in the measuring direction."""
+
+    RIGID = "rigid"
+    FLEXIBLE = "flexible"
+
+
+# Accelerometer units velocity_rms can integrate, and their factor to m/s^2 (1 g is the
+# standard gravity 9.80665 m/s^2, CGPM 1901).
+ACCEL_UNITS = {"m/s2": 1.0, "m/s^2": 1.0, "m/s²": 1.0, "g": 9.80665}
+
+
+def _hz_name(v: float) -> str:
+    return f"{v:g}".replace(".", "p").replace("-", "m")
+
+
+@dataclass(frozen=True)
+class SpectrumConfig:
+    """Spectral features of one waveform channel (see agent/core/spectral.py)."""
+
+    bands_hz: tuple[tuple[float, float], ...] = ()
+    velocity_rms: bool = False
+    orders: tuple[float, ...] = ()
+    envelope_hz: tuple[float, float] | None = None
+    accel_to_m_s2: float = 1.0
+
+    def feature_names(self) -> tuple[str, ...]:
+        """Feature names in the order `spectral_features` returns their values."""
+        names = [f"band_{_hz_name(lo)}_{_hz_name(hi)}_hz" for lo, hi in self.bands_hz]
+        names += ["dominant_hz", "dominant_amp"]
+        names += [f"order_{_hz_name(o)}x_amp" for o in self.orders]
+        if self.envelope_hz is not None:
+            names.append("envelope_rms")
+        if self.velocity_rms:
+            names.append("velocity_rms_mm_s")
+        return tuple(names)
+
+
+@dataclass(frozen=True)
+class LimitConfig:
+    """Static limits on one feature: alert/alarm high and low, deadband, on-delay (windows)."""
+
+    feature: str
+    alert: float | None = None
+    alarm: float | None = None
+    alert_low: float | None = None
+    alarm_low: float | None = None
+    deadband: float = 0.0
+    on_delay: int = 2
+
+
 @dataclass(frozen=True)
 class ChannelConfig:
     name: str
@@ -54,6 +106,23 @@ class ChannelConfig:
     value_field: str = "value"
     values_field: str = "values"
     rate_field: str = "rate_hz"
+    spectrum: SpectrumConfig | None = None
+    # Sensor health (agent/core/health.py); None switches a check off.
+    min_value: float | None = None
+    max_value: float | None = None
+    stale_s: float | None = None
+    flatline_windows: int | None = None
+    max_rate_per_s: float | None = None
+    limits: tuple[LimitConfig, ...] = ()
+
+    @property
+    def spectral_features(self) -> tuple[str, ...]:
+        return self.spectrum.feature_names() if self.spectrum is not None else ()
+
+    @property
+    def all_features(self) -> tuple[str, ...]:
+        """Time-domain features, then spectral ones: what the pipeline computes."""
+        return self.features + self.spectral_features
 
 
 @dataclass(frozen=True)
@@ -66,12 +135,53 @@ class WindowConfig:
 
 
 @dataclass(frozen=True)
+class ModeSpec:
+    """One operating mode: a value band [min, max) of the mode channel or a mode code."""
+
+    name: str
+    min_value: float | None = None
+    max_value: float | None = None
+    code: float | None = None
+    bundle: Path | None = None
+    scored: bool = True
+    settling_s: float = 0.0
+
+
+@dataclass(frozen=True)
+class ModesConfig:
+    """How an asset's operating mode is decided (agent/core/modes.py)."""
+
+    channel: str
+    states: tuple[ModeSpec, ...]
+    hysteresis: float = 0.0
+    by_code: bool = False
+
+    def spec(self, name: str) -> ModeSpec | None:
+        return next((m for m in self.states if m.name == name), None)
+
+
+@dataclass(frozen=True)
+class IsoConfig:
+    """ISO 10816-3 vibration-severity evaluation of the asset's velocity RMS."""
+
+    group: int
+    support: Support
+    baseline_mm_s: float | None = None
+    channels: tuple[str, ...] = ()
+    deadband_mm_s: float = 0.1
+    on_delay: int = 2
+
+
+@dataclass(frozen=True)
 class AssetConfig:
     name: str
     channels: tuple[ChannelConfig, ...]
     window: WindowConfig
     detector: DetectorParams
     bundle: Path | None
+    speed_channel: str | None = None
+    modes: ModesConfig | None = None
+    iso10816: IsoConfig | None = None
 
     def channel(self, name: str) -> ChannelConfig:
         for ch in self.channels:
@@ -331,7 +441,8 @@ def _channel(r: _Reader, name: Any, node: Any, path: str) -> ChannelConfig | Non
     if not _name(name):
         r.bad(path, "a channel name of letters, digits, '_', '.', '-' (at most 64)", name)
     keys = ("topic", "decoder", "rate_hz", "features", "unit", "ts_field", "value_field",
-            "values_field", "rate_field")
+            "values_field", "rate_field", "spectrum", "min", "max", "stale_s",
+            "flatline_windows", "max_rate_per_s", "limits")
     if not isinstance(node, dict):
         r.bad(path, "a mapping of channel settings (topic, decoder, rate_hz, ...)", node)
         return None
@@ -354,22 +465,201 @@ def _channel(r: _Reader, name: Any, node: Any, path: str) -> ChannelConfig | Non
         r.bad(f"{path}.features", "each feature once", found=f"{', '.join(dupes)} repeated")
     if not feats:
         r.bad(f"{path}.features", "at least one feature", feats)
+    unit = r.get(n, "unit", path, "str", "")
+    spectrum = _spectrum(r, n.get("spectrum"), f"{path}.spectrum", rate, unit) \
+        if n.get("spectrum") is not None else None
+    lo = r.get(n, "min", path, "num", None)
+    hi = r.get(n, "max", path, "num", None)
+    if lo is not None and hi is not None and lo >= hi:
+        r.bad(f"{path}.max", f"more than min ({lo:g})", hi)
+    stale = r.get(n, "stale_s", path, "num", None, lambda v: v > 0, "a number of seconds > 0")
+    flat = r.get(n, "flatline_windows", path, "int", None, lambda v: v >= 1, "an integer >= 1")
+    max_rate = r.get(n, "max_rate_per_s", path, "num", None, lambda v: v > 0,
+                     "a rate of change > 0 (channel units per second)")
     if topic is None or rate is None:
         return None
+    feats_t = tuple(f for f in feats if isinstance(f, str))
+    computed = feats_t + (spectrum.feature_names() if spectrum is not None else ())
+    limits = _limits(r, n.get("limits"), f"{path}.limits", computed)
     return ChannelConfig(
-        name=str(name), topic=topic, decoder=decoder, rate_hz=rate, features=tuple(feats),
-        unit=r.get(n, "unit", path, "str", ""),
+        name=str(name), topic=topic, decoder=decoder, rate_hz=rate, features=feats_t,
+        unit=unit,
         ts_field=r.get(n, "ts_field", path, "str", "ts"),
         value_field=r.get(n, "value_field", path, "str", "value"),
         values_field=r.get(n, "values_field", path, "str", "values"),
-        rate_field=r.get(n, "rate_field", path, "str", "rate_hz"))
+        rate_field=r.get(n, "rate_field", path, "str", "rate_hz"),
+        spectrum=spectrum, min_value=lo, max_value=hi, stale_s=stale, flatline_windows=flat,
+        max_rate_per_s=max_rate, limits=limits)
+
+
+def _hz_pair(r: _Reader, v: Any, where: str, nyquist: float) -> tuple[float, float] | None:
+    """[lo, hi] in Hz with 0 <= lo < hi <= the Nyquist frequency."""
+    if (not isinstance(v, list) or len(v) != 2 or not all(_finite_number(x) for x in v)
+            or not 0 <= v[0] < v[1] <= nyquist):
+        r.bad(where, f"[low, high] in Hz with 0 <= low < high <= {nyquist:g} (half the "
+              "sample rate)", v)
+        return None
+    return float(v[0]), float(v[1])
+
+
+def _spectrum(r: _Reader, node: Any, path: str, rate: float | None, unit: str
+              ) -> SpectrumConfig | None:
+    n = r.mapping(node, path, ("bands_hz", "velocity_rms", "orders", "envelope_hz"))
+    nyq = (rate or 2.0) / 2.0
+    bands: list[tuple[float, float]] = []
+    for i, b in enumerate(r.get(n, "bands_hz", path, "list", [])):
+        pair = _hz_pair(r, b, f"{path}.bands_hz[{i}]", nyq)
+        if pair is not None:
+            bands.append(pair)
+    if len(set(bands)) != len(bands):
+        r.bad(f"{path}.bands_hz", "each band once", found="a band repeated")
+    orders: list[float] = []
+    for i, o in enumerate(r.get(n, "orders", path, "list", [])):
+        if not _finite_number(o) or not 0 < o <= 64:
+            r.bad(f"{path}.orders[{i}]", "a multiple of running speed in (0, 64]", o)
+        else:
+            orders.append(float(o))
+    if len(set(orders)) != len(orders):
+        r.bad(f"{path}.orders", "each order once", found="an order repeated")
+    env = None
+    if n.get("envelope_hz") is not None:
+        env = _hz_pair(r, n["envelope_hz"], f"{path}.envelope_hz", nyq)
+    vel = r.get(n, "velocity_rms", path, "bool", False)
+    factor = 1.0
+    if vel:
+        if unit not in ACCEL_UNITS:
+            r.bad(f"{path}.velocity_rms", "an acceleration channel (its unit one of "
+                  f"{', '.join(ACCEL_UNITS)})", found=f"unit {unit!r}")
+        else:
+            factor = ACCEL_UNITS[unit]
+        if rate is not None and rate < 2 * 20.0:
+            r.bad(f"{path}.velocity_rms", "a sample rate of at least 40 Hz (the band starts "
+                  "at 10 Hz)", found=f"{rate:g} Hz")
+    return SpectrumConfig(tuple(bands), vel, tuple(orders), env, factor)
+
+
+LIMIT_KEYS = ("alert", "alarm", "alert_low", "alarm_low", "deadband", "on_delay")
+
+
+def _limits(r: _Reader, node: Any, path: str, computed: tuple[str, ...]
+            ) -> tuple[LimitConfig, ...]:
+    if node is None:
+        return ()
+    if not isinstance(node, dict) or not node:
+        r.bad(path, "a mapping of feature name to limits (alert, alarm, ...)", node)
+        return ()
+    out: list[LimitConfig] = []
+    for feat, lnode in node.items():
+        where = f"{path}.{feat}"
+        if feat not in computed:
+            r.bad(where, f"a feature this channel computes ({', '.join(computed)})",
+                  found=repr(feat))
+            continue
+        ln = r.mapping(lnode, where, LIMIT_KEYS)
+        vals = {k: r.get(ln, k, where, "num", None) for k in LIMIT_KEYS[:4]}
+        if all(v is None for v in vals.values()):
+            r.bad(where, "at least one of alert, alarm, alert_low, alarm_low")
+        if vals["alert"] is not None and vals["alarm"] is not None \
+                and vals["alarm"] < vals["alert"]:
+            r.bad(f"{where}.alarm", f"at least alert ({vals['alert']:g})", vals["alarm"])
+        if vals["alert_low"] is not None and vals["alarm_low"] is not None \
+                and vals["alarm_low"] > vals["alert_low"]:
+            r.bad(f"{where}.alarm_low", f"at most alert_low ({vals['alert_low']:g})",
+                  vals["alarm_low"])
+        dead = r.get(ln, "deadband", where, "num", 0.0, lambda v: v >= 0, "a number >= 0")
+        delay = r.get(ln, "on_delay", where, "int", 2, lambda v: v >= 1,
+                      "a number of windows >= 1")
+        out.append(LimitConfig(str(feat), vals["alert"], vals["alarm"], vals["alert_low"],
+                               vals["alarm_low"], dead, delay))
+    return tuple(out)
+
+
+MODE_KEYS = ("min", "max", "code", "bundle", "scored", "settling_s")
+
+
+def _modes(r: _Reader, node: Any, path: str, channels: dict[str, ChannelConfig]
+           ) -> ModesConfig | None:
+    n = r.mapping(node, path, ("channel", "hysteresis", "settling_s", "states"))
+    chan = r.get(n, "channel", path, "str", _REQUIRED, expected="the channel that decides "
+                 "the mode")
+    if chan is not None and channels and chan not in channels:
+        r.bad(f"{path}.channel", f"one of the asset's channels ({', '.join(channels)})", chan)
+    hyst = r.get(n, "hysteresis", path, "num", 0.0, lambda v: v >= 0,
+                 "a number >= 0 in the mode channel's unit")
+    settle = r.get(n, "settling_s", path, "num", 0.0, lambda v: v >= 0,
+                   "a number of seconds >= 0")
+    snode = n.get("states")
+    states: list[ModeSpec] = []
+    if not isinstance(snode, dict) or not snode:
+        r.bad(f"{path}.states", "a mapping of mode name to its band or code", snode)
+        snode = {}
+    for mname, mnode in snode.items():
+        where = f"{path}.states.{mname}"
+        if not _name(mname):
+            r.bad(where, "a mode name of letters, digits, '_', '.', '-' (at most 64)", mname)
+            continue
+        m = r.mapping(mnode, where, MODE_KEYS)
+        lo = r.get(m, "min", where, "num", None)
+        hi = r.get(m, "max", where, "num", None)
+        code = r.get(m, "code", where, "num", None)
+        if code is not None and (lo is not None or hi is not None):
+            r.bad(f"{where}.code", "either code or a min/max band, not both", code)
+        if lo is not None and hi is not None and lo >= hi:
+            r.bad(f"{where}.max", f"more than min ({lo:g})", hi)
+        bundle = r.path(r.get(m, "bundle", where, "str", None))
+        if bundle is not None and not bundle.is_dir():
+            r.bad(f"{where}.bundle", "an existing model bundle directory", found=str(bundle))
+        states.append(ModeSpec(str(mname), lo, hi, code, bundle,
+                               r.get(m, "scored", where, "bool", True),
+                               r.get(m, "settling_s", where, "num", settle, lambda v: v >= 0,
+                                     "a number of seconds >= 0")))
+    coded = {s.code is not None for s in states}
+    if len(coded) > 1:
+        r.bad(f"{path}.states", "every mode by code or every mode by a min/max band")
+    if chan is None or not states:
+        return None
+    by_code = coded == {True}
+    if not by_code:
+        bands = sorted((s.min_value if s.min_value is not None else -math.inf,
+                        s.max_value if s.max_value is not None else math.inf, s.name)
+                       for s in states)
+        for (_, hi1, a), (lo2, _, b) in itertools.pairwise(bands):
+            if lo2 < hi1:
+                r.bad(f"{path}.states.{b}", f"a band that does not overlap mode {a}")
+    return ModesConfig(chan, tuple(states), hyst, by_code)
+
+
+def _iso(r: _Reader, node: Any, path: str, channels: dict[str, ChannelConfig]
+         ) -> IsoConfig | None:
+    n = r.mapping(node, path, ("group", "support", "baseline_mm_s", "channels",
+                               "deadband_mm_s", "on_delay"))
+    group = r.get(n, "group", path, "int", _REQUIRED, lambda v: v in (1, 2),
+                  "machine group 1 (300 kW to 50 MW) or 2 (15 kW to 300 kW)")
+    support = r.get(n, "support", path, "str", _REQUIRED, lambda v: v in ("rigid", "flexible"),
+                    "rigid or flexible")
+    base = r.get(n, "baseline_mm_s", path, "num", None, lambda v: v > 0,
+                 "the machine's normal velocity RMS in mm/s, > 0")
+    with_vel = [c.name for c in channels.values()
+                if c.spectrum is not None and c.spectrum.velocity_rms]
+    chans = r.get(n, "channels", path, "list", list(with_vel))
+    for i, c in enumerate(chans):
+        if c not in with_vel:
+            r.bad(f"{path}.channels[{i}]", "a channel with spectrum.velocity_rms: true", c)
+    if not chans and channels:
+        r.bad(path, "a channel with spectrum.velocity_rms: true to evaluate")
+    dead = r.get(n, "deadband_mm_s", path, "num", 0.1, lambda v: v >= 0, "a number >= 0")
+    delay = r.get(n, "on_delay", path, "int", 2, lambda v: v >= 1, "a number of windows >= 1")
+    if group is None or support is None:
+        return None
+    return IsoConfig(group, Support(support), base, tuple(str(c) for c in chans), dead, delay)
 
 
 def _asset(r: _Reader, node: Any, path: str) -> AssetConfig | None:
     if not isinstance(node, dict):
         r.bad(path, "an asset mapping (name, channels, window, detector, bundle)", node)
         return None
-    n = r.mapping(node, path, ("name", "channels", "window", "detector", "bundle"))
+    n = r.mapping(node, path, ("name", "channels", "window", "detector", "bundle",
+                               "speed_channel", "modes", "iso10816"))
     name = r.get(n, "name", path, "str", _REQUIRED, _name,
                  "an asset name of letters, digits, '_', '.', '-' (at most 64)")
     chans_node = n.get("channels")
@@ -394,9 +684,23 @@ def _asset(r: _Reader, node: Any, path: str) -> AssetConfig | None:
     bundle = r.path(r.get(n, "bundle", path, "str", None))
     if bundle is not None and not bundle.is_dir():
         r.bad(f"{path}.bundle", "an existing model bundle directory", found=str(bundle))
+    by_name = {c.name: c for c in channels}
+    speed = r.get(n, "speed_channel", path, "str", None)
+    if speed is not None and by_name and speed not in by_name:
+        r.bad(f"{path}.speed_channel", f"one of the asset's channels ({', '.join(by_name)})",
+              speed)
+    for c in channels:
+        if c.spectrum is not None and c.spectrum.orders and speed is None:
+            r.bad(f"{path}.channels.{c.name}.spectrum.orders",
+                  "the asset's speed_channel (rpm) to find running speed")
+    modes = _modes(r, n["modes"], f"{path}.modes", by_name) \
+        if n.get("modes") is not None else None
+    iso = _iso(r, n["iso10816"], f"{path}.iso10816", by_name) \
+        if n.get("iso10816") is not None else None
     if name is None:
         return None
-    return AssetConfig(name, tuple(channels), window, DetectorParams(k, nn, m), bundle)
+    return AssetConfig(name, tuple(channels), window, DetectorParams(k, nn, m), bundle,
+                       speed, modes, iso)
 
 
 TOP_KEYS = ("site", "gateway", "topic_prefix", "state_dir", "local_broker", "upstream_broker",

@@ -153,6 +153,25 @@ class Metrics:
         self.gaps = Counter(
             "watchkeep_sample_gaps_total", "Waveform blocks that do not follow on from the last",
             ["asset", "channel"], registry=r)
+        # Machine know-how (issue 7): modes, sensor health, vibration severity, limits.
+        self.mode = Gauge(
+            "watchkeep_asset_mode", "1 for the asset's current operating mode, 0 for the others",
+            ["asset", "mode"], registry=r)
+        self.sensor_fault = Gauge(
+            "watchkeep_sensor_fault", "1 while the channel has a sensor fault",
+            ["asset", "channel"], registry=r)
+        self.velocity_rms = Gauge(
+            "watchkeep_vibration_velocity_rms_meters_per_second",
+            "Velocity RMS (10 Hz - 1 kHz) of the channel's last window", ["asset", "channel"],
+            registry=r)
+        self.vibration_zone = Gauge(
+            "watchkeep_vibration_zone",
+            "ISO 10816-3 zone of the channel's velocity RMS: 1 A, 2 B, 3 C, 4 D",
+            ["asset", "channel"], registry=r)
+        self.limit_level = Gauge(
+            "watchkeep_limit_level",
+            "Level of a feature's static limit: 0 normal, 1 alert (or zone/ALARM), 2 alarm",
+            ["asset", "feature", "kind"], registry=r)
 
 
 

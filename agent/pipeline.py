@@ -4,6 +4,21 @@
 file itself: samples come from the ingest buffers, messages go to the injected
 sink (the outbox) in one batch per tick. The loop that calls it lives in the
 daemon.
+
+Per closed window, in time order for each asset:
+
+1. sensor health of every channel (`agent/core/health.py`) -> `sensor.fault` /
+   `sensor.recovered` events; staleness is judged every tick from arrival times;
+2. the operating mode (`agent/core/modes.py`), with hysteresis and settling;
+3. features of all complete windows of the tick at once: time-domain
+   (`features.py`) and spectral (`spectral.py`, one FFT per group of equal-length
+   segments);
+4. static limits and ISO 10816-3 zones (`limits.py`) on channels without a sensor
+   fault -> `limit.exceeded`, with or without a model;
+5. scoring by the mode's bundle (or the asset's), unless the window is skipped; the
+   skip reasons counted in `watchkeep_windows_skipped_total` are `no_data`,
+   `sensor_fault`, `incomplete`, `unknown_mode`, `not_scored` (a mode marked
+   `scored: false`), `settling`, `no_model` and `model_error`, first match wins.
 """
 
 from __future__ import annotations
@@ -17,12 +32,17 @@ from typing import Any, Protocol
 
 import numpy as np
 
-from agent.bundle import Bundle
+from agent.bundle import Bundle, load_bundle
 from agent.config import FEATURES, AssetConfig, Config
 from agent.core.detector import Detector, State, Transition
 from agent.core.events import EventType, Source, make_event, rfc3339, severity_for, top_contributors
 from agent.core.features import FEATURE_INDEX, segment_features
+from agent.core.health import Change, ChannelHealth, HealthChange, HealthLimits
+from agent.core.limits import ZONES, FeatureLimits, LimitRise, ZoneLimits, zone_of
+from agent.core.modes import UNKNOWN_MODE, ModeTracker
+from agent.core.spectral import spectral_features
 from agent.core.windows import ClosedWindow, WindowAssembler
+from agent.errors import BundleError
 from agent.ingest import Buffers
 from agent.logs import kv
 from agent.messages import Kind, OutMessage
@@ -44,18 +64,59 @@ WindowObserver = Callable[[str, str, ClosedWindow, np.ndarray, tuple[str, ...]],
 
 
 def asset_feature_names(asset: AssetConfig) -> tuple[str, ...]:
-    """Every feature the asset's config asks for, `<channel>.<feature>`, in config order."""
-    return tuple(f"{ch.name}.{f}" for ch in asset.channels for f in ch.features)
+    """Every feature the asset's config asks for, `<channel>.<feature>`, in config order
+    (each channel's time-domain features, then its spectral ones)."""
+    return tuple(f"{ch.name}.{f}" for ch in asset.channels for f in ch.all_features)
+
+
+def feature_layout(asset: AssetConfig) -> dict[str, int]:
+    """Position of every computable feature in a window's full row: per channel, all
+    FEATURES (time domain), then the channel's spectral features."""
+    pos: dict[str, int] = {}
+    off = 0
+    for ch in asset.channels:
+        for f, i in FEATURE_INDEX.items():
+            pos[f"{ch.name}.{f}"] = off + i
+        off += _NF
+        for f in ch.spectral_features:
+            pos[f"{ch.name}.{f}"] = off
+            off += 1
+    return pos
 
 
 def _full_index(asset: AssetConfig, names: Sequence[str]) -> np.ndarray:
-    """Positions of `names` in the asset's [channels x FEATURES] feature block."""
-    chan_pos = {ch.name: i for i, ch in enumerate(asset.channels)}
-    idx = []
-    for n in names:
-        c, _, f = n.rpartition(".")
-        idx.append(chan_pos[c] * _NF + FEATURE_INDEX[f])
-    return np.asarray(idx, dtype=np.int64)
+    """Positions of `names` in the asset's full feature row."""
+    layout = feature_layout(asset)
+    return np.asarray([layout[n] for n in names], dtype=np.int64)
+
+
+def load_mode_bundles(asset: AssetConfig, logger: logging.Logger | None = None
+                      ) -> tuple[dict[str, Bundle], dict[str, str]]:
+    """The bundles of the asset's modes (`modes.states.<mode>.bundle`), and why any failed."""
+    bundles: dict[str, Bundle] = {}
+    errors: dict[str, str] = {}
+    if asset.modes is None:
+        return bundles, errors
+    for m in asset.modes.states:
+        if m.bundle is None:
+            continue
+        try:
+            b = load_bundle(m.bundle)
+        except BundleError as exc:
+            errors[m.name] = str(exc)
+            if logger is not None:
+                logger.error(kv("mode bundle rejected; the mode runs without a model",
+                                asset=asset.name, mode=m.name, error=str(exc)))
+            continue
+        why = check_bundle_fits(asset, b)
+        if why is not None:
+            errors[m.name] = why
+            if logger is not None:
+                logger.error(kv("mode bundle does not fit", asset=asset.name, mode=m.name,
+                                error=why))
+            continue
+        bundles[m.name] = b
+    return bundles, errors
 
 
 def check_bundle_fits(asset: AssetConfig, bundle: Bundle) -> str | None:
@@ -87,28 +148,88 @@ class AssetRuntime:
     last_event: dict[str, Any] | None = None
     raised_at: float | None = None
     raised_window: tuple[float, float] | None = None
+    # Machine know-how: per-mode bundles, mode tracking, sensor health, limits.
+    asset_bundle: Bundle | None = None
+    mode_bundles: dict[str, Bundle] = field(default_factory=dict)
+    mode_bundle_errors: dict[str, str] = field(default_factory=dict)
+    mode_index: dict[str, np.ndarray] = field(default_factory=dict)
+    modes: ModeTracker | None = None
+    settling: bool = False
+    health: list[ChannelHealth] = field(default_factory=list)
+    # (channel index, row position, monitor) for every configured limit and ISO zone
+    limits: list[tuple[int, int, FeatureLimits | ZoneLimits]] = field(default_factory=list)
+    last_velocity_mm_s: dict[str, float] = field(default_factory=dict)
+    started_s: float | None = None
+    spectral: list[int] = field(default_factory=list)  # channels with spectral features
+    speed_index: int | None = None
+    mode_index_ch: int | None = None
+    velocity_at: list[tuple[int, int]] = field(default_factory=list)  # (channel, row position)
 
     @classmethod
-    def build(cls, cfg: AssetConfig, bundle: Bundle | None, bundle_error: str | None
+    def build(cls, cfg: AssetConfig, bundle: Bundle | None, bundle_error: str | None,
+              mode_bundles: tuple[dict[str, Bundle], dict[str, str]] | None = None
               ) -> AssetRuntime:
+        """A fresh runtime. The per-mode bundles are loaded from the config unless given."""
         rt = cls(cfg=cfg,
                  assembler=WindowAssembler(cfg.window, tuple(c.rate_hz for c in cfg.channels)),
                  detector=Detector(cfg.detector))
         rt.record_index = _full_index(cfg, asset_feature_names(cfg))
+        rt.mode_bundles, rt.mode_bundle_errors = (mode_bundles if mode_bundles is not None
+                                                  else load_mode_bundles(cfg))
+        rt.mode_index = {m: _full_index(cfg, b.meta.feature_names)
+                         for m, b in rt.mode_bundles.items()}
+        chan_pos = {c.name: i for i, c in enumerate(cfg.channels)}
+        if cfg.modes is not None:
+            rt.modes = ModeTracker(cfg.modes)
+            rt.mode = UNKNOWN_MODE
+            rt.mode_index_ch = chan_pos.get(cfg.modes.channel)
+        rt.speed_index = chan_pos.get(cfg.speed_channel) if cfg.speed_channel else None
+        rt.health = [ChannelHealth(HealthLimits(c.min_value, c.max_value, c.stale_s,
+                                                c.flatline_windows, c.max_rate_per_s))
+                     for c in cfg.channels]
+        rt.spectral = [i for i, c in enumerate(cfg.channels) if c.spectrum is not None]
+        layout = feature_layout(cfg)
+        rt.velocity_at = [(i, layout[f"{c.name}.velocity_rms_mm_s"])
+                          for i, c in enumerate(cfg.channels)
+                          if c.spectrum is not None and c.spectrum.velocity_rms]
+        for i, c in enumerate(cfg.channels):
+            for lim in c.limits:
+                rt.limits.append((i, layout[f"{c.name}.{lim.feature}"], FeatureLimits(lim)))
+        if cfg.iso10816 is not None:
+            for cname in cfg.iso10816.channels:
+                feat = f"{cname}.velocity_rms_mm_s"
+                rt.limits.append((chan_pos[cname], layout[feat], ZoneLimits(feat, cfg.iso10816)))
         rt.set_bundle(bundle, bundle_error)
         return rt
 
     def set_bundle(self, bundle: Bundle | None, error: str | None) -> None:
+        """Set the asset-level bundle (serves every mode without a bundle of its own)."""
         if bundle is not None and error is None:
             error = check_bundle_fits(self.cfg, bundle)
         if error is not None:
             bundle = None
-        self.bundle = bundle
+        self.asset_bundle = bundle
+        # `bundle` is what the metrics and readiness look at: the asset's model, or when
+        # only modes have models, the first of them.
+        self.bundle = bundle if bundle is not None else next(iter(self.mode_bundles.values()),
+                                                              None)
         self.bundle_error = error
         self.model_index = (_full_index(self.cfg, bundle.meta.feature_names)
                             if bundle is not None else np.empty(0, np.int64))
         self.detector.reset()
         self.raised_at = None
+
+    def bundle_for(self, mode: str) -> tuple[Bundle | None, np.ndarray]:
+        """The bundle that scores windows in `mode`, and its positions in the full row."""
+        b = self.mode_bundles.get(mode)
+        if b is not None:
+            return b, self.mode_index[mode]
+        return self.asset_bundle, self.model_index
+
+    @property
+    def faulty_channels(self) -> list[str]:
+        return [c.name for c, h in zip(self.cfg.channels, self.health, strict=True)
+                if h.faulty]
 
     @property
     def state(self) -> State:
@@ -163,7 +284,8 @@ class Pipeline:
         """Run one tick at wall-clock time `now` (seconds)."""
         stats = TickStats()
         seq_before = [rt.sequence for rt in self.runtimes]
-        pending: list[tuple[AssetRuntime, ClosedWindow]] = []
+        pending: list[_Pending] = []
+        out: list[OutMessage] = []
         for ai, rt in enumerate(self.runtimes):
             asm = rt.assembler
             late = 0
@@ -173,18 +295,15 @@ class Pipeline:
                     late += asm.add(ci, got[0], got[1], buf.last_arrival)
             if late:
                 self._m[rt.cfg.name]["late"].inc(late)
+            if rt.started_s is None:
+                rt.started_s = now
+            self._check_stale(rt, ai, now, out, stats)
             res = asm.close_due(now)
             self._skip(rt, "no_data", res.empty_skipped)
             for w in res.windows:
                 self._m[rt.cfg.name]["closed"].inc()
                 stats.windows_closed += 1
-                if not w.complete:
-                    self._skip(rt, "incomplete")
-                elif rt.bundle is None and self.observer is None:
-                    self._skip(rt, "no_model")
-                else:
-                    pending.append((rt, w))
-        out: list[OutMessage] = []
+                pending.append(self._judge_window(rt, w, out, stats))
         if pending:
             self._score(pending, out, stats)
         if out:
@@ -197,66 +316,241 @@ class Pipeline:
             stats.messages = len(out)
         return stats
 
-    def _score(self, pending: list[tuple[AssetRuntime, ClosedWindow]], out: list[OutMessage],
-               stats: TickStats) -> None:
+    # -- sensor health and modes (sequential per asset, before features) ---------------
+
+    def _check_stale(self, rt: AssetRuntime, ai: int, now: float, out: list[OutMessage],
+                     stats: TickStats) -> None:
+        for ci, (ch, h) in enumerate(zip(rt.cfg.channels, rt.health, strict=True)):
+            if ch.stale_s is None:
+                continue
+            buf = self.buffers.by_asset[ai][ci]
+            last = buf.last_arrival or rt.started_s or now
+            change = h.check_stale(now - last)
+            if change is not None:
+                self._sensor_event(rt, ci, change, now, f"stale|{last:.3f}", None, out, stats)
+
+    def _judge_window(self, rt: AssetRuntime, w: ClosedWindow, out: list[OutMessage],
+                      stats: TickStats) -> _Pending:
+        for ci, h in enumerate(rt.health):
+            change = h.check_window(w.values[ci], w.timestamps[ci])
+            if change is not None:
+                self._sensor_event(rt, ci, change, w.end, f"{w.start:.3f}", w, out, stats)
+        faulty = tuple(i for i, h in enumerate(rt.health) if h.faulty)
+        settling = False
+        scored = True
+        if rt.modes is not None and rt.mode_index_ch is not None:
+            d = rt.modes.step(w.values[rt.mode_index_ch], w.start)
+            if d.mode != rt.mode:
+                self._set_mode(rt, d.mode)
+            settling, scored = d.settling, d.scored
+        rt.settling = settling
+        reason = None
+        if faulty:
+            reason = "sensor_fault"
+        elif not w.complete:
+            reason = "incomplete"
+        elif rt.mode == UNKNOWN_MODE:
+            reason = "unknown_mode"
+        elif not scored:
+            reason = "not_scored"
+        elif settling:
+            reason = "settling"
+        return _Pending(rt, w, rt.mode, faulty, reason)
+
+    def _set_mode(self, rt: AssetRuntime, mode: str) -> None:
+        gauge = self.metrics.mode
+        gauge.labels(rt.cfg.name, rt.mode).set(0)
+        gauge.labels(rt.cfg.name, mode).set(1)
+        self.log.info(kv("mode changed", asset=rt.cfg.name, mode=mode, was=rt.mode))
+        rt.mode = mode
+        if rt.detector.state is State.NORMAL:
+            # Windows scored in the old mode must not count toward a raise in the new one.
+            rt.detector = Detector(rt.cfg.detector)
+
+    def _sensor_event(self, rt: AssetRuntime, ci: int, change: HealthChange, time_s: float,
+                      key: str, w: ClosedWindow | None, out: list[OutMessage],
+                      stats: TickStats) -> None:
+        ch = rt.cfg.channels[ci]
+        fault = change.change is Change.FAULT
+        self.metrics.sensor_fault.labels(rt.cfg.name, ch.name).set(1 if fault else 0)
+        rt.sequence += 1
+        data: dict[str, Any] = {
+            "asset": rt.cfg.name, "channel": ch.name, "mode": rt.mode,
+            "reasons": [r.value for r in change.reasons],
+            "detail": {k: _finite(v) for k, v in change.detail.items()},
+            "unit": ch.unit, "sequence": rt.sequence}
+        if w is not None:
+            data["window"] = {"start": rfc3339(w.start), "end": rfc3339(w.end)}
+        etype = EventType.SENSOR_FAULT if fault else EventType.SENSOR_RECOVERED
+        self._event(rt, etype, self.source.for_asset(rt.cfg.name), time_s, data, out,
+                    Kind.EVENT, id_key=f"{ch.name}|{key}")
+        stats.events += 1
+
+    # -- features, limits, scoring ------------------------------------------------------
+
+    def _features(self, todo: list[_Pending]) -> list[np.ndarray]:
+        """The full feature row of each window (time-domain, then spectral per channel)."""
         t0 = time.perf_counter()
-        segments = [seg for _, w in pending for seg in w.values]
+        segments = [seg for p in todo for seg in p.w.values]
         feats = segment_features(segments)
+        spec_segs, spec_rates, spec_cfgs, spec_speeds, spec_at = [], [], [], [], []
+        for wi, p in enumerate(todo):
+            rt = p.rt
+            if not rt.spectral:
+                continue
+            speed_hz = np.nan
+            if rt.speed_index is not None:
+                sv = p.w.values[rt.speed_index]
+                speed_hz = float(sv.mean()) / 60.0 if sv.size else np.nan
+            for ci in rt.spectral:
+                ch = rt.cfg.channels[ci]
+                assert ch.spectrum is not None
+                spec_segs.append(p.w.values[ci])
+                spec_rates.append(ch.rate_hz)
+                spec_cfgs.append(ch.spectrum)
+                spec_speeds.append(speed_hz)
+                spec_at.append((wi, ci))
+        spec = spectral_features(spec_segs, spec_rates, spec_cfgs, spec_speeds) \
+            if spec_segs else []
+        by_window: dict[tuple[int, int], np.ndarray] = dict(zip(spec_at, spec, strict=True))
         rows: list[np.ndarray] = []
         pos = 0
-        for rt, _w in pending:
-            n = len(rt.cfg.channels)
-            rows.append(feats[pos:pos + n].reshape(-1))
-            pos += n
+        for wi, p in enumerate(todo):
+            parts = []
+            for ci, _ch in enumerate(p.rt.cfg.channels):
+                parts.append(feats[pos + ci])
+                extra = by_window.get((wi, ci))
+                if extra is not None:
+                    parts.append(extra)
+            pos += len(p.rt.cfg.channels)
+            rows.append(np.concatenate(parts))
         self.metrics.feature_seconds.observe(time.perf_counter() - t0)
-        by_model: dict[int, list[int]] = {}
-        for i, (rt, w) in enumerate(pending):
+        return rows
+
+    def _limits(self, p: _Pending, row: np.ndarray, out: list[OutMessage],
+                stats: TickStats) -> None:
+        rt, w = p.rt, p.w
+        name = rt.cfg.name
+        for ci, at in rt.velocity_at:
+            v = float(row[at])
+            if ci not in p.faulty and np.isfinite(v):
+                cname = rt.cfg.channels[ci].name
+                rt.last_velocity_mm_s[cname] = v
+                # Prometheus wants base units: m/s (PITFALLS.md, promtool).
+                self.metrics.velocity_rms.labels(name, cname).set(v / 1000.0)
+        for ci, at, mon in rt.limits:
+            if ci in p.faulty:
+                continue  # a faulty sensor's value says nothing about the machine
+            value = float(row[at])
+            if not np.isfinite(value):
+                continue
+            rises = mon.step(value)
+            ch = rt.cfg.channels[ci]
+            if isinstance(mon, ZoneLimits):
+                zone = zone_of(value, mon.boundaries)
+                self.metrics.vibration_zone.labels(name, ch.name).set(ZONES.index(mon.zone) + 1)
+                self.metrics.limit_level.labels(name, mon.feature, "operational").set(
+                    ("normal", "alarm", "trip").index(mon.operational))
+            else:
+                zone = None
+                self.metrics.limit_level.labels(name, f"{ch.name}.{mon.cfg.feature}",
+                                                "limit").set(_LEVEL_VALUE[mon.level])
+            for rise in rises:
+                self._limit_event(rt, ch.name, rise, zone, mon, w, out, stats)
+
+    def _limit_event(self, rt: AssetRuntime, channel: str, rise: LimitRise, zone: str | None,
+                     mon: FeatureLimits | ZoneLimits, w: ClosedWindow, out: list[OutMessage],
+                     stats: TickStats) -> None:
+        ch = rt.cfg.channel(channel)
+        feature = rise.feature if "." in rise.feature else f"{channel}.{rise.feature}"
+        rt.sequence += 1
+        data: dict[str, Any] = {
+            "asset": rt.cfg.name, "mode": rt.mode, "channel": channel, "feature": feature,
+            "kind": rise.kind, "level": rise.level, "limit": rise.threshold,
+            "value": round(rise.value, 6),
+            "window": {"start": rfc3339(w.start), "end": rfc3339(w.end)},
+            "sequence": rt.sequence}
+        if isinstance(mon, ZoneLimits):
+            iso = mon.cfg
+            data.update({
+                "unit": "mm/s", "zone": zone, "zone_held": mon.zone,
+                "standard": "ISO 10816-3:2009 Annex A",
+                "group": iso.group, "support": iso.support.value,
+                "boundaries_mm_s": dict(zip(("A/B", "B/C", "C/D"), mon.boundaries,
+                                            strict=True)),
+                "alarm_mm_s": round(mon.alarm, 4), "trip_mm_s": round(mon.trip, 4),
+                "baseline_mm_s": iso.baseline_mm_s})
+        else:
+            data["unit"] = ch.unit
+        key = f"{feature}|{rise.kind}|{rise.level}|{w.start:.3f}"
+        self._event(rt, EventType.LIMIT_EXCEEDED, self.source.for_asset(rt.cfg.name), w.end,
+                    data, out, Kind.EVENT, id_key=key)
+        stats.events += 1
+
+    def _score(self, pending: list[_Pending], out: list[OutMessage], stats: TickStats) -> None:
+        todo = [p for p in pending if p.w.complete]
+        rows = self._features(todo) if todo else []
+        row_of = {id(p): r for p, r in zip(todo, rows, strict=True)}
+        by_model: dict[int, list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]]] = {}
+        for p in pending:
+            rt = p.rt
+            row = row_of.get(id(p))
+            if row is not None:
+                self._limits(p, row, out, stats)
+            if p.reason is not None:
+                self._skip(rt, p.reason)
+                continue
+            assert row is not None
             if self.observer is not None:
-                self.observer(rt.cfg.name, rt.mode, w, rows[i][rt.record_index],
-                              _names(rt))
-            if rt.bundle is None:
+                self.observer(rt.cfg.name, p.mode, p.w, row[rt.record_index], _names(rt))
+            bundle, index = rt.bundle_for(p.mode)
+            if bundle is None:
                 self._skip(rt, "no_model")
                 continue
-            by_model.setdefault(id(rt.bundle), []).append(i)
+            by_model.setdefault(id(bundle), []).append((p, row, bundle, index))
         results: dict[int, tuple[float, np.ndarray]] = {}
-        for idxs in by_model.values():
-            rt0 = pending[idxs[0]][0]
-            assert rt0.bundle is not None
-            x = np.stack([rows[i][pending[i][0].model_index] for i in idxs])
+        for items in by_model.values():
+            bundle = items[0][2]
+            x = np.stack([row[index] for _, row, _, index in items])
             t1 = time.perf_counter()
             try:
-                scores, sq = rt0.bundle.score(x)
+                scores, sq = bundle.score(x)
             except Exception as exc:  # a model failing at run time fails its asset only
-                self.log.error(kv("model failed", asset=rt0.cfg.name, error=str(exc)[:200]))
-                for i in idxs:
-                    self._skip(pending[i][0], "model_error")
+                self.log.error(kv("model failed", asset=items[0][0].rt.cfg.name,
+                                  error=str(exc)[:200]))
+                for p, *_ in items:
+                    self._skip(p.rt, "model_error")
                 continue
             self.metrics.inference_seconds.observe(time.perf_counter() - t1)
-            for j, i in enumerate(idxs):
-                results[i] = (float(scores[j]), sq[j])
-        for i, (rt, w) in enumerate(pending):
-            if i not in results:
+            for j, (p, *_) in enumerate(items):
+                results[id(p)] = (float(scores[j]), sq[j])
+        # Step detectors in window order, so an asset's windows are judged in time order.
+        for p in pending:
+            got = results.get(id(p))
+            if got is None:
                 continue
-            score, sq = results[i]
+            score, sq = got
             if not np.isfinite(score):
-                self._skip(rt, "model_error")
+                self._skip(p.rt, "model_error")
                 continue
-            self._step(rt, w, score, sq, out, stats)
+            bundle, _ = p.rt.bundle_for(p.mode)
+            assert bundle is not None
+            self._step(p.rt, p.w, p.mode, bundle, score, sq, out, stats)
 
-    def _step(self, rt: AssetRuntime, w: ClosedWindow, score: float, sq: np.ndarray,
-              out: list[OutMessage], stats: TickStats) -> None:
-        assert rt.bundle is not None
-        meta = rt.bundle.meta
+    def _step(self, rt: AssetRuntime, w: ClosedWindow, mode: str, bundle: Bundle, score: float,
+              sq: np.ndarray, out: list[OutMessage], stats: TickStats) -> None:
+        meta = bundle.meta
         m = self._m[rt.cfg.name]
         m["scored"].inc()
         m["score"].set(score)
+        m["threshold"].set(meta.threshold)
         stats.windows_scored += 1
         rt.last_score = score
         rt.last_window_end = w.end
         tr = rt.detector.step(score, meta.threshold, meta.clear_threshold)
         name = rt.cfg.name
         src = self.source.for_asset(name)
-        base = {"asset": name, "mode": rt.mode,
+        base = {"asset": name, "mode": mode,
                 "window": {"start": rfc3339(w.start), "end": rfc3339(w.end)},
                 "score": round(score, 6), "threshold": meta.threshold,
                 "clear_threshold": meta.clear_threshold,
@@ -268,7 +562,8 @@ class Pipeline:
             data = {**base, "severity": severity_for(score, meta.threshold).value,
                     "contributors": top_contributors(meta.feature_names, sq),
                     "sequence": rt.sequence}
-            self._event(rt, EventType.ANOMALY_RAISED, src, w, data, out, Kind.ANOMALY)
+            self._event(rt, EventType.ANOMALY_RAISED, src, w.end, data, out, Kind.ANOMALY,
+                        id_key=f"{w.start:.3f}")
             stats.events += 1
         elif tr is Transition.CLEARED:
             rt.sequence += 1
@@ -276,12 +571,13 @@ class Pipeline:
                     "raised_at": rfc3339(rt.raised_at) if rt.raised_at else None,
                     "duration_s": round(w.end - rt.raised_at, 3) if rt.raised_at else None,
                     "sequence": rt.sequence}
-            self._event(rt, EventType.ANOMALY_CLEARED, src, w, data, out, Kind.ANOMALY)
+            self._event(rt, EventType.ANOMALY_CLEARED, src, w.end, data, out, Kind.ANOMALY,
+                        id_key=f"{w.start:.3f}")
             rt.raised_at = None
             stats.events += 1
         m["anomalous"].set(1 if rt.state is State.ANOMALOUS else 0)
         state_topic = f"{self.prefix}/assets/{name}/state"
-        state = {"asset": name, "state": rt.state.value, "mode": rt.mode,
+        state = {"asset": name, "state": rt.state.value, "mode": mode,
                  "score": round(score, 6), "threshold": meta.threshold,
                  "window_end": rfc3339(w.end),
                  "model": {"id": meta.model_id, "version": meta.version},
@@ -289,18 +585,20 @@ class Pipeline:
         out.append(OutMessage(state_topic, _json(state), Kind.STATE, qos=1, retain=True,
                               key=state_topic))
         if self.cfg.publish_scores:
-            tel = {"asset": name, "mode": rt.mode, "window_end": rfc3339(w.end),
+            tel = {"asset": name, "mode": mode, "window_end": rfc3339(w.end),
                    "score": round(score, 6), "threshold": meta.threshold}
             out.append(OutMessage(f"{self.prefix}/assets/{name}/scores", _json(tel),
                                   Kind.SCORE, qos=0))
 
-    def _event(self, rt: AssetRuntime, etype: EventType, src: str, w: ClosedWindow,
-               data: dict[str, Any], out: list[OutMessage], kind: Kind) -> None:
-        ev = make_event(etype, src, rt.cfg.name, w.end, data, id_key=f"{w.start:.3f}")
+    def _event(self, rt: AssetRuntime, etype: EventType, src: str, time_s: float,
+               data: dict[str, Any], out: list[OutMessage], kind: Kind, *, id_key: str) -> None:
+        """Emit one event; its id is a UUIDv5 of source, type and `id_key` (events.py)."""
+        ev = make_event(etype, src, rt.cfg.name, time_s, data, id_key=id_key)
         rt.last_event = {"type": ev["type"], "id": ev["id"], "time": ev["time"]}
         self.metrics.events.labels(etype.value).inc()
         self.log.info(kv("event", type=etype.value, asset=rt.cfg.name, id=ev["id"],
-                         score=data.get("score"), threshold=data.get("threshold")))
+                         score=data.get("score"), threshold=data.get("threshold"),
+                         channel=data.get("channel"), level=data.get("level")))
         out.append(OutMessage(f"{self.prefix}/assets/{rt.cfg.name}/events", _json(ev), kind,
                               qos=1))
 
@@ -309,15 +607,51 @@ class Pipeline:
         assets = []
         for rt in self.runtimes:
             meta = rt.bundle.meta if rt.bundle else None
+            serving, _ = rt.bundle_for(rt.mode)
+            if serving is not None:
+                meta = serving.meta
+            limits = {}
+            for ci, _at, mon in rt.limits:
+                ch = rt.cfg.channels[ci]
+                if isinstance(mon, ZoneLimits):
+                    limits[mon.feature] = {"zone": mon.zone, "operational": mon.operational}
+                else:
+                    limits[f"{ch.name}.{mon.cfg.feature}"] = {"level": mon.level}
             assets.append({
                 "asset": rt.cfg.name, "mode": rt.mode, "state": rt.state.value,
+                "settling": rt.settling,
                 "score": rt.last_score, "threshold": meta.threshold if meta else None,
                 "last_window_end": rfc3339(rt.last_window_end) if rt.last_window_end else None,
                 "last_event": rt.last_event,
                 "model": ({"id": meta.model_id, "version": meta.version} if meta else None),
                 "model_error": rt.bundle_error,
+                "mode_models": {m: b.meta.model_id for m, b in rt.mode_bundles.items()},
+                "mode_model_errors": dict(rt.mode_bundle_errors),
+                "sensor_faults": {c.name: [r.value for r in h.reasons]
+                                  for c, h in zip(rt.cfg.channels, rt.health, strict=True)
+                                  if h.faulty},
+                "velocity_rms_mm_s": {k: round(v, 4) for k, v in rt.last_velocity_mm_s.items()},
+                "limits": limits,
             })
         return {"site": self.cfg.site, "gateway": self.cfg.gateway, "assets": assets}
+
+
+@dataclass(frozen=True, eq=False)
+class _Pending:
+    """One closed window on its way through the tick, with what was judged about it."""
+
+    rt: AssetRuntime
+    w: ClosedWindow
+    mode: str
+    faulty: tuple[int, ...]  # channels with a sensor fault at this window
+    reason: str | None  # why it is not scored, if it is not
+
+
+_LEVEL_VALUE = {"normal": 0, "alert": 1, "alarm": 2, "alert_low": 1, "alarm_low": 2}
+
+
+def _finite(v: float) -> float | None:
+    return round(float(v), 6) if np.isfinite(v) else None
 
 
 def _names(rt: AssetRuntime) -> tuple[str, ...]:

@@ -140,6 +140,15 @@ def _current(scale: float) -> ChannelSpec:
     return ChannelSpec("current", Decoder.JSON, 10.0, "A", 2, scale)
 
 
+def speed_channel() -> ChannelSpec:
+    """The drive's speed reading in rpm, 1 Hz: published only by assets whose scenario
+    entry sets `speed_sensor: true` (so plants without one publish what they always did)."""
+    return ChannelSpec("speed", Decoder.JSON, 1.0, "rpm", 1, 100.0)
+
+
+# Standard deviation of the drive's speed reading, rpm (an invented figure, no source).
+SPEED_NOISE_RPM = 1.5
+
 VIB_BLOCK_SAMPLES = 256
 
 # The reference geometry used in the reference tests: n=9, d=0.3126 in, D=1.537 in, φ=0.

@@ -28,6 +28,7 @@ from simulator.faults import (
     fault_levels,
 )
 from simulator.machines import (
+    SPEED_NOISE_RPM,
     VIB_BLOCK_SAMPLES,
     ChannelSpec,
     Decoder,
@@ -322,4 +323,10 @@ def _chunk(
     if a.spec.machine.kind is MachineKind.PUMP:
         tq = _sample_times(a.channels["flow"].spec.rate_hz, t0, t1)
         out["flow"] = (tq, _flow(a, tq, fault_levels(a.faults, tq, end)))
+    if "speed" in a.channels:
+        sp = a.channels["speed"]
+        ts_ = _sample_times(sp.spec.rate_hz, t0, t1)
+        rpm = a.profile.at(ts_) * a.spec.machine.rated_speed_rpm
+        noise = sp.rng.standard_normal(ts_.shape) * SPEED_NOISE_RPM
+        out["speed"] = (ts_, np.maximum(rpm + noise * (rpm > 0), 0.0))
     return out

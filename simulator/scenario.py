@@ -26,7 +26,7 @@ from typing import Any
 import yaml
 
 from simulator.errors import Problem, ScenarioError
-from simulator.machines import PRESETS, BearingGeometry, MachineKind, MachineSpec
+from simulator.machines import PRESETS, BearingGeometry, MachineKind, MachineSpec, speed_channel
 
 LABELS_SCHEMA_VERSION = 1
 
@@ -245,7 +245,8 @@ def _parse_start(r: _Reader, data: Mapping[str, Any]) -> float | None:
     return None
 
 
-_ASSET_KEYS = {"name", "kind", "area", "initial_speed_pct", "rated_speed_rpm", "vanes", "bearing"}
+_ASSET_KEYS = {"name", "kind", "area", "initial_speed_pct", "rated_speed_rpm", "vanes", "bearing",
+               "speed_sensor"}
 _BEARING_KEYS = {"n_elements", "ball_diameter_in", "pitch_diameter_in", "contact_angle_deg"}
 
 
@@ -282,6 +283,12 @@ def _parse_asset(r: _Reader, raw: Any, path: str) -> AssetSpec | None:
         if ball >= pitch:
             r.bad(f"{bp}.ball_diameter_in", "less than pitch_diameter_in", ball)
         overrides["bearing"] = BearingGeometry(n, ball, pitch, angle)
+    if "speed_sensor" in d:
+        if not isinstance(d["speed_sensor"], bool):
+            r.bad(f"{path}.speed_sensor", "true or false", d["speed_sensor"])
+        elif d["speed_sensor"]:
+            # The drive's speed reading (json, 1 Hz, rpm) as one more channel.
+            overrides["channels"] = (*machine.channels, speed_channel())
     machine = dataclasses.replace(machine, **overrides)
     return AssetSpec(name=name, area=area, machine=machine, initial_speed_pct=initial)
 

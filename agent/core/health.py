@@ -1,0 +1,148 @@
+"""Sensor health per channel, apart from machine health. Pure: values and times in.
+
+Checks, each off unless configured (non-finite is always on):
+
+* `stale`          no sample has arrived for `stale_s` seconds (checked every tick);
+* `flatline`       no variation at all (max == min) in each of `flatline_windows`
+                   consecutive windows with at least two samples: a stuck sensor or a
+                   frozen transmitter repeats its last value exactly;
+* `out_of_range`   a sample below `min` or above `max` (the sensor's physical range);
+* `non_finite`     a NaN or infinite sample (the decoders already reject these on the
+                   wire; this catches any other path);
+* `rate_of_change` |dx/dt| between consecutive samples above `max_rate_per_s`.
+
+A channel becomes faulty on the first window (or tick) with a reason, and recovers
+after `RECOVER_WINDOWS` consecutive clean windows while fresh samples arrive, so a
+sensor that flickers between good and bad does not chatter (a deadband in time:
+common practice, no source).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from enum import StrEnum
+
+import numpy as np
+
+RECOVER_WINDOWS = 2
+
+
+class Reason(StrEnum):
+    STALE = "stale"
+    FLATLINE = "flatline"
+    OUT_OF_RANGE = "out_of_range"
+    NON_FINITE = "non_finite"
+    RATE_OF_CHANGE = "rate_of_change"
+
+
+@dataclass(frozen=True)
+class HealthLimits:
+    """One channel's configured checks (None = off)."""
+
+    min_value: float | None = None
+    max_value: float | None = None
+    stale_s: float | None = None
+    flatline_windows: int | None = None
+    max_rate_per_s: float | None = None
+
+
+class Change(StrEnum):
+    FAULT = "fault"
+    RECOVERED = "recovered"
+
+
+@dataclass(frozen=True)
+class HealthChange:
+    """A transition of one channel; `reasons` are the ones active when it faulted."""
+
+    change: Change
+    reasons: tuple[Reason, ...]
+    detail: dict[str, float] = field(default_factory=dict)
+
+
+def window_reasons(limits: HealthLimits, values: np.ndarray, ts: np.ndarray
+                   ) -> tuple[list[Reason], dict[str, float]]:
+    """The per-window reasons (all but stale and flatline) and numbers that explain them."""
+    reasons: list[Reason] = []
+    detail: dict[str, float] = {}
+    if values.size == 0:
+        return reasons, detail
+    finite = np.isfinite(values)
+    if not finite.all():
+        reasons.append(Reason.NON_FINITE)
+        detail["non_finite_samples"] = float(values.size - int(finite.sum()))
+    v = values[finite]
+    if v.size:
+        lo, hi = float(v.min()), float(v.max())
+        if (limits.min_value is not None and lo < limits.min_value) or (
+                limits.max_value is not None and hi > limits.max_value):
+            reasons.append(Reason.OUT_OF_RANGE)
+            detail["min"], detail["max"] = lo, hi
+    if limits.max_rate_per_s is not None and v.size > 1:
+        t = ts[finite]
+        dt = np.diff(t)
+        ok = dt > 0
+        if ok.any():
+            rate = float(np.max(np.abs(np.diff(v)[ok] / dt[ok])))
+            if rate > limits.max_rate_per_s:
+                reasons.append(Reason.RATE_OF_CHANGE)
+                detail["max_rate_per_s"] = rate
+    return reasons, detail
+
+
+class ChannelHealth:
+    """The health state machine of one channel."""
+
+    def __init__(self, limits: HealthLimits) -> None:
+        self.limits = limits
+        self.faulty = False
+        self.reasons: tuple[Reason, ...] = ()
+        self.stale = False
+        self._flat_windows = 0
+        self._clean = 0
+
+    def check_window(self, values: np.ndarray, ts: np.ndarray) -> HealthChange | None:
+        """Judge one closed window's samples of this channel."""
+        reasons, detail = window_reasons(self.limits, values, ts)
+        n_fl = self.limits.flatline_windows
+        if n_fl is not None:
+            v = values[np.isfinite(values)]
+            if v.size >= 2:
+                self._flat_windows = self._flat_windows + 1 if v.max() == v.min() else 0
+            if self._flat_windows >= n_fl:
+                reasons.append(Reason.FLATLINE)
+                detail["flat_windows"] = float(self._flat_windows)
+                if v.size:
+                    detail["value"] = float(v[-1])
+        if self.stale:
+            reasons.append(Reason.STALE)
+        return self._judge(reasons, detail, clean_window=values.size > 0 and not reasons)
+
+    def check_stale(self, age_s: float) -> HealthChange | None:
+        """Judge the time since the channel's last sample (every tick)."""
+        if self.limits.stale_s is None:
+            return None
+        self.stale = age_s > self.limits.stale_s
+        if self.stale and not self.faulty:
+            return self._judge([Reason.STALE], {"age_s": round(age_s, 3)}, clean_window=False)
+        return None
+
+    def _judge(self, reasons: list[Reason], detail: dict[str, float], *, clean_window: bool
+               ) -> HealthChange | None:
+        if reasons:
+            self._clean = 0
+            if not self.faulty:
+                self.faulty = True
+                self.reasons = tuple(dict.fromkeys(reasons))
+                return HealthChange(Change.FAULT, self.reasons, detail)
+            self.reasons = tuple(dict.fromkeys((*self.reasons, *reasons)))
+            return None
+        if self.faulty and clean_window:
+            self._clean += 1
+            if self._clean >= RECOVER_WINDOWS:
+                was = self.reasons
+                self.faulty = False
+                self.reasons = ()
+                self._clean = 0
+                return HealthChange(Change.RECOVERED, was, {})
+        return None

@@ -1,0 +1,56 @@
+"""Sensor health per channel: each check, fault once, recovery after clean windows."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from agent.core.health import RECOVER_WINDOWS, Change, ChannelHealth, HealthLimits, Reason
+
+TS = np.arange(10, dtype=np.float64)
+
+
+@pytest.mark.parametrize(("limits", "values", "reason"), [
+    (HealthLimits(min_value=0, max_value=100), np.r_[np.ones(9), 150.0], Reason.OUT_OF_RANGE),
+    (HealthLimits(min_value=0), np.r_[np.ones(9), -1.0], Reason.OUT_OF_RANGE),
+    (HealthLimits(), np.r_[np.ones(9), np.nan], Reason.NON_FINITE),
+    (HealthLimits(max_rate_per_s=2), np.r_[np.ones(9), 10.0], Reason.RATE_OF_CHANGE),
+    (HealthLimits(flatline_windows=1), np.full(10, 42.0), Reason.FLATLINE),
+])
+def test_each_check_faults(limits: HealthLimits, values: np.ndarray, reason: Reason) -> None:
+    """One bad window raises a fault with its reason."""
+    ch = ChannelHealth(limits)
+    change = ch.check_window(values, TS)
+    assert change is not None and change.change is Change.FAULT
+    assert reason in change.reasons and ch.faulty
+
+
+def test_flatline_needs_n_windows_and_recovers_after_clean_ones() -> None:
+    """Stuck for 3 windows -> one fault; varying again -> recovered after 2 clean windows."""
+    ch = ChannelHealth(HealthLimits(flatline_windows=3))
+    stuck, live = np.full(10, 61.25), 61.0 + 0.1 * np.sin(TS)
+    changes = [ch.check_window(v, TS) for v in [live, stuck, stuck, stuck, stuck, live, live]]
+    kinds = [c.change if c else None for c in changes]
+    assert kinds == [None, None, None, Change.FAULT, None, None, Change.RECOVERED]
+    assert RECOVER_WINDOWS == 2
+
+
+def test_stale_by_time_and_back() -> None:
+    """No sample for stale_s -> fault; samples again and clean windows -> recovered."""
+    ch = ChannelHealth(HealthLimits(stale_s=5))
+    assert ch.check_stale(4.9) is None
+    change = ch.check_stale(5.1)
+    assert change is not None and change.reasons == (Reason.STALE,)
+    assert ch.check_stale(9.0) is None  # still stale: no second event
+    live = np.linspace(0, 1, 10)
+    ch.check_stale(0.1)
+    assert ch.check_window(live, TS) is None
+    recovered = ch.check_window(live, TS)
+    assert recovered is not None and recovered.change is Change.RECOVERED
+
+
+def test_checks_are_off_unless_configured() -> None:
+    """Without limits only non-finite samples are a fault."""
+    ch = ChannelHealth(HealthLimits())
+    assert ch.check_window(np.full(10, 1e9), TS) is None
+    assert ch.check_stale(1e6) is None
