@@ -249,7 +249,7 @@ def render(status: dict[str, Any], sim_now: float, left_s: float, speed: float,
              f"sim {rfc3339(sim_now)[11:19]}  x{speed:.1f}  {left_s:4.0f} s left  "
              f"broker: {broker}",
              "",
-             f"  {'asset':<7}{'mode':<9}{'state':<11}{'score / threshold':<26}last event"]
+             f"  {'asset':<7}{'mode':<9}{'state':<11}{'score / threshold':<33}last event"]
     for a in status["assets"]:
         score, thr = a.get("score"), a.get("threshold")
         if score is None or thr is None:
@@ -263,7 +263,7 @@ def render(status: dict[str, Any], sim_now: float, left_s: float, speed: float,
         last_s = (f"{last.get('type', '').removeprefix('io.watchkeep.')} "
                   f"{last.get('time', '')[11:19]}") if last else "-"
         state = a["state"].upper() if a["state"] != "normal" else "normal"
-        lines.append(f"  {a['asset']:<7}{a['mode']:<9}{state:<11}{bar:<26}{last_s}")
+        lines.append(f"  {a['asset']:<7}{a['mode']:<9}{state:<11}{bar:<33}{last_s}")
     lines += ["", "  events received by the maintenance system:"]
     lines += recent[-8:] or ["  (none yet)"]
     return "\n".join(lines)
