@@ -3,7 +3,10 @@
 Scenarios: `recorded` is the dataset as it is, its faults taken from a labels file or
 the dataset's own `label` array (none: every window is normal). Each `--inject KIND`
 adds a scenario: the dataset's normal windows with synthetic faults of that kind
-(`agent.commission.inject`). Every scenario is scored by the bundle
+(`agent.commission.inject`), or — when the dataset has a raw capture beside it and a
+config to rebuild the pipeline — the same faults written into the raw signal and
+replayed through the daemon's pipeline (`agent.commission.inject_raw`); the report's
+`dataset.injection` and a note say which path was used. Every scenario is scored by the bundle
 (`agent.bundle.Bundle.score`) and run through `agent.core.detector.run_detector`
 with the bundle's thresholds — the daemon's rule, not a copy of it.
 
@@ -22,6 +25,7 @@ Definitions (window indices are in time order within the scenario):
 from __future__ import annotations
 
 import argparse
+import dataclasses
 import json
 import math
 import os
@@ -35,7 +39,17 @@ import numpy as np
 
 from agent.bundle import Bundle, load_bundle
 from agent.commission.dataset import Dataset, read_dataset
-from agent.commission.inject import FaultKind, InjectSpec, inject, parse_inject
+from agent.commission.inject import FaultKind, InjectSpec, inject
+from agent.commission.inject_raw import (
+    ChannelSpec,
+    RawCapture,
+    capture_sigma,
+    config_from_manifest,
+    inject_and_replay,
+    parse_raw_inject,
+    replay_config,
+    time_keys,
+)
 from agent.core.detector import DetectorParams, Transition, run_detector
 from agent.errors import DatasetError
 
@@ -360,8 +374,12 @@ def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | N
              inject_specs: Sequence[InjectSpec] = (),
              params: DetectorParams | None = None,
              alternatives: Sequence[tuple[int, int, int]] = DEFAULT_ALTERNATIVES,
-             seed: int = 0) -> Evaluation:
-    """Score `dataset` with `bundle`, judge each scenario (see the module docstring)."""
+             seed: int = 0, raw: RawCapture | None = None) -> Evaluation:
+    """Score `dataset` with `bundle`, judge each scenario (see the module docstring).
+
+    With `raw`, injected faults go into the raw capture and are replayed (the raw path);
+    without it they are injected on the feature windows.
+    """
     params = params or DetectorParams()
     meta = bundle.meta
     notes: list[str] = []
@@ -404,7 +422,19 @@ def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | N
     scenarios = [_scenario("recorded", "recorded", scores, ds, kinds, events, thr, clear,
                            params, alt_params)]
 
-    if inject_specs:
+    injection: dict[str, Any] = {}
+    if inject_specs and raw is not None:
+        injection = {"path": "raw", "capture": raw.path, "config": raw.config_source}
+        notes.append(f"faults injected into the raw signal of {raw.path} and replayed "
+                     f"through the daemon pipeline (config: {raw.config_source})")
+        scenarios += _raw_scenarios(bundle, ds, kinds, raw, inject_specs, thr, clear, params,
+                                    alt_params, seed, notes)
+    elif inject_specs:
+        injection = {"path": "features"}
+        notes.append("faults injected on feature windows (no raw capture used)")
+        if any(isinstance(s, ChannelSpec) for s in inject_specs):
+            notes.append("a fault's CHANNEL is honoured on the raw path only; the feature "
+                         "path picks channels from the seed")
         normal = kinds == ""
         base = ds.select(normal)
         xb = x[normal]
@@ -424,14 +454,48 @@ def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | N
     info_d = {"path": str(ds.path) if ds.path else "", "asset": ds.asset,
               "n_windows": ds.n_windows, "content_sha256": ds.content_sha256,
               "time_span": [float(ds.window_start.min()), float(ds.window_end.max())]}
+    if injection:
+        info_d["injection"] = injection
     return Evaluation(info_b, info_d, params, thr, clear, scenarios, notes)
+
+
+def _raw_scenarios(bundle: Bundle, ds: Dataset, kinds: np.ndarray, raw: RawCapture,
+                   specs: Sequence[InjectSpec], thr: float, clear: float,
+                   params: DetectorParams, alt_params: Sequence[DetectorParams], seed: int,
+                   notes: list[str]) -> list[Scenario]:
+    """The raw path: per spec, faults written into the capture on the dataset's normal
+    windows, replayed, scored and judged like the feature path."""
+    meta = bundle.meta
+    normal = kinds == ""
+    base = ds.select(normal)
+    channels = list(dict.fromkeys(n.split(".", 1)[0] for n in meta.feature_names))
+    sigma = capture_sigma(raw, channels)
+    notes.append("raw fault sizes in sigma of each channel's signal over the capture: " +
+                 ", ".join(f"{c} {s:.4g}" for c, s in sigma.items()))
+    out: list[Scenario] = []
+    for spec in specs:
+        r = inject_and_replay(raw, meta.feature_names, base.window_start, base.window_end,
+                              spec, sigma, seed=seed)
+        if r.missing:
+            notes.append(f"{spec.name}: {r.missing} dataset window(s) were not scored in "
+                         "the replay (incomplete or a sensor-health check); left out")
+        keep = np.isin(time_keys(base.window_start), time_keys(r.window_start))
+        sub = base.select(keep)
+        sub = dataclasses.replace(sub, window_start=r.window_start, window_end=r.window_end)
+        ievents = [TruthEvent(spec.name, "injected", onset, first, last)
+                   for first, last, onset in r.events]
+        where = f", {spec.channel}" if isinstance(spec, ChannelSpec) else ""
+        label = f"{spec.name} {spec.severity:g} sigma x {spec.length} w raw{where}"
+        out.append(_scenario(f"inject:{label}", "injected", _score(bundle, r.features), sub,
+                             r.kinds, ievents, thr, clear, params, alt_params))
+    return out
 
 
 # --- CLI --------------------------------------------------------------------------------
 
 def _inject_type(text: str) -> InjectSpec:
     try:
-        return parse_inject(text)
+        return parse_raw_inject(text)
     except ValueError as exc:
         raise argparse.ArgumentTypeError(str(exc)) from exc
 
@@ -444,9 +508,17 @@ def add_evaluate_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--labels", help="JSON list of fault spans {asset, kind, start, end, "
                         "class} (default: the dataset's own labels, if any)")
     parser.add_argument("--inject", type=_inject_type, nargs="+", action="extend",
-                        default=[], metavar="KIND[:SIGMA[:WINDOWS]]",
+                        default=[], metavar="KIND[:SIGMA[:WINDOWS[:CHANNEL]]]",
                         help="inject synthetic faults into normal windows: step, drift, "
-                             "noise, stuck, spike")
+                             "noise, stuck, spike (into the raw signal when the dataset "
+                             "has a raw capture)")
+    parser.add_argument("--raw", metavar="FILE", help="the raw capture recorded with the "
+                        "dataset (default: <dataset>.raw.jsonl beside it, if present)")
+    parser.add_argument("--config", "-c", metavar="FILE", help="the daemon config to rebuild "
+                        "the pipeline for raw injection (default: from the dataset manifest)")
+    parser.add_argument("--inject-on", choices=("auto", "raw", "features"), default="auto",
+                        help="where to inject: the raw signal, the feature windows, or raw "
+                             "when a capture and a pipeline are available (default)")
     parser.add_argument("--report", help="directory for report.json and report.png")
     parser.add_argument("--raise-k", type=int, default=d.raise_k)
     parser.add_argument("--raise-n", type=int, default=d.raise_n)
@@ -469,8 +541,11 @@ def cmd_evaluate(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
     bundle = load_bundle(args.bundle)
     ds = read_dataset(args.dataset)
     spans = load_labels(args.labels) if args.labels else None
+    raw, why = _raw_capture(args, ds, bundle) if args.inject else (None, "")
     result = evaluate(bundle, ds, spans=spans, inject_specs=list(args.inject), params=params,
-                      seed=args.seed)
+                      seed=args.seed, raw=raw)
+    if why:
+        result.notes.append(why)
     print(format_summary(result), file=stream)
     if args.report:
         written = write_report(result, args.report)
@@ -478,3 +553,40 @@ def cmd_evaluate(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
         print(f"plot: {written.png_path}" if written.png_path else f"plot skipped: "
               f"{written.plot_note}", file=stream)
     return 0
+
+
+def _raw_capture(args: argparse.Namespace, ds: Dataset, bundle: Bundle
+                 ) -> tuple[RawCapture | None, str]:
+    """The raw capture and pipeline for raw injection, or None and why not (auto mode).
+
+    `--inject-on raw` (or an explicit `--raw`) makes a missing piece an error.
+    """
+    from agent.capture import read_capture
+    from agent.commission.record import RAW_NAME
+    from agent.config import load_config
+
+    mode = getattr(args, "inject_on", "auto")
+    if mode == "features":
+        return None, ""
+    strict = mode == "raw" or bool(getattr(args, "raw", None))
+    dpath = Path(args.dataset)
+    path = Path(args.raw) if getattr(args, "raw", None) else \
+        dpath.parent / f"{dpath.name}.{RAW_NAME}"
+    if not path.is_file():
+        if strict:
+            raise DatasetError(f"raw capture {path}: not found (record with --raw, or pass "
+                               "--raw FILE)")
+        return None, f"no raw capture at {path}: faults were injected on feature windows"
+    try:
+        if getattr(args, "config", None):
+            cfg, source = load_config(args.config), str(args.config)
+        else:
+            cfg, source = config_from_manifest(ds.manifest, ds.feature_names), \
+                "dataset manifest"
+        cfg = replay_config(cfg, ds.asset or bundle.meta.asset)
+    except DatasetError as exc:
+        if strict:
+            raise
+        return None, f"raw capture {path} not used ({exc}): faults were injected on " \
+                     "feature windows"
+    return RawCapture(cfg, list(read_capture(path)), str(path), source), ""
