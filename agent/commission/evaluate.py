@@ -576,7 +576,7 @@ def _raw_capture(args: argparse.Namespace, ds: Dataset, bundle: Bundle
         if strict:
             raise DatasetError(f"raw capture {path}: not found (record with --raw, or pass "
                                "--raw FILE)")
-        return None, f"no raw capture at {path}: faults were injected on feature windows"
+        return None, f"raw path not used: no capture at {path} (record --raw writes one)"
     try:
         if getattr(args, "config", None):
             cfg, source = load_config(args.config), str(args.config)
@@ -587,6 +587,5 @@ def _raw_capture(args: argparse.Namespace, ds: Dataset, bundle: Bundle
     except DatasetError as exc:
         if strict:
             raise
-        return None, f"raw capture {path} not used ({exc}): faults were injected on " \
-                     "feature windows"
+        return None, f"raw path not used: {exc}"
     return RawCapture(cfg, list(read_capture(path)), str(path), source), ""

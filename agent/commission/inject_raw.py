@@ -23,6 +23,8 @@ sigma = the channel's standard deviation over the whole capture (its own units):
     stuck   every sample replaced by the channel's last value before the span (s unused)
     spike   one sample, chosen from the seed among those in the span, +s*sigma; the
             event is that sample's instant, so only the windows holding it are faulty
+            (with hopping windows that is length/hop windows, which a k-of-n rule
+            may then raise on)
 
 A sample's time is the decoder's: the payload's `ts` (plus i/rate within a batch) or
 the arrival time when there is none (always for `text`). Every changed message is
