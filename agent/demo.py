@@ -17,7 +17,6 @@ Parts, all started and stopped here (no process is left behind):
 from __future__ import annotations
 
 import argparse
-import dataclasses
 import hashlib
 import json
 import logging
@@ -42,16 +41,27 @@ DEMO_DIR = Path(__file__).resolve().parent.parent / "config" / "demo"
 TRAIN_NORMAL_S = 3600.0
 
 
-@dataclasses.dataclass
 class SimClock:
-    """Simulated time running `speed` times faster than the wall clock from `origin`."""
+    """Simulated time running `speed` times faster than the wall clock.
 
-    origin: float
-    speed: float
-    _w0: float = dataclasses.field(default_factory=time.monotonic)
+    `anchor(t)` (called once, as the simulator sends its first message) pins simulated
+    time `t` to that wall-clock instant, so arrival-time channels (`text`) are stamped in
+    step with the simulator's own timestamps; until then it runs from `origin`.
+    """
+
+    def __init__(self, origin: float, speed: float) -> None:
+        self.speed = speed
+        self._base = (origin, time.monotonic())  # replaced whole: readers see one pair
+        self._anchored = False
+
+    def anchor(self, sim_t: float) -> None:
+        if not self._anchored:
+            self._base = (sim_t, time.monotonic())
+            self._anchored = True
 
     def __call__(self) -> float:
-        return self.origin + (time.monotonic() - self._w0) * self.speed
+        origin, w0 = self._base
+        return origin + (time.monotonic() - w0) * self.speed
 
 
 # -- broker -------------------------------------------------------------------------
@@ -121,18 +131,28 @@ class DemoBroker:
 
 # -- models ---------------------------------------------------------------------------
 
-def demo_config(state_dir: Path, port: int, models: dict[str, Path] | None = None) -> Config:
-    """`config/demo/watchkeep.yaml` with the demo's broker port, state dir and bundles."""
+Models = dict[str, dict[str, Path]]  # asset -> mode -> bundle directory
+
+
+def demo_config(state_dir: Path, port: int, models: Models | None = None) -> Config:
+    """`config/demo/watchkeep.yaml` with the demo's broker port, state dir and bundles
+    (the asset's `bundle`, or each mode's own for assets with operating modes)."""
     doc = yaml.safe_load((DEMO_DIR / "watchkeep.yaml").read_text(encoding="utf-8"))
     doc["state_dir"] = str(state_dir)
     doc["local_broker"] = {**doc.get("local_broker", {}), "port": port}
     doc["upstream_broker"] = {**doc.get("upstream_broker", {}), "port": port}
     doc["http"] = {**doc.get("http", {}), "port": 0}
-    if models:
-        for a in doc["assets"]:
-            if a["name"] in models:
-                a["bundle"] = str(models[a["name"]])
+    for a in doc["assets"]:
+        for mode, path in (models or {}).get(a["name"], {}).items():
+            if "modes" in a:
+                a["modes"]["states"][mode]["bundle"] = str(path)
+            else:
+                a["bundle"] = str(path)
     return parse_config(doc, DEMO_DIR, DEMO_DIR / "watchkeep.yaml")
+
+
+def _modes_of(a: Any) -> list[str]:
+    return [m.name for m in a.modes.states] if a.modes is not None else ["default"]
 
 
 def _fingerprint(train_s: float) -> str:
@@ -142,9 +162,9 @@ def _fingerprint(train_s: float) -> str:
     return h.hexdigest()[:16]
 
 
-def ensure_models(state_dir: Path, out: TextIO, normal_s: float = TRAIN_NORMAL_S
-                  ) -> dict[str, Path]:
-    """Train demo models from simulated normal running, unless this config has them."""
+def ensure_models(state_dir: Path, out: TextIO, normal_s: float = TRAIN_NORMAL_S) -> Models:
+    """Train demo models (per asset, and per mode where the asset has modes) from
+    simulated normal running, unless this config already has them."""
     from agent.commission.dataset import DatasetWriter
     from agent.commission.replay import Replayer
     from agent.commission.train import train_bundle
@@ -154,9 +174,10 @@ def ensure_models(state_dir: Path, out: TextIO, normal_s: float = TRAIN_NORMAL_S
     models_dir = state_dir / "models"
     stamp = models_dir / "fingerprint"
     cfg = demo_config(state_dir, 1883)
-    paths = {a.name: models_dir / a.name for a in cfg.assets}
+    paths: Models = {a.name: {m: models_dir / a.name / m for m in _modes_of(a)}
+                     for a in cfg.assets}
     if stamp.is_file() and stamp.read_text().strip() == _fingerprint(normal_s) and all(
-            (p / "model.json").is_file() for p in paths.values()):
+            (p / "model.json").is_file() for per in paths.values() for p in per.values()):
         return paths
     t0 = time.monotonic()
     print(f"first run: training demo models from {normal_s / 60:.0f} minutes of simulated "
@@ -174,9 +195,10 @@ def ensure_models(state_dir: Path, out: TextIO, normal_s: float = TRAIN_NORMAL_S
     rep.finish()
     for name, w in writers.items():
         ds = w.close()
-        rep_ = train_bundle(ds, paths[name], asset=name, seed=0)
-        print(f"  {name}: {w.n_windows} windows, threshold {rep_.threshold:.3g}", file=out,
-              flush=True)
+        for mode, path in paths[name].items():
+            rep_ = train_bundle(ds, path, asset=name, mode=mode, seed=0)
+            print(f"  {name} {mode}: {rep_.n_windows} windows, threshold "
+                  f"{rep_.threshold:.3g}", file=out, flush=True)
     models_dir.mkdir(parents=True, exist_ok=True)
     stamp.write_text(_fingerprint(normal_s) + "\n")
     print(f"  trained in {time.monotonic() - t0:.0f} s", file=out, flush=True)
@@ -240,6 +262,10 @@ def event_line(ev: dict[str, Any]) -> str:
                  f"({100 * top.get('share', 0):.0f}%)")
     elif kind == "anomaly.cleared":
         extra = f" after {d.get('duration_s', 0):.0f} s (peak {d.get('peak_score', 0):.3g})"
+    elif kind in ("sensor.fault", "sensor.recovered"):
+        extra = f" channel={d.get('channel')} {','.join(d.get('reasons', []))}"
+    elif kind == "limit.exceeded":
+        extra = f" {d.get('feature', '')} zone={d.get('zone', '')} value={d.get('value', '')}"
     return f"  {t} {ev.get('subject', '?'):<6} {kind}{extra}  id={ev.get('id', '')[:8]}"
 
 
@@ -272,37 +298,53 @@ def render(status: dict[str, Any], sim_now: float, left_s: float, speed: float,
 # -- summary --------------------------------------------------------------------------
 
 def summarise(events: list[dict[str, Any]], labels: list[Any]) -> dict[str, Any]:
-    """Match raised events to the scenario's faults: detection delay and false alarms."""
+    """Match events to the scenario's faults: a machine fault is detected by an
+    `anomaly.raised`, a sensor fault by a `sensor.fault` on its channel; a raise that
+    matches no machine fault is a false alarm (whether or not a sensor fault is under it)."""
     from datetime import datetime
 
     def ts(s: str) -> float:
         return datetime.fromisoformat(s.replace("Z", "+00:00")).timestamp()
 
+    def when(e: dict[str, Any]) -> float:
+        win = e.get("data", {}).get("window")
+        return ts(win["end"]) if win else ts(e["time"])
+
     raised = [e for e in events if e.get("type", "").endswith("anomaly.raised")]
+    sensor = [e for e in events if e.get("type", "").endswith("sensor.fault")]
     used: set[int] = set()
     faults = []
     for lb in labels:
         end = lb.end if lb.end is not None else float("inf")
-        hit = next((i for i, e in enumerate(raised) if e["subject"] == lb.asset
-                    and lb.start <= ts(e["data"]["window"]["end"]) <= end + 30), None)
-        if hit is not None:
+        machine = str(lb.fault_class) == "machine"
+        pool = raised if machine else sensor
+        hit = next((i for i, e in enumerate(pool) if e["subject"] == lb.asset
+                    and (machine or e["data"].get("channel") == lb.channel)
+                    and lb.start <= when(e) <= end + 30
+                    and (not machine or i not in used)), None)
+        if hit is not None and machine:
             used.add(hit)
-        delay = (ts(raised[hit]["data"]["window"]["end"]) - lb.start) if hit is not None \
-            else None
+        delay = when(pool[hit]) - lb.start if hit is not None else None
         faults.append({"asset": lb.asset, "kind": lb.kind, "class": str(lb.fault_class),
-                       "detected": hit is not None,
-                       "delay_s": round(delay, 1) if delay is not None else None})
+                       "channel": lb.channel, "detected": hit is not None,
+                       "delay_s": round(delay, 1) if delay is not None else None,
+                       "by": ("anomaly.raised" if machine else "sensor.fault")
+                       if hit is not None else None})
     false_alarms = [e["subject"] for i, e in enumerate(raised) if i not in used]
-    return {"events": len(events), "raised": len(raised), "faults": faults,
-            "false_alarms": len(false_alarms), "false_alarm_assets": false_alarms}
+    return {"events": len(events), "raised": len(raised), "sensor_faults": len(sensor),
+            "faults": faults, "false_alarms": len(false_alarms),
+            "false_alarm_assets": false_alarms}
 
 
 def format_summary(s: dict[str, Any]) -> str:
     lines = ["", "summary",
-             f"  events received: {s['events']} ({s['raised']} anomaly.raised)"]
+             f"  events received: {s['events']} ({s['raised']} anomaly.raised, "
+             f"{s['sensor_faults']} sensor.fault)"]
     for f in s["faults"]:
-        what = f"detected after {f['delay_s']:.0f} s" if f["detected"] else "not detected"
-        lines.append(f"  {f['class']} fault {f['kind']} on {f['asset']}: {what}")
+        what = (f"detected by {f['by']} after {f['delay_s']:.0f} s" if f["detected"]
+                else "not detected")
+        where = f" ({f['channel']})" if f.get("channel") else ""
+        lines.append(f"  {f['class']} fault {f['kind']} on {f['asset']}{where}: {what}")
     lines.append(f"  false alarms: {s['false_alarms']}"
                  + (f" ({', '.join(s['false_alarm_assets'])})" if s["false_alarms"] else ""))
     return "\n".join(lines)
@@ -344,7 +386,8 @@ def run_demo(duration_s: float, state_dir: Path, out: TextIO, *,
             def _sim() -> None:
                 try:
                     publish(simulate(scenario, start_unix=start), host="127.0.0.1",
-                            port=broker.port, speed=speed, stop=stop, sim_origin=start)
+                            port=broker.port, speed=speed, stop=stop, sim_origin=start,
+                            on_sent=lambda msg: clock.anchor(msg[0]))
                 except BaseException as exc:  # reported after the run
                     sim_err.append(exc)
 

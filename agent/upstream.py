@@ -325,7 +325,7 @@ class Upstream:
         try:
             if getattr(reason, "is_failure", False) and self.last_error is None:
                 self.last_error = f"disconnected: {reason}"
-            self._set_disconnected()
+            self._set_disconnected(log=not self._stop_net.is_set())  # our own stop: quiet
         except Exception:
             self._errors.inc()
 

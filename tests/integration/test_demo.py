@@ -52,7 +52,7 @@ def test_short_demo_detects_the_bearing_fault(tmp_path: Path, state_dir: Path,
     """`watchkeep demo --duration 20` exits 0, reports the fault detected, no child left."""
     summary = tmp_path / "summary.json"
     proc = subprocess.Popen(
-        [WATCHKEEP, "demo", "--duration", "20", "--plain", "--train-minutes", "20",
+        [WATCHKEEP, "demo", "--duration", "20", "--plain", "--train-minutes", "40",
          "--broker", broker,
          "--state-dir", str(state_dir), "--summary-json", str(summary)],
         stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True,
