@@ -31,6 +31,7 @@ from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 import numpy as np
+from prometheus_client import Counter, Gauge
 
 from agent.bundle import Bundle, load_bundle
 from agent.config import FEATURES, AssetConfig, Config
@@ -236,6 +237,24 @@ class AssetRuntime:
         return self.detector.state
 
 
+@dataclass(frozen=True)
+class _AssetMetrics:
+    """One asset's metric children, looked up once (`labels()` is not free per window)."""
+
+    closed: Counter
+    scored: Counter
+    late: Counter
+    score: Gauge
+    threshold: Gauge
+    anomalous: Gauge
+
+    @classmethod
+    def of(cls, m: Metrics, asset: str) -> _AssetMetrics:
+        return cls(m.windows_closed.labels(asset), m.windows_scored.labels(asset),
+                   m.late_samples.labels(asset), m.score.labels(asset),
+                   m.threshold.labels(asset), m.anomalous.labels(asset))
+
+
 @dataclass
 class TickStats:
     windows_closed: int = 0
@@ -259,22 +278,14 @@ class Pipeline:
         self.observer = observer
         self.source = Source(cfg.site, cfg.gateway)
         self.prefix = cfg.topic_prefix
-        m = metrics
-        self._m = {rt.cfg.name: {
-            "closed": m.windows_closed.labels(rt.cfg.name),
-            "scored": m.windows_scored.labels(rt.cfg.name),
-            "late": m.late_samples.labels(rt.cfg.name),
-            "score": m.score.labels(rt.cfg.name),
-            "threshold": m.threshold.labels(rt.cfg.name),
-            "anomalous": m.anomalous.labels(rt.cfg.name),
-        } for rt in runtimes}
+        self._m = {rt.cfg.name: _AssetMetrics.of(metrics, rt.cfg.name) for rt in runtimes}
         for rt in runtimes:
             self._publish_model_gauges(rt)
 
     def _publish_model_gauges(self, rt: AssetRuntime) -> None:
         self.metrics.model_loaded.labels(rt.cfg.name).set(1 if rt.bundle else 0)
         if rt.bundle is not None:
-            self._m[rt.cfg.name]["threshold"].set(rt.bundle.meta.threshold)
+            self._m[rt.cfg.name].threshold.set(rt.bundle.meta.threshold)
 
     def _skip(self, rt: AssetRuntime, reason: str, n: int = 1) -> None:
         if n:
@@ -294,14 +305,14 @@ class Pipeline:
                 if got is not None:
                     late += asm.add(ci, got[0], got[1], buf.last_arrival)
             if late:
-                self._m[rt.cfg.name]["late"].inc(late)
+                self._m[rt.cfg.name].late.inc(late)
             if rt.started_s is None:
                 rt.started_s = now
             self._check_stale(rt, ai, now, out, stats)
             res = asm.close_due(now)
             self._skip(rt, "no_data", res.empty_skipped)
             for w in res.windows:
-                self._m[rt.cfg.name]["closed"].inc()
+                self._m[rt.cfg.name].closed.inc()
                 stats.windows_closed += 1
                 pending.append(self._judge_window(rt, w, out, stats))
         if pending:
@@ -541,9 +552,9 @@ class Pipeline:
               sq: np.ndarray, out: list[OutMessage], stats: TickStats) -> None:
         meta = bundle.meta
         m = self._m[rt.cfg.name]
-        m["scored"].inc()
-        m["score"].set(score)
-        m["threshold"].set(meta.threshold)
+        m.scored.inc()
+        m.score.set(score)
+        m.threshold.set(meta.threshold)
         stats.windows_scored += 1
         rt.last_score = score
         rt.last_window_end = w.end
@@ -575,7 +586,7 @@ class Pipeline:
                         id_key=f"{w.start:.3f}")
             rt.raised_at = None
             stats.events += 1
-        m["anomalous"].set(1 if rt.state is State.ANOMALOUS else 0)
+        m.anomalous.set(1 if rt.state is State.ANOMALOUS else 0)
         state_topic = f"{self.prefix}/assets/{name}/state"
         state = {"asset": name, "state": rt.state.value, "mode": mode,
                  "score": round(score, 6), "threshold": meta.threshold,
