@@ -68,6 +68,12 @@ def window_reasons(limits: HealthLimits, values: np.ndarray, ts: np.ndarray
     if values.size == 0:
         return reasons, detail
     finite = np.isfinite(values)
+    if limits.min_value is None and limits.max_value is None and limits.max_rate_per_s is None:
+        # Only the non-finite check is on: two numpy calls instead of a copy and four.
+        if not finite.all():
+            reasons.append(Reason.NON_FINITE)
+            detail["non_finite_samples"] = float(values.size - int(finite.sum()))
+        return reasons, detail
     if not finite.all():
         reasons.append(Reason.NON_FINITE)
         detail["non_finite_samples"] = float(values.size - int(finite.sum()))

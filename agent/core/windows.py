@@ -156,17 +156,20 @@ class WindowAssembler:
                 out.empty_skipped += target - k
                 self._advance(target)
                 continue
-            vals, tss, cov = [], [], []
+            vals, tss, cov, ends = [], [], [], []
             for c in range(len(self._ts)):
                 t = self._ts[c]
                 lo, hi = np.searchsorted(t, [start, end], side="left")
                 tss.append(t[lo:hi])
                 vals.append(self._vals[c][lo:hi])
                 cov.append((hi - lo) / self._expected[c] if self._expected[c] else 1.0)
+                ends.append(int(hi))
             complete = all(c >= self.cfg.min_coverage for c in cov)
             out.windows.append(ClosedWindow(start, end, tuple(vals), tuple(tss), tuple(cov),
                                             complete))
-            self._advance(k + 1)
+            # Tumbling: the next window starts where this one ended, so the cut points
+            # are already known.
+            self._advance(k + 1, ends if self._span_k == 1 else None)
         return out
 
     def _bounds(self, k: int) -> tuple[float, float]:
@@ -186,13 +189,15 @@ class WindowAssembler:
                 self._ts[c] = t[order]
                 self._vals[c] = self._vals[c][order]
 
-    def _advance(self, new_k: int) -> None:
-        """Make window `new_k` the earliest open one; drop samples before its start."""
+    def _advance(self, new_k: int, cuts: list[int] | None = None) -> None:
+        """Make window `new_k` the earliest open one; drop samples before its start
+        (`cuts`: the per-channel index of the first sample at or after it, if known)."""
         self._next_k = new_k
         new_start = new_k * self.cfg.hop_s
         for c, t in enumerate(self._ts):
             if t.size:
-                cut = int(np.searchsorted(t, new_start, side="left"))
+                cut = cuts[c] if cuts is not None else \
+                    int(np.searchsorted(t, new_start, side="left"))
                 if cut:
                     self._ts[c] = t[cut:]
                     self._vals[c] = self._vals[c][cut:]
