@@ -179,7 +179,7 @@ class Daemon:
         self.ingest = Ingest(cfg, self.handler, self.metrics, self.log, clock=self.clock)
         self.loop = PipelineLoop(self.pipeline, cfg.tick_s, self.metrics, self.notifier,
                                  self.log, clock=self.clock)
-        self.loop.after_tick = self._share_close_times
+        self.loop.after_tick = self._after_tick
         self.upstream.start()
         self.loop.start()
         self.ingest.start()
@@ -194,9 +194,11 @@ class Daemon:
                          http=f"{cfg.http.host}:{self.http.port}" if self.http else "off"))
         self.notifier.ready(summary)
 
-    def _share_close_times(self) -> None:
-        """Tell ingest the sample time that closes each asset's next window (so it can
-        wake the pipeline loop); runs on the pipeline thread after every tick."""
+    def _after_tick(self) -> None:
+        """On the pipeline thread after every tick: move ingest's counts into the
+        metrics, and tell ingest the sample time that closes each asset's next window
+        (so it can wake the pipeline loop)."""
+        self.handler.flush_counts()
         times = []
         for rt in self.pipeline.runtimes:
             start, w = rt.assembler.next_start, rt.cfg.window

@@ -127,6 +127,7 @@ class Recorder:
             while True:
                 now_m = time.monotonic()
                 self.pipeline.tick(self.clock())
+                self.handler.flush_counts()
                 if progress is not None and now_m - last_print >= 1.0:
                     last_print = now_m
                     self._progress(progress, max(0.0, t_end - now_m), ingest)
@@ -140,6 +141,7 @@ class Recorder:
         # Windows whose data has all arrived close once the timeout passes.
         w = self.asset.window
         self.pipeline.tick(self.clock() + w.timeout_s + w.length_s)
+        self.handler.flush_counts()
         if progress is not None:
             self._progress(progress, 0.0, ingest, final=True)
         return self.writer.close()

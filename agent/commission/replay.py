@@ -81,6 +81,7 @@ class Replayer:
             self._next_tick = t
         while self._next_tick <= t:
             self.pipeline.tick(self._next_tick)
+            self.handler.flush_counts()
             self._next_tick += self.cfg.tick_s
         self.now = t
 
