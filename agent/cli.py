@@ -85,6 +85,19 @@ def build_parser() -> argparse.ArgumentParser:
     status_cmd.add_status_arguments(st)
     st.set_defaults(func=status_cmd.cmd_status)
 
+    from agent import rebaseline_cmd as rbc
+
+    for name, helptext, add, run in (
+            ("rebaseline", "re-learn an asset's normal in the running daemon",
+             rbc.add_rebaseline_arguments, rbc.cmd_rebaseline),
+            ("models", "list an asset's model versions (or --adopt a bundle)",
+             rbc.add_models_arguments, rbc.cmd_models),
+            ("rollback", "switch an asset back to an earlier model version",
+             rbc.add_rollback_arguments, rbc.cmd_rollback)):
+        cp = sub.add_parser(name, help=helptext)
+        add(cp)
+        cp.set_defaults(func=run)
+
     chk = sub.add_parser("check-config", help="check a config file and summarise it")
     chk.add_argument("config")
     chk.set_defaults(func=cmd_check_config)

@@ -19,6 +19,7 @@ import yaml
 
 from agent.core.detector import DetectorParams
 from agent.errors import ConfigError, ConfigProblem
+from agent.rebaseline_config import RebaselineConfig, parse_rebaseline
 
 FEATURES = ("mean", "std", "min", "max", "rms", "peak_to_peak", "crest_factor",
             "skewness", "kurtosis")
@@ -253,6 +254,7 @@ class Config:
     http: HttpConfig
     assets: tuple[AssetConfig, ...]
     source: Path | None = None
+    rebaseline: RebaselineConfig | None = None  # None: defaults under state_dir
 
     def asset(self, name: str) -> AssetConfig:
         for a in self.assets:
@@ -704,7 +706,7 @@ def _asset(r: _Reader, node: Any, path: str) -> AssetConfig | None:
 
 
 TOP_KEYS = ("site", "gateway", "topic_prefix", "state_dir", "local_broker", "upstream_broker",
-            "ingest", "pipeline", "outbox", "http", "publish", "assets")
+            "ingest", "pipeline", "outbox", "http", "publish", "assets", "rebaseline")
 
 
 def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config:
@@ -763,6 +765,7 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
                       r.get(h, "host", "http", "str", "127.0.0.1"),
                       r.get(h, "port", "http", "int", 9310, lambda v: 0 <= v < 65536,
                             "a TCP port 0-65535 (0 picks a free one)"))
+    rebaseline = parse_rebaseline(r, top.get("rebaseline"), "rebaseline", state_dir)
     indexed: list[tuple[int, AssetConfig]] = []
     anode = top.get("assets")
     if not isinstance(anode, list) or not anode:
@@ -785,7 +788,7 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
     return Config(site=site, gateway=gateway, topic_prefix=prefix, state_dir=state_dir,
                   local_broker=local, upstream_broker=upstream, ingest=ingest, tick_s=tick,
                   publish_scores=scores, outbox=outbox, http=http, assets=tuple(assets),
-                  source=source)
+                  source=source, rebaseline=rebaseline)
 
 
 def _cross_checks(r: _Reader, assets: list[tuple[int, AssetConfig]]) -> None:

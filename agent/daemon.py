@@ -26,6 +26,7 @@ from agent.bundle import Bundle, load_bundle
 from agent.config import AssetConfig, Config
 from agent.errors import BundleError
 from agent.ingest import Buffers, Ingest, IngestHandler
+from agent.learning import RebaselineManager
 from agent.logs import kv
 from agent.metrics import HttpServer, Metrics, TickGauges
 from agent.notify import MAX_WATCHDOG_INTERVAL_S, Notifier
@@ -155,6 +156,7 @@ class Daemon:
         self._stopped = threading.Event()
         self._reloader: Reloader | None = None
         self.http: HttpServer | None = None
+        self.rebaseline_worker_env: dict[str, str] = {}  # extra env for the training worker
 
     def start(self) -> None:
         cfg = self.cfg
@@ -174,7 +176,12 @@ class Daemon:
             rt.sequence = stored.get(rt.cfg.name, rt.sequence)
         self.upstream = Upstream(cfg, self.outbox, self.metrics, self.log, clock=self.clock)
         sink: Sink = self._sink_factory(self.upstream) if self._sink_factory else self.outbox
-        self.pipeline = Pipeline(cfg, self.buffers, sink, self.metrics, self.log, runtimes)
+        # Re-learning (agent/learning.py): holds back a learning asset's anomaly events in
+        # front of the sink and collects its new-normal windows from the observer.
+        self.rebaseline = RebaselineManager(self, worker_env=self.rebaseline_worker_env)
+        sink = self.rebaseline.wrap_sink(sink)
+        self.pipeline = Pipeline(cfg, self.buffers, sink, self.metrics, self.log, runtimes,
+                                 observer=self.rebaseline.observe)
         self.handler = IngestHandler(cfg, self.buffers, self.metrics, self.log)
         self.ingest = Ingest(cfg, self.handler, self.metrics, self.log, clock=self.clock)
         self.loop = PipelineLoop(self.pipeline, cfg.tick_s, self.metrics, self.notifier,
@@ -187,6 +194,7 @@ class Daemon:
             self.http = HttpServer(cfg.http.host, cfg.http.port, self.registry,
                                    healthy=self.healthy, ready=self.ready, status=self.status)
             self.http.start()
+        self.rebaseline.start()
         loaded = sum(1 for rt in runtimes if rt.bundle is not None)
         summary = f"{len(runtimes)} assets, {loaded} models loaded"
         self.log.info(kv("watchkeep started", version=__version__, assets=len(runtimes),
@@ -238,6 +246,7 @@ class Daemon:
         doc["local_connected"] = self.ingest.connected.is_set()
         doc["upstream_connected"] = self.upstream.connected.is_set()
         doc["outbox"] = self.outbox.status()
+        self.rebaseline.annotate(doc)
         return doc
 
     def stop(self) -> None:
@@ -247,6 +256,7 @@ class Daemon:
         self._stopped.set()
         self.notifier.stopping()
         self.log.info("watchkeep stopping")
+        self.rebaseline.stop()
         self.ingest.stop()
         self.loop.stop()
         self.upstream.stop()

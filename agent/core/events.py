@@ -29,6 +29,9 @@ class EventType(StrEnum):
     SENSOR_RECOVERED = "sensor.recovered"
     LIMIT_EXCEEDED = "limit.exceeded"
     MODEL_UPDATED = "model.updated"
+    # A rebaseline request and its outcomes other than a new model (requested, refused,
+    # rejected, failed, cancelled); agent/learning.py.
+    MODEL_REBASELINE = "model.rebaseline"
 
     @property
     def full(self) -> str:

@@ -33,7 +33,7 @@ def shipped_configs() -> list[Path]:
 
 FEATURE_LIST = "mean, std, min, max, rms, peak_to_peak, crest_factor, skewness, kurtosis"
 TOP_KEYS = ("site, gateway, topic_prefix, state_dir, local_broker, upstream_broker, ingest, "
-            "pipeline, outbox, http, publish, assets")
+            "pipeline, outbox, http, publish, assets, rebaseline")
 CHANNEL_KEYS = "topic, decoder, rate_hz, features, unit, ts_field, value_field, values_field, " \
     "rate_field, spectrum, min, max, stale_s, flatline_windows, max_rate_per_s, limits"
 

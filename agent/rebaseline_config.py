@@ -1,0 +1,72 @@
+"""The `rebaseline:` section of the config (read by `agent.config.parse_config`).
+
+Kept apart from config.py so the loader only calls `parse_rebaseline`; it takes the
+loader's reader (`mapping`, `get`, `path`, `bad`) so problems are reported with the
+others, at their key paths.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from agent.models import DEFAULT_KEEP
+from agent.rebaseline import (
+    DEFAULT_FALSE_ALARM_BUDGET,
+    DEFAULT_MAX_SHIFT,
+    DEFAULT_REHEARSAL_SIZE,
+    DEFAULT_REHEARSAL_TOLERANCE,
+    MIN_NEW_WINDOWS,
+)
+
+KEYS = ("enabled", "admin_socket", "models_dir", "windows", "false_alarm_budget",
+        "rehearsal_size", "rehearsal_tolerance", "max_shift", "versions_kept")
+DEFAULT_WINDOWS = 360  # 30 minutes of 5 s windows: long enough to see a duty cycle
+
+
+@dataclass(frozen=True)
+class RebaselineConfig:
+    """Settings of re-learning on the gateway (see config/example.yaml)."""
+
+    admin_socket: Path
+    models_dir: Path
+    enabled: bool = True
+    windows: int = DEFAULT_WINDOWS
+    false_alarm_budget: float = DEFAULT_FALSE_ALARM_BUDGET
+    rehearsal_size: int = DEFAULT_REHEARSAL_SIZE
+    rehearsal_tolerance: float = DEFAULT_REHEARSAL_TOLERANCE
+    max_shift: float = DEFAULT_MAX_SHIFT
+    versions_kept: int = DEFAULT_KEEP
+
+    @classmethod
+    def defaults(cls, state_dir: Path) -> RebaselineConfig:
+        return cls(admin_socket=state_dir / "admin.sock", models_dir=state_dir / "models")
+
+
+def parse_rebaseline(r: Any, node: Any, path: str, state_dir: Path) -> RebaselineConfig:
+    """Read the section at `path` with the loader's reader `r`; defaults for what is unset."""
+    d = r.mapping(node, path, KEYS)
+    sock = r.path(r.get(d, "admin_socket", path, "str", None)) or state_dir / "admin.sock"
+    if len(str(sock).encode()) > 107:  # sun_path holds 108 bytes with the final NUL
+        r.bad(f"{path}.admin_socket", "a path of at most 107 bytes (a unix socket limit)",
+              str(sock))
+    return RebaselineConfig(
+        admin_socket=sock,
+        models_dir=r.path(r.get(d, "models_dir", path, "str", None)) or state_dir / "models",
+        enabled=r.get(d, "enabled", path, "bool", True),
+        windows=r.get(d, "windows", path, "int", DEFAULT_WINDOWS,
+                      lambda v: v >= MIN_NEW_WINDOWS, f"an integer >= {MIN_NEW_WINDOWS}"),
+        false_alarm_budget=r.get(d, "false_alarm_budget", path, "num",
+                                 DEFAULT_FALSE_ALARM_BUDGET, lambda v: 0 <= v < 1,
+                                 "a fraction in [0, 1)"),
+        rehearsal_size=r.get(d, "rehearsal_size", path, "int", DEFAULT_REHEARSAL_SIZE,
+                             lambda v: 16 <= v <= 100_000, "an integer from 16 to 100000"),
+        rehearsal_tolerance=r.get(d, "rehearsal_tolerance", path, "num",
+                                  DEFAULT_REHEARSAL_TOLERANCE, lambda v: v >= 1,
+                                  "a ratio >= 1"),
+        max_shift=r.get(d, "max_shift", path, "num", DEFAULT_MAX_SHIFT, lambda v: v > 0,
+                        "a ratio > 0 (median old-model score of the new windows / threshold)"),
+        versions_kept=r.get(d, "versions_kept", path, "int", DEFAULT_KEEP,
+                            lambda v: 2 <= v <= 100, "an integer from 2 to 100"),
+    )

@@ -1,0 +1,215 @@
+"""Rebaseline in a running daemon over real brokers, driven through the admin socket.
+
+Invented plant (tests.helpers): a pump's temperature, current and pressure follow its
+load. The modification is a new impeller giving 0.8 bar more head at the same load
+(pressure no longer matches current and temperature); the genuine fault afterwards is
+the current fault of the helpers. Training data, bundles and events are all made here.
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import logging
+import math
+import os
+import signal
+import time
+from collections.abc import Iterator
+from contextlib import redirect_stdout
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+
+from agent.bundle import load_bundle
+from agent.cli import main
+from agent.commission.dataset import DatasetWriter, read_dataset
+from agent.commission.train import train_bundle
+from agent.config import load_config
+from agent.daemon import Daemon
+from agent.models import ModelStore
+from agent.rebaseline import reservoir
+from agent.rebaseline_worker import TEST_DELAY_ENV
+from tests.brokers import Broker, wait_for
+from tests.helpers import (
+    CHANNELS,
+    RATE_HZ,
+    Collector,
+    asset_doc,
+    feature_names,
+    loads,
+    publisher,
+    window_features,
+    write_config,
+)
+
+HEAD_BAR = 0.8
+
+
+def _signal(rng: np.random.Generator, load: float, n: int, head: float,
+            fault: float) -> dict[str, np.ndarray]:
+    return {"temp": 40 + 10 * load + rng.normal(0, 0.2, n),
+            "current": 20 * load + 8 * fault + rng.normal(0, 0.3 + 1.5 * fault, n),
+            "pressure": 3 + 2 * load + head + rng.normal(0, 0.05, n)}
+
+
+def _readings(t0: float, n_windows: int, seed: int, head: float = 0.0,
+              fault: float = 0.0) -> Iterator[tuple[str, bytes]]:
+    rng = np.random.default_rng(seed)
+    n = int(RATE_HZ)
+    for w, ld in enumerate(loads(rng, n_windows)):
+        sig = _signal(rng, float(ld), n, head, fault)
+        for i in range(n):
+            for c in CHANNELS:
+                yield (f"plant/P-1/{c}", json.dumps({"ts": round(t0 + w + i / RATE_HZ, 4),
+                                                     "value": float(sig[c][i])}).encode())
+
+
+def _commission(tmp: Path) -> ModelStore:
+    """Train P-1 on invented normal windows and adopt it into the model store."""
+    rng = np.random.default_rng(3)
+    w = DatasetWriter(tmp / "dataset", asset="P-1")
+    for i, ld in enumerate(rng.uniform(0.5, 1.0, 400)):
+        w.add(window_features(_signal(rng, float(ld), int(RATE_HZ), 0.0, 0.0)),
+              tuple(feature_names()), 1000.0 + i, 1001.0 + i, "default")
+    ds = read_dataset(w.close())
+    train_bundle(ds.path, tmp / "trained", asset="P-1", seed=0)
+    store = ModelStore(tmp / "state" / "models", keep=5)
+    names = load_bundle(tmp / "trained").meta.feature_names
+    store.adopt("P-1", "default", tmp / "trained", reservoir(ds.columns(names), names, 256))
+    return store
+
+
+@pytest.fixture
+def running(tmp_path: Path, broker: Broker, upstream_broker: Broker):
+    store = _commission(tmp_path)
+    link = store.active_link("P-1", "default")
+    cfg_path = write_config(tmp_path / "watchkeep.yaml", broker.port, upstream_broker.port,
+                            [asset_doc("P-1", link)], ingest={"subscriptions": ["plant/#"]},
+                            rebaseline={"windows": 60})
+    daemon = Daemon(load_config(cfg_path), logger=logging.getLogger("watchkeep.test"))
+    collector = Collector(upstream_broker.port, "watchkeep/testworks/gw1/#")
+    daemon.start()
+    wait_for(daemon.ingest.connected.is_set, what="local broker")
+    wait_for(daemon.upstream.connected.is_set, what="upstream broker")
+    pub = publisher(broker.port)
+    yield daemon, collector, pub, store, str(daemon.cfg.rebaseline.admin_socket)
+    pub.disconnect()
+    pub.loop_stop()
+    daemon.stop()
+    collector.close()
+
+
+def _cli(*argv: str) -> tuple[int, str]:
+    out = io.StringIO()
+    with redirect_stdout(out):
+        rc = main(list(argv))
+    return rc, out.getvalue()
+
+
+def _types(collector: Collector) -> list[str]:
+    return [e["type"].removeprefix("io.watchkeep.") for e in collector.events()]
+
+
+def _scored(daemon: Daemon) -> float:
+    return daemon.metrics.windows_scored.labels("P-1")._value.get()
+
+
+def _send(pub: Any, daemon: Daemon, msgs: Iterator[tuple[str, bytes]], n_windows: int) -> None:
+    before = _scored(daemon)
+    for topic, payload in msgs:
+        pub.publish(topic, payload, qos=0)
+    # The last window closes only when a later sample arrives, hence n - 1.
+    wait_for(lambda: _scored(daemon) >= before + n_windows - 1, timeout_s=30,
+             what=f"{n_windows} windows scored")
+
+
+def _event(collector: Collector, suffix: str, **match: Any) -> dict[str, Any] | None:
+    for e in collector.events():
+        if e["type"].endswith(suffix) and all(e["data"].get(k) == v for k, v in match.items()):
+            return e
+    return None
+
+
+def test_rebaseline_through_the_admin_socket(running) -> None:
+    """Modification raises with v1; `watchkeep rebaseline` learns it (events held, state
+    marked); v2 is quiet on it and still raises on a fault; a killed worker changes
+    nothing; `watchkeep rollback` restores v1 exactly."""
+    daemon, collector, pub, store, sock = running
+    t = float(math.floor(time.time()) - 150)
+    # 1. The modification with v1: raised (and published); back to the old pressure: cleared.
+    _send(pub, daemon, _readings(t, 15, seed=1, head=HEAD_BAR), 15)
+    t += 15
+    _send(pub, daemon, _readings(t, 10, seed=2), 10)
+    t += 10
+    wait_for(lambda: _types(collector)[-2:] == ["anomaly.raised", "anomaly.cleared"],
+             what="raised and cleared with the old model")
+    # 2. The technician says "this is the new normal".
+    rc, text = _cli("rebaseline", "--asset", "P-1", "--socket", sock, "--reason",
+                    "impeller trimmed, WO-4711")
+    assert rc == 0 and "collecting 60 windows" in text, text
+    req = wait_for(lambda: _event(collector, "model.rebaseline", phase="requested"),
+                   what="request event")
+    assert req["data"]["reason"] == "impeller trimmed, WO-4711"
+    assert req["data"]["requested_by"]["via"] == "admin-socket"
+    assert req["data"]["requested_by"]["pid"] == os.getpid()
+    n_before = len(collector.events())
+    _send(pub, daemon, _readings(t, 30, seed=3, head=HEAD_BAR), 30)
+    t += 30
+    learning = daemon.status()["assets"][0]["learning"]
+    assert learning["phase"] == "collecting" and learning["collected"] >= 29, learning
+    reg = daemon.registry
+    assert reg.get_sample_value("watchkeep_rebaseline_learning", {"asset": "P-1"}) == 1
+    held = reg.get_sample_value("watchkeep_rebaseline_held_events_total", {"asset": "P-1"})
+    assert held and held >= 1  # the old model raised on the new normal: held back
+    states = [s for s in collector.json("/state") if "learning" in s]
+    assert states and states[-1]["learning"]["phase"] == "collecting"
+    _send(pub, daemon, _readings(t, 35, seed=4, head=HEAD_BAR), 35)
+    t += 35
+    upd = wait_for(lambda: _event(collector, "model.updated", action="rebaseline"),
+                   timeout_s=60, what="model.updated")
+    d = upd["data"]
+    assert (d["old_version"], d["new_version"]) == (1, 2)
+    assert d["held_events"] >= 1 and d["figures"]["false_alarm_rate"] <= 0.05
+    assert d["requested_by"]["user"] and d["shift_accepted"] is False
+    assert "anomaly.raised" not in _types(collector)[n_before:]
+    assert store.active_version("P-1", "default") == 2
+    # 3. v2 on the new normal: nothing; then a genuine fault: raised.
+    n_before = len(collector.events())
+    _send(pub, daemon, _readings(t, 30, seed=5, head=HEAD_BAR), 30)
+    t += 30
+    assert "anomaly.raised" not in _types(collector)[n_before:]
+    _send(pub, daemon, _readings(t, 12, seed=6, head=HEAD_BAR, fault=1.0), 12)
+    t += 12
+    wait_for(lambda: "anomaly.raised" in _types(collector)[n_before:], what="fault raised")
+    rc, text = _cli("models", "--asset", "P-1", "--socket", sock)
+    assert rc == 0 and "* v2" in text and "  v1" in text and "impeller trimmed" in text, text
+    # 4. A second rebaseline whose worker is killed mid-training: v2 stays, bytes and all.
+    v2_digest = daemon.pipeline.runtimes[0].bundle.digest
+    daemon.rebaseline.worker_env[TEST_DELAY_ENV] = "60"
+    rc, _ = _cli("rebaseline", "--asset", "P-1", "--socket", sock, "--reason", "crash test")
+    assert rc == 0
+    _send(pub, daemon, _readings(t, 62, seed=7, head=HEAD_BAR), 62)
+    t += 62
+    pid = wait_for(lambda: (daemon.status()["assets"][0]["learning"] or {}).get("worker_pid"),
+                   timeout_s=20, what="worker running")
+    os.kill(pid, signal.SIGKILL)
+    failed = wait_for(lambda: _event(collector, "model.rebaseline", phase="failed"),
+                      timeout_s=20, what="failed event")
+    assert "killed by signal 9" in failed["data"]["reasons"][0]
+    assert store.active_version("P-1", "default") == 2
+    assert store.versions("P-1", "default") == [1, 2]
+    assert daemon.pipeline.runtimes[0].bundle.digest == v2_digest
+    # 5. Rollback: v1's exact files are serving again.
+    v1_digest = load_bundle(store.version_path("P-1", "default", 1)).digest
+    rc, text = _cli("rollback", "--asset", "P-1", "--socket", sock, "--reason", "test")
+    assert rc == 0 and "v2 -> v1" in text, text
+    rb = wait_for(lambda: _event(collector, "model.updated", action="rollback"),
+                  what="rollback event")
+    assert (rb["data"]["old_version"], rb["data"]["new_version"]) == (2, 1)
+    assert daemon.pipeline.runtimes[0].bundle.digest == v1_digest
+    assert store.active_version("P-1", "default") == 1
+    seqs = [e["data"]["sequence"] for e in collector.events()]
+    assert seqs == sorted(seqs)
