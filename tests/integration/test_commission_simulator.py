@@ -28,7 +28,8 @@ from simulator.plant import simulate
 from simulator.scenario import labels, parse_scenario
 
 START = 1_767_225_600.0  # 2026-01-01T00:00:00Z, simulated
-ASSET = {"name": "P-101", "kind": "pump", "area": "raw-water", "initial_speed_pct": 100}
+ASSET = {"name": "P-101", "kind": "pump", "area": "raw-water", "initial_speed_pct": 100,
+         "speed_sensor": True}
 
 
 def _scenario(name: str, seed: int, duration_s: float, timeline: list[dict]) -> dict:
