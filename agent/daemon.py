@@ -192,7 +192,8 @@ class Daemon:
         self.ingest.start()
         if cfg.http.enabled:
             self.http = HttpServer(cfg.http.host, cfg.http.port, self.registry,
-                                   healthy=self.healthy, ready=self.ready, status=self.status)
+                                   healthy=self.healthy, ready=self.ready, status=self.status,
+                                   before_scrape=lambda: self.handler.flush_counts())
             self.http.start()
         self.rebaseline.start()
         loaded = sum(1 for rt in runtimes if rt.bundle is not None)

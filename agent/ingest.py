@@ -114,13 +114,18 @@ class IngestHandler:
         # after each tick); a sample at or past it sets `wake`.
         self.close_at: list[float] = [math.inf] * len(cfg.assets)
         self.wake: threading.Event | None = None
+        self._flush_lock = threading.Lock()
 
     def flush_counts(self) -> None:
         """Add the messages and samples counted since the last flush to the metrics.
 
-        Called from the pipeline thread after each tick (so a scrape lags by at most a
-        tick); the network thread only ever increments the plain counts.
+        Called from the pipeline thread after each tick and before each `/metrics`
+        scrape; the network thread only ever increments the plain counts.
         """
+        with self._flush_lock:  # the pipeline thread and a scrape may both flush
+            self._flush_locked()
+
+    def _flush_locked(self) -> None:
         for topic, route in self.routes.items():
             buf = self.buffers.get(route)
             n, s = buf.n_messages, buf.n_samples

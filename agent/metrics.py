@@ -262,7 +262,8 @@ class HttpServer:
     """`/metrics`, `/healthz`, `/readyz`, `/status` on one small threaded HTTP server."""
 
     def __init__(self, host: str, port: int, registry: CollectorRegistry, *,
-                 healthy: CheckFn, ready: CheckFn, status: StatusFn) -> None:
+                 healthy: CheckFn, ready: CheckFn, status: StatusFn,
+                 before_scrape: Callable[[], None] | None = None) -> None:
         outer = self
 
         class Handler(BaseHTTPRequestHandler):
@@ -270,6 +271,8 @@ class HttpServer:
                 path = self.path.split("?", 1)[0]
                 try:
                     if path == "/metrics":
+                        if before_scrape is not None:
+                            before_scrape()  # e.g. counts kept outside the registry
                         self._send(200, generate_latest(outer.registry), CONTENT_TYPE_LATEST)
                     elif path in ("/healthz", "/readyz"):
                         ok, why = (healthy if path == "/healthz" else ready)()
