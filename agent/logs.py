@@ -73,12 +73,25 @@ def under_journal(env: Mapping[str, str]) -> bool:
     return bool(env.get("JOURNAL_STREAM") or env.get("INVOCATION_ID"))
 
 
+class _StderrHandler(logging.StreamHandler):
+    """Writes to whatever `sys.stderr` is at the time of each record, so a handler set up
+    once does not keep a stream that was replaced (and closed) since."""
+
+    @property
+    def stream(self) -> Any:
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, value: Any) -> None:
+        pass
+
+
 def setup_logging(level: str = "INFO", fmt: LogFormat | str = LogFormat.KV,
                   env: Mapping[str, str] | None = None) -> logging.Logger:
     """The `watchkeep` logger writing one line per record to stderr."""
     env = os.environ if env is None else env
     with_time = not under_journal(env)
-    handler = logging.StreamHandler(sys.stderr)
+    handler = _StderrHandler()
     handler.setFormatter(JsonFormatter(with_time) if LogFormat(fmt) is LogFormat.JSON
                          else OneLineFormatter(with_time))
     log = logging.getLogger(LOGGER_NAME)
