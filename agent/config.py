@@ -19,7 +19,7 @@ import yaml
 
 from agent.core.detector import DetectorParams
 from agent.errors import ConfigError, ConfigProblem
-from agent.rebaseline_config import RebaselineConfig, parse_rebaseline
+from agent.rebaseline_config import RebaselineConfig, check_mqtt_commands, parse_rebaseline
 
 FEATURES = ("mean", "std", "min", "max", "rms", "peak_to_peak", "crest_factor",
             "skewness", "kurtosis")
@@ -766,6 +766,7 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
                       r.get(h, "port", "http", "int", 9310, lambda v: 0 <= v < 65536,
                             "a TCP port 0-65535 (0 picks a free one)"))
     rebaseline = parse_rebaseline(r, top.get("rebaseline"), "rebaseline", state_dir)
+    check_mqtt_commands(r, rebaseline, upstream)
     indexed: list[tuple[int, AssetConfig]] = []
     anode = top.get("assets")
     if not isinstance(anode, list) or not anode:

@@ -9,7 +9,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from agent.models import DEFAULT_KEEP
 from agent.rebaseline import (
@@ -20,8 +20,11 @@ from agent.rebaseline import (
     MIN_NEW_WINDOWS,
 )
 
+if TYPE_CHECKING:
+    from agent.config import BrokerConfig
+
 KEYS = ("enabled", "admin_socket", "models_dir", "windows", "false_alarm_budget",
-        "rehearsal_size", "rehearsal_tolerance", "max_shift", "versions_kept")
+        "rehearsal_size", "rehearsal_tolerance", "max_shift", "versions_kept", "mqtt_commands")
 DEFAULT_WINDOWS = 360  # 30 minutes of 5 s windows: long enough to see a duty cycle
 
 
@@ -38,6 +41,8 @@ class RebaselineConfig:
     rehearsal_tolerance: float = DEFAULT_REHEARSAL_TOLERANCE
     max_shift: float = DEFAULT_MAX_SHIFT
     versions_kept: int = DEFAULT_KEEP
+    # `<prefix>/commands/<asset>/rebaseline` on the upstream broker (agent/mqtt_commands.py)
+    mqtt_commands: bool = False
 
     @classmethod
     def defaults(cls, state_dir: Path) -> RebaselineConfig:
@@ -69,4 +74,20 @@ def parse_rebaseline(r: Any, node: Any, path: str, state_dir: Path) -> Rebaselin
                         "a ratio > 0 (median old-model score of the new windows / threshold)"),
         versions_kept=r.get(d, "versions_kept", path, "int", DEFAULT_KEEP,
                             lambda v: 2 <= v <= 100, "an integer from 2 to 100"),
+        mqtt_commands=r.get(d, "mqtt_commands", path, "bool", False),
     )
+
+
+def check_mqtt_commands(r: Any, rb: RebaselineConfig, upstream: BrokerConfig,
+                        path: str = "rebaseline") -> None:
+    """MQTT commands only over an authenticated upstream connection.
+
+    The daemon cannot see who published a message: it relies on the broker's access
+    control, which needs to know the gateway (a username or a TLS client certificate)
+    to grant it the commands topic while others are kept from publishing there.
+    """
+    tls_cert = upstream.tls is not None and upstream.tls.cert_file is not None
+    if rb.mqtt_commands and not upstream.username and not tls_cert:
+        r.bad(f"{path}.mqtt_commands", "false unless upstream_broker authenticates (a "
+              "username or tls.cert_file): the broker's ACL must decide who may publish "
+              "commands", True)

@@ -289,6 +289,12 @@ BROKEN: tuple[Broken, ...] = (
     Broken("top level a list", lambda _d, _t: ["site", "gateway"],
            ("(top level): expected a mapping of settings (site, gateway, assets, ...), "
             "got a list of 2",)),
+    Broken("mqtt commands without upstream authentication",
+           _set("rebaseline", {"mqtt_commands": True}),
+           ("rebaseline.mqtt_commands: expected false unless upstream_broker authenticates "
+            "(a username or tls.cert_file): the broker's ACL must decide who may publish "
+            "commands, got true (a boolean)",),
+           schema_blind="a rule across sections (rebaseline and upstream_broker)"),
     Broken("empty assets", _set("assets", []),
            ("assets: expected a non-empty list of assets, got an empty list",)),
     Broken("assets missing", _delete("assets"),
