@@ -29,6 +29,7 @@ from agent.ingest import Buffers, Ingest, IngestHandler
 from agent.learning import RebaselineManager
 from agent.logs import kv
 from agent.metrics import HttpServer, Metrics, TickGauges
+from agent.mqtt_commands import CommandReceiver
 from agent.notify import MAX_WATCHDOG_INTERVAL_S, Notifier
 from agent.outbox import Outbox
 from agent.pipeline import AssetRuntime, Pipeline, Sink
@@ -157,6 +158,7 @@ class Daemon:
         self._reloader: Reloader | None = None
         self.http: HttpServer | None = None
         self.rebaseline_worker_env: dict[str, str] = {}  # extra env for the training worker
+        self.commands: CommandReceiver | None = None
 
     def start(self) -> None:
         cfg = self.cfg
@@ -180,6 +182,13 @@ class Daemon:
         # front of the sink and collects its new-normal windows from the observer.
         self.rebaseline = RebaselineManager(self, worker_env=self.rebaseline_worker_env)
         sink = self.rebaseline.wrap_sink(sink)
+        if self.rebaseline.cfg.mqtt_commands:  # agent/mqtt_commands.py; off by default
+            self.commands = CommandReceiver(
+                cfg.topic_prefix, self.rebaseline.request,
+                assets=lambda: [rt.cfg.name for rt in self.pipeline.runtimes],
+                enabled=lambda: self.rebaseline.cfg.mqtt_commands,
+                registry=self.registry, logger=self.log)
+            self.upstream.accept_commands(self.commands.topic_filter, self.commands.offer)
         self.pipeline = Pipeline(cfg, self.buffers, sink, self.metrics, self.log, runtimes,
                                  observer=self.rebaseline.observe)
         self.handler = IngestHandler(cfg, self.buffers, self.metrics, self.log)
@@ -187,6 +196,8 @@ class Daemon:
         self.loop = PipelineLoop(self.pipeline, cfg.tick_s, self.metrics, self.notifier,
                                  self.log, clock=self.clock)
         self.loop.after_tick = self._after_tick
+        if self.commands is not None:
+            self.commands.start()
         self.upstream.start()
         self.loop.start()
         self.ingest.start()
@@ -257,6 +268,8 @@ class Daemon:
         self._stopped.set()
         self.notifier.stopping()
         self.log.info("watchkeep stopping")
+        if self.commands is not None:
+            self.commands.stop()
         self.rebaseline.stop()
         self.ingest.stop()
         self.loop.stop()

@@ -126,6 +126,12 @@ class Upstream:
         self._client.on_disconnect = self._on_disconnect
         self._client.on_publish = self._on_publish
         self._client.on_log = self._on_log
+        self._client.on_message = self._on_message
+        self._client.on_subscribe = self._on_subscribe
+        # Inbound commands (agent/mqtt_commands.py): off unless `accept_commands` is called.
+        self._command_filter: str | None = None
+        self._on_command: Callable[[str, bytes, bool], None] | None = None
+        self.commands_subscribed = threading.Event()
         self.connected = threading.Event()
         self.last_error: str | None = None
         self._paho_error: str | None = None
@@ -167,6 +173,14 @@ class Upstream:
         self._store.start()
         self._net.start()
 
+    def accept_commands(self, topic_filter: str,
+                        handler: Callable[[str, bytes, bool], None]) -> None:
+        """Subscribe to `topic_filter` at every connect and pass each message to
+        `handler(topic, payload, retained)` on the network thread (it must only hand
+        off). Call before `start`."""
+        self._command_filter = topic_filter
+        self._on_command = handler
+
     def stop(self, timeout_s: float = 5.0) -> None:
         """Give waiting rows a moment to go out, publish offline status, disconnect."""
         deadline = time.monotonic() + min(timeout_s, STOP_DRAIN_S)
@@ -185,7 +199,9 @@ class Upstream:
         return {"connected": self.connected.is_set(), "last_error": self.last_error,
                 "inflight": len(self._inflight),
                 "seconds_since_ack": round(self.seconds_since_ack(), 3),
-                "protocol": self.broker.protocol.value, "tls": self.broker.tls is not None}
+                "protocol": self.broker.protocol.value, "tls": self.broker.tls is not None,
+                "commands": (None if self._command_filter is None
+                             else self.commands_subscribed.is_set())}
 
     # -- the network thread --------------------------------------------------------
 
@@ -292,6 +308,7 @@ class Upstream:
             self.log.warning(kv("upstream broker connection lost", error=self.last_error or "",
                                 inflight=len(self._inflight)))
         self.connected.clear()
+        self.commands_subscribed.clear()
         self._gauge.set(0)
 
     # -- paho callbacks (network thread; never block, never raise) ----------------
@@ -306,6 +323,9 @@ class Upstream:
             self._connects += 1
             if self._connects > 1:
                 self.metrics.reconnects.labels("upstream").inc()
+            if self._command_filter is not None:
+                # Here, so the subscription comes back after every reconnect (clean session).
+                client.subscribe(self._command_filter, qos=1)
             client.publish(self.status_topic,
                            status_payload(self.cfg, "online", self.started,
                                           outbox=self.outbox.status()),
@@ -334,6 +354,27 @@ class Upstream:
         try:
             failed = bool(getattr(reason, "is_failure", False))
             self._acked.append((mid, failed, str(reason) if failed else ""))
+        except Exception:
+            self._errors.inc()
+
+    def _on_message(self, client: mqtt.Client, userdata: Any, msg: mqtt.MQTTMessage) -> None:
+        try:
+            if self._on_command is not None:
+                self._on_command(msg.topic, bytes(msg.payload), bool(msg.retain))
+        except Exception:
+            self._errors.inc()
+            self.log.exception("error in upstream on_message")
+
+    def _on_subscribe(self, client: mqtt.Client, userdata: Any, mid: int, reasons: Any,
+                      props: Any) -> None:
+        try:
+            if any(getattr(r, "is_failure", False) for r in reasons):
+                self._rl.warning("subscribe", "upstream broker refused the commands "
+                                 "subscription (check its ACL)", topic=self._command_filter,
+                                 reason=str(reasons[0]))
+            else:
+                self.commands_subscribed.set()
+                self.log.info(kv("upstream commands subscribed", topic=self._command_filter))
         except Exception:
             self._errors.inc()
 
