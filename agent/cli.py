@@ -87,7 +87,7 @@ def build_parser() -> argparse.ArgumentParser:
 
     from agent import rebaseline_cmd as rbc
 
-    for name, helptext, add, run in (
+    for name, helptext, add, handler in (
             ("rebaseline", "re-learn an asset's normal in the running daemon",
              rbc.add_rebaseline_arguments, rbc.cmd_rebaseline),
             ("models", "list an asset's model versions (or --adopt a bundle)",
@@ -96,7 +96,7 @@ def build_parser() -> argparse.ArgumentParser:
              rbc.add_rollback_arguments, rbc.cmd_rollback)):
         cp = sub.add_parser(name, help=helptext)
         add(cp)
-        cp.set_defaults(func=run)
+        cp.set_defaults(func=handler)
 
     chk = sub.add_parser("check-config", help="check a config file and summarise it")
     chk.add_argument("config")

@@ -17,7 +17,7 @@ from typing import Any
 from agent.errors import WatchkeepError
 
 DEFAULT_URL = "http://127.0.0.1:9310"
-COLUMNS = ("ASSET", "MODE", "STATE", "SCORE", "THRESHOLD", "MODEL", "LAST EVENT")
+COLUMNS = ("ASSET", "MODE", "STATE", "SCORE", "THRESHOLD", "MODEL", "REBASELINE", "LAST EVENT")
 
 
 class StatusUnavailable(WatchkeepError):
@@ -72,6 +72,22 @@ def _event(ev: Any) -> str:
     return f"{short} {ev.get('time', '')}".strip()
 
 
+def _rebaseline(learning: Any, last: Any) -> str:
+    """`collecting 12/60 (3 held)` while learning (anomaly events held back), else the
+    last outcome (`last accepted v1->v2`), else `-`."""
+    if isinstance(learning, Mapping):
+        out = (f"{learning.get('phase', 'learning')} "
+               f"{learning.get('collected', '?')}/{learning.get('target', '?')}")
+        held = learning.get("held_events")
+        return out + (f" ({held} held)" if isinstance(held, int) and held > 0 else "")
+    if isinstance(last, Mapping):
+        out = f"last {last.get('result', '?')}"
+        if last.get("new_version") is not None:
+            out += f" v{last.get('old_version', '?')}->v{last['new_version']}"
+        return out
+    return "-"
+
+
 def table(rows: Sequence[Sequence[str]]) -> list[str]:
     """Left-aligned columns two spaces apart; the last column is not padded."""
     widths = [max(len(r[i]) for r in rows) for i in range(len(rows[0]))]
@@ -101,7 +117,9 @@ def render_status(doc: Mapping[str, Any]) -> str:
         rows.append([str(a.get("asset", "?")), str(a.get("mode", "-")),
                      state.upper() if state == "anomalous" else state,
                      _num(a.get("score")), _num(a.get("threshold")),
-                     _model(a.get("model"), a.get("model_error")), _event(a.get("last_event"))])
+                     _model(a.get("model"), a.get("model_error")),
+                     _rebaseline(a.get("learning"), a.get("last_rebaseline")),
+                     _event(a.get("last_event"))])
         if a.get("model_error"):
             errors.append(f"{a.get('asset', '?')}: {a['model_error']}")
     lines += table(rows)

@@ -34,6 +34,32 @@ def test_render_status_table() -> None:
     assert header.index("STATE") == p101.index("ANOMALOUS")  # columns line up
 
 
+def test_learning_column() -> None:
+    """A learning asset shows its phase and progress (and held events); one that learnt
+    before shows the last outcome; the others a dash."""
+    doc = {"assets": [
+        {"asset": "P-101", "mode": "default", "state": "normal", "score": 0.4,
+         "threshold": 1.5, "model": {"id": "P-101/default", "version": 1},
+         "learning": {"phase": "collecting", "collected": 12, "target": 60,
+                      "held_events": 2, "base_version": 1, "request_id": "r1"},
+         "last_rebaseline": None},
+        {"asset": "F-7", "mode": "default", "state": "normal", "model": None,
+         "learning": None, "last_rebaseline": {"result": "accepted", "old_version": 1,
+                                               "new_version": 2}},
+        {"asset": "B-3", "mode": "default", "state": "normal", "model": None,
+         "learning": None, "last_rebaseline": {"result": "rejected", "old_version": 4,
+                                               "new_version": None}},
+        {"asset": "C-9", "mode": "default", "state": "normal", "model": None}]}
+    out = render_status(doc).splitlines()
+    header = out[2]
+    col, end = header.index("REBASELINE"), header.index("LAST EVENT")
+    rows = {line.split()[0]: line[col:end].rstrip() for line in out[3:]}
+    assert rows["P-101"] == "collecting 12/60 (2 held)"
+    assert rows["F-7"] == "last accepted v1->v2"
+    assert rows["B-3"] == "last rejected"
+    assert rows["C-9"] == "-"
+
+
 def test_no_assets() -> None:
     assert render_status({"assets": []}).endswith("no assets configured\n")
 
