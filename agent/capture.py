@@ -10,13 +10,13 @@ from __future__ import annotations
 import json
 import math
 import os
-import tempfile
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 from types import TracebackType
-from typing import IO, Any
+from typing import IO, Any, BinaryIO
 
 from agent.errors import DatasetError
+from agent.fsutil import write_file_atomic
 
 
 class CaptureError(DatasetError):
@@ -51,21 +51,15 @@ def write_capture(
     The file appears complete or not at all; an error removes the temporary file.
     """
     p = Path(path)
-    fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.", suffix=".tmp", dir=p.parent)
-    n = 0
-    try:
-        os.fchmod(fd, 0o644)  # mkstemp's 0600 would hide the capture from other users
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as f:
-            for t, topic, payload in messages:
-                f.write(_line(str(p), t, topic, payload))
-                n += 1
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, p)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    return n
+    count = [0]
+
+    def write(fh: BinaryIO) -> None:
+        for t, topic, payload in messages:
+            fh.write(_line(str(p), t, topic, payload).encode("utf-8"))
+            count[0] += 1
+
+    write_file_atomic(p, write)
+    return count[0]
 
 
 class CaptureWriter:

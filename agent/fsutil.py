@@ -56,3 +56,27 @@ def replace_dir(dest: str | os.PathLike[str], files: Mapping[str, FileContent]) 
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return dest
+
+
+def write_file_atomic(path: str | os.PathLike[str], content: FileContent,
+                      mode: int = 0o644) -> Path:
+    """Write one file by temp-and-rename (fsynced), readable as `mode` (not mkstemp's 0600).
+
+    `content` is the bytes, or a function that writes them to the open binary file.
+    """
+    p = Path(path)
+    fd, tmp = tempfile.mkstemp(prefix=f".{p.name}.tmp-", dir=p.parent)
+    try:
+        os.fchmod(fd, mode)
+        with os.fdopen(fd, "wb") as fh:
+            if isinstance(content, bytes):
+                fh.write(content)
+            else:
+                content(fh)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, p)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+    return p

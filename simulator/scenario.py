@@ -17,7 +17,6 @@ import io
 import json
 import math
 import os
-import tempfile
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -25,6 +24,7 @@ from typing import Any
 
 import yaml
 
+from agent.fsutil import write_file_atomic
 from simulator.errors import Problem, ScenarioError
 from simulator.machines import PRESETS, BearingGeometry, MachineKind, MachineSpec, speed_channel
 
@@ -586,14 +586,4 @@ def read_labels(path: str | os.PathLike[str]) -> list[Label]:
 
 
 def _write_atomic(path: Path, text: str) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent or ".")
-    try:
-        os.fchmod(fd, 0o644)  # mkstemp's 0600 would hide the labels from other users
-        with os.fdopen(fd, "w", encoding="utf-8") as f:
-            f.write(text)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    write_file_atomic(path, text.encode("utf-8"))

@@ -100,13 +100,9 @@ def channel_groups(feature_names: Sequence[str]) -> dict[str, list[int]]:
     return groups
 
 
-def inject(features: np.ndarray, sigma: np.ndarray, feature_names: Sequence[str],
-           spec: InjectSpec, *, seed: int = 0,
-           gap: int | None = None) -> tuple[np.ndarray, list[InjectedEvent]]:
-    """A copy of `features` [N, F] with `spec` events injected, and the events."""
-    x = np.array(features, dtype=np.float64, copy=True)
-    n = x.shape[0]
-    sigma = np.asarray(sigma, np.float64)
+def event_slots(n: int, spec: InjectSpec, gap: int | None = None) -> tuple[int, int]:
+    """How many events of `spec` fit in `n` windows and the slot each gets (its own
+    windows plus a gap of `gap`, by default 3 x its length and at least 30)."""
     length = spec.length
     gap = max(3 * length, 30) if gap is None else gap
     slot = length + gap
@@ -116,6 +112,18 @@ def inject(features: np.ndarray, sigma: np.ndarray, feature_names: Sequence[str]
             raise DatasetError(f"{n} normal window(s) are too few to inject {spec.name} "
                                f"events of {length} window(s)")
         n_events, slot = 1, n
+    return n_events, slot
+
+
+def inject(features: np.ndarray, sigma: np.ndarray, feature_names: Sequence[str],
+           spec: InjectSpec, *, seed: int = 0,
+           gap: int | None = None) -> tuple[np.ndarray, list[InjectedEvent]]:
+    """A copy of `features` [N, F] with `spec` events injected, and the events."""
+    x = np.array(features, dtype=np.float64, copy=True)
+    n = x.shape[0]
+    sigma = np.asarray(sigma, np.float64)
+    length = spec.length
+    n_events, slot = event_slots(n, spec, gap)
     groups = channel_groups(feature_names)
     channels = list(groups)
     rng = np.random.default_rng([seed, list(FaultKind).index(spec.kind)])

@@ -47,7 +47,7 @@ from typing import Any
 
 import numpy as np
 
-from agent.commission.inject import FaultKind, InjectSpec, parse_inject
+from agent.commission.inject import FaultKind, InjectSpec, event_slots, parse_inject
 from agent.config import FEATURES, ChannelConfig, Config, Decoder, parse_config
 from agent.core.decode import Rejected, decode
 from agent.errors import ConfigError, DatasetError
@@ -174,14 +174,7 @@ def plan_faults(window_start: np.ndarray, window_end: np.ndarray, channels: Sequ
     ChannelSpec's). DatasetError when there is no room or the channel is unknown."""
     n = len(window_start)
     length = spec.length
-    gap = max(3 * length, 30) if gap is None else gap
-    slot = length + gap
-    n_events = n // slot
-    if n_events == 0:
-        if n < length + 2:
-            raise DatasetError(f"{n} normal window(s) are too few to inject {spec.name} "
-                               f"events of {length} window(s)")
-        n_events, slot = 1, n
+    n_events, slot = event_slots(n, spec, gap)
     named = spec.channel if isinstance(spec, ChannelSpec) else ""
     if named and named not in channels:
         raise DatasetError(f"--inject {spec.name}: channel {named!r} is not one the model "

@@ -10,7 +10,6 @@ from __future__ import annotations
 import json
 import math
 import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -18,6 +17,7 @@ from typing import Any
 import numpy as np
 
 from agent.commission.evaluate import Detection, Evaluation, Scenario
+from agent.fsutil import write_file_atomic
 
 REPORT_JSON = "report.json"
 REPORT_PNG = "report.png"
@@ -122,16 +122,7 @@ def format_summary(ev: Evaluation) -> str:
 
 
 def _atomic_write(path: Path, data: bytes) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.tmp-", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
+    write_file_atomic(path, data)
 
 
 def plot_png(ev: Evaluation) -> bytes:
