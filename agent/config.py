@@ -107,6 +107,8 @@ class ChannelConfig:
     value_field: str = "value"
     values_field: str = "values"
     rate_field: str = "rate_hz"
+    # The sensor's own message counter, when it sends one: a jump is a counted gap.
+    seq_field: str | None = None
     spectrum: SpectrumConfig | None = None
     # Sensor health (agent/core/health.py); None switches a check off.
     min_value: float | None = None
@@ -443,7 +445,7 @@ def _channel(r: _Reader, name: Any, node: Any, path: str) -> ChannelConfig | Non
     if not _name(name):
         r.bad(path, "a channel name of letters, digits, '_', '.', '-' (at most 64)", name)
     keys = ("topic", "decoder", "rate_hz", "features", "unit", "ts_field", "value_field",
-            "values_field", "rate_field", "spectrum", "min", "max", "stale_s",
+            "values_field", "rate_field", "seq_field", "spectrum", "min", "max", "stale_s",
             "flatline_windows", "max_rate_per_s", "limits")
     if not isinstance(node, dict):
         r.bad(path, "a mapping of channel settings (topic, decoder, rate_hz, ...)", node)
@@ -490,6 +492,7 @@ def _channel(r: _Reader, name: Any, node: Any, path: str) -> ChannelConfig | Non
         value_field=r.get(n, "value_field", path, "str", "value"),
         values_field=r.get(n, "values_field", path, "str", "values"),
         rate_field=r.get(n, "rate_field", path, "str", "rate_hz"),
+        seq_field=r.get(n, "seq_field", path, "str", None),
         spectrum=spectrum, min_value=lo, max_value=hi, stale_s=stale, flatline_windows=flat,
         max_rate_per_s=max_rate, limits=limits)
 

@@ -21,7 +21,7 @@ import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion
 
 from agent.config import BrokerConfig, Config, Decoder, MqttProtocol, read_secret
-from agent.core.decode import Reason, Rejected, decode
+from agent.core.decode import Reason, Rejected, decode_message
 from agent.core.routing import Route, build_routes
 from agent.logs import RateLimited, kv
 from agent.metrics import Metrics
@@ -33,7 +33,7 @@ class ChannelBuffer:
     """Samples of one channel waiting for the pipeline; filled by ingest, emptied by ticks."""
 
     __slots__ = ("_blocks", "_lock", "_ts", "_vals", "flushed_messages", "flushed_samples",
-                 "last_arrival", "n_messages", "n_samples", "next_block_ts")
+                 "last_arrival", "last_seq", "n_messages", "n_samples", "next_block_ts")
 
     def __init__(self) -> None:
         self._lock = threading.Lock()
@@ -42,6 +42,7 @@ class ChannelBuffer:
         self._blocks: list[tuple[np.ndarray, np.ndarray]] = []
         self.last_arrival = 0.0
         self.next_block_ts: float | None = None
+        self.last_seq: int | None = None
         # Counted by the network thread (the only writer), moved into the Prometheus
         # counters by `IngestHandler.flush_counts` on the pipeline thread: a counter's
         # lock per message is a measurable share of the ingest cost.
@@ -147,14 +148,21 @@ class IngestHandler:
         buf.n_messages += 1
         ch = route.channel
         try:
-            ts, vals = decode(payload, ch, arrival, max_payload_bytes=self._max_bytes,
-                              max_skew_s=self._max_skew)
+            (ts, vals), seq = decode_message(payload, ch, arrival,
+                                             max_payload_bytes=self._max_bytes,
+                                             max_skew_s=self._max_skew)
         except Rejected as rej:
             self._rejected[rej.reason].inc()
             self.log.warning(f"{rej.reason.value}:{route.asset}", "message rejected",
                              reason=rej.reason.value, asset=route.asset, channel=ch.name,
                              detail=rej.detail)
             return
+        if seq is not None:
+            # A counter that does not follow on: messages lost between sensor and us (or
+            # a sensor restart, which looks the same from here).
+            if buf.last_seq is not None and seq != buf.last_seq + 1:
+                self._gaps[topic].inc()
+            buf.last_seq = seq
         if isinstance(ts, np.ndarray):
             assert isinstance(vals, np.ndarray)
             expected = buf.next_block_ts

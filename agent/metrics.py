@@ -151,7 +151,8 @@ class Metrics:
             "watchkeep_config_last_reload_success_timestamp_seconds",
             "Unix time the running config was applied", registry=r)
         self.gaps = Counter(
-            "watchkeep_sample_gaps_total", "Waveform blocks that do not follow on from the last",
+            "watchkeep_sample_gaps_total",
+            "Gaps seen in a channel: waveform blocks or sensor counters that do not follow on",
             ["asset", "channel"], registry=r)
         # Machine know-how (issue 7): modes, sensor health, vibration severity, limits.
         self.mode = Gauge(

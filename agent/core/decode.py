@@ -101,13 +101,38 @@ def _timestamp(doc: dict[str, Any], ch: ChannelConfig, arrival: float,
     return ts
 
 
+Samples = tuple[float, float] | tuple[np.ndarray, np.ndarray]
+
+
 def decode(payload: bytes, ch: ChannelConfig, arrival: float, *, max_payload_bytes: int,
-           max_skew_s: float) -> tuple[float, float] | tuple[np.ndarray, np.ndarray]:
+           max_skew_s: float) -> Samples:
     """Decode one message of channel `ch`.
 
     Returns `(ts, value)` floats for a single reading, or `(ts_array, values_array)`
     for a block. Raises `Rejected` for anything unusable.
     """
+    return decode_message(payload, ch, arrival, max_payload_bytes=max_payload_bytes,
+                          max_skew_s=max_skew_s)[0]
+
+
+def sequence_number(doc: Any, ch: ChannelConfig) -> int | None:
+    """The sensor's own message counter (`ch.seq_field`), when it sends a whole number."""
+    if not ch.seq_field or not isinstance(doc, dict):
+        return None
+    v = _field(doc, ch.seq_field)
+    return v if isinstance(v, int) and not isinstance(v, bool) else None
+
+
+def decode_message(payload: bytes, ch: ChannelConfig, arrival: float, *,
+                   max_payload_bytes: int, max_skew_s: float) -> tuple[Samples, int | None]:
+    """`decode`, plus the message's sequence number when the channel names one."""
+    samples, doc = _decode(payload, ch, arrival, max_payload_bytes, max_skew_s)
+    return samples, sequence_number(doc, ch)
+
+
+def _decode(payload: bytes, ch: ChannelConfig, arrival: float, max_payload_bytes: int,
+            max_skew_s: float) -> tuple[Samples, Any]:
+    """The samples and the decoded JSON document (None for `text`)."""
     if len(payload) > max_payload_bytes:
         raise Rejected(Reason.TOO_LARGE, f"{len(payload)} bytes > {max_payload_bytes}")
     if ch.decoder is Decoder.TEXT:
@@ -122,19 +147,19 @@ def decode(payload: bytes, ch: ChannelConfig, arrival: float, *, max_payload_byt
         v = float(text)
         if not math.isfinite(v):  # e.g. 1e400
             raise Rejected(Reason.NON_FINITE, text)
-        return arrival, v
+        return (arrival, v), None
     doc = _loads_relaxed(payload)
     if not isinstance(doc, dict):
         if ch.decoder is Decoder.JSON and isinstance(doc, int | float) \
                 and not isinstance(doc, bool):
-            return arrival, _number(doc, "payload")
+            return (arrival, _number(doc, "payload")), None
         raise Rejected(Reason.WRONG_TYPE, f"payload is a JSON {type(doc).__name__}")
     ts = _timestamp(doc, ch, arrival, max_skew_s)
     if ch.decoder is Decoder.JSON:
         raw = _field(doc, ch.value_field)
         if raw is _MISSING:
             raise Rejected(Reason.MALFORMED, f"no {ch.value_field!r} field")
-        return ts, _number(raw, ch.value_field)
+        return (ts, _number(raw, ch.value_field)), doc
     values = _field(doc, ch.values_field)
     if not isinstance(values, list) or not values:
         raise Rejected(Reason.WRONG_TYPE, f"{ch.values_field!r} is not a non-empty list")
@@ -155,4 +180,4 @@ def decode(payload: bytes, ch: ChannelConfig, arrival: float, *, max_payload_byt
     if not np.all(np.isfinite(arr)):
         raise Rejected(Reason.NON_FINITE, f"{int(np.sum(~np.isfinite(arr)))} samples")
     t = ts + np.arange(arr.size, dtype=np.float64) / rate
-    return t, arr
+    return (t, arr), doc

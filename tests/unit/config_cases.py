@@ -35,7 +35,7 @@ FEATURE_LIST = "mean, std, min, max, rms, peak_to_peak, crest_factor, skewness, 
 TOP_KEYS = ("site, gateway, topic_prefix, state_dir, local_broker, upstream_broker, ingest, "
             "pipeline, outbox, http, publish, assets, rebaseline")
 CHANNEL_KEYS = "topic, decoder, rate_hz, features, unit, ts_field, value_field, values_field, " \
-    "rate_field, spectrum, min, max, stale_s, flatline_windows, max_rate_per_s, limits"
+    "rate_field, seq_field, spectrum, min, max, stale_s, flatline_windows, max_rate_per_s, limits"
 
 
 def base_doc() -> dict[str, Any]:
