@@ -5,6 +5,7 @@ from __future__ import annotations
 import argparse
 import sys
 from collections.abc import Callable, Sequence
+from typing import Any
 
 from agent import __version__
 from agent.errors import WatchkeepError
@@ -21,11 +22,49 @@ def cmd_run(args: argparse.Namespace) -> int:
     return run_daemon(cfg, setup_logging(args.log_level, args.log_format))
 
 
-def cmd_check_config(args: argparse.Namespace) -> int:
+def _channel_checks(ch: Any) -> str:
+    """A short list of what besides the features a channel is watched for."""
+    parts = []
+    if ch.spectrum is not None:
+        sp = ch.spectrum
+        bits = [f"{len(sp.bands_hz)} bands"] if sp.bands_hz else []
+        bits += ["velocity"] if sp.velocity_rms else []
+        bits += [f"orders {','.join(f'{o:g}x' for o in sp.orders)}"] if sp.orders else []
+        bits += ["envelope"] if sp.envelope_hz else []
+        parts.append("spectrum " + "/".join(bits or ["dominant line"]))
+    health = [n for n, v in (("range", ch.min_value is not None or ch.max_value is not None),
+                             ("stale", ch.stale_s is not None),
+                             ("flatline", ch.flatline_windows is not None),
+                             ("rate", ch.max_rate_per_s is not None)) if v]
+    if health:
+        parts.append("health " + ",".join(health))
+    if ch.limits:
+        parts.append(f"{len(ch.limits)} limit(s)")
+    if ch.seq_field:
+        parts.append(f"counter {ch.seq_field}")
+    return "; ".join(parts)
+
+
+def _model_line(asset: Any, path: Any, label: str) -> tuple[str, bool]:
     from agent.bundle import load_bundle
-    from agent.config import load_config
     from agent.errors import BundleError
     from agent.pipeline import check_bundle_fits
+
+    if path is None:
+        return f"    {label}: none (windows are not scored)", True
+    try:
+        b = load_bundle(path)
+        why = check_bundle_fits(asset, b)
+    except BundleError as exc:
+        why = str(exc)
+    if why:
+        return f"    {label}: ERROR {why}", False
+    return (f"    {label}: {b.meta.model_id} v{b.meta.version}, {b.n_features} features, "
+            f"threshold {b.meta.threshold:.4g}"), True
+
+
+def cmd_check_config(args: argparse.Namespace) -> int:
+    from agent.config import load_config
 
     cfg = load_config(args.config)
     print(f"config {args.config}: OK")
@@ -35,6 +74,10 @@ def cmd_check_config(args: argparse.Namespace) -> int:
           f"{' (TLS)' if ub.tls else ''}  MQTT {ub.protocol.value}")
     print(f"  state dir {cfg.state_dir}  outbox {cfg.outbox.path} "
           f"(synchronous={cfg.outbox.synchronous.value})")
+    rb = getattr(cfg, "rebaseline", None)
+    if rb is not None:
+        print(f"  rebaseline: admin socket {'on' if rb.enabled else 'off'}, "
+              f"MQTT commands {'on' if rb.mqtt_commands else 'off'}")
     bad = 0
     for a in cfg.assets:
         w = a.window
@@ -44,20 +87,27 @@ def cmd_check_config(args: argparse.Namespace) -> int:
               f"clear after {a.detector.clear_m}")
         for ch in a.channels:
             print(f"    {ch.name:<16} {ch.decoder.value:<10} {ch.rate_hz:>8g} Hz  {ch.topic}")
-        if a.bundle is None:
-            print("    model: none (windows are not scored)")
+            checks = _channel_checks(ch)
+            if checks:
+                print(f"      {checks}")
+        if a.iso10816 is not None:
+            iso = a.iso10816
+            print(f"    ISO 10816-3 zones: group {iso.group}, {iso.support} support"
+                  + (f", baseline {iso.baseline_mm_s:g} mm/s" if iso.baseline_mm_s else ""))
+        if a.modes is None:
+            line, ok = _model_line(a, a.bundle, "model")
+            print(line)
+            bad += not ok
             continue
-        try:
-            b = load_bundle(a.bundle)
-            why = check_bundle_fits(a, b)
-        except BundleError as exc:
-            why = str(exc)
-        if why:
-            bad += 1
-            print(f"    model: ERROR {why}")
-        else:
-            print(f"    model: {b.meta.model_id} v{b.meta.version}, {b.n_features} features, "
-                  f"threshold {b.meta.threshold:.4g}")
+        print(f"    modes from {a.modes.channel}: "
+              + ", ".join(m.name + ("" if m.scored else " (not scored)")
+                          for m in a.modes.states))
+        for m in a.modes.states:
+            if not m.scored:
+                continue
+            line, ok = _model_line(a, m.bundle or a.bundle, f"model [{m.name}]")
+            print(line)
+            bad += not ok
     if bad:
         print(f"{bad} model bundle(s) cannot be used", file=sys.stderr)
         return 3
@@ -150,6 +200,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         return exc.exit_code
     except KeyboardInterrupt:
         return 130
+    except BrokenPipeError:  # e.g. `watchkeep check-config x.yaml | head`
+        import os
+
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return 141
 
 
 if __name__ == "__main__":
