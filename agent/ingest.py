@@ -32,14 +32,20 @@ Clock = Callable[[], float]
 class ChannelBuffer:
     """Samples of one channel waiting for the pipeline; filled by ingest, emptied by ticks."""
 
-    __slots__ = ("_blocks", "_lock", "_ts", "_vals", "flushed_messages", "flushed_samples",
-                 "last_arrival", "last_seq", "n_messages", "n_samples", "next_block_ts")
+    __slots__ = ("_blocks", "_last_ts", "_lock", "_sorted", "_ts", "_vals",
+                 "flushed_messages", "flushed_samples", "last_arrival", "last_seq",
+                 "n_messages", "n_samples", "next_block_ts", "took_sorted")
 
     def __init__(self) -> None:
         self._lock = threading.Lock()
         self._ts = array.array("d")
         self._vals = array.array("d")
         self._blocks: list[tuple[np.ndarray, np.ndarray]] = []
+        # Whether everything since the last take arrived in time order (blocks are in
+        # order inside by construction); `took_sorted` says it of the last take.
+        self._sorted = True
+        self._last_ts = -math.inf
+        self.took_sorted = True
         self.last_arrival = 0.0
         self.next_block_ts: float | None = None
         self.last_seq: int | None = None
@@ -55,11 +61,17 @@ class ChannelBuffer:
         with self._lock:
             self._ts.append(ts)
             self._vals.append(value)
+            if ts < self._last_ts:
+                self._sorted = False
+            self._last_ts = ts
             self.last_arrival = arrival
 
     def append_block(self, ts: np.ndarray, values: np.ndarray, arrival: float) -> None:
         with self._lock:
             self._blocks.append((ts, values))
+            if ts[0] < self._last_ts:
+                self._sorted = False
+            self._last_ts = float(ts[-1])
             self.last_arrival = arrival
 
     def take(self) -> tuple[np.ndarray, np.ndarray] | None:
@@ -68,6 +80,8 @@ class ChannelBuffer:
             if not self._ts and not self._blocks:
                 return None
             ts_s, vals_s, blocks = self._ts, self._vals, self._blocks
+            self.took_sorted = self._sorted
+            self._sorted = True
             self._ts = array.array("d")
             self._vals = array.array("d")
             self._blocks = []

@@ -31,6 +31,7 @@ from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 import numpy as np
+import orjson
 from prometheus_client import Counter, Gauge
 
 from agent.bundle import Bundle, load_bundle
@@ -303,7 +304,8 @@ class Pipeline:
             for ci, buf in enumerate(self.buffers.by_asset[ai]):
                 got = buf.take()
                 if got is not None:
-                    late += asm.add(ci, got[0], got[1], buf.last_arrival)
+                    late += asm.add(ci, got[0], got[1], buf.last_arrival,
+                                    presorted=buf.took_sorted)
             if late:
                 self._m[rt.cfg.name].late.inc(late)
             if rt.started_s is None:
@@ -343,6 +345,8 @@ class Pipeline:
     def _judge_window(self, rt: AssetRuntime, w: ClosedWindow, out: list[OutMessage],
                       stats: TickStats) -> _Pending:
         for ci, h in enumerate(rt.health):
+            if h.limits.passive:
+                continue  # nothing to judge (decoders let no non-finite sample through)
             change = h.check_window(w.values[ci], w.timestamps[ci])
             if change is not None:
                 self._sensor_event(rt, ci, change, w.end, f"{w.start:.3f}", w, out, stats)
@@ -670,4 +674,9 @@ def _names(rt: AssetRuntime) -> tuple[str, ...]:
 
 
 def _json(doc: Any) -> bytes:
-    return json.dumps(doc, separators=(",", ":"), allow_nan=False).encode()
+    # orjson writes the same compact JSON several times faster. Numbers are finite by
+    # the time they get here (scores are checked, health details pass `_finite`).
+    try:
+        return orjson.dumps(doc)
+    except TypeError:  # a type orjson does not know (numpy scalars are known)
+        return json.dumps(doc, separators=(",", ":"), allow_nan=False).encode()

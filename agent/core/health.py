@@ -45,6 +45,13 @@ class HealthLimits:
     flatline_windows: int | None = None
     max_rate_per_s: float | None = None
 
+    @property
+    def passive(self) -> bool:
+        """No check is configured: only the non-finite one would run, and samples that
+        come through the decoders are finite already."""
+        return (self.min_value is None and self.max_value is None and self.stale_s is None
+                and self.flatline_windows is None and self.max_rate_per_s is None)
+
 
 class Change(StrEnum):
     FAULT = "fault"

@@ -63,6 +63,8 @@ class WindowAssembler:
         self._max_ts = -math.inf
         self._last_arrival = -math.inf
         self._expected = tuple(r * window.length_s for r in rates_hz)
+        # Channels whose buffer may be out of time order (checked and sorted at close).
+        self._unsorted = [False] * len(rates_hz)
         span = window.length_s / window.hop_s
         # When a window spans a whole number of hops its end is computed as the start of
         # a later window, so a sample on a boundary falls in exactly one tumbling window.
@@ -78,15 +80,18 @@ class WindowAssembler:
         """The newest sample time seen."""
         return self._max_ts
 
-    def add(self, channel: int, ts: np.ndarray, values: np.ndarray, arrival: float) -> int:
+    def add(self, channel: int, ts: np.ndarray, values: np.ndarray, arrival: float, *,
+            presorted: bool = False) -> int:
         """Append samples of one channel (any order); returns how many were late.
 
         A sample is late when the window it belongs to has already been closed.
+        `presorted` promises `ts` is in time order, which spares the checks for it.
         """
         if ts.size == 0:
             return 0
         late = 0
-        if self._next_k is not None:
+        if self._next_k is not None and not (presorted
+                                             and ts[0] >= self._next_k * self.cfg.hop_s):
             keep = ts >= self._next_k * self.cfg.hop_s
             dropped = int(ts.size - np.count_nonzero(keep))
             if dropped:
@@ -97,12 +102,14 @@ class WindowAssembler:
                 if ts.size == 0:
                     return late
         old_t = self._ts[channel]
+        if not presorted or (old_t.size and ts[0] < old_t[-1]):
+            self._unsorted[channel] = True
         if old_t.size == 0:
             self._ts[channel], self._vals[channel] = ts, values
         else:
             self._ts[channel] = np.concatenate((old_t, ts))
             self._vals[channel] = np.concatenate((self._vals[channel], values))
-        self._max_ts = max(self._max_ts, float(ts.max()))
+        self._max_ts = max(self._max_ts, float(ts[-1] if presorted else ts.max()))
         self._last_arrival = max(self._last_arrival, arrival)
         return late
 
@@ -184,6 +191,9 @@ class WindowAssembler:
 
     def _sort(self) -> None:
         for c, t in enumerate(self._ts):
+            if not self._unsorted[c]:
+                continue
+            self._unsorted[c] = False
             if t.size > 1 and np.any(t[1:] < t[:-1]):
                 order = np.argsort(t, kind="stable")
                 self._ts[c] = t[order]
