@@ -166,11 +166,13 @@ class WindowAssembler:
             vals, tss, cov, ends = [], [], [], []
             for c in range(len(self._ts)):
                 t = self._ts[c]
-                lo, hi = np.searchsorted(t, [start, end], side="left")
-                tss.append(t[lo:hi])
-                vals.append(self._vals[c][lo:hi])
-                cov.append((hi - lo) / self._expected[c] if self._expected[c] else 1.0)
-                ends.append(int(hi))
+                # Every buffered sample is at or after `start`: `_advance` and `add`
+                # drop the older ones, so the window is a prefix of the buffer.
+                hi = int(t.searchsorted(end))
+                tss.append(t[:hi])
+                vals.append(self._vals[c][:hi])
+                cov.append(hi / self._expected[c] if self._expected[c] else 1.0)
+                ends.append(hi)
             complete = all(c >= self.cfg.min_coverage for c in cov)
             out.windows.append(ClosedWindow(start, end, tuple(vals), tuple(tss), tuple(cov),
                                             complete))
