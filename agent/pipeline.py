@@ -564,12 +564,14 @@ class Pipeline:
         rt.last_window_end = w.end
         tr = rt.detector.step(score, meta.threshold, meta.clear_threshold)
         name = rt.cfg.name
-        src = self.source.for_asset(name)
-        base = {"asset": name, "mode": mode,
-                "window": {"start": rfc3339(w.start), "end": rfc3339(w.end)},
-                "score": round(score, 6), "threshold": meta.threshold,
-                "clear_threshold": meta.clear_threshold,
-                "model": {"id": meta.model_id, "version": meta.version}}
+        end_s = rfc3339(w.end)
+        model = {"id": meta.model_id, "version": meta.version}
+        if tr is not None:
+            src = self.source.for_asset(name)
+            base = {"asset": name, "mode": mode,
+                    "window": {"start": rfc3339(w.start), "end": end_s},
+                    "score": round(score, 6), "threshold": meta.threshold,
+                    "clear_threshold": meta.clear_threshold, "model": model}
         if tr is Transition.RAISED:
             rt.sequence += 1
             rt.raised_at = w.end
@@ -594,13 +596,11 @@ class Pipeline:
         state_topic = f"{self.prefix}/assets/{name}/state"
         state = {"asset": name, "state": rt.state.value, "mode": mode,
                  "score": round(score, 6), "threshold": meta.threshold,
-                 "window_end": rfc3339(w.end),
-                 "model": {"id": meta.model_id, "version": meta.version},
-                 "last_event": rt.last_event}
+                 "window_end": end_s, "model": model, "last_event": rt.last_event}
         out.append(OutMessage(state_topic, _json(state), Kind.STATE, qos=1, retain=True,
                               key=state_topic))
         if self.cfg.publish_scores:
-            tel = {"asset": name, "mode": mode, "window_end": rfc3339(w.end),
+            tel = {"asset": name, "mode": mode, "window_end": end_s,
                    "score": round(score, 6), "threshold": meta.threshold}
             out.append(OutMessage(f"{self.prefix}/assets/{name}/scores", _json(tel),
                                   Kind.SCORE, qos=0))
