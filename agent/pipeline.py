@@ -431,6 +431,11 @@ class Pipeline:
         rows: list[np.ndarray] = []
         pos = 0
         for wi, p in enumerate(todo):
+            n_ch = len(p.rt.cfg.channels)
+            if not p.rt.spectral:  # the channels' rows side by side: a view, no copy
+                rows.append(feats[pos:pos + n_ch].reshape(-1))
+                pos += n_ch
+                continue
             parts = []
             for ci, _ch in enumerate(p.rt.cfg.channels):
                 parts.append(feats[pos + ci])
