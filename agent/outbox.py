@@ -274,16 +274,17 @@ class Outbox:
     def _write_pending(self) -> None:
         db = self._conn()
         db.execute("BEGIN IMMEDIATE")
-        added_rows, added_bytes, last_id = 0, 0, self.max_id
-        for m, created in self._pending:
-            size = message_size(m)
-            cur = db.execute(
+        rows_in = [(created, int(m.kind), m.topic, m.payload, m.qos, int(m.retain), m.key,
+                    message_size(m)) for m, created in self._pending]
+        last_id = self.max_id
+        if rows_in:
+            db.executemany(
                 "INSERT INTO outbox (created, kind, topic, payload, qos, retain, key, size) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
-                (created, int(m.kind), m.topic, m.payload, m.qos, int(m.retain), m.key, size))
-            last_id = int(cur.lastrowid or last_id)
-            added_rows += 1
-            added_bytes += size
+                "VALUES (?, ?, ?, ?, ?, ?, ?, ?)", rows_in)
+            # One writer inside this transaction: the new ids run up to the last one.
+            last_id = int(db.execute("SELECT last_insert_rowid()").fetchone()[0])
+        added_rows = len(rows_in)
+        added_bytes = sum(r[7] for r in rows_in)
         if self._pending_seqs:
             db.executemany(
                 "INSERT INTO sequences (asset, seq) VALUES (?, ?) "
@@ -388,12 +389,14 @@ class Outbox:
             try:
                 db.execute("BEGIN IMMEDIATE")
                 n, freed = 0, 0
-                for i in ids:
-                    r = db.execute("DELETE FROM outbox WHERE id = ? RETURNING size",
-                                   (i,)).fetchone()
-                    if r is not None:
+                uniq = list(dict.fromkeys(ids))
+                for k in range(0, len(uniq), 500):  # well under SQLite's variable limit
+                    part = uniq[k:k + 500]
+                    marks = ",".join("?" * len(part))
+                    for (size,) in db.execute(
+                            f"DELETE FROM outbox WHERE id IN ({marks}) RETURNING size", part):
                         n += 1
-                        freed += int(r[0])
+                        freed += int(size)
                 db.execute("COMMIT")
             except sqlite3.Error as exc:
                 self._rollback()
