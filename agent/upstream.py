@@ -53,6 +53,8 @@ RECONNECT_MIN_S = 0.5
 RECONNECT_MAX_S = 10.0
 LOOP_TIMEOUT_S = 0.05
 BUSY_LOOP_TIMEOUT_S = 0.002
+# Rows read ahead of the in-flight window: fewer, larger reads while draining a backlog.
+PREFETCH_ROWS = 200
 STOP_DRAIN_S = 3.0
 REFUSED_RETRY_S = 5.0
 GAUGE_EVERY_S = 0.5
@@ -451,7 +453,7 @@ class Upstream:
                 sock.send(b"\0")
 
     def _refill(self, cursor: int, handed: set[int]) -> int:
-        room = 2 * self.window - len(handed)
+        room = max(PREFETCH_ROWS, 2 * self.window) - len(handed)
         top = self.outbox.max_id
         if room <= 0 or top <= cursor:
             return cursor
