@@ -205,6 +205,10 @@ def main(argv: Sequence[str] | None = None) -> int:
 
         os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
         return 141
+    except OSError as exc:  # the machine said no (a port in use, a path not writable)
+        where = f" ({exc.filename})" if exc.filename else ""
+        print(f"watchkeep: {exc.strerror or exc}{where}", file=sys.stderr)
+        return 1
 
 
 if __name__ == "__main__":

@@ -24,7 +24,7 @@ from prometheus_client import CollectorRegistry
 from agent import __version__
 from agent.bundle import Bundle, load_bundle
 from agent.config import AssetConfig, Config
-from agent.errors import BundleError
+from agent.errors import BundleError, ConfigError, ConfigProblem
 from agent.ingest import Buffers, Ingest, IngestHandler
 from agent.learning import RebaselineManager
 from agent.logs import kv
@@ -162,7 +162,12 @@ class Daemon:
 
     def start(self) -> None:
         cfg = self.cfg
-        cfg.state_dir.mkdir(parents=True, exist_ok=True)
+        try:
+            cfg.state_dir.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            raise ConfigError([ConfigProblem(
+                "state_dir", "a directory watchkeep can create and write",
+                f"{cfg.state_dir} ({exc.strerror or exc})")]) from exc
         runtimes = []
         for a in cfg.assets:
             bundle, err = load_asset_bundle(a, self.log)
@@ -196,15 +201,18 @@ class Daemon:
         self.loop = PipelineLoop(self.pipeline, cfg.tick_s, self.metrics, self.notifier,
                                  self.log, clock=self.clock)
         self.loop.after_tick = self._after_tick
+        if cfg.http.enabled:
+            # Bound before any broker is contacted: a port in use stops the start-up
+            # before an "online" status could be published.
+            self.http = HttpServer(cfg.http.host, cfg.http.port, self.registry,
+                                   healthy=self.healthy, ready=self.ready, status=self.status,
+                                   before_scrape=lambda: self.handler.flush_counts())
         if self.commands is not None:
             self.commands.start()
         self.upstream.start()
         self.loop.start()
         self.ingest.start()
-        if cfg.http.enabled:
-            self.http = HttpServer(cfg.http.host, cfg.http.port, self.registry,
-                                   healthy=self.healthy, ready=self.ready, status=self.status,
-                                   before_scrape=lambda: self.handler.flush_counts())
+        if self.http is not None:
             self.http.start()
         self.rebaseline.start()
         loaded = sum(1 for rt in runtimes if rt.bundle is not None)
