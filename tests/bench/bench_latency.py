@@ -29,9 +29,7 @@ import paho.mqtt.client as mqtt
 import yaml
 from paho.mqtt.enums import CallbackAPIVersion
 
-from agent.bundle import write_bundle
-from agent.commission.export import export_dense, pca_autoencoder
-from tests.bench.common import save, table
+from tests.bench.common import quiet_bundle, save, table
 from tests.brokers import Broker, wait_for
 
 N_CHANNELS, RATE_HZ = 8, 5.0
@@ -72,13 +70,8 @@ def _run(n_assets: int, tmp: Path) -> dict[str, Any]:
     local = Broker(tmp / f"local{n_assets}", extra="max_queued_messages 0\n").start()
     up = Broker(tmp / f"up{n_assets}", extra="max_queued_messages 0\n").start()
     names = [f"c{c}.{f}" for c in range(N_CHANNELS) for f in FEATS]
-    meta = {"asset": "A", "mode": "default", "model_id": "A/default", "version": 1,
-            "feature_names": names,
-            "scaler": {"mean": [50.0] * len(names), "scale": [1.0] * len(names)},
-            "score": {"function": "mse"}, "threshold": 1e9, "clear_threshold": 1e8,
-            "onnx": {"input": "x", "output": "recon"}}
     z = np.random.default_rng(0).normal(size=(400, len(names)))
-    bdir = write_bundle(tmp / f"bundle{n_assets}", export_dense(pca_autoencoder(z, 8)), meta)
+    bdir, _ = quiet_bundle(tmp / f"bundle{n_assets}", names, z, mean=50.0)
     cfg = {"site": "bench", "gateway": "lat", "state_dir": str(tmp / f"state{n_assets}"),
            "local_broker": {"port": local.port}, "upstream_broker": {"port": up.port},
            "http": {"port": 0}, "publish": {"scores": True},

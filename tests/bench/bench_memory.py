@@ -23,9 +23,7 @@ import paho.mqtt.client as mqtt
 import yaml
 from paho.mqtt.enums import CallbackAPIVersion
 
-from agent.bundle import write_bundle
-from agent.commission.export import export_dense, pca_autoencoder
-from tests.bench.common import median, save, table
+from tests.bench.common import median, quiet_bundle, save, table
 from tests.brokers import Broker
 
 N_ASSETS, N_CHANNELS, RATE_HZ = 200, 8, 2.0
@@ -66,13 +64,8 @@ def main() -> int:
         tmp = Path(d)
         broker = Broker(tmp / "broker", extra="max_queued_messages 0\n").start()
         names = [f"c{c}.{f}" for c in range(N_CHANNELS) for f in FEATS]
-        meta = {"asset": "A", "mode": "default", "model_id": "A/default", "version": 1,
-                "feature_names": names,
-                "scaler": {"mean": [50.0] * len(names), "scale": [1.0] * len(names)},
-                "score": {"function": "mse"}, "threshold": 1e9, "clear_threshold": 1e8,
-                "onnx": {"input": "x", "output": "recon"}}
         z = np.random.default_rng(0).normal(size=(400, len(names)))
-        bdir = write_bundle(tmp / "bundle", export_dense(pca_autoencoder(z, 8)), meta)
+        bdir, _ = quiet_bundle(tmp / "bundle", names, z, mean=50.0)
         cfg = {"site": "bench", "gateway": "mem", "state_dir": str(tmp / "state"),
                "local_broker": {"port": broker.port},
                "upstream_broker": {"port": broker.port},

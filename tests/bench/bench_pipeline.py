@@ -16,13 +16,12 @@ import numpy as np
 import onnxruntime as ort
 from prometheus_client import CollectorRegistry
 
-from agent.bundle import _session_options, load_bundle, write_bundle
-from agent.commission.export import export_dense, pca_autoencoder
+from agent.bundle import _session_options, load_bundle
 from agent.config import parse_config
 from agent.ingest import Buffers
 from agent.metrics import Metrics
 from agent.pipeline import AssetRuntime, Pipeline
-from tests.bench.common import alternate, median, save, table
+from tests.bench.common import alternate, median, quiet_bundle, save, table
 
 N_ASSETS, N_CHANNELS, N_SAMPLES = 200, 8, 100
 FEATS = ["mean", "std", "rms", "peak_to_peak", "kurtosis"]
@@ -42,13 +41,7 @@ def build(tmp: Path):
     rng = np.random.default_rng(0)
     names = [f"c{c}.{f}" for c in range(N_CHANNELS) for f in FEATS]
     z = rng.normal(size=(500, len(names)))
-    meta = {"asset": "A", "mode": "default", "model_id": "A/default", "version": 1,
-            "feature_names": names,
-            "scaler": {"mean": [0.0] * len(names), "scale": [1.0] * len(names)},
-            "score": {"function": "mse"}, "threshold": 1e9, "clear_threshold": 1e8,
-            "onnx": {"input": "x", "output": "recon"}}
-    model = export_dense(pca_autoencoder(z, 8))
-    bdir = write_bundle(tmp / "bundle", model, meta)
+    bdir, model = quiet_bundle(tmp / "bundle", names, z, mean=0.0)
     doc = {"site": "bench", "gateway": "gw", "state_dir": str(tmp / "state"),
            "assets": [{"name": f"A{i:03d}", "bundle": str(bdir),
                        "window": {"length_s": 1.0, "lateness_s": 0.0, "timeout_s": 0.5},

@@ -60,3 +60,18 @@ def timed(fn: Callable[[], int]) -> float:
     t0 = time.perf_counter()
     n = fn()
     return n / (time.perf_counter() - t0)
+
+
+def quiet_bundle(dest: Path, names: list[str], z: Any, mean: float) -> tuple[Path, bytes]:
+    """A PCA-autoencoder bundle over `names` whose threshold is never reached, so a
+    benchmark measures the scoring path without events; returns (directory, ONNX bytes)."""
+    from agent.bundle import write_bundle
+    from agent.commission.export import export_dense, pca_autoencoder
+
+    meta = {"asset": "A", "mode": "default", "model_id": "A/default", "version": 1,
+            "feature_names": names,
+            "scaler": {"mean": [mean] * len(names), "scale": [1.0] * len(names)},
+            "score": {"function": "mse"}, "threshold": 1e9, "clear_threshold": 1e8,
+            "onnx": {"input": "x", "output": "recon"}}
+    model = export_dense(pca_autoencoder(z, 8))
+    return write_bundle(dest, model, meta), model
