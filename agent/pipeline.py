@@ -143,6 +143,7 @@ class AssetRuntime:
     bundle_error: str | None = None
     model_index: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))
     record_index: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))
+    record_names: tuple[str, ...] = ()
     mode: str = DEFAULT_MODE
     sequence: int = 0
     last_score: float | None = None
@@ -175,7 +176,8 @@ class AssetRuntime:
         rt = cls(cfg=cfg,
                  assembler=WindowAssembler(cfg.window, tuple(c.rate_hz for c in cfg.channels)),
                  detector=Detector(cfg.detector))
-        rt.record_index = _full_index(cfg, asset_feature_names(cfg))
+        rt.record_names = asset_feature_names(cfg)
+        rt.record_index = _full_index(cfg, rt.record_names)
         rt.mode_bundles, rt.mode_bundle_errors = (mode_bundles if mode_bundles is not None
                                                   else load_mode_bundles(cfg))
         rt.mode_index = {m: _full_index(cfg, b.meta.feature_names)
@@ -522,7 +524,8 @@ class Pipeline:
                 continue
             assert row is not None
             if self.observer is not None:
-                self.observer(rt.cfg.name, p.mode, p.w, row[rt.record_index], _names(rt))
+                self.observer(rt.cfg.name, p.mode, p.w, row[rt.record_index],
+                              rt.record_names)
             bundle, index = rt.bundle_for(p.mode)
             if bundle is None:
                 self._skip(rt, "no_model")
@@ -672,10 +675,6 @@ _LEVEL_VALUE = {"normal": 0, "alert": 1, "alarm": 2, "alert_low": 1, "alarm_low"
 
 def _finite(v: float) -> float | None:
     return round(float(v), 6) if np.isfinite(v) else None
-
-
-def _names(rt: AssetRuntime) -> tuple[str, ...]:
-    return asset_feature_names(rt.cfg)
 
 
 def _json(doc: Any) -> bytes:
