@@ -8,7 +8,6 @@ process looks alive (PITFALLS.md).
 
 from __future__ import annotations
 
-import array
 import logging
 import math
 import threading
@@ -20,32 +19,51 @@ import numpy as np
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion
 
-from agent.config import BrokerConfig, Config, Decoder, MqttProtocol, read_secret
+from agent.config import AssetConfig, BrokerConfig, Config, Decoder, MqttProtocol, read_secret
 from agent.core.decode import Reason, Rejected, decode_message
 from agent.core.routing import Route, build_routes
+from agent.core.windows import AssembleResult, WindowAssembler
 from agent.logs import RateLimited, kv
 from agent.metrics import Metrics
 
 Clock = Callable[[], float]
 
 
+class AssetInbox:
+    """Where one asset's channel buffers put their samples: the asset's window
+    assembler, under one lock that the network thread (adding samples) and the
+    pipeline (closing windows) share. Late samples are counted here until a tick
+    takes the count."""
+
+    __slots__ = ("assembler", "late", "lock")
+
+    def __init__(self, assembler: WindowAssembler) -> None:
+        self.lock = threading.Lock()
+        self.assembler = assembler
+        self.late = 0
+
+    def close_due(self, now: float) -> tuple[AssembleResult, int]:
+        """The windows due at `now`, and the late samples counted since the last call."""
+        with self.lock:
+            res = self.assembler.close_due(now)
+            late, self.late = self.late, 0
+        return res, late
+
+
 class ChannelBuffer:
-    """Samples of one channel waiting for the pipeline; filled by ingest, emptied by ticks."""
+    """One channel's way into its asset's window assembler, with the channel's arrival
+    bookkeeping (last arrival, gap tracking, message and sample counts).
 
-    __slots__ = ("_blocks", "_last_ts", "_lock", "_sorted", "_ts", "_vals",
-                 "flushed_messages", "flushed_samples", "last_arrival", "last_seq",
-                 "n_messages", "n_samples", "next_block_ts", "took_sorted")
+    Samples go straight into the assembler's preallocated store under the asset's
+    lock: there is no second copy for the pipeline to take over each tick.
+    """
 
-    def __init__(self) -> None:
-        self._lock = threading.Lock()
-        self._ts = array.array("d")
-        self._vals = array.array("d")
-        self._blocks: list[tuple[np.ndarray, np.ndarray]] = []
-        # Whether everything since the last take arrived in time order (blocks are in
-        # order inside by construction); `took_sorted` says it of the last take.
-        self._sorted = True
-        self._last_ts = -math.inf
-        self.took_sorted = True
+    __slots__ = ("channel", "flushed_messages", "flushed_samples", "inbox", "last_arrival",
+                 "last_seq", "n_messages", "n_samples", "next_block_ts")
+
+    def __init__(self, inbox: AssetInbox, channel: int) -> None:
+        self.inbox = inbox
+        self.channel = channel
         self.last_arrival = 0.0
         self.next_block_ts: float | None = None
         self.last_seq: int | None = None
@@ -58,49 +76,33 @@ class ChannelBuffer:
         self.flushed_samples = 0
 
     def append(self, ts: float, value: float, arrival: float) -> None:
-        with self._lock:
-            self._ts.append(ts)
-            self._vals.append(value)
-            if ts < self._last_ts:
-                self._sorted = False
-            self._last_ts = ts
-            self.last_arrival = arrival
+        inbox = self.inbox
+        with inbox.lock:
+            if inbox.assembler.add_one(self.channel, ts, value, arrival):
+                inbox.late += 1
+        self.last_arrival = arrival
 
     def append_block(self, ts: np.ndarray, values: np.ndarray, arrival: float) -> None:
-        with self._lock:
-            self._blocks.append((ts, values))
-            if ts[0] < self._last_ts:
-                self._sorted = False
-            self._last_ts = float(ts[-1])
-            self.last_arrival = arrival
+        """A block in time order (decoded blocks are, by construction)."""
+        inbox = self.inbox
+        with inbox.lock:
+            late = inbox.assembler.add(self.channel, ts, values, arrival, presorted=True)
+            if late:
+                inbox.late += late
+        self.last_arrival = arrival
 
-    def take(self) -> tuple[np.ndarray, np.ndarray] | None:
-        """Everything appended since the last take, as (timestamps, values)."""
-        with self._lock:
-            if not self._ts and not self._blocks:
-                return None
-            ts_s, vals_s, blocks = self._ts, self._vals, self._blocks
-            self.took_sorted = self._sorted
-            self._sorted = True
-            self._ts = array.array("d")
-            self._vals = array.array("d")
-            self._blocks = []
-        parts_t = [b[0] for b in blocks]
-        parts_v = [b[1] for b in blocks]
-        if ts_s:
-            parts_t.append(np.frombuffer(ts_s, dtype=np.float64))
-            parts_v.append(np.frombuffer(vals_s, dtype=np.float64))
-        if len(parts_t) == 1:
-            return parts_t[0], parts_v[0]
-        return np.concatenate(parts_t), np.concatenate(parts_v)
+
+def asset_buffers(asset: AssetConfig) -> list[ChannelBuffer]:
+    """The channel buffers of one asset, sharing one inbox and window assembler."""
+    inbox = AssetInbox(WindowAssembler(asset.window, tuple(c.rate_hz for c in asset.channels)))
+    return [ChannelBuffer(inbox, i) for i in range(len(asset.channels))]
 
 
 class Buffers:
     """One ChannelBuffer per configured (asset, channel)."""
 
     def __init__(self, cfg: Config) -> None:
-        self.by_asset: list[list[ChannelBuffer]] = [
-            [ChannelBuffer() for _ in a.channels] for a in cfg.assets]
+        self.by_asset: list[list[ChannelBuffer]] = [asset_buffers(a) for a in cfg.assets]
 
     def get(self, route: Route) -> ChannelBuffer:
         return self.by_asset[route.asset_index][route.channel_index]

@@ -38,14 +38,14 @@ from agent.bundle import Bundle, load_bundle
 from agent.config import FEATURES, AssetConfig, Config
 from agent.core.detector import Detector, State, Transition
 from agent.core.events import EventType, Source, make_event, rfc3339, severity_for, top_contributors
-from agent.core.features import FEATURE_INDEX, segment_features
+from agent.core.features import FEATURE_INDEX, block_features, segment_features, stack_rows
 from agent.core.health import Change, ChannelHealth, HealthChange, HealthLimits
 from agent.core.limits import ZONES, FeatureLimits, LimitRise, ZoneLimits, zone_of
 from agent.core.modes import UNKNOWN_MODE, ModeTracker
 from agent.core.spectral import spectral_features
-from agent.core.windows import ClosedWindow, WindowAssembler
+from agent.core.windows import Block, ClosedWindow, WindowAssembler
 from agent.errors import BundleError
-from agent.ingest import Buffers
+from agent.ingest import AssetInbox, Buffers
 from agent.logs import kv
 from agent.messages import Kind, OutMessage
 from agent.metrics import Metrics
@@ -167,6 +167,14 @@ class AssetRuntime:
     speed_index: int | None = None
     mode_index_ch: int | None = None
     velocity_at: list[tuple[int, int]] = field(default_factory=list)  # (channel, row position)
+    stale_channels: list[int] = field(default_factory=list)  # channels with `stale_s`
+    checked: list[int] = field(default_factory=list)  # channels with any health check
+    # What the threshold and anomalous gauges were last set to by `_step` (None: unknown).
+    shown_threshold: float | None = None
+    shown_anomalous: int | None = None
+    # Time-domain features any consumer of the row reads (config, limits; models are
+    # checked to need no others): the feature pass computes only these.
+    td_needed: frozenset[str] = frozenset()
 
     @classmethod
     def build(cls, cfg: AssetConfig, bundle: Bundle | None, bundle_error: str | None,
@@ -192,6 +200,12 @@ class AssetRuntime:
                                                 c.flatline_windows, c.max_rate_per_s))
                      for c in cfg.channels]
         rt.spectral = [i for i, c in enumerate(cfg.channels) if c.spectrum is not None]
+        rt.stale_channels = [i for i, c in enumerate(cfg.channels) if c.stale_s is not None]
+        rt.checked = [i for i, h in enumerate(rt.health) if not h.limits.passive]
+        td = {f for c in cfg.channels for f in c.all_features if f in FEATURE_INDEX}
+        td |= {lim.feature for c in cfg.channels for lim in c.limits
+               if lim.feature in FEATURE_INDEX}
+        rt.td_needed = frozenset(td)
         layout = feature_layout(cfg)
         rt.velocity_at = [(i, layout[f"{c.name}.velocity_rms_mm_s"])
                           for i, c in enumerate(cfg.channels)
@@ -282,7 +296,17 @@ class Pipeline:
         self.source = Source(cfg.site, cfg.gateway)
         self.prefix = cfg.topic_prefix
         self._m = {rt.cfg.name: _AssetMetrics.of(metrics, rt.cfg.name) for rt in runtimes}
+        # Ingest writes each asset's samples straight into its runtime's assembler.
+        self._inboxes: list[AssetInbox] = []
+        for rt, bufs in zip(runtimes, buffers.by_asset, strict=True):
+            inbox = bufs[0].inbox
+            if inbox.assembler is not rt.assembler:
+                with inbox.lock:  # a fresh runtime: its buffers have had no samples yet
+                    inbox.assembler = rt.assembler
+            self._inboxes.append(inbox)
+        self._times: dict[float, str] = {}  # rfc3339 of window bounds, per tick
         for rt in runtimes:
+            rt.shown_threshold = rt.shown_anomalous = None
             self._publish_model_gauges(rt)
 
     def _publish_model_gauges(self, rt: AssetRuntime) -> None:
@@ -300,21 +324,17 @@ class Pipeline:
         seq_before = [rt.sequence for rt in self.runtimes]
         pending: list[_Pending] = []
         out: list[OutMessage] = []
+        self._times.clear()
         for ai, rt in enumerate(self.runtimes):
-            asm = rt.assembler
-            late = 0
-            for ci, buf in enumerate(self.buffers.by_asset[ai]):
-                got = buf.take()
-                if got is not None:
-                    late += asm.add(ci, got[0], got[1], buf.last_arrival,
-                                    presorted=buf.took_sorted)
+            res, late = self._inboxes[ai].close_due(now)
             if late:
                 self._m[rt.cfg.name].late.inc(late)
             if rt.started_s is None:
                 rt.started_s = now
-            self._check_stale(rt, ai, now, out, stats)
-            res = asm.close_due(now)
-            self._skip(rt, "no_data", res.empty_skipped)
+            if rt.stale_channels:
+                self._check_stale(rt, ai, now, out, stats)
+            if res.empty_skipped:
+                self._skip(rt, "no_data", res.empty_skipped)
             for w in res.windows:
                 self._m[rt.cfg.name].closed.inc()
                 stats.windows_closed += 1
@@ -335,9 +355,8 @@ class Pipeline:
 
     def _check_stale(self, rt: AssetRuntime, ai: int, now: float, out: list[OutMessage],
                      stats: TickStats) -> None:
-        for ci, (ch, h) in enumerate(zip(rt.cfg.channels, rt.health, strict=True)):
-            if ch.stale_s is None:
-                continue
+        for ci in rt.stale_channels:
+            h = rt.health[ci]
             buf = self.buffers.by_asset[ai][ci]
             last = buf.last_arrival or rt.started_s or now
             change = h.check_stale(now - last)
@@ -346,13 +365,13 @@ class Pipeline:
 
     def _judge_window(self, rt: AssetRuntime, w: ClosedWindow, out: list[OutMessage],
                       stats: TickStats) -> _Pending:
-        for ci, h in enumerate(rt.health):
-            if h.limits.passive:
-                continue  # nothing to judge (decoders let no non-finite sample through)
-            change = h.check_window(w.values[ci], w.timestamps[ci])
+        health = rt.health
+        for ci in rt.checked:  # passive channels: nothing to judge (decoders let no
+            # non-finite sample through), and they can never be faulty
+            change = health[ci].check_window(w.values[ci], w.timestamps[ci])
             if change is not None:
                 self._sensor_event(rt, ci, change, w.end, f"{w.start:.3f}", w, out, stats)
-        faulty = tuple(i for i, h in enumerate(rt.health) if h.faulty)
+        faulty = tuple(i for i in rt.checked if health[i].faulty)
         settling = False
         scored = True
         if rt.modes is not None and rt.mode_index_ch is not None:
@@ -406,10 +425,33 @@ class Pipeline:
     # -- features, limits, scoring ------------------------------------------------------
 
     def _features(self, todo: list[_Pending]) -> list[np.ndarray]:
-        """The full feature row of each window (time-domain, then spectral per channel)."""
+        """The full feature row of each window (time-domain, then spectral per channel).
+
+        Time-domain features come from one `block_features` pass per segment length over
+        the full-length rate-group blocks of every window (the usual case), and one
+        `segment_features` pass over the rest.
+        """
         t0 = time.perf_counter()
-        segments = [seg for p in todo for seg in p.w.values]
-        feats = segment_features(segments)
+        needed = frozenset().union(*{p.rt.td_needed for p in todo})
+        by_len: dict[int, list[np.ndarray]] = {}
+        n_by_len: dict[int, int] = {}
+        ragged: list[np.ndarray] = []
+        # Per block: (its channels, segment length or -1 for ragged, first row there).
+        places: list[tuple[tuple[int, ...], int, int]] = []
+        spans: list[tuple[int, int]] = []
+        for p in todo:
+            first = len(places)
+            w = p.w
+            if w.blocks:
+                for blk in w.blocks:
+                    self._place(blk, by_len, n_by_len, ragged, places)
+            else:  # a window built from per-channel arrays
+                places.append((tuple(range(len(w.values))), -1, len(ragged)))
+                ragged.extend(w.values)
+            spans.append((first, len(places)))
+        feats = {n: block_features(stack_rows(parts), needed) for n, parts in by_len.items()}
+        if ragged:
+            feats[-1] = segment_features(ragged)
         spec_segs, spec_rates, spec_cfgs, spec_speeds, spec_at = [], [], [], [], []
         for wi, p in enumerate(todo):
             rt = p.rt
@@ -431,23 +473,41 @@ class Pipeline:
             if spec_segs else []
         by_window: dict[tuple[int, int], np.ndarray] = dict(zip(spec_at, spec, strict=True))
         rows: list[np.ndarray] = []
-        pos = 0
-        for wi, p in enumerate(todo):
+        for wi, (p, (a, b)) in enumerate(zip(todo, spans, strict=True)):
             n_ch = len(p.rt.cfg.channels)
-            if not p.rt.spectral:  # the channels' rows side by side: a view, no copy
-                rows.append(feats[pos:pos + n_ch].reshape(-1))
-                pos += n_ch
-                continue
+            if b - a == 1 and not p.rt.spectral:
+                chans, n, off = places[a]
+                if len(chans) == n_ch:  # one block of every channel in order: a view
+                    rows.append(feats[n][off:off + n_ch].reshape(-1))
+                    continue
+            per_ch: list[np.ndarray] = [np.empty(0)] * n_ch
+            for chans, n, off in places[a:b]:
+                f = feats[n]
+                for r, c in enumerate(chans):
+                    per_ch[c] = f[off + r]
             parts = []
-            for ci, _ch in enumerate(p.rt.cfg.channels):
-                parts.append(feats[pos + ci])
+            for ci in range(n_ch):
+                parts.append(per_ch[ci])
                 extra = by_window.get((wi, ci))
                 if extra is not None:
                     parts.append(extra)
-            pos += len(p.rt.cfg.channels)
             rows.append(np.concatenate(parts))
         self.metrics.feature_seconds.observe(time.perf_counter() - t0)
         return rows
+
+    @staticmethod
+    def _place(blk: Block, by_len: dict[int, list[np.ndarray]], n_by_len: dict[int, int],
+               ragged: list[np.ndarray], places: list[tuple[tuple[int, ...], int, int]]
+               ) -> None:
+        if blk.uniform:
+            n = blk.values.shape[1]
+            off = n_by_len.get(n, 0)
+            by_len.setdefault(n, []).append(blk.values)
+            n_by_len[n] = off + len(blk.chans)
+            places.append((blk.chans, n, off))
+        else:
+            places.append((blk.chans, -1, len(ragged)))
+            ragged.extend(blk.values[r, :k] for r, k in enumerate(blk.counts))
 
     def _limits(self, p: _Pending, row: np.ndarray, out: list[OutMessage],
                 stats: TickStats) -> None:
@@ -513,7 +573,7 @@ class Pipeline:
         todo = [p for p in pending if p.w.complete]
         rows = self._features(todo) if todo else []
         row_of = {id(p): r for p, r in zip(todo, rows, strict=True)}
-        by_model: dict[int, list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]]] = {}
+        items: list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]] = []
         for p in pending:
             rt = p.rt
             row = row_of.get(id(p))
@@ -530,23 +590,8 @@ class Pipeline:
             if bundle is None:
                 self._skip(rt, "no_model")
                 continue
-            by_model.setdefault(id(bundle), []).append((p, row, bundle, index))
-        results: dict[int, tuple[float, np.ndarray]] = {}
-        for items in by_model.values():
-            bundle = items[0][2]
-            x = np.stack([row[index] for _, row, _, index in items])
-            t1 = time.perf_counter()
-            try:
-                scores, sq = bundle.score(x)
-            except Exception as exc:  # a model failing at run time fails its asset only
-                self.log.error(kv("model failed", asset=items[0][0].rt.cfg.name,
-                                  error=str(exc)[:200]))
-                for p, *_ in items:
-                    self._skip(p.rt, "model_error")
-                continue
-            self.metrics.inference_seconds.observe(time.perf_counter() - t1)
-            for j, (p, *_) in enumerate(items):
-                results[id(p)] = (float(scores[j]), sq[j])
+            items.append((p, row, bundle, index))
+        results = self._infer(items) if items else {}
         # Step detectors in window order, so an asset's windows are judged in time order.
         for p in pending:
             got = results.get(id(p))
@@ -560,24 +605,72 @@ class Pipeline:
             assert bundle is not None
             self._step(p.rt, p.w, p.mode, bundle, score, sq, out, stats)
 
+    def _infer(self, items: list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]]
+               ) -> dict[int, tuple[float, np.ndarray]]:
+        """Score every window: standardisation and squared errors for all windows of one
+        model width at once, one onnxruntime run per window's model (each asset has its
+        own). The arithmetic is `Bundle.score`'s, row by row."""
+        t1 = time.perf_counter()
+        results: dict[int, tuple[float, np.ndarray]] = {}
+        by_width: dict[int, list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]]] = {}
+        for it in items:
+            by_width.setdefault(it[3].size, []).append(it)
+        for group in by_width.values():
+            # Rows of assets laid out alike share one gather of the model's features.
+            by_layout: dict[tuple[int, bytes], list[int]] = {}
+            for j, (_, row, _, index) in enumerate(group):
+                by_layout.setdefault((row.size, index.tobytes()), []).append(j)
+            x = np.empty((len(group), group[0][3].size))
+            for js in by_layout.values():
+                idx = group[js[0]][3]
+                x[js] = np.stack([group[j][1] for j in js])[:, idx]
+            mean = np.stack([b.meta.scaler_mean for _, _, b, _ in group])
+            scale = np.stack([b.meta.scaler_scale for _, _, b, _ in group])
+            z = ((x - mean) / scale).astype(np.float32)
+            recon = np.empty_like(z)
+            ok = np.ones(len(group), dtype=bool)
+            failed: set[int] = set()
+            for j, (p, _, b, _) in enumerate(group):
+                if id(b) in failed:
+                    ok[j] = False
+                    self._skip(p.rt, "model_error")
+                    continue
+                try:
+                    recon[j] = b.reconstruct(z[j:j + 1])[0]
+                except Exception as exc:  # a model failing at run time fails its asset only
+                    failed.add(id(b))
+                    ok[j] = False
+                    self.log.error(kv("model failed", asset=p.rt.cfg.name,
+                                      error=str(exc)[:200]))
+                    self._skip(p.rt, "model_error")
+            err = (z - recon).astype(np.float64) ** 2
+            scores = err.mean(axis=1)
+            for j, (p, *_) in enumerate(group):
+                if ok[j]:
+                    results[id(p)] = (float(scores[j]), err[j])
+        self.metrics.inference_seconds.observe(time.perf_counter() - t1)
+        return results
+
     def _step(self, rt: AssetRuntime, w: ClosedWindow, mode: str, bundle: Bundle, score: float,
               sq: np.ndarray, out: list[OutMessage], stats: TickStats) -> None:
         meta = bundle.meta
         m = self._m[rt.cfg.name]
         m.scored.inc()
         m.score.set(score)
-        m.threshold.set(meta.threshold)
+        if meta.threshold != rt.shown_threshold:
+            m.threshold.set(meta.threshold)
+            rt.shown_threshold = meta.threshold
         stats.windows_scored += 1
         rt.last_score = score
         rt.last_window_end = w.end
         tr = rt.detector.step(score, meta.threshold, meta.clear_threshold)
         name = rt.cfg.name
-        end_s = rfc3339(w.end)
+        end_s = self._time(w.end)
         model = {"id": meta.model_id, "version": meta.version}
         if tr is not None:
             src = self.source.for_asset(name)
             base = {"asset": name, "mode": mode,
-                    "window": {"start": rfc3339(w.start), "end": end_s},
+                    "window": {"start": self._time(w.start), "end": end_s},
                     "score": round(score, 6), "threshold": meta.threshold,
                     "clear_threshold": meta.clear_threshold, "model": model}
         if tr is Transition.RAISED:
@@ -600,7 +693,10 @@ class Pipeline:
                         id_key=f"{w.start:.3f}")
             rt.raised_at = None
             stats.events += 1
-        m.anomalous.set(1 if rt.state is State.ANOMALOUS else 0)
+        anomalous = 1 if rt.state is State.ANOMALOUS else 0
+        if anomalous != rt.shown_anomalous:
+            m.anomalous.set(anomalous)
+            rt.shown_anomalous = anomalous
         state_topic = f"{self.prefix}/assets/{name}/state"
         state = {"asset": name, "state": rt.state.value, "mode": mode,
                  "score": round(score, 6), "threshold": meta.threshold,
@@ -612,6 +708,13 @@ class Pipeline:
                    "score": round(score, 6), "threshold": meta.threshold}
             out.append(OutMessage(f"{self.prefix}/assets/{name}/scores", _json(tel),
                                   Kind.SCORE, qos=0))
+
+    def _time(self, ts: float) -> str:
+        """rfc3339(ts), remembered for the tick: assets' windows share their bounds."""
+        got = self._times.get(ts)
+        if got is None:
+            got = self._times[ts] = rfc3339(ts)
+        return got
 
     def _event(self, rt: AssetRuntime, etype: EventType, src: str, time_s: float,
                data: dict[str, Any], out: list[OutMessage], kind: Kind, *, id_key: str) -> None:

@@ -34,7 +34,7 @@ from typing import TYPE_CHECKING, Any
 from agent.bundle import MODEL_JSON, MODEL_ONNX, Bundle, load_bundle
 from agent.config import AssetConfig, Config, load_config
 from agent.errors import BundleError, WatchkeepError
-from agent.ingest import Buffers, ChannelBuffer, IngestHandler
+from agent.ingest import Buffers, ChannelBuffer, IngestHandler, asset_buffers
 from agent.logs import kv
 from agent.pipeline import AssetRuntime, Pipeline, check_bundle_fits
 
@@ -245,7 +245,7 @@ class Reloader:
                 if a.name in old_rts:  # event sequence numbers go on; consumers order by them
                     rt.sequence = old_rts[a.name].sequence
                 runtimes.append(rt)
-                by_asset.append([ChannelBuffer() for _ in a.channels])
+                by_asset.append(asset_buffers(a))
             else:  # kept, or retried and still failing: the very same objects carry on
                 runtimes.append(old_rts[a.name])
                 by_asset.append(old_bufs[a.name])

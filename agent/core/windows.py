@@ -17,37 +17,237 @@ samples its rate promises; incomplete windows are returned (for counting) but no
 scored. Samples older than the earliest open window are late: dropped and counted
 (those older than the first window are dropped without being counted).
 Pure: arrival and current times are parameters.
+
+Storage: the channels of one rate share a preallocated 2-D store (a row per channel,
+each row holding its pending samples in time order between its own `lo` and `hi`),
+so closing a window is a few numpy operations per rate group rather than several per
+channel: the samples below the window's end are counted for all rows at once and
+copied out in one gather. A window's samples come out as [rows, samples] blocks that
+the feature pass stacks across assets; per-channel arrays are views made on demand.
 """
 
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, field
+from collections.abc import Sequence
 
 import numpy as np
 
 from agent.config import WindowConfig
 
 _EMPTY = np.empty(0, dtype=np.float64)
+_AR = np.arange(1024, dtype=np.int64)
 
 
-@dataclass(frozen=True)
+def _arange(n: int) -> np.ndarray:
+    """0..n-1 (a view of one shared array, grown when needed)."""
+    global _AR
+    if n > _AR.size:
+        _AR = np.arange(max(n, 2 * _AR.size), dtype=np.int64)
+    return _AR[:n]
+
+
+class Block:
+    """The samples of one rate group of channels in one window: row r holds channel
+    `chans[r]`, its first `counts[r]` entries valid (the rest is padding)."""
+
+    __slots__ = ("chans", "counts", "timestamps", "uniform", "values")
+
+    def __init__(self, chans: tuple[int, ...], timestamps: np.ndarray, values: np.ndarray,
+                 counts: list[int]) -> None:
+        self.chans = chans
+        self.timestamps = timestamps
+        self.values = values
+        self.counts = counts
+        # Every row full: the block is a plain [rows, samples] matrix.
+        self.uniform = not counts or min(counts) == values.shape[1]
+
+
 class ClosedWindow:
-    """One closed window of one asset: per channel the samples inside it."""
+    """One closed window of one asset: per channel the samples inside it.
 
-    start: float
-    end: float
-    values: tuple[np.ndarray, ...]
-    timestamps: tuple[np.ndarray, ...]
-    coverage: tuple[float, ...]
-    complete: bool
+    Built either from per-channel arrays or from rate-group `blocks`; `values`,
+    `timestamps` and `coverage` are per-channel tuples in channel order either way.
+    """
+
+    __slots__ = ("_cov", "_ts", "_vals", "blocks", "complete", "end", "expected", "start")
+
+    def __init__(self, start: float, end: float, values: Sequence[np.ndarray] | None,
+                 timestamps: Sequence[np.ndarray] | None, coverage: Sequence[float] | None,
+                 complete: bool, *, blocks: tuple[Block, ...] = (),
+                 expected: tuple[float, ...] = ()) -> None:
+        self.start = start
+        self.end = end
+        self.complete = complete
+        self.blocks = blocks
+        self.expected = expected
+        self._vals = tuple(values) if values is not None else None
+        self._ts = tuple(timestamps) if timestamps is not None else None
+        self._cov = tuple(coverage) if coverage is not None else None
+
+    def _split(self) -> None:
+        n = len(self.expected)
+        vals: list[np.ndarray] = [_EMPTY] * n
+        tss: list[np.ndarray] = [_EMPTY] * n
+        for b in self.blocks:
+            for r, (c, k) in enumerate(zip(b.chans, b.counts, strict=True)):
+                vals[c] = b.values[r, :k]
+                tss[c] = b.timestamps[r, :k]
+        self._vals, self._ts = tuple(vals), tuple(tss)
+
+    @property
+    def values(self) -> tuple[np.ndarray, ...]:
+        if self._vals is None:
+            self._split()
+        assert self._vals is not None
+        return self._vals
+
+    @property
+    def timestamps(self) -> tuple[np.ndarray, ...]:
+        if self._ts is None:
+            self._split()
+        assert self._ts is not None
+        return self._ts
+
+    @property
+    def coverage(self) -> tuple[float, ...]:
+        if self._cov is None:
+            cov = [1.0] * len(self.expected)
+            for b in self.blocks:
+                for c, k in zip(b.chans, b.counts, strict=True):
+                    e = self.expected[c]
+                    cov[c] = k / e if e else 1.0
+            self._cov = tuple(cov)
+        return self._cov
+
+    def __repr__(self) -> str:
+        return f"ClosedWindow(start={self.start!r}, end={self.end!r}, complete={self.complete})"
 
 
-@dataclass
+class _Group:
+    """The channels of one rate: one row each in a 2-D store of timestamps and values.
+
+    Row r holds its pending samples in `[lo[r], hi[r])`; rows fill and drain on their
+    own. When a row reaches the end of the store the rows are compacted to the left,
+    and the store doubles when that is not enough room.
+    """
+
+    __slots__ = ("bound", "chans", "expected", "hi", "lo", "rows", "ts", "vals")
+
+    def __init__(self, chans: tuple[int, ...], expected: float) -> None:
+        k = len(chans)
+        cap = max(16, int(2 * expected) + 16)
+        self.chans = chans
+        self.expected = expected
+        # How many samples per row one gather looks at before falling back to a search.
+        self.bound = int(1.25 * expected) + 16
+        self.ts = np.empty((k, cap))
+        self.vals = np.empty((k, cap))
+        self.lo = [0] * k
+        self.hi = [0] * k
+        self.rows = np.arange(k, dtype=np.int64)[:, None]
+
+    def room(self, r: int, n: int) -> int:
+        """Make room for `n` more samples in row r; returns where they go."""
+        cap = self.ts.shape[1]
+        used = [h - lo for lo, h in zip(self.lo, self.hi, strict=True)]
+        for i, (lo, u) in enumerate(zip(self.lo, used, strict=True)):
+            if lo and u:
+                self.ts[i, :u] = self.ts[i, lo:lo + u]  # numpy copies overlapping slices right
+                self.vals[i, :u] = self.vals[i, lo:lo + u]
+        self.lo = [0] * len(used)
+        self.hi = used
+        need = used[r] + n
+        if need > cap:
+            new_cap = max(2 * cap, need)
+            top = max(used)
+            ts = np.empty((len(used), new_cap))
+            vals = np.empty((len(used), new_cap))
+            ts[:, :top] = self.ts[:, :top]
+            vals[:, :top] = self.vals[:, :top]
+            self.ts, self.vals = ts, vals
+        return used[r]
+
+    def pending(self) -> int:
+        return sum(h - lo for lo, h in zip(self.lo, self.hi, strict=True))
+
+    def first(self) -> float | None:
+        firsts = [float(self.ts[r, lo]) for r, (lo, h) in enumerate(zip(self.lo, self.hi,
+                                                                        strict=True)) if h > lo]
+        return min(firsts) if firsts else None
+
+    def count_below(self, t: float) -> list[int]:
+        """Per row, how many pending samples are earlier than `t` (rows are sorted)."""
+        return [int(self.ts[r, lo:h].searchsorted(t)) if h > lo else 0
+                for r, (lo, h) in enumerate(zip(self.lo, self.hi, strict=True))]
+
+    def cut(self, end: float, next_start: float | None
+            ) -> tuple[np.ndarray, np.ndarray, list[int], list[int]]:
+        """The samples before `end` of every row, copied out: (timestamps, values, counts,
+        per row how many are before `next_start`, which are dropped once the window
+        is out; `next_start` None: the counted ones)."""
+        lo, hi = self.lo, self.hi
+        lo0, hi0 = min(lo), max(hi)
+        if lo0 == max(lo) and hi0 == min(hi) and hi0 - lo0 <= self.bound:
+            # Rows in step (the usual case): plain slices, no gather.
+            t = self.ts[:, lo0:hi0]
+            if hi0 > lo0 and t[:, -1].max() < end:  # all of it is in the window
+                counts = [hi0 - lo0] * len(lo)
+                mc = hi0 - lo0
+            else:
+                counts = (t < end).sum(axis=1).tolist()
+                mc = max(counts)
+            nxt = counts if next_start is None else (t < next_start).sum(axis=1).tolist()
+            return (self.ts[:, lo0:lo0 + mc].copy(), self.vals[:, lo0:lo0 + mc].copy(),
+                    counts, nxt)
+        lo_a = np.array(lo, dtype=np.int64)
+        n = np.array(hi, dtype=np.int64) - lo_a
+        m = min(int(n.max()), self.bound)
+        cap = self.ts.shape[1]
+        ar = _arange(m)
+        idx = lo_a[:, None] + ar
+        np.minimum(idx, cap - 1, out=idx)
+        t = self.ts[self.rows, idx]
+        valid = ar < n[:, None]
+        c_a = ((t < end) & valid).sum(axis=1)
+        n_a = None if next_start is None else ((t < next_start) & valid).sum(axis=1)
+        if m and np.any((c_a == m) & (n > m)):
+            # A row with more samples than one gather looks at (a sensor sending faster
+            # than its configured rate): search the rows instead.
+            c_a = np.array(self.count_below(end), dtype=np.int64)
+            if next_start is not None:
+                n_a = np.array(self.count_below(next_start), dtype=np.int64)
+            m = int(c_a.max())
+            ar = _arange(m)
+            idx = lo_a[:, None] + ar
+            np.minimum(idx, cap - 1, out=idx)
+            t = self.ts[self.rows, idx]
+        counts = c_a.tolist()
+        mc = max(counts) if counts else 0
+        if mc < t.shape[1]:
+            idx = idx[:, :mc]
+            t = t[:, :mc]
+        return t, self.vals[self.rows, idx], counts, counts if n_a is None else n_a.tolist()
+
+    def drop(self, counts: Sequence[int]) -> None:
+        self.lo = [lo + c for lo, c in zip(self.lo, counts, strict=True)]
+
+    def sort_row(self, r: int) -> None:
+        lo, h = self.lo[r], self.hi[r]
+        t = self.ts[r, lo:h]
+        if t.size > 1 and np.any(t[1:] < t[:-1]):
+            order = np.argsort(t, kind="stable")
+            self.ts[r, lo:h] = t[order]
+            self.vals[r, lo:h] = self.vals[r, lo:h][order]
+
+
 class AssembleResult:
-    windows: list[ClosedWindow] = field(default_factory=list)
-    empty_skipped: int = 0
-    late_samples: int = 0
+    __slots__ = ("empty_skipped", "late_samples", "windows")
+
+    def __init__(self) -> None:
+        self.windows: list[ClosedWindow] = []
+        self.empty_skipped = 0
+        self.late_samples = 0
 
 
 class WindowAssembler:
@@ -56,15 +256,22 @@ class WindowAssembler:
     def __init__(self, window: WindowConfig, rates_hz: tuple[float, ...]) -> None:
         self.cfg = window
         self.rates_hz = rates_hz
-        self._ts: list[np.ndarray] = [_EMPTY] * len(rates_hz)
-        self._vals: list[np.ndarray] = [_EMPTY] * len(rates_hz)
         self._next_k: int | None = None  # index of the earliest open window
         self._first_start = math.inf  # start of the first window
         self._max_ts = -math.inf
         self._last_arrival = -math.inf
         self._expected = tuple(r * window.length_s for r in rates_hz)
-        # Channels whose buffer may be out of time order (checked and sorted at close).
+        by_rate: dict[float, list[int]] = {}
+        for c, r in enumerate(rates_hz):
+            by_rate.setdefault(r, []).append(c)
+        self._groups = [_Group(tuple(cs), r * window.length_s) for r, cs in by_rate.items()]
+        self._where: list[tuple[_Group, int]] = [(self._groups[0], 0)] * len(rates_hz)
+        for g in self._groups:
+            for r, c in enumerate(g.chans):
+                self._where[c] = (g, r)
+        # Channels whose pending samples may be out of time order (sorted at close).
         self._unsorted = [False] * len(rates_hz)
+        self._any_unsorted = False
         span = window.length_s / window.hop_s
         # When a window spans a whole number of hops its end is computed as the start of
         # a later window, so a sample on a boundary falls in exactly one tumbling window.
@@ -79,6 +286,10 @@ class WindowAssembler:
     def watermark(self) -> float:
         """The newest sample time seen."""
         return self._max_ts
+
+    def pending_samples(self) -> int:
+        """Samples held for windows not closed yet."""
+        return sum(g.pending() for g in self._groups)
 
     def add(self, channel: int, ts: np.ndarray, values: np.ndarray, arrival: float, *,
             presorted: bool = False) -> int:
@@ -101,17 +312,43 @@ class WindowAssembler:
                 ts, values = ts[keep], values[keep]
                 if ts.size == 0:
                     return late
-        old_t = self._ts[channel]
-        if not presorted or (old_t.size and ts[0] < old_t[-1]):
+        g, r = self._where[channel]
+        n = ts.size
+        h = g.hi[r]
+        if h + n > g.ts.shape[1]:
+            h = g.room(r, n)
+        if not presorted or (h > g.lo[r] and ts[0] < g.ts[r, h - 1]):
             self._unsorted[channel] = True
-        if old_t.size == 0:
-            self._ts[channel], self._vals[channel] = ts, values
-        else:
-            self._ts[channel] = np.concatenate((old_t, ts))
-            self._vals[channel] = np.concatenate((self._vals[channel], values))
-        self._max_ts = max(self._max_ts, float(ts[-1] if presorted else ts.max()))
-        self._last_arrival = max(self._last_arrival, arrival)
+            self._any_unsorted = True
+        g.ts[r, h:h + n] = ts
+        g.vals[r, h:h + n] = values
+        g.hi[r] = h + n
+        newest = float(ts[-1] if presorted else ts.max())
+        if newest > self._max_ts:
+            self._max_ts = newest
+        if arrival > self._last_arrival:
+            self._last_arrival = arrival
         return late
+
+    def add_one(self, channel: int, t: float, value: float, arrival: float) -> int:
+        """Append one sample of one channel; returns 1 if it was late, else 0."""
+        if self._next_k is not None and t < self._next_k * self.cfg.hop_s:
+            return 1 if t >= self._first_start else 0
+        g, r = self._where[channel]
+        h = g.hi[r]
+        if h >= g.ts.shape[1]:
+            h = g.room(r, 1)
+        if h > g.lo[r] and t < g.ts[r, h - 1]:
+            self._unsorted[channel] = True
+            self._any_unsorted = True
+        g.ts[r, h] = t
+        g.vals[r, h] = value
+        g.hi[r] = h + 1
+        if t > self._max_ts:
+            self._max_ts = t
+        if arrival > self._last_arrival:
+            self._last_arrival = arrival
+        return 0
 
     def _ready(self, end: float, now: float) -> bool:
         if self._max_ts >= end + self.cfg.lateness_s:
@@ -136,6 +373,7 @@ class WindowAssembler:
             self._advance(k0)
             self._first_start = k0 * hop
         sorted_once = False
+        tumbling = self._span_k == 1
         while True:
             assert self._next_k is not None
             k = self._next_k
@@ -145,12 +383,24 @@ class WindowAssembler:
             if not sorted_once:
                 self._sort()
                 sorted_once = True
-            first = self._earliest_pending()
-            if first is None or first >= end:
+            next_start = None if tumbling else (k + 1) * hop
+            blocks = []
+            cuts = []
+            total = 0
+            complete = True
+            for g in self._groups:
+                t, v, counts, nxt = g.cut(end, next_start)
+                blocks.append(Block(g.chans, t, v, counts))
+                cuts.append(nxt)
+                total += sum(counts)
+                if g.expected and min(counts) / g.expected < self.cfg.min_coverage:
+                    complete = False
+            if total == 0:
                 # Nothing in this window: skip straight to the window holding the next
                 # sample without materialising every empty window of a long gap (a clock
                 # step or an outage must not loop window by window), but no further than
                 # the last window due now: one not yet due may still get late samples.
+                first = self._earliest_pending()
                 limit = self._max_ts - self.cfg.lateness_s
                 if self._last_arrival != -math.inf:
                     limit = max(limit, self._max_ts + max(0.0, now - self._last_arrival)
@@ -163,22 +413,11 @@ class WindowAssembler:
                 out.empty_skipped += target - k
                 self._advance(target)
                 continue
-            vals, tss, cov, ends = [], [], [], []
-            for c in range(len(self._ts)):
-                t = self._ts[c]
-                # Every buffered sample is at or after `start`: `_advance` and `add`
-                # drop the older ones, so the window is a prefix of the buffer.
-                hi = int(t.searchsorted(end))
-                tss.append(t[:hi])
-                vals.append(self._vals[c][:hi])
-                cov.append(hi / self._expected[c] if self._expected[c] else 1.0)
-                ends.append(hi)
-            complete = all(c >= self.cfg.min_coverage for c in cov)
-            out.windows.append(ClosedWindow(start, end, tuple(vals), tuple(tss), tuple(cov),
-                                            complete))
-            # Tumbling: the next window starts where this one ended, so the cut points
-            # are already known.
-            self._advance(k + 1, ends if self._span_k == 1 else None)
+            out.windows.append(ClosedWindow(start, end, None, None, None, complete,
+                                            blocks=tuple(blocks), expected=self._expected))
+            self._next_k = k + 1
+            for g, c in zip(self._groups, cuts, strict=True):
+                g.drop(c)
         return out
 
     def _bounds(self, k: int) -> tuple[float, float]:
@@ -188,28 +427,22 @@ class WindowAssembler:
         return k * hop, k * hop + self.cfg.length_s
 
     def _earliest_pending(self) -> float | None:
-        firsts = [float(t[0]) for t in self._ts if t.size]
+        firsts = [f for f in (g.first() for g in self._groups) if f is not None]
         return min(firsts) if firsts else None
 
     def _sort(self) -> None:
-        for c, t in enumerate(self._ts):
-            if not self._unsorted[c]:
-                continue
-            self._unsorted[c] = False
-            if t.size > 1 and np.any(t[1:] < t[:-1]):
-                order = np.argsort(t, kind="stable")
-                self._ts[c] = t[order]
-                self._vals[c] = self._vals[c][order]
+        if not self._any_unsorted:
+            return
+        self._any_unsorted = False
+        for c, flagged in enumerate(self._unsorted):
+            if flagged:
+                self._unsorted[c] = False
+                g, r = self._where[c]
+                g.sort_row(r)
 
-    def _advance(self, new_k: int, cuts: list[int] | None = None) -> None:
-        """Make window `new_k` the earliest open one; drop samples before its start
-        (`cuts`: the per-channel index of the first sample at or after it, if known)."""
+    def _advance(self, new_k: int) -> None:
+        """Make window `new_k` the earliest open one; drop samples before its start."""
         self._next_k = new_k
         new_start = new_k * self.cfg.hop_s
-        for c, t in enumerate(self._ts):
-            if t.size:
-                cut = cuts[c] if cuts is not None else \
-                    int(np.searchsorted(t, new_start, side="left"))
-                if cut:
-                    self._ts[c] = t[cut:]
-                    self._vals[c] = self._vals[c][cut:]
+        for g in self._groups:
+            g.drop(g.count_below(new_start))

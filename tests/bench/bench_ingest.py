@@ -145,11 +145,11 @@ def _watchkeep(port: int, kind: str, counter: _Counter, tmp: Path):
     ingest = Ingest(cfg, handler, metrics, log)
     stop = threading.Event()
 
-    def drain() -> None:  # the pipeline's share of the buffers: take every 100 ms
+    def drain() -> None:  # the pipeline's share of the buffers: close windows every 100 ms
         while not stop.wait(0.1):
+            now = time.time()
             for chans in buffers.by_asset:
-                for b in chans:
-                    b.take()
+                chans[0].inbox.close_due(now)
 
     th = threading.Thread(target=drain, daemon=True)
     th.start()

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from agent.core.features import FEATURE_INDEX, segment_features
+from agent.core.features import FEATURE_INDEX, block_features, segment_features
 
 
 def col(rows: np.ndarray, name: str) -> np.ndarray:
@@ -51,6 +51,23 @@ def test_moments_match_scipy_stats_and_numpy(seed: int) -> None:
     for name, want in ref.items():
         np.testing.assert_allclose(col(rows, name), want, rtol=1e-9, atol=1e-12,
                                    err_msg=name)
+    # The row-wise pass the daemon takes for full-length blocks, against the same
+    # references (segments of one length stacked as a matrix).
+    for n in (7, 100, 4096):
+        block = np.vstack([s for s in segs if s.size == n])
+        rows_b = block_features(block)
+        for name, fn in (("mean", np.mean), ("std", np.std), ("min", np.min),
+                         ("max", np.max), ("peak_to_peak", np.ptp)):
+            np.testing.assert_allclose(col(rows_b, name), [fn(s) for s in block],
+                                       rtol=1e-9, atol=1e-12, err_msg=name)
+        np.testing.assert_allclose(col(rows_b, "rms"), [np.sqrt(np.mean(s ** 2)) for s in block],
+                                   rtol=1e-9)
+        np.testing.assert_allclose(col(rows_b, "skewness"),
+                                   [stats.skew(s, bias=True) for s in block],
+                                   rtol=1e-9, atol=1e-12)
+        np.testing.assert_allclose(col(rows_b, "kurtosis"),
+                                   [stats.kurtosis(s, fisher=False, bias=True) for s in block],
+                                   rtol=1e-9, atol=1e-12)
 
 
 def test_large_offset_is_numerically_stable() -> None:

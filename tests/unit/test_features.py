@@ -126,3 +126,29 @@ def test_feature_names_are_channel_dot_feature_in_config_order() -> None:
     assert feature_names([("temp", ("mean", "std")), ("vib", ("rms",))]) == (
         "temp.mean", "temp.std", "vib.rms")
     assert feature_names([]) == ()
+
+
+def test_block_features_agree_with_segment_features() -> None:
+    """The row-wise pass over full-length blocks gives segment_features' values (only
+    the summation order differs): levels, spreads, a flat row, a zero row."""
+    from agent.core.features import block_features
+
+    rng = np.random.default_rng(11)
+    x = np.vstack([rng.normal(60.0, 0.01, (5, 128)), rng.standard_t(3, (5, 128)) * 9.8,
+                   np.full((1, 128), 4.2), np.zeros((1, 128))])
+    got, want = block_features(x), segment_features(list(x))
+    np.testing.assert_allclose(got, want, rtol=1e-9, atol=1e-12)
+
+
+def test_block_features_compute_only_what_is_needed() -> None:
+    from agent.core.features import block_features
+
+    x = np.random.default_rng(12).normal(size=(4, 50))
+    full = block_features(x)
+    for needed in ({"mean"}, {"kurtosis"}, {"crest_factor"}, {"std", "peak_to_peak"}):
+        part = block_features(x, frozenset(needed))
+        for name, i in FEATURE_INDEX.items():
+            if name in needed:
+                np.testing.assert_array_equal(part[:, i], full[:, i])
+            elif name != "mean":  # the mean is the base of everything else
+                assert np.all(np.isnan(part[:, i])), name
