@@ -30,6 +30,7 @@ import hashlib
 import json
 import math
 import os
+import threading
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -161,6 +162,12 @@ class Bundle:
         self._input = meta.onnx_input
         self._output = meta.onnx_output
         self.digest = ""
+        # One-row runs through onnxruntime's I/O binding (see `reconstruct_row`).
+        self._row_lock = threading.Lock()
+        self._row_in: np.ndarray | None = None
+        self._row_out: np.ndarray | None = None
+        self._binding: Any = None
+        self._bind_failed = False
 
     @property
     def n_features(self) -> int:
@@ -176,6 +183,42 @@ class Bundle:
         z = np.ascontiguousarray(z, dtype=np.float32)
         out = self._session.run([self._output], {self._input: z})[0]
         return np.asarray(out, dtype=np.float32)
+
+    def reconstruct_row(self, z: np.ndarray, out: np.ndarray) -> None:
+        """One standardised row [F] float32 -> its reconstruction, written into `out`.
+
+        The same model run as `reconstruct`, through onnxruntime's I/O binding over an
+        input and an output buffer kept with the bundle: about half the per-call cost
+        of `run` for a model this small, which is most of a window's inference time.
+        A lock per bundle makes it safe from several threads.
+        """
+        if self._bind_failed:
+            out[:] = self.reconstruct(z[None, :])[0]
+            return
+        with self._row_lock:
+            if self._binding is None:
+                try:
+                    self._bind_row(z.size)
+                except Exception:  # an exotic model or runtime: plain `run` does the job
+                    self._bind_failed = True
+                    out[:] = self.reconstruct(z[None, :])[0]
+                    return
+            assert self._row_in is not None and self._row_out is not None
+            self._row_in[0] = z
+            self._session.run_with_iobinding(self._binding)
+            out[:] = self._row_out[0]
+
+    def _bind_row(self, n: int) -> None:
+        import onnxruntime as ort
+
+        row_in = np.zeros((1, n), dtype=np.float32)
+        row_out = np.zeros((1, n), dtype=np.float32)
+        binding = self._session.io_binding()
+        # The OrtValue wraps row_in's memory: writing the array is writing the input.
+        binding.bind_ortvalue_input(self._input, ort.OrtValue.ortvalue_from_numpy(row_in))
+        binding.bind_output(self._output, "cpu", 0, np.float32, list(row_out.shape),
+                            row_out.ctypes.data)
+        self._row_in, self._row_out, self._binding = row_in, row_out, binding
 
     def score(self, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Raw feature rows -> (score per row, squared error per feature per row)."""

@@ -636,7 +636,7 @@ class Pipeline:
                     self._skip(p.rt, "model_error")
                     continue
                 try:
-                    recon[j] = b.reconstruct(z[j:j + 1])[0]
+                    b.reconstruct_row(z[j], recon[j])
                 except Exception as exc:  # a model failing at run time fails its asset only
                     failed.add(id(b))
                     ok[j] = False
@@ -762,7 +762,7 @@ class Pipeline:
         return {"site": self.cfg.site, "gateway": self.cfg.gateway, "assets": assets}
 
 
-@dataclass(frozen=True, eq=False)
+@dataclass(eq=False, slots=True)
 class _Pending:
     """One closed window on its way through the tick, with what was judged about it."""
 

@@ -322,3 +322,31 @@ def test_a_dynamic_width_model_that_reconstructs_is_accepted(tmp_path: Path) -> 
     b = load_bundle(make(tmp_path, graph_model(build, in_width="F", out_width="F")))
     scores, _ = b.score(np.asarray([meta()["scaler"]["mean"]]))
     assert scores.tolist() == [0.0]
+
+
+def test_reconstruct_row_is_reconstruct_one_row_at_a_time(tmp_path: Path) -> None:
+    """The I/O-bound one-row run gives `reconstruct`'s output bit for bit, also when
+    several threads use the bundle at once."""
+    import threading
+
+    b = load_bundle(make(tmp_path, pca_model()))
+    z = np.random.default_rng(4).normal(size=(300, F)).astype(np.float32)
+    want = b.reconstruct(z)
+    got = np.empty_like(z)
+    for i in range(z.shape[0]):
+        b.reconstruct_row(z[i], got[i])
+    np.testing.assert_array_equal(got, want)
+
+    outs = [np.empty_like(z) for _ in range(3)]
+
+    def work(out: np.ndarray) -> None:
+        for i in range(z.shape[0]):
+            b.reconstruct_row(z[i], out[i])
+
+    threads = [threading.Thread(target=work, args=(o,)) for o in outs]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    for o in outs:
+        np.testing.assert_array_equal(o, want)
