@@ -10,9 +10,10 @@ Two threads, so no SQLite work ever runs on the MQTT network thread:
   `outbox.inflight` are unacknowledged. paho callbacks only append the
   acknowledged message ids to a list; they never block.
 - the **store** thread fetches the next rows from the outbox into the hand-over
-  queue (at most 2 x inflight ahead), and deletes acknowledged rows in batches,
-  one transaction per batch. A row is deleted only after its PUBACK
-  (`on_publish` for its mid with a reason code that is not `.is_failure`).
+  queue (at most max(PREFETCH_ROWS, 2 x inflight) ahead; at once when rows are
+  waiting, so a backlog starts going out without a wait), and deletes acknowledged
+  rows in batches, one transaction per batch. A row is deleted only after its
+  PUBACK (`on_publish` for its mid with a reason code that is not `.is_failure`).
 
 After a reconnect paho itself resends the messages that were in flight, with
 the DUP flag and their old message ids, before anything newer: delivery resumes
@@ -56,6 +57,7 @@ BUSY_LOOP_TIMEOUT_S = 0.002
 # Rows read ahead of the in-flight window: fewer, larger reads while draining a backlog.
 PREFETCH_ROWS = 200
 STOP_DRAIN_S = 3.0
+FETCH_RETRY_S = 0.1
 REFUSED_RETRY_S = 5.0
 GAUGE_EVERY_S = 0.5
 MAINTAIN_EVERY_S = 60.0
@@ -396,7 +398,10 @@ class Upstream:
         next_gauges = next_maintain = 0.0
         while True:
             stopping = self._stop_store.is_set()
-            refused = self._take_acks(to_delete, handed, block=not stopping)
+            # Block for acknowledgements only when there is nothing to read ahead: with a
+            # backlog at start-up the first rows are handed over at once, not after a wait.
+            block = not stopping and not self._can_refill(cursor, handed)
+            refused = self._take_acks(to_delete, handed, block=block)
             if refused:
                 rescan_at = rescan_at or time.monotonic() + REFUSED_RETRY_S
             if to_delete:
@@ -452,8 +457,14 @@ class Upstream:
             with contextlib.suppress(OSError):
                 sock.send(b"\0")
 
+    def _room(self, handed: set[int]) -> int:
+        return max(PREFETCH_ROWS, 2 * self.window) - len(handed)
+
+    def _can_refill(self, cursor: int, handed: set[int]) -> bool:
+        return self._room(handed) > 0 and self.outbox.max_id > cursor
+
     def _refill(self, cursor: int, handed: set[int]) -> int:
-        room = max(PREFETCH_ROWS, 2 * self.window) - len(handed)
+        room = self._room(handed)
         top = self.outbox.max_id
         if room <= 0 or top <= cursor:
             return cursor
@@ -461,6 +472,9 @@ class Upstream:
             rows = self.outbox.fetch_after(cursor, room)
         except sqlite3.Error as exc:
             self._rl.warning("fetch", "outbox read failed; retrying", error=str(exc))
+            # The loop does not block while rows wait to be read: pause here instead of
+            # retrying a failing read in a tight loop.
+            self._stop_store.wait(FETCH_RETRY_S)
             return cursor
         for r in rows:
             if r.id not in handed:
