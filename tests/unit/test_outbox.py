@@ -13,7 +13,17 @@ from agent.config import OutboxConfig, Synchronous
 from agent.errors import OutboxError
 from agent.messages import Kind, OutMessage
 from agent.metrics import Metrics
-from agent.outbox import SCHEMA_VERSION, Outbox, corrupt_name, message_size, plan_drops
+from agent.outbox import (
+    INSERT_CHUNKS,
+    SCHEMA_VERSION,
+    Outbox,
+    Row,
+    chunk_sizes,
+    corrupt_name,
+    id_runs,
+    message_size,
+    plan_drops,
+)
 from agent.upstream import RECONNECT_MAX_S, RECONNECT_MIN_S, backoff_delay
 
 LOG = logging.getLogger("watchkeep.test.outbox")
@@ -63,7 +73,71 @@ def test_wal_synchronous_and_schema_version_are_set(tmp_path: Path, sync: Synchr
     assert db.execute("PRAGMA synchronous").fetchone()[0] == code
     assert db.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
     assert db.execute("PRAGMA auto_vacuum").fetchone()[0] == 2  # 2 = INCREMENTAL
+    assert db.execute("PRAGMA secure_delete").fetchone()[0] == 2  # 2 = FAST
     ob.close()
+
+
+def test_fetched_rows_carry_their_kind_and_flags(tmp_path: Path) -> None:
+    """A fetched row has its Kind, payload bytes, qos and retain flag as submitted."""
+    ob, _ = make(tmp_path / "o.sqlite")
+    ob.submit([msg("s", Kind.STATE, key="k"), msg("c", Kind.SCORE)])
+    state, score = ob.fetch_after(0, 10)
+    assert isinstance(state, Row) and state.kind is Kind.STATE and state.retain is True
+    assert state.qos == 1 and state.payload == b"s".ljust(10, b".")
+    assert score.kind is Kind.SCORE and score.retain is False and score.qos == 0
+
+
+@pytest.mark.parametrize("n", [1, 50, 63, 64, 65, 200, 1000])
+def test_a_large_tick_keeps_its_order_across_insert_chunks(tmp_path: Path, n: int) -> None:
+    """However many rows a tick has, they are stored in order with growing ids."""
+    ob, _ = make(tmp_path / "o.sqlite")
+    ob.submit([msg("first", Kind.EVENT)])
+    ob.submit([msg(f"m{i}", Kind.ANOMALY if i % 3 else Kind.STATE, key=f"s{i}")
+               for i in range(n)])
+    rows = ob.fetch_after(0, n + 10)
+    assert names(ob) == ["first"] + [f"m{i}" for i in range(n)]
+    assert [r.id for r in rows] == list(range(rows[0].id, rows[0].id + n + 1))
+    assert ob.max_id == rows[-1].id
+    assert ob.counts() == (n + 1, sum(message_size(msg(x, Kind.EVENT)) for x in names(ob)))
+
+
+@pytest.mark.parametrize(("n", "want"), [
+    (0, []), (1, [1]), (50, [32, 16, 2]), (64, [64]), (65, [64, 1]),
+    (200, [64, 64, 64, 8]), (127, [64, 32, 16, 8, 4, 2, 1]),
+])
+def test_chunk_sizes(n: int, want: list[int]) -> None:
+    """A tick's rows split into the few prepared INSERT sizes, largest first."""
+    assert chunk_sizes(n) == want
+    assert sum(want) == n and set(want) <= set(INSERT_CHUNKS)
+
+
+@pytest.mark.parametrize(("ids", "want"), [
+    ([], []),
+    ([7], [(7, 7)]),
+    ([1, 2, 3], [(1, 3)]),
+    ([3, 1, 2, 2, 7, 8, 10], [(1, 3), (7, 8), (10, 10)]),  # unsorted, repeated, gaps
+    ([5, 3, 1], [(1, 1), (3, 3), (5, 5)]),
+])
+def test_id_runs(ids: list[int], want: list[tuple[int, int]]) -> None:
+    """Distinct ids as runs of consecutive integers, ascending."""
+    assert id_runs(ids) == want
+
+
+def test_delete_by_runs_leaves_every_id_between_runs(tmp_path: Path) -> None:
+    """Deleting runs of ids removes exactly those: a row in a gap is kept, repeats count once."""
+    ob, _ = make(tmp_path / "o.sqlite")
+    ob.submit([msg(f"m{i}", Kind.ANOMALY) for i in range(10)])
+    ids = [r.id for r in ob.fetch_after(0, 10)]
+    gone = [ids[i] for i in (2, 0, 1, 1, 6, 7, 9)] + [ids[-1] + 5]  # + one that never was
+    assert ob.delete(gone) == 6
+    assert names(ob) == ["m3", "m4", "m5", "m8"]
+    assert ob.counts() == (4, 4 * message_size(msg("m0", Kind.ANOMALY)))
+
+
+def test_message_size_counts_utf8_bytes_of_the_topic() -> None:
+    """max_bytes counts the topic's UTF-8 bytes, not its characters."""
+    assert message_size(OutMessage("t/P-1", b"xy", Kind.EVENT)) == 5 + 2
+    assert message_size(OutMessage("t/Pümpe", b"xy", Kind.EVENT)) == 8 + 2  # ü is 2 bytes
 
 
 def test_rows_and_sequences_survive_reopen_and_ids_never_repeat(tmp_path: Path) -> None:
