@@ -162,6 +162,8 @@ class Bundle:
         self._input = meta.onnx_input
         self._output = meta.onnx_output
         self.digest = ""
+        # The model as events and state messages name it (shared; never mutated).
+        self.model_ref = {"id": meta.model_id, "version": meta.version}
         # One-row runs through onnxruntime's I/O binding (see `reconstruct_row`).
         self._row_lock = threading.Lock()
         self._row_in: np.ndarray | None = None

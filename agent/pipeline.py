@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import json
 import logging
+import math
 import time
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
@@ -43,7 +44,7 @@ from agent.core.health import Change, ChannelHealth, HealthChange, HealthLimits
 from agent.core.limits import ZONES, FeatureLimits, LimitRise, ZoneLimits, zone_of
 from agent.core.modes import UNKNOWN_MODE, ModeTracker
 from agent.core.spectral import spectral_features
-from agent.core.windows import Block, ClosedWindow, WindowAssembler
+from agent.core.windows import AssembleResult, Block, ClosedWindow, WindowAssembler, close_many
 from agent.errors import BundleError
 from agent.ingest import AssetInbox, Buffers
 from agent.logs import kv
@@ -305,6 +306,8 @@ class Pipeline:
                     inbox.assembler = rt.assembler
             self._inboxes.append(inbox)
         self._times: dict[float, str] = {}  # rfc3339 of window bounds, per tick
+        self._topic_cache: dict[str, tuple[str, str]] = {}
+        self._layout_keys: dict[int, tuple[np.ndarray, bytes]] = {}
         for rt in runtimes:
             rt.shown_threshold = rt.shown_anomalous = None
             self._publish_model_gauges(rt)
@@ -325,8 +328,7 @@ class Pipeline:
         pending: list[_Pending] = []
         out: list[OutMessage] = []
         self._times.clear()
-        for ai, rt in enumerate(self.runtimes):
-            res, late = self._inboxes[ai].close_due(now)
+        for ai, (rt, res, late) in enumerate(zip(self.runtimes, *self._close(now), strict=True)):
             if late:
                 self._m[rt.cfg.name].late.inc(late)
             if rt.started_s is None:
@@ -351,6 +353,25 @@ class Pipeline:
             stats.messages = len(out)
         return stats
 
+    def _close(self, now: float) -> tuple[list[AssembleResult], list[int]]:
+        """Every asset's windows due at `now` (cut together, `close_many`), and the late
+        samples counted since the last tick; under every asset's ingest lock, held for
+        the one cut."""
+        inboxes = self._inboxes
+        held = []
+        try:
+            for ib in inboxes:
+                ib.lock.acquire()
+                held.append(ib.lock)
+            results = close_many([ib.assembler for ib in inboxes], now)
+            late = [ib.late for ib in inboxes]
+            for ib in inboxes:
+                ib.late = 0
+        finally:
+            for lock in held:
+                lock.release()
+        return results, late
+
     # -- sensor health and modes (sequential per asset, before features) ---------------
 
     def _check_stale(self, rt: AssetRuntime, ai: int, now: float, out: list[OutMessage],
@@ -365,6 +386,8 @@ class Pipeline:
 
     def _judge_window(self, rt: AssetRuntime, w: ClosedWindow, out: list[OutMessage],
                       stats: TickStats) -> _Pending:
+        if not rt.checked and rt.modes is None:  # nothing to judge but completeness
+            return _Pending(rt, w, rt.mode, (), None if w.complete else "incomplete")
         health = rt.health
         for ci in rt.checked:  # passive channels: nothing to judge (decoders let no
             # non-finite sample through), and they can never be faulty
@@ -577,7 +600,7 @@ class Pipeline:
         for p in pending:
             rt = p.rt
             row = row_of.get(id(p))
-            if row is not None:
+            if row is not None and (rt.limits or rt.velocity_at):
                 self._limits(p, row, out, stats)
             if p.reason is not None:
                 self._skip(rt, p.reason)
@@ -597,21 +620,19 @@ class Pipeline:
             got = results.get(id(p))
             if got is None:
                 continue
-            score, sq = got
-            if not np.isfinite(score):
+            score, sq, bundle = got
+            if not math.isfinite(score):
                 self._skip(p.rt, "model_error")
                 continue
-            bundle, _ = p.rt.bundle_for(p.mode)
-            assert bundle is not None
             self._step(p.rt, p.w, p.mode, bundle, score, sq, out, stats)
 
     def _infer(self, items: list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]]
-               ) -> dict[int, tuple[float, np.ndarray]]:
+               ) -> dict[int, tuple[float, np.ndarray, Bundle]]:
         """Score every window: standardisation and squared errors for all windows of one
         model width at once, one onnxruntime run per window's model (each asset has its
         own). The arithmetic is `Bundle.score`'s, row by row."""
         t1 = time.perf_counter()
-        results: dict[int, tuple[float, np.ndarray]] = {}
+        results: dict[int, tuple[float, np.ndarray, Bundle]] = {}
         by_width: dict[int, list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]]] = {}
         for it in items:
             by_width.setdefault(it[3].size, []).append(it)
@@ -619,7 +640,10 @@ class Pipeline:
             # Rows of assets laid out alike share one gather of the model's features.
             by_layout: dict[tuple[int, bytes], list[int]] = {}
             for j, (_, row, _, index) in enumerate(group):
-                by_layout.setdefault((row.size, index.tobytes()), []).append(j)
+                key = self._layout_keys.get(id(index))
+                if key is None or key[0] is not index:
+                    key = self._layout_keys[id(index)] = (index, index.tobytes())
+                by_layout.setdefault((row.size, key[1]), []).append(j)
             x = np.empty((len(group), group[0][3].size))
             for js in by_layout.values():
                 idx = group[js[0]][3]
@@ -645,9 +669,9 @@ class Pipeline:
                     self._skip(p.rt, "model_error")
             err = (z - recon).astype(np.float64) ** 2
             scores = err.mean(axis=1)
-            for j, (p, *_) in enumerate(group):
+            for j, (p, _, b, _) in enumerate(group):
                 if ok[j]:
-                    results[id(p)] = (float(scores[j]), err[j])
+                    results[id(p)] = (float(scores[j]), err[j], b)
         self.metrics.inference_seconds.observe(time.perf_counter() - t1)
         return results
 
@@ -666,7 +690,7 @@ class Pipeline:
         tr = rt.detector.step(score, meta.threshold, meta.clear_threshold)
         name = rt.cfg.name
         end_s = self._time(w.end)
-        model = {"id": meta.model_id, "version": meta.version}
+        model = bundle.model_ref
         if tr is not None:
             src = self.source.for_asset(name)
             base = {"asset": name, "mode": mode,
@@ -697,7 +721,7 @@ class Pipeline:
         if anomalous != rt.shown_anomalous:
             m.anomalous.set(anomalous)
             rt.shown_anomalous = anomalous
-        state_topic = f"{self.prefix}/assets/{name}/state"
+        state_topic, scores_topic = self._topics(name)
         state = {"asset": name, "state": rt.state.value, "mode": mode,
                  "score": round(score, 6), "threshold": meta.threshold,
                  "window_end": end_s, "model": model, "last_event": rt.last_event}
@@ -706,8 +730,15 @@ class Pipeline:
         if self.cfg.publish_scores:
             tel = {"asset": name, "mode": mode, "window_end": end_s,
                    "score": round(score, 6), "threshold": meta.threshold}
-            out.append(OutMessage(f"{self.prefix}/assets/{name}/scores", _json(tel),
-                                  Kind.SCORE, qos=0))
+            out.append(OutMessage(scores_topic, _json(tel), Kind.SCORE, qos=0))
+
+    def _topics(self, asset: str) -> tuple[str, str]:
+        """The asset's state and scores topics."""
+        got = self._topic_cache.get(asset)
+        if got is None:
+            base = f"{self.prefix}/assets/{asset}"
+            got = self._topic_cache[asset] = (f"{base}/state", f"{base}/scores")
+        return got
 
     def _time(self, ts: float) -> str:
         """rfc3339(ts), remembered for the tick: assets' windows share their bounds."""

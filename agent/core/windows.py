@@ -54,13 +54,14 @@ class Block:
     __slots__ = ("chans", "counts", "timestamps", "uniform", "values")
 
     def __init__(self, chans: tuple[int, ...], timestamps: np.ndarray, values: np.ndarray,
-                 counts: list[int]) -> None:
+                 counts: list[int], uniform: bool | None = None) -> None:
         self.chans = chans
         self.timestamps = timestamps
         self.values = values
         self.counts = counts
         # Every row full: the block is a plain [rows, samples] matrix.
-        self.uniform = not counts or min(counts) == values.shape[1]
+        self.uniform = (not counts or min(counts) == values.shape[1]) if uniform is None \
+            else uniform
 
 
 class ClosedWindow:
@@ -446,3 +447,116 @@ class WindowAssembler:
         new_start = new_k * self.cfg.hop_s
         for g in self._groups:
             g.drop(g.count_below(new_start))
+
+
+_NOT_DUE = 0
+_ONE = 1
+_OTHER = 2
+
+
+def _plan(asm: WindowAssembler, now: float
+          ) -> tuple[int, float, float, list[tuple[int, int]]]:
+    """Whether `asm` has nothing due at `now` (_NOT_DUE), exactly its next tumbling
+    window with every rate group's rows in step (_ONE: start, end and per group the
+    first pending index and how many are pending), or anything else (_OTHER).
+    The readiness test is `_ready`'s, inlined."""
+    k = asm._next_k
+    if k is None or asm._span_k != 1 or asm._any_unsorted:
+        return _OTHER, 0.0, 0.0, []
+    cfg = asm.cfg
+    hop = cfg.hop_s
+    end = (k + 1) * hop
+    newest = asm._max_ts
+    arrived = asm._last_arrival != -math.inf
+    reach = newest + max(0.0, now - asm._last_arrival) if arrived else -math.inf
+    if not (newest >= end + cfg.lateness_s or reach >= end + cfg.timeout_s):
+        return _NOT_DUE, 0.0, 0.0, []
+    after = (k + 2) * hop
+    if newest >= after + cfg.lateness_s or reach >= after + cfg.timeout_s:
+        return _OTHER, 0.0, 0.0, []
+    spans = []
+    for g in asm._groups:
+        lo, hi = g.lo, g.hi
+        lo0, hi0 = lo[0], hi[0]
+        if lo.count(lo0) != len(lo) or hi.count(hi0) != len(hi) or hi0 - lo0 > g.bound:
+            return _OTHER, 0.0, 0.0, []
+        spans.append((lo0, hi0 - lo0))
+    return _ONE, k * hop, end, spans
+
+
+def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[AssembleResult]:
+    """`close_due(now)` of every assembler, the same windows in the same state after.
+
+    The usual case of a tick (exactly the next tumbling window of an asset due, its
+    rows in step) is cut for all such assets together: one comparison and one copy
+    per segment length over the stacked rows of every asset, instead of a handful of
+    numpy calls per asset. Everything else goes through `close_due`.
+    """
+    results: list[AssembleResult | None] = [None] * len(assemblers)
+    fast: list[tuple[int, float, float, list[tuple[int, int]]]] = []
+    for i, a in enumerate(assemblers):
+        kind, start, end, spans = _plan(a, now)
+        if kind == _ONE:
+            fast.append((i, start, end, spans))
+        elif kind == _NOT_DUE:
+            results[i] = AssembleResult()
+        else:
+            results[i] = a.close_due(now)
+    # Every (item, group) with samples, by how many each of its rows holds.
+    by_width: dict[int, list[tuple[int, int]]] = {}
+    blocks: list[list[Block | None]] = []
+    for fi, (_, _, _, spans) in enumerate(fast):
+        blocks.append([None] * len(spans))
+        for gi, (_, m) in enumerate(spans):
+            if m:
+                by_width.setdefault(m, []).append((fi, gi))
+    for m, members in by_width.items():
+        groups = [assemblers[fast[fi][0]]._groups[gi] for fi, gi in members]
+        t = np.concatenate([g.ts[:, fast[fi][3][gi][0]:fast[fi][3][gi][0] + m]
+                            for g, (fi, gi) in zip(groups, members, strict=True)])
+        v = np.concatenate([g.vals[:, fast[fi][3][gi][0]:fast[fi][3][gi][0] + m]
+                            for g, (fi, gi) in zip(groups, members, strict=True)])
+        sizes = [len(g.chans) for g in groups]
+        ends = np.repeat(np.array([fast[fi][2] for fi, _ in members]), sizes)
+        full = bool((t[:, -1] < ends).all())  # every pending sample is in its window
+        counts_all = None if full else (t < ends[:, None]).sum(axis=1).tolist()
+        off = 0
+        for g, (fi, gi), n in zip(groups, members, sizes, strict=True):
+            if counts_all is None:
+                blocks[fi][gi] = Block(g.chans, t[off:off + n], v[off:off + n], [m] * n, True)
+            else:
+                counts = counts_all[off:off + n]
+                mc = max(counts)
+                blocks[fi][gi] = Block(g.chans, t[off:off + n, :mc], v[off:off + n, :mc],
+                                       counts)
+            off += n
+    for (i, start, end, _), bl in zip(fast, blocks, strict=True):
+        a = assemblers[i]
+        complete = True
+        total = 0
+        for gi, g in enumerate(a._groups):
+            blk = bl[gi]
+            if blk is None:
+                empty = np.empty((len(g.chans), 0))
+                blk = bl[gi] = Block(g.chans, empty, empty, [0] * len(g.chans))
+            counts = blk.counts
+            low = min(counts)
+            total += low * len(counts) if blk.uniform else sum(counts)
+            if g.expected and low / g.expected < a.cfg.min_coverage:
+                complete = False
+        if total == 0:  # an empty window: the gap logic of close_due decides
+            results[i] = a.close_due(now)
+            continue
+        res = AssembleResult()
+        res.windows.append(ClosedWindow(start, end, None, None, None, complete,
+                                        blocks=tuple(bl), expected=a._expected))  # type: ignore[arg-type]
+        assert a._next_k is not None
+        a._next_k += 1
+        for g, blk in zip(a._groups, bl, strict=True):
+            assert blk is not None
+            if blk.uniform:  # rows in step stay in step
+                g.lo = [g.lo[0] + blk.values.shape[1]] * len(g.lo)
+            else:
+                g.drop(blk.counts)
+        results[i] = res
+    return [r if r is not None else AssembleResult() for r in results]

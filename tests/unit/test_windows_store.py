@@ -76,3 +76,100 @@ def test_a_sensor_far_faster_than_its_rate_loses_nothing() -> None:
     assert [w.timestamps[1].size for w in ws] == [10] * 10
     np.testing.assert_array_equal(np.concatenate([w.values[0] for w in ws]),
                                   np.arange(t.size, dtype=float))
+
+
+@st.composite
+def fleets(draw):
+    """Several assets' streams: in step (every channel the same blocks), out of step,
+    with gaps, hopping or tumbling; ticks at arbitrary times."""
+    n_assets = draw(st.integers(1, 5))
+    hop = draw(st.sampled_from([0.5, 1.0]))
+    span = draw(st.sampled_from([1, 1, 2]))
+    assets = []
+    for _ in range(n_assets):
+        in_step = draw(st.booleans())
+        n = draw(st.integers(1, 200))
+        steps = draw(st.lists(st.sampled_from([0.05, 0.1, 0.1, 0.1, 0.25, 3.0]),
+                              min_size=n, max_size=n))
+        ts = T0 + 0.5 + np.cumsum(steps)
+        if in_step:
+            chans = None
+        else:
+            chans = np.asarray(draw(st.lists(st.integers(0, 2), min_size=n, max_size=n)))
+        assets.append((ts, chans))
+    ticks = sorted(draw(st.lists(st.floats(0.0, 60.0), min_size=1, max_size=30)))
+    return hop, span, assets, ticks
+
+
+@settings(max_examples=150, deadline=None)
+@given(fleets())
+def test_close_many_cuts_what_close_due_cuts(fleet) -> None:
+    from agent.core.windows import close_many
+
+    hop, span, assets, ticks = fleet
+    cfg = WindowConfig(hop * span, hop, 0.0, 1.0, 0.5)
+
+    def make() -> list[WindowAssembler]:
+        return [WindowAssembler(cfg, RATES) for _ in assets]
+
+    one, many = make(), make()
+    fed = [0] * len(assets)
+    for tick in ticks:
+        now = T0 + tick
+        for ai, (ts, chans) in enumerate(assets):
+            hi = int(np.searchsorted(ts, now))
+            lo, fed[ai] = fed[ai], hi
+            if hi <= lo:
+                continue
+            for c in range(len(RATES)):
+                sel = np.arange(lo, hi) if chans is None else \
+                    np.flatnonzero(chans[lo:hi] == c) + lo
+                if sel.size:
+                    for a in (one[ai], many[ai]):
+                        a.add(c, ts[sel], sel.astype(float), now, presorted=True)
+        want = [a.close_due(now) for a in one]
+        got = close_many(many, now)
+        for w_res, g_res in zip(want, got, strict=True):
+            assert g_res.empty_skipped == w_res.empty_skipped
+            assert len(g_res.windows) == len(w_res.windows)
+            for w, g in zip(w_res.windows, g_res.windows, strict=True):
+                assert (g.start, g.end, g.complete, g.coverage) == \
+                    (w.start, w.end, w.complete, w.coverage)
+                for c in range(len(RATES)):
+                    np.testing.assert_array_equal(g.values[c], w.values[c])
+                    np.testing.assert_array_equal(g.timestamps[c], w.timestamps[c])
+        for a, b in zip(one, many, strict=True):
+            assert (a.next_start, a.pending_samples()) == (b.next_start, b.pending_samples())
+
+
+def _twins(n: int = 2) -> tuple[list[WindowAssembler], list[WindowAssembler]]:
+    cfg = WindowConfig(1.0, 1.0, 0.0, 1.0, 0.5)
+    return ([WindowAssembler(cfg, RATES) for _ in range(n)],
+            [WindowAssembler(cfg, RATES) for _ in range(n)])
+
+
+def _same(want, got) -> None:  # type: ignore[no-untyped-def]
+    assert [(r.empty_skipped, [(w.start, w.complete, w.coverage) for w in r.windows])
+            for r in want] == \
+        [(r.empty_skipped, [(w.start, w.complete, w.coverage) for w in r.windows])
+         for r in got]
+
+
+def test_close_many_with_a_silent_rate_group_and_an_empty_window() -> None:
+    """A group with no samples in the window (its channel silent) comes out empty and
+    the window incomplete; a due window with no samples at all is left to close_due's
+    gap logic. Both as close_due cuts them."""
+    from agent.core.windows import close_many
+
+    one, many = _twins()
+    for t0 in (0.0, 1.0, 2.0):
+        ts = T0 + t0 + np.arange(10) / 10.0
+        for a in (*one, *many):
+            for c in (0, 1):
+                a.add(c, ts, ts - T0, float(ts[-1]), presorted=True)
+    arrival = T0 + 2.9
+    for now in (arrival, arrival + 1.2, arrival + 2.5, arrival + 9.0):
+        want = [a.close_due(now) for a in one]
+        got = close_many(many, now)
+        _same(want, got)
+    assert one[0].next_start == many[0].next_start
