@@ -137,6 +137,12 @@ class PipelineLoop:
                 next_at = time.monotonic()  # woken early: the regular beat restarts here
 
 
+# How often the pipeline thread moves ingest's plain counts into the Prometheus
+# counters (a loop over every channel): ticks can follow each other within
+# milliseconds when many windows close at once.
+_FLUSH_EVERY_S = 0.5
+
+
 class Daemon:
     """watchkeep's running parts for one config."""
 
@@ -148,6 +154,7 @@ class Daemon:
         self.cfg = cfg
         self.log = logger or logging.getLogger("watchkeep")
         self.registry = registry or CollectorRegistry()
+        self._flushed_at = -math.inf
         self.metrics = Metrics(self.registry)
         self.env = dict(os.environ if env is None else env)
         self.clock = clock
@@ -206,7 +213,7 @@ class Daemon:
             # before an "online" status could be published.
             self.http = HttpServer(cfg.http.host, cfg.http.port, self.registry,
                                    healthy=self.healthy, ready=self.ready, status=self.status,
-                                   before_scrape=lambda: self.handler.flush_counts())
+                                   before_scrape=self._before_scrape)
         if self.commands is not None:
             self.commands.start()
         self.upstream.start()
@@ -222,11 +229,19 @@ class Daemon:
                          http=f"{cfg.http.host}:{self.http.port}" if self.http else "off"))
         self.notifier.ready(summary)
 
+    def _before_scrape(self) -> None:
+        self.handler.flush_counts()
+        self.loop.gauges.refresh_ages(self.clock())
+
     def _after_tick(self) -> None:
         """On the pipeline thread after every tick: move ingest's counts into the
-        metrics, and tell ingest the sample time that closes each asset's next window
-        (so it can wake the pipeline loop)."""
-        self.handler.flush_counts()
+        metrics (at most every `_FLUSH_EVERY_S`; a scrape flushes first anyway), and
+        tell ingest the sample time that closes each asset's next window (so it can
+        wake the pipeline loop)."""
+        now = time.monotonic()
+        if now - self._flushed_at >= _FLUSH_EVERY_S:
+            self._flushed_at = now
+            self.handler.flush_counts()
         times = []
         for rt in self.pipeline.runtimes:
             start, w = rt.assembler.next_start, rt.cfg.window
@@ -281,6 +296,7 @@ class Daemon:
         self.rebaseline.stop()
         self.ingest.stop()
         self.loop.stop()
+        self.handler.flush_counts()  # the last ticks' counts (the flush is rate-limited)
         self.upstream.stop()
         self.outbox.close()
         if self.http is not None:

@@ -184,9 +184,10 @@ def _forget(metric: Any, **labels: str) -> None:
 class TickGauges:
     """Gauges the pipeline loop refreshes every tick, and the series that follow the config.
 
-    `update(pipeline, now)` sets each configured channel's last-sample age (seconds
-    since its last sample arrived, or since `started_s` when none has yet), and,
-    whenever the pipeline object changes (start, reload), republishes per-asset
+    `refresh_ages(now)` (before each scrape) sets each configured channel's
+    last-sample age (seconds since its last sample arrived, or since `started_s` when
+    none has yet); `update(pipeline, now)` (after each tick), whenever the pipeline
+    object changes (start, reload), republishes per-asset
     model info, detector state and outbox capacity (score and threshold are NaN
     until there is one) and removes the series of assets and channels the new
     config no longer has, so label sets stay bounded by the running config. Series
@@ -203,8 +204,16 @@ class TickGauges:
         self._ages: list[tuple[Any, Any]] = []  # (ChannelBuffer, its age gauge child)
 
     def update(self, pipeline: Pipeline, now: float) -> None:
+        """After a tick: follow a new pipeline (start, reload). The ages are set by
+        `refresh_ages` before each scrape: setting one gauge per channel every tick
+        was milliseconds of GIL per tick, and ticks come in quick succession when
+        many windows close at once."""
         if pipeline is not self._pipeline:
             self._rebind(pipeline)
+            self.refresh_ages(now)
+
+    def refresh_ages(self, now: float) -> None:
+        """Set each channel's last-sample age as of `now` (any thread)."""
         for buf, gauge in self._ages:
             last = buf.last_arrival or self.started_s
             gauge.set(max(0.0, now - last))
