@@ -308,6 +308,7 @@ class Pipeline:
         self._times: dict[float, str] = {}  # rfc3339 of window bounds, per tick
         self._topic_cache: dict[str, tuple[str, str]] = {}
         self._layout_keys: dict[int, tuple[np.ndarray, bytes]] = {}
+        self._scaler_cache: dict[int, tuple[tuple[Bundle, ...], np.ndarray, np.ndarray]] = {}
         for rt in runtimes:
             rt.shown_threshold = rt.shown_anomalous = None
             self._publish_model_gauges(rt)
@@ -459,6 +460,7 @@ class Pipeline:
         by_len: dict[int, list[np.ndarray]] = {}
         n_by_len: dict[int, int] = {}
         ragged: list[np.ndarray] = []
+        whole: dict[int, np.ndarray | None] = {}
         # Per block: (its channels, segment length or -1 for ragged, first row there).
         places: list[tuple[tuple[int, ...], int, int]] = []
         spans: list[tuple[int, int]] = []
@@ -467,12 +469,16 @@ class Pipeline:
             w = p.w
             if w.blocks:
                 for blk in w.blocks:
-                    self._place(blk, by_len, n_by_len, ragged, places)
+                    self._place(blk, by_len, n_by_len, ragged, places, whole)
             else:  # a window built from per-channel arrays
                 places.append((tuple(range(len(w.values))), -1, len(ragged)))
                 ragged.extend(w.values)
             spans.append((first, len(places)))
-        feats = {n: block_features(stack_rows(parts), needed) for n, parts in by_len.items()}
+        feats = {}
+        for n, parts in by_len.items():
+            base = whole.get(n)
+            x = base if base is not None and base.shape[0] == n_by_len[n] else stack_rows(parts)
+            feats[n] = block_features(x, needed)
         if ragged:
             feats[-1] = segment_features(ragged)
         spec_segs, spec_rates, spec_cfgs, spec_speeds, spec_at = [], [], [], [], []
@@ -520,14 +526,18 @@ class Pipeline:
 
     @staticmethod
     def _place(blk: Block, by_len: dict[int, list[np.ndarray]], n_by_len: dict[int, int],
-               ragged: list[np.ndarray], places: list[tuple[tuple[int, ...], int, int]]
-               ) -> None:
+               ragged: list[np.ndarray], places: list[tuple[tuple[int, ...], int, int]],
+               whole: dict[int, np.ndarray | None]) -> None:
         if blk.uniform:
             n = blk.values.shape[1]
             off = n_by_len.get(n, 0)
             by_len.setdefault(n, []).append(blk.values)
             n_by_len[n] = off + len(blk.chans)
             places.append((blk.chans, n, off))
+            # Still the rows 0..off of one matrix cut for all these blocks, in order?
+            base = whole.get(n, blk.base) if off else blk.base
+            whole[n] = base if base is not None and base is blk.base and blk.row0 == off \
+                else None
         else:
             places.append((blk.chans, -1, len(ragged)))
             ragged.extend(blk.values[r, :k] for r, k in enumerate(blk.counts))
@@ -648,8 +658,7 @@ class Pipeline:
             for js in by_layout.values():
                 idx = group[js[0]][3]
                 x[js] = np.stack([group[j][1] for j in js])[:, idx]
-            mean = np.stack([b.meta.scaler_mean for _, _, b, _ in group])
-            scale = np.stack([b.meta.scaler_scale for _, _, b, _ in group])
+            mean, scale = self._scalers(tuple(b for _, _, b, _ in group))
             z = ((x - mean) / scale).astype(np.float32)
             recon = np.empty_like(z)
             ok = np.ones(len(group), dtype=bool)
@@ -731,6 +740,18 @@ class Pipeline:
             tel = {"asset": name, "mode": mode, "window_end": end_s,
                    "score": round(score, 6), "threshold": meta.threshold}
             out.append(OutMessage(scores_topic, _json(tel), Kind.SCORE, qos=0))
+
+    def _scalers(self, bundles: tuple[Bundle, ...]) -> tuple[np.ndarray, np.ndarray]:
+        """The bundles' scaler means and scales stacked row by row; the last few stacks
+        are remembered (the same assets close windows tick after tick)."""
+        got = self._scaler_cache.get(len(bundles))
+        if got is None or got[0] != bundles:
+            got = (bundles, np.stack([b.meta.scaler_mean for b in bundles]),
+                   np.stack([b.meta.scaler_scale for b in bundles]))
+            if len(self._scaler_cache) > 16:
+                self._scaler_cache.clear()
+            self._scaler_cache[len(bundles)] = got
+        return got[1], got[2]
 
     def _topics(self, asset: str) -> tuple[str, str]:
         """The asset's state and scores topics."""

@@ -51,14 +51,19 @@ class Block:
     """The samples of one rate group of channels in one window: row r holds channel
     `chans[r]`, its first `counts[r]` entries valid (the rest is padding)."""
 
-    __slots__ = ("chans", "counts", "timestamps", "uniform", "values")
+    __slots__ = ("base", "chans", "counts", "row0", "timestamps", "uniform", "values")
 
     def __init__(self, chans: tuple[int, ...], timestamps: np.ndarray, values: np.ndarray,
-                 counts: list[int], uniform: bool | None = None) -> None:
+                 counts: list[int], uniform: bool | None = None,
+                 base: np.ndarray | None = None, row0: int = 0) -> None:
         self.chans = chans
         self.timestamps = timestamps
         self.values = values
         self.counts = counts
+        # When `values` is rows row0.. of a matrix cut for many assets at once: that
+        # matrix (the feature pass takes it whole instead of stacking the blocks again).
+        self.base = base
+        self.row0 = row0
         # Every row full: the block is a plain [rows, samples] matrix.
         self.uniform = (not counts or min(counts) == values.shape[1]) if uniform is None \
             else uniform
@@ -523,7 +528,8 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
         off = 0
         for g, (fi, gi), n in zip(groups, members, sizes, strict=True):
             if counts_all is None:
-                blocks[fi][gi] = Block(g.chans, t[off:off + n], v[off:off + n], [m] * n, True)
+                blocks[fi][gi] = Block(g.chans, t[off:off + n], v[off:off + n], [m] * n, True,
+                                       v, off)
             else:
                 counts = counts_all[off:off + n]
                 mc = max(counts)
