@@ -138,7 +138,7 @@ class _Group:
     and the store doubles when that is not enough room.
     """
 
-    __slots__ = ("bound", "chans", "expected", "hi", "lo", "rows", "ts", "vals")
+    __slots__ = ("bound", "chans", "data", "expected", "hi", "lo", "rows", "ts", "vals")
 
     def __init__(self, chans: tuple[int, ...], expected: float) -> None:
         k = len(chans)
@@ -147,8 +147,9 @@ class _Group:
         self.expected = expected
         # How many samples per row one gather looks at before falling back to a search.
         self.bound = int(1.25 * expected) + 16
-        self.ts = np.empty((k, cap))
-        self.vals = np.empty((k, cap))
+        # Timestamps and values in one array, so one slice takes both for a cut.
+        self.data = np.empty((2, k, cap))
+        self.ts, self.vals = self.data[0], self.data[1]
         self.lo = [0] * k
         self.hi = [0] * k
         self.rows = np.arange(k, dtype=np.int64)[:, None]
@@ -167,11 +168,10 @@ class _Group:
         if need > cap:
             new_cap = max(2 * cap, need)
             top = max(used)
-            ts = np.empty((len(used), new_cap))
-            vals = np.empty((len(used), new_cap))
-            ts[:, :top] = self.ts[:, :top]
-            vals[:, :top] = self.vals[:, :top]
-            self.ts, self.vals = ts, vals
+            data = np.empty((2, len(used), new_cap))
+            data[:, :, :top] = self.data[:, :, :top]
+            self.data = data
+            self.ts, self.vals = data[0], data[1]
         return used[r]
 
     def pending(self) -> int:
@@ -507,26 +507,25 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
             results[i] = AssembleResult()
         else:
             results[i] = a.close_due(now)
-    # Every (item, group) with samples, by how many each of its rows holds.
-    by_width: dict[int, list[tuple[int, int]]] = {}
+    # Every (item, group) with samples, by how many each of its rows holds:
+    # (item, group index, the group, its first pending index, the window's end).
+    by_width: dict[int, list[tuple[int, int, _Group, int, float]]] = {}
     blocks: list[list[Block | None]] = []
-    for fi, (_, _, _, spans) in enumerate(fast):
+    for fi, (i, _, end, spans) in enumerate(fast):
         blocks.append([None] * len(spans))
-        for gi, (_, m) in enumerate(spans):
+        groups = assemblers[i]._groups
+        for gi, (lo0, m) in enumerate(spans):
             if m:
-                by_width.setdefault(m, []).append((fi, gi))
+                by_width.setdefault(m, []).append((fi, gi, groups[gi], lo0, end))
     for m, members in by_width.items():
-        groups = [assemblers[fast[fi][0]]._groups[gi] for fi, gi in members]
-        t = np.concatenate([g.ts[:, fast[fi][3][gi][0]:fast[fi][3][gi][0] + m]
-                            for g, (fi, gi) in zip(groups, members, strict=True)])
-        v = np.concatenate([g.vals[:, fast[fi][3][gi][0]:fast[fi][3][gi][0] + m]
-                            for g, (fi, gi) in zip(groups, members, strict=True)])
-        sizes = [len(g.chans) for g in groups]
-        ends = np.repeat(np.array([fast[fi][2] for fi, _ in members]), sizes)
+        tv = np.concatenate([g.data[:, :, lo0:lo0 + m] for _, _, g, lo0, _ in members], axis=1)
+        t, v = tv[0], tv[1]
+        sizes = [len(g.chans) for _, _, g, _, _ in members]
+        ends = np.repeat(np.array([e for *_, e in members]), sizes)
         full = bool((t[:, -1] < ends).all())  # every pending sample is in its window
         counts_all = None if full else (t < ends[:, None]).sum(axis=1).tolist()
         off = 0
-        for g, (fi, gi), n in zip(groups, members, sizes, strict=True):
+        for (fi, gi, g, _, _), n in zip(members, sizes, strict=True):
             if counts_all is None:
                 blocks[fi][gi] = Block(g.chans, t[off:off + n], v[off:off + n], [m] * n, True,
                                        v, off)

@@ -21,6 +21,7 @@ from prometheus_client import CollectorRegistry
 
 from agent.bundle import _session_options, load_bundle
 from agent.config import parse_config
+from agent.daemon import freeze_heap
 from agent.ingest import Buffers
 from agent.metrics import Metrics
 from agent.pipeline import AssetRuntime, Pipeline
@@ -28,8 +29,8 @@ from tests.bench.common import alternate, median, quiet_bundle, save, table
 
 N_ASSETS, N_CHANNELS, N_SAMPLES = 200, 8, 100
 FEATS = ["mean", "std", "rms", "peak_to_peak", "kurtosis"]
-ROUNDS = 7
-WINDOWS_PER_ROUND = 5
+ROUNDS = 11
+WINDOWS_PER_ROUND = 10
 
 
 class NullSink:
@@ -67,6 +68,7 @@ def build(tmp: Path):
 def main() -> int:
     with tempfile.TemporaryDirectory() as d:
         pipe, buffers, sessions, rng = build(Path(d))
+        freeze_heap()  # as the daemon does once started
         block = rng.normal(size=(N_ASSETS, N_CHANNELS, N_SAMPLES))
         ts = np.arange(N_SAMPLES) / N_SAMPLES
         state = {"k": 0}
