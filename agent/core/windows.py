@@ -138,7 +138,7 @@ class _Group:
     and the store doubles when that is not enough room.
     """
 
-    __slots__ = ("bound", "chans", "data", "expected", "hi", "lo", "rows", "ts", "vals")
+    __slots__ = ("bound", "chans", "expected", "hi", "lo", "rows", "ts", "vals")
 
     def __init__(self, chans: tuple[int, ...], expected: float) -> None:
         k = len(chans)
@@ -147,9 +147,8 @@ class _Group:
         self.expected = expected
         # How many samples per row one gather looks at before falling back to a search.
         self.bound = int(1.25 * expected) + 16
-        # Timestamps and values in one array, so one slice takes both for a cut.
-        self.data = np.empty((2, k, cap))
-        self.ts, self.vals = self.data[0], self.data[1]
+        self.ts = np.empty((k, cap))
+        self.vals = np.empty((k, cap))
         self.lo = [0] * k
         self.hi = [0] * k
         self.rows = np.arange(k, dtype=np.int64)[:, None]
@@ -168,10 +167,11 @@ class _Group:
         if need > cap:
             new_cap = max(2 * cap, need)
             top = max(used)
-            data = np.empty((2, len(used), new_cap))
-            data[:, :, :top] = self.data[:, :, :top]
-            self.data = data
-            self.ts, self.vals = data[0], data[1]
+            ts = np.empty((len(used), new_cap))
+            vals = np.empty((len(used), new_cap))
+            ts[:, :top] = self.ts[:, :top]
+            vals[:, :top] = self.vals[:, :top]
+            self.ts, self.vals = ts, vals
         return used[r]
 
     def pending(self) -> int:
@@ -518,8 +518,8 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
             if m:
                 by_width.setdefault(m, []).append((fi, gi, groups[gi], lo0, end))
     for m, members in by_width.items():
-        tv = np.concatenate([g.data[:, :, lo0:lo0 + m] for _, _, g, lo0, _ in members], axis=1)
-        t, v = tv[0], tv[1]
+        t = np.concatenate([g.ts[:, lo0:lo0 + m] for _, _, g, lo0, _ in members])
+        v = np.concatenate([g.vals[:, lo0:lo0 + m] for _, _, g, lo0, _ in members])
         sizes = [len(g.chans) for _, _, g, _, _ in members]
         ends = np.repeat(np.array([e for *_, e in members]), sizes)
         full = bool((t[:, -1] < ends).all())  # every pending sample is in its window
