@@ -229,9 +229,9 @@ class Reloader:
                                       "without a model", asset=a.name, error=str(exc)))
 
         self._swap(new, plan, old_rts, fresh)
-        from agent.daemon import freeze_heap
+        from agent.daemon import thaw_heap
 
-        freeze_heap()
+        thaw_heap()  # the replaced runtimes must be collectable
         return ReloadResult(True, plan.summary(), plan)
 
     def _swap(self, new: Config, plan: AssetPlan, old_rts: Mapping[str, AssetRuntime],
