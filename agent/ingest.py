@@ -12,7 +12,7 @@ import logging
 import math
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from typing import Any
 
 import numpy as np
@@ -22,7 +22,7 @@ from paho.mqtt.enums import CallbackAPIVersion
 from agent.config import AssetConfig, BrokerConfig, Config, Decoder, MqttProtocol, read_secret
 from agent.core.decode import Reason, Rejected, decode_message
 from agent.core.routing import Route, build_routes
-from agent.core.windows import AssembleResult, WindowAssembler
+from agent.core.windows import AssembleResult, WindowAssembler, close_many
 from agent.logs import RateLimited, kv
 from agent.metrics import Metrics
 
@@ -42,12 +42,25 @@ class AssetInbox:
         self.assembler = assembler
         self.late = 0
 
-    def close_due(self, now: float) -> tuple[AssembleResult, int]:
-        """The windows due at `now`, and the late samples counted since the last call."""
-        with self.lock:
-            res = self.assembler.close_due(now)
-            late, self.late = self.late, 0
-        return res, late
+
+def close_inboxes(inboxes: Sequence[AssetInbox], now: float
+                  ) -> tuple[list[AssembleResult], list[int]]:
+    """Every asset's windows due at `now` (cut together, `close_many`), and the late
+    samples counted since the last call; under every asset's lock, held for the one
+    cut."""
+    held = []
+    try:
+        for ib in inboxes:
+            ib.lock.acquire()
+            held.append(ib.lock)
+        results = close_many([ib.assembler for ib in inboxes], now)
+        late = [ib.late for ib in inboxes]
+        for ib in inboxes:
+            ib.late = 0
+    finally:
+        for lock in held:
+            lock.release()
+    return results, late
 
 
 class ChannelBuffer:

@@ -44,9 +44,9 @@ from agent.core.health import Change, ChannelHealth, HealthChange, HealthLimits
 from agent.core.limits import ZONES, FeatureLimits, LimitRise, ZoneLimits, zone_of
 from agent.core.modes import UNKNOWN_MODE, ModeTracker
 from agent.core.spectral import spectral_features
-from agent.core.windows import AssembleResult, Block, ClosedWindow, WindowAssembler, close_many
+from agent.core.windows import Block, ClosedWindow, WindowAssembler
 from agent.errors import BundleError
-from agent.ingest import AssetInbox, Buffers
+from agent.ingest import AssetInbox, Buffers, close_inboxes
 from agent.logs import kv
 from agent.messages import Kind, OutMessage
 from agent.metrics import Metrics
@@ -329,7 +329,8 @@ class Pipeline:
         pending: list[_Pending] = []
         out: list[OutMessage] = []
         self._times.clear()
-        for ai, (rt, res, late) in enumerate(zip(self.runtimes, *self._close(now), strict=True)):
+        results, lates = close_inboxes(self._inboxes, now)
+        for ai, (rt, res, late) in enumerate(zip(self.runtimes, results, lates, strict=True)):
             if late:
                 self._m[rt.cfg.name].late.inc(late)
             if rt.started_s is None:
@@ -353,25 +354,6 @@ class Pipeline:
                 self.sink.submit(out)
             stats.messages = len(out)
         return stats
-
-    def _close(self, now: float) -> tuple[list[AssembleResult], list[int]]:
-        """Every asset's windows due at `now` (cut together, `close_many`), and the late
-        samples counted since the last tick; under every asset's ingest lock, held for
-        the one cut."""
-        inboxes = self._inboxes
-        held = []
-        try:
-            for ib in inboxes:
-                ib.lock.acquire()
-                held.append(ib.lock)
-            results = close_many([ib.assembler for ib in inboxes], now)
-            late = [ib.late for ib in inboxes]
-            for ib in inboxes:
-                ib.late = 0
-        finally:
-            for lock in held:
-                lock.release()
-        return results, late
 
     # -- sensor health and modes (sequential per asset, before features) ---------------
 

@@ -356,13 +356,19 @@ class WindowAssembler:
             self._last_arrival = arrival
         return 0
 
-    def _ready(self, end: float, now: float) -> bool:
-        if self._max_ts >= end + self.cfg.lateness_s:
-            return True
+    def _reach(self, now: float) -> float:
+        """The newest sample time advanced by the wall-clock time since the last arrival
+        (-inf before any arrival): what the timeout compares with."""
         if self._last_arrival == -math.inf:
-            return False
-        idle_s = max(0.0, now - self._last_arrival)
-        return self._max_ts + idle_s >= end + self.cfg.timeout_s
+            return -math.inf
+        return self._max_ts + max(0.0, now - self._last_arrival)
+
+    def _due(self, end: float, reach: float) -> bool:
+        """Whether the window ending at `end` is due, given `_reach(now)`."""
+        return self._max_ts >= end + self.cfg.lateness_s or reach >= end + self.cfg.timeout_s
+
+    def _ready(self, end: float, now: float) -> bool:
+        return self._due(end, self._reach(now))
 
     def close_due(self, now: float) -> AssembleResult:
         """Close every window that is due at wall-clock time `now`."""
@@ -463,21 +469,16 @@ def _plan(asm: WindowAssembler, now: float
           ) -> tuple[int, float, float, list[tuple[int, int]]]:
     """Whether `asm` has nothing due at `now` (_NOT_DUE), exactly its next tumbling
     window with every rate group's rows in step (_ONE: start, end and per group the
-    first pending index and how many are pending), or anything else (_OTHER).
-    The readiness test is `_ready`'s, inlined."""
+    first pending index and how many are pending), or anything else (_OTHER)."""
     k = asm._next_k
     if k is None or asm._span_k != 1 or asm._any_unsorted:
         return _OTHER, 0.0, 0.0, []
-    cfg = asm.cfg
-    hop = cfg.hop_s
+    hop = asm.cfg.hop_s
     end = (k + 1) * hop
-    newest = asm._max_ts
-    arrived = asm._last_arrival != -math.inf
-    reach = newest + max(0.0, now - asm._last_arrival) if arrived else -math.inf
-    if not (newest >= end + cfg.lateness_s or reach >= end + cfg.timeout_s):
+    reach = asm._reach(now)
+    if not asm._due(end, reach):
         return _NOT_DUE, 0.0, 0.0, []
-    after = (k + 2) * hop
-    if newest >= after + cfg.lateness_s or reach >= after + cfg.timeout_s:
+    if asm._due((k + 2) * hop, reach):
         return _OTHER, 0.0, 0.0, []
     spans = []
     for g in asm._groups:

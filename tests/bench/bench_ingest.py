@@ -32,7 +32,7 @@ from paho.mqtt.enums import CallbackAPIVersion
 from prometheus_client import CollectorRegistry
 
 from agent.config import parse_config
-from agent.ingest import Buffers, Ingest, IngestHandler
+from agent.ingest import Buffers, Ingest, IngestHandler, close_inboxes
 from agent.metrics import Metrics
 from tests.bench.common import median, save, table
 from tests.brokers import Broker
@@ -147,9 +147,7 @@ def _watchkeep(port: int, kind: str, counter: _Counter, tmp: Path):
 
     def drain() -> None:  # the pipeline's share of the buffers: close windows every 100 ms
         while not stop.wait(0.1):
-            now = time.time()
-            for chans in buffers.by_asset:
-                chans[0].inbox.close_due(now)
+            close_inboxes([chans[0].inbox for chans in buffers.by_asset], time.time())
 
     th = threading.Thread(target=drain, daemon=True)
     th.start()
