@@ -297,6 +297,7 @@ class Pipeline:
         self.source = Source(cfg.site, cfg.gateway)
         self.prefix = cfg.topic_prefix
         self._m = {rt.cfg.name: _AssetMetrics.of(metrics, rt.cfg.name) for rt in runtimes}
+        self._m_at = [self._m[rt.cfg.name] for rt in runtimes]
         # Ingest writes each asset's samples straight into its runtime's assembler.
         self._inboxes: list[AssetInbox] = []
         for rt, bufs in zip(runtimes, buffers.by_asset, strict=True):
@@ -305,6 +306,11 @@ class Pipeline:
                 with inbox.lock:  # a fresh runtime: its buffers have had no samples yet
                     inbox.assembler = rt.assembler
             self._inboxes.append(inbox)
+        # What each tick asks of every asset before taking any lock (`tick`).
+        self._screen = [(rt.assembler, ib) for rt, ib in zip(runtimes, self._inboxes,
+                                                              strict=True)]
+        self._stale_at = [ai for ai, rt in enumerate(runtimes) if rt.stale_channels]
+        self._unstarted = [rt for rt in runtimes if rt.started_s is None]
         self._times: dict[float, str] = {}  # rfc3339 of window bounds, per tick
         self._topic_cache: dict[str, tuple[str, str]] = {}
         self._layout_keys: dict[int, tuple[np.ndarray, bytes]] = {}
@@ -323,31 +329,50 @@ class Pipeline:
             self.metrics.windows_skipped.labels(rt.cfg.name, reason).inc(n)
 
     def tick(self, now: float) -> TickStats:
-        """Run one tick at wall-clock time `now` (seconds)."""
+        """Run one tick at wall-clock time `now` (seconds).
+
+        Only assets with something to do are visited: a window due (`WindowAssembler.due`),
+        late samples to count, or channels whose staleness is judged every tick. An
+        asset skipped here is left exactly as a full close would leave it, so a tick in
+        which a few windows close costs about as much as those few windows.
+        """
         stats = TickStats()
-        seq_before = [rt.sequence for rt in self.runtimes]
         pending: list[_Pending] = []
         out: list[OutMessage] = []
         self._times.clear()
-        results, lates = close_inboxes(self._inboxes, now)
-        for ai, (rt, res, late) in enumerate(zip(self.runtimes, results, lates, strict=True)):
+        if self._unstarted:
+            for rt in self._unstarted:
+                if rt.started_s is None:
+                    rt.started_s = now
+            self._unstarted = []
+        # Read without the assets' locks: ingest only ever moves a sample time or an
+        # arrival forward and adds to `late`, so a stale read here is the same as the
+        # sample arriving just after this tick (the next tick, which ingest wakes, takes
+        # it); what is closed is decided again under the locks.
+        due = [ai for ai, (asm, ib) in enumerate(self._screen) if ib.late or asm.due(now)]
+        if self._stale_at:
+            due = sorted(set(due).union(self._stale_at))
+        runtimes = self.runtimes
+        seq_before = [runtimes[ai].sequence for ai in due]
+        results, lates = close_inboxes([self._inboxes[ai] for ai in due], now)
+        for ai, res, late in zip(due, results, lates, strict=True):
+            rt = runtimes[ai]
             if late:
-                self._m[rt.cfg.name].late.inc(late)
-            if rt.started_s is None:
-                rt.started_s = now
+                self._m_at[ai].late.inc(late)
             if rt.stale_channels:
                 self._check_stale(rt, ai, now, out, stats)
             if res.empty_skipped:
                 self._skip(rt, "no_data", res.empty_skipped)
             for w in res.windows:
-                self._m[rt.cfg.name].closed.inc()
+                self._m_at[ai].closed.inc()
                 stats.windows_closed += 1
                 pending.append(self._judge_window(rt, w, out, stats))
         if pending:
             self._score(pending, out, stats)
         if out:
-            seqs = {rt.cfg.name: rt.sequence for rt, b in zip(self.runtimes, seq_before,
-                                                              strict=True) if rt.sequence != b}
+            seqs = {runtimes[ai].cfg.name: runtimes[ai].sequence
+                    for ai, b in zip(due, seq_before, strict=True)
+                    if runtimes[ai].sequence != b}
             if seqs:
                 self.sink.submit(out, sequences=seqs)
             else:

@@ -262,7 +262,12 @@ class WindowAssembler:
     def __init__(self, window: WindowConfig, rates_hz: tuple[float, ...]) -> None:
         self.cfg = window
         self.rates_hz = rates_hz
-        self._next_k: int | None = None  # index of the earliest open window
+        self._next_k: int | None = None  # index of the earliest open window (`_set_next`)
+        # What `due` compares with: the newest sample time that makes the earliest open
+        # window due, and the `_reach` that does (its end plus lateness / timeout). Before
+        # the first close any sample makes the assembler due (the first window is placed).
+        self._due_ts = -math.inf
+        self._due_reach = math.inf
         self._first_start = math.inf  # start of the first window
         self._max_ts = -math.inf
         self._last_arrival = -math.inf
@@ -282,6 +287,25 @@ class WindowAssembler:
         # When a window spans a whole number of hops its end is computed as the start of
         # a later window, so a sample on a boundary falls in exactly one tumbling window.
         self._span_k = round(span) if abs(span - round(span)) < 1e-9 else None
+
+    def _set_next(self, k: int) -> None:
+        """Make window `k` the earliest open one (its samples are not touched)."""
+        self._next_k = k
+        end = self._bounds(k)[1]
+        self._due_ts = end + self.cfg.lateness_s
+        self._due_reach = end + self.cfg.timeout_s
+
+    def due(self, now: float) -> bool:
+        """Whether `close_due(now)` has anything to do: a window due, or samples held
+        before the first close. Looks at no store (a few float comparisons), so it is
+        cheap enough to ask of every asset on every tick; False means `close_due(now)`
+        would return an empty result and change nothing."""
+        max_ts = self._max_ts
+        if max_ts == -math.inf:
+            return False
+        if self._next_k is None or max_ts >= self._due_ts:
+            return True
+        return max_ts + max(0.0, now - self._last_arrival) >= self._due_reach
 
     @property
     def next_start(self) -> float | None:
@@ -427,7 +451,7 @@ class WindowAssembler:
                 continue
             out.windows.append(ClosedWindow(start, end, None, None, None, complete,
                                             blocks=tuple(blocks), expected=self._expected))
-            self._next_k = k + 1
+            self._set_next(k + 1)
             for g, c in zip(self._groups, cuts, strict=True):
                 g.drop(c)
         return out
@@ -454,7 +478,7 @@ class WindowAssembler:
 
     def _advance(self, new_k: int) -> None:
         """Make window `new_k` the earliest open one; drop samples before its start."""
-        self._next_k = new_k
+        self._set_next(new_k)
         new_start = new_k * self.cfg.hop_s
         for g in self._groups:
             g.drop(g.count_below(new_start))
@@ -557,7 +581,7 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
         res.windows.append(ClosedWindow(start, end, None, None, None, complete,
                                         blocks=tuple(bl), expected=a._expected))  # type: ignore[arg-type]
         assert a._next_k is not None
-        a._next_k += 1
+        a._set_next(a._next_k + 1)
         for g, blk in zip(a._groups, bl, strict=True):
             assert blk is not None
             if blk.uniform:  # rows in step stay in step
