@@ -10,8 +10,10 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import threading
-from collections.abc import Callable
+import time
+from collections.abc import Callable, Iterable, Mapping
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from typing import TYPE_CHECKING, Any
 
@@ -25,6 +27,8 @@ from prometheus_client import (
     ProcessCollector,
 )
 from prometheus_client.exposition import CONTENT_TYPE_LATEST, generate_latest
+from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamily, Metric
+from prometheus_client.registry import Collector
 
 if TYPE_CHECKING:
     from agent.pipeline import Pipeline
@@ -33,6 +37,98 @@ if TYPE_CHECKING:
 # millisecond (a few assets) to seconds (a slow gateway with many waveform channels).
 WORK_BUCKETS = (0.00005, 0.0001, 0.00025, 0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05,
                 0.1, 0.25, 0.5, 1.0, 2.5, 5.0)
+
+
+class PlainSeries:
+    """One labelled series of a `PlainFamily`: a plain float, changed without a lock.
+
+    For series one thread changes many times per tick (the pipeline's per-window counts
+    and score): a prometheus_client child takes a lock and checks it is observable on
+    every change, a measurable share of a tick at 200 assets. One writer thread only;
+    a scrape reads the float as it is (a float store is atomic under the GIL).
+    """
+
+    __slots__ = ("created", "value")
+
+    def __init__(self, created: float) -> None:
+        self.value = 0.0
+        self.created = created
+
+    def inc(self, amount: float = 1.0) -> None:
+        self.value += amount
+
+    def set(self, value: float) -> None:
+        self.value = float(value)
+
+    def get(self) -> float:
+        return self.value
+
+    @property
+    def _value(self) -> PlainSeries:
+        # prometheus_client children hold their value in `_value`; tests read
+        # `metric.labels(...)._value.get()` whichever kind of series it is.
+        return self
+
+
+class PlainFamily(Collector):
+    """A counter or gauge family whose series are `PlainSeries`, exported at scrape time
+    by this collector under the same name, type, HELP and labels a prometheus_client
+    Counter or Gauge of that name would have (counters with their `_created` series).
+
+    `labels(*values)` and `remove_by_labels(labels)` behave as prometheus_client's.
+    """
+
+    def __init__(self, kind: str, name: str, documentation: str, labelnames: Iterable[str],
+                 registry: CollectorRegistry) -> None:
+        if kind not in ("counter", "gauge"):
+            raise ValueError(f"unsupported metric kind {kind!r}")
+        self.kind = kind
+        self.name = name
+        self.documentation = documentation
+        self.labelnames = tuple(labelnames)
+        self._series: dict[tuple[str, ...], PlainSeries] = {}
+        self._lock = threading.Lock()  # series made or removed vs. a scrape copying them
+        registry.register(self)
+
+    def labels(self, *values: str) -> PlainSeries:
+        if len(values) != len(self.labelnames):
+            raise ValueError(f"{self.name}: expected {len(self.labelnames)} label values")
+        key = tuple(str(v) for v in values)
+        got = self._series.get(key)
+        if got is None:
+            with self._lock:
+                got = self._series.setdefault(key, PlainSeries(time.time()))
+        return got
+
+    def remove_by_labels(self, labels: Mapping[str, str]) -> None:
+        """Remove every series whose labels include `labels`."""
+        at = [(self.labelnames.index(k), v) for k, v in labels.items()]
+        with self._lock:
+            for key in [k for k in self._series if all(k[i] == v for i, v in at)]:
+                del self._series[key]
+
+    def _family(self) -> CounterMetricFamily | GaugeMetricFamily:
+        if self.kind == "counter":
+            return CounterMetricFamily(self.name, self.documentation, labels=self.labelnames)
+        return GaugeMetricFamily(self.name, self.documentation, labels=self.labelnames)
+
+    def describe(self) -> list[Metric]:
+        return [self._family()]
+
+    def collect(self) -> list[Metric]:
+        with self._lock:
+            series = list(self._series.items())
+        fam = self._family()
+        if isinstance(fam, CounterMetricFamily):
+            # As prometheus_client does: `_created` unless turned off in the environment.
+            created = os.environ.get("PROMETHEUS_DISABLE_CREATED_SERIES", "false").lower() \
+                not in ("true", "1", "t")
+            for key, s in series:
+                fam.add_metric(key, s.value, s.created if created else None)
+        else:
+            for key, s in series:
+                fam.add_metric(key, s.value)
+        return [fam]
 
 
 class Metrics:
@@ -67,10 +163,12 @@ class Metrics:
         self.late_samples = Counter(
             "watchkeep_late_samples_total", "Samples older than the oldest open window",
             ["asset"], registry=r)
-        self.windows_closed = Counter(
-            "watchkeep_windows_closed_total", "Windows closed", ["asset"], registry=r)
-        self.windows_scored = Counter(
-            "watchkeep_windows_scored_total", "Windows scored by a model", ["asset"], registry=r)
+        # Changed once or more per window by the pipeline: plain series (`PlainFamily`).
+        self.windows_closed = PlainFamily(
+            "counter", "watchkeep_windows_closed_total", "Windows closed", ["asset"], r)
+        self.windows_scored = PlainFamily(
+            "counter", "watchkeep_windows_scored_total", "Windows scored by a model", ["asset"],
+            r)
         self.windows_skipped = Counter(
             "watchkeep_windows_skipped_total", "Windows not scored, by reason",
             ["asset", "reason"], registry=r)
@@ -85,9 +183,9 @@ class Metrics:
             buckets=WORK_BUCKETS, registry=r)
         self.tick_lag = Gauge(
             "watchkeep_pipeline_tick_lag_seconds", "How late the last tick started", registry=r)
-        self.score = Gauge(
-            "watchkeep_anomaly_score", "Anomaly score of the last scored window", ["asset"],
-            registry=r)
+        self.score = PlainFamily(
+            "gauge", "watchkeep_anomaly_score", "Anomaly score of the last scored window",
+            ["asset"], r)
         self.threshold = Gauge(
             "watchkeep_anomaly_threshold", "Raise threshold of the asset's model", ["asset"],
             registry=r)

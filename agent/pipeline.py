@@ -49,7 +49,7 @@ from agent.errors import BundleError
 from agent.ingest import AssetInbox, Buffers, close_inboxes
 from agent.logs import kv
 from agent.messages import Kind, OutMessage
-from agent.metrics import Metrics
+from agent.metrics import Metrics, PlainSeries
 
 DEFAULT_MODE = "default"
 _NF = len(FEATURES)
@@ -259,10 +259,10 @@ class AssetRuntime:
 class _AssetMetrics:
     """One asset's metric children, looked up once (`labels()` is not free per window)."""
 
-    closed: Counter
-    scored: Counter
+    closed: PlainSeries
+    scored: PlainSeries
     late: Counter
-    score: Gauge
+    score: PlainSeries
     threshold: Gauge
     anomalous: Gauge
 
