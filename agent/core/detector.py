@@ -50,6 +50,7 @@ class Detector:
         self.params = params
         self.state = State.NORMAL
         self._recent: deque[bool] = deque(maxlen=params.raise_n)
+        self._n_above = 0  # how many of `_recent` are True (kept, not summed per window)
         self._below = 0
         self.peak_score = 0.0
 
@@ -57,8 +58,13 @@ class Detector:
         """Feed one window's score; return the transition it causes, if any."""
         above = score > threshold
         if self.state is State.NORMAL:
-            self._recent.append(above)
-            if sum(self._recent) >= self.params.raise_k:
+            recent = self._recent
+            if len(recent) == recent.maxlen and recent[0]:
+                self._n_above -= 1  # about to fall out of the last n
+            recent.append(above)
+            if above:
+                self._n_above += 1
+            if self._n_above >= self.params.raise_k:
                 self.state = State.ANOMALOUS
                 self._below = 0
                 self.peak_score = score
@@ -70,6 +76,7 @@ class Detector:
             if self._below >= self.params.clear_m:
                 self.state = State.NORMAL
                 self._recent.clear()
+                self._n_above = 0
                 self._below = 0
                 return Transition.CLEARED
         else:
@@ -80,6 +87,7 @@ class Detector:
         """Forget history (after a model change or a gap)."""
         self.state = State.NORMAL
         self._recent.clear()
+        self._n_above = 0
         self._below = 0
         self.peak_score = 0.0
 
