@@ -694,7 +694,8 @@ class Pipeline:
     def _step(self, rt: AssetRuntime, w: ClosedWindow, mode: str, bundle: Bundle, score: float,
               sq: np.ndarray, out: list[OutMessage], stats: TickStats) -> None:
         meta = bundle.meta
-        m = self._m[rt.cfg.name]
+        name = rt.cfg.name
+        m = self._m[name]
         m.scored.inc()
         m.score.set(score)
         if meta.threshold != rt.shown_threshold:
@@ -704,7 +705,6 @@ class Pipeline:
         rt.last_score = score
         rt.last_window_end = w.end
         tr = rt.detector.step(score, meta.threshold, meta.clear_threshold)
-        name = rt.cfg.name
         end_s = self._time(w.end)
         model = bundle.model_ref
         if tr is not None:
@@ -733,20 +733,21 @@ class Pipeline:
                         id_key=f"{w.start:.3f}")
             rt.raised_at = None
             stats.events += 1
-        anomalous = 1 if rt.state is State.ANOMALOUS else 0
+        state = rt.detector.state  # a StrEnum: it serialises as its value
+        anomalous = 1 if state is State.ANOMALOUS else 0
         if anomalous != rt.shown_anomalous:
             m.anomalous.set(anomalous)
             rt.shown_anomalous = anomalous
         state_topic, scores_topic = self._topics(name)
-        state = {"asset": name, "state": rt.state.value, "mode": mode,
-                 "score": round(score, 6), "threshold": meta.threshold,
-                 "window_end": end_s, "model": model, "last_event": rt.last_event}
-        out.append(OutMessage(state_topic, _json(state), Kind.STATE, qos=1, retain=True,
-                              key=state_topic))
+        rounded = round(score, 6)
+        doc = {"asset": name, "state": state, "mode": mode, "score": rounded,
+               "threshold": meta.threshold, "window_end": end_s, "model": model,
+               "last_event": rt.last_event}
+        out.append(OutMessage(state_topic, _json(doc), Kind.STATE, 1, True, state_topic))
         if self.cfg.publish_scores:
-            tel = {"asset": name, "mode": mode, "window_end": end_s,
-                   "score": round(score, 6), "threshold": meta.threshold}
-            out.append(OutMessage(scores_topic, _json(tel), Kind.SCORE, qos=0))
+            tel = {"asset": name, "mode": mode, "window_end": end_s, "score": rounded,
+                   "threshold": meta.threshold}
+            out.append(OutMessage(scores_topic, _json(tel), Kind.SCORE, 0))
 
     def _scalers(self, bundles: tuple[Bundle, ...]) -> tuple[np.ndarray, np.ndarray]:
         """The bundles' scaler means and scales stacked row by row; the last few stacks
