@@ -29,6 +29,7 @@ the feature pass stacks across assets; per-channel arrays are views made on dema
 from __future__ import annotations
 
 import math
+import sys
 from collections.abc import Sequence
 
 import numpy as np
@@ -265,8 +266,9 @@ class WindowAssembler:
         self._next_k: int | None = None  # index of the earliest open window (`_set_next`)
         # What `due` compares with: the newest sample time that makes the earliest open
         # window due, and the `_reach` that does (its end plus lateness / timeout). Before
-        # the first close any sample makes the assembler due (the first window is placed).
-        self._due_ts = -math.inf
+        # the first close any sample makes the assembler due (the first window is placed),
+        # and no sample (-inf) does not.
+        self._due_ts = -sys.float_info.max
         self._due_reach = math.inf
         self._first_start = math.inf  # start of the first window
         self._max_ts = -math.inf
@@ -297,15 +299,18 @@ class WindowAssembler:
 
     def due(self, now: float) -> bool:
         """Whether `close_due(now)` has anything to do: a window due, or samples held
-        before the first close. Looks at no store (a few float comparisons), so it is
+        before the first close. Looks at no store (two float comparisons), so it is
         cheap enough to ask of every asset on every tick; False means `close_due(now)`
         would return an empty result and change nothing."""
         max_ts = self._max_ts
-        if max_ts == -math.inf:
-            return False
-        if self._next_k is None or max_ts >= self._due_ts:
+        if max_ts >= self._due_ts:
             return True
-        return max_ts + max(0.0, now - self._last_arrival) >= self._due_reach
+        idle = now - self._last_arrival
+        if idle > 0.0:
+            if idle == math.inf:  # no sample ever (max_ts -inf too)
+                return False
+            max_ts += idle
+        return max_ts >= self._due_reach
 
     @property
     def next_start(self) -> float | None:
