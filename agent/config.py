@@ -39,6 +39,12 @@ class MqttProtocol(StrEnum):
     V5 = "5"
 
 
+class IngestWorker(StrEnum):
+    """Where the local broker's client and the decoders run (see agent/ingest_worker.py)."""
+    PROCESS = "process"
+    THREAD = "thread"
+
+
 class Synchronous(StrEnum):
     FULL = "FULL"
     NORMAL = "NORMAL"
@@ -223,6 +229,10 @@ class IngestConfig:
     # Topic filters to subscribe to instead of each channel's exact topic; messages on
     # topics no channel uses are then counted as `unknown_topic`.
     subscriptions: tuple[str, ...] = ()
+    # `process`: a child process runs the MQTT client and the decoders and hands the
+    # samples over in batches, so ingest and the pipeline do not share one interpreter
+    # lock. `thread`: both in the daemon's process (one core's worth for everything).
+    worker: IngestWorker = IngestWorker.PROCESS
 
 
 @dataclass(frozen=True)
@@ -734,7 +744,7 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
     upstream = _broker(r, top.get("upstream_broker"), "upstream_broker", f"{role}-upstream",
                        1883)
     ing = r.mapping(top.get("ingest"), "ingest",
-                    ("max_payload_bytes", "max_clock_skew_s", "subscriptions"))
+                    ("max_payload_bytes", "max_clock_skew_s", "subscriptions", "worker"))
     subs = r.get(ing, "subscriptions", "ingest", "list", [])
     for i, f in enumerate(subs):
         if not isinstance(f, str) or not _filter_ok(f):
@@ -744,7 +754,9 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
               "an integer number of bytes >= 64"),
         r.get(ing, "max_clock_skew_s", "ingest", "num", 300.0, lambda v: v > 0,
               "a number of seconds > 0"),
-        tuple(f for f in subs if isinstance(f, str)))
+        tuple(f for f in subs if isinstance(f, str)),
+        IngestWorker(r.get(ing, "worker", "ingest", "str", "process",
+                           lambda v: v in ("process", "thread"), "process or thread")))
     pipe = r.mapping(top.get("pipeline"), "pipeline", ("tick_s",))
     tick = r.get(pipe, "tick_s", "pipeline", "num", 0.1, lambda v: 0.01 <= v <= 10,
                  "seconds between 0.01 and 10")

@@ -24,9 +24,10 @@ from prometheus_client import CollectorRegistry
 
 from agent import __version__
 from agent.bundle import Bundle, load_bundle
-from agent.config import AssetConfig, Config
+from agent.config import AssetConfig, Config, IngestWorker
 from agent.errors import BundleError, ConfigError, ConfigProblem
 from agent.ingest import Buffers, Ingest, IngestHandler
+from agent.ingest_worker import ProcessIngest
 from agent.learning import RebaselineManager
 from agent.logs import kv
 from agent.metrics import HttpServer, Metrics, TickGauges
@@ -223,7 +224,11 @@ class Daemon:
         self.pipeline = Pipeline(cfg, self.buffers, sink, self.metrics, self.log, runtimes,
                                  observer=self.rebaseline.observe)
         self.handler = IngestHandler(cfg, self.buffers, self.metrics, self.log)
-        self.ingest = Ingest(cfg, self.handler, self.metrics, self.log, clock=self.clock)
+        # A child process stamps arrivals with the wall clock: a daemon built on another
+        # clock (the demo's and some tests' simulated time) keeps ingest in a thread.
+        in_child = cfg.ingest.worker is IngestWorker.PROCESS and self.clock is time.time
+        self.ingest: Ingest | ProcessIngest = (ProcessIngest if in_child else Ingest)(
+            cfg, self.handler, self.metrics, self.log, clock=self.clock)
         self.loop = PipelineLoop(self.pipeline, cfg.tick_s, self.metrics, self.notifier,
                                  self.log, clock=self.clock)
         self.loop.after_tick = self._after_tick

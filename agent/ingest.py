@@ -271,6 +271,31 @@ class Ingest:
         finally:
             self._client.loop_stop()
 
+    def topics(self) -> set[str]:
+        """What the client subscribes to for the current config."""
+        return set(self.cfg.ingest.subscriptions) or set(self.handler.routes)
+
+    def reconfigure(self, cfg: Config, handler: IngestHandler) -> None:
+        """Route with `handler` from now on (reload) and follow the subscriptions."""
+        old = self.topics()
+        self.handler = handler  # one attribute store: the paho thread sees old or new
+        self.cfg = cfg  # later reconnects subscribe for the new config
+        self.resubscribe(old, self.topics())
+
+    def resubscribe(self, old: set[str], new: set[str]) -> None:
+        """Subscribe to topics in `new` only, unsubscribe from those in `old` only.
+
+        paho's subscribe is thread-safe; when the client is not connected, the next
+        on_connect subscribes from the current config anyway.
+        """
+        if not self.connected.is_set():
+            return
+        add, drop = sorted(new - old), sorted(old - new)
+        if add:
+            self._client.subscribe([(t, 0) for t in add])
+        if drop:
+            self._client.unsubscribe(drop)
+
     def _on_connect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any,
                     props: Any) -> None:
         try:
@@ -280,7 +305,7 @@ class Ingest:
             self._connects += 1
             if self._connects > 1:
                 self.metrics.reconnects.labels("local").inc()
-            topics = list(self.cfg.ingest.subscriptions) or sorted(self.handler.routes)
+            topics = sorted(self.topics())
             if topics:
                 client.subscribe([(t, 0) for t in topics])
             self.connected.set()

@@ -204,6 +204,9 @@ class Metrics:
         self.reconnects = Counter(
             "watchkeep_broker_reconnects_total", "Connections made after the first", ["broker"],
             registry=r)
+        self.ingest_worker_restarts = Counter(
+            "watchkeep_ingest_worker_restarts_total",
+            "Ingest child processes started again after one exited unexpectedly", registry=r)
         self.sample_age = Gauge(
             "watchkeep_sensor_last_sample_age_seconds", "Seconds since the channel's last sample",
             ["asset", "channel"], registry=r)

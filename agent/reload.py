@@ -29,7 +29,7 @@ import time
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 from agent.bundle import MODEL_JSON, MODEL_ONNX, Bundle, load_bundle
 from agent.config import AssetConfig, Config, load_config
@@ -148,11 +148,6 @@ def _load_fitting(asset: AssetConfig) -> Bundle:
     return b
 
 
-def _subscriptions(cfg: Config, handler: IngestHandler) -> set[str]:
-    """What the ingest client subscribes to for a config (as `Ingest._on_connect` does)."""
-    return set(cfg.ingest.subscriptions) or set(handler.routes)
-
-
 @dataclass
 class Reloader:
     """Reloads one running daemon from its config file (`cfg.source`)."""
@@ -255,35 +250,18 @@ class Reloader:
         buffers = Buffers(new)
         buffers.by_asset = by_asset
         handler = IngestHandler(new, buffers, d.metrics, d.log)
-        old_topics = _subscriptions(d.cfg, d.handler)
-        new_topics = _subscriptions(new, handler)
         with d.loop.paused():
             pipeline = Pipeline(new, buffers, old_pipeline.sink, d.metrics, d.log, runtimes,
                                 observer=old_pipeline.observer)
-            d.ingest.handler = handler  # one attribute store: the paho thread sees old or new
-            d.ingest.cfg = new  # later reconnects subscribe for the new config
+            # Samples decoded from here on land in the new buffers (kept assets' buffers
+            # are the same objects); subscriptions follow the new config.
+            d.ingest.reconfigure(new, handler)
             d.handler = handler
             d.buffers = buffers
             d.pipeline = pipeline
             d.loop.pipeline = pipeline
             d.loop.tick_s = new.tick_s
             d.cfg = new
-        self._resubscribe(old_topics, new_topics)
-
-    def _resubscribe(self, old: set[str], new: set[str]) -> None:
-        """Subscribe to topics the new config adds, unsubscribe from those it drops.
-
-        Uses the ingest's paho client directly (paho's subscribe is thread-safe); when
-        the client is not connected, the next on_connect subscribes from the new config.
-        """
-        client: Any = getattr(self.daemon.ingest, "_client", None)
-        if client is None or not self.daemon.ingest.connected.is_set():
-            return
-        add, drop = sorted(new - old), sorted(old - new)
-        if add:
-            client.subscribe([(t, 0) for t in add])
-        if drop:
-            client.unsubscribe(drop)
 
 
 def _status_line(d: Daemon, result: ReloadResult) -> str:

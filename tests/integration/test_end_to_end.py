@@ -30,13 +30,15 @@ def check_cloudevent(ev: dict[str, Any]) -> None:
     assert ev["type"].startswith("io.watchkeep.")
 
 
-@pytest.fixture
-def plant(tmp_path: Path, broker: Broker, upstream_broker: Broker):
+@pytest.fixture(params=["process", "thread"])
+def plant(request: pytest.FixtureRequest, tmp_path: Path, broker: Broker,
+          upstream_broker: Broker):
+    """The daemon with ingest in a child process (the default) and in a thread."""
     b1 = train_pca_bundle(tmp_path / "models" / "P-1", "P-1", seed=11)
     b2 = train_pca_bundle(tmp_path / "models" / "P-2", "P-2", seed=12)
     cfg_path = write_config(tmp_path / "watchkeep.yaml", broker.port, upstream_broker.port,
                             [asset_doc("P-1", b1), asset_doc("P-2", b2)],
-                            ingest={"subscriptions": ["plant/#"]})
+                            ingest={"subscriptions": ["plant/#"], "worker": request.param})
     cfg = load_config(cfg_path)
     daemon = Daemon(cfg, logger=logging.getLogger("watchkeep.test"))
     collector = Collector(upstream_broker.port, "watchkeep/testworks/gw1/#")
@@ -148,11 +150,14 @@ def test_bad_input_is_counted_and_changes_nothing(plant) -> None:
              timeout_s=30, what="all windows scored")
     wait_for(lambda: len(collector.events()) >= 2, timeout_s=10, what="events upstream")
     rej = daemon.metrics.messages_rejected
-    counts = {r: rej.labels(r)._value.get() for r in
-              ("malformed", "wrong_type", "non_finite", "too_large", "unknown_topic",
-               "clock_skew")}
-    assert counts == {"malformed": 1, "wrong_type": 1, "non_finite": 2, "too_large": 1,
-                      "unknown_topic": 1, "clock_skew": 1}, counts
+    want = {"malformed": 1, "wrong_type": 1, "non_finite": 2, "too_large": 1,
+            "unknown_topic": 1, "clock_skew": 1}
+
+    def counts() -> dict[str, float]:
+        return {r: rej.labels(r)._value.get() for r in want}
+
+    # With `ingest.worker: process` the child sends its counts every 0.25 s.
+    wait_for(lambda: counts() == want, timeout_s=5, what="every rejection counted")
     events = collector.events()
     assert [(e["subject"], e["type"].rsplit(".", 2)[-1]) for e in events] == [
         ("P-1", "raised"), ("P-1", "cleared")]

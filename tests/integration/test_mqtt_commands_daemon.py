@@ -173,6 +173,7 @@ def _daemon(tmp_path: Path, local: Broker, upstream: Broker, models: Path,
     daemon = Daemon(load_config(cfg_path), logger=logging.getLogger("watchkeep.test"))
     daemon.start()
     wait_for(daemon.upstream.connected.is_set, what="upstream broker")
+    wait_for(daemon.ingest.connected.is_set, what="local broker (ingest subscribed)")
     return daemon
 
 

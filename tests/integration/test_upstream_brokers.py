@@ -92,6 +92,7 @@ def test_shared_subscription_gets_each_event_once_across_two_consumers(
     pub = publisher(broker.port)
     try:
         wait_for(daemon.upstream.connected.is_set, what="upstream connected over MQTT 5")
+        wait_for(daemon.ingest.connected.is_set, what="ingest subscribed")
         n = 64
         t0 = math.floor(time.time()) + 1.0
         faults = {w for w in range(n) if w % 8 in (2, 3, 4)}
