@@ -15,9 +15,10 @@ one duplex `multiprocessing` pipe, pickled tuples:
 
 child -> parent
   ("data", gen, keys, ts, values, arrivals, blocks)  scalar samples as parallel lists
-      (key = asset_index << 16 | channel_index) and json-batch blocks as
-      (key, ts array, values array, arrival); sent when the batch is `FLUSH_S` old or
-      `MAX_BATCH` samples long, whichever comes first
+      (key = asset_index << 16 | channel_index) and json-batch blocks as (keys, sizes,
+      arrivals, all timestamps, all values), the arrays concatenated; sent when the
+      batch is `FLUSH_S` old or holds `MAX_BATCH` messages or `MAX_BATCH_SAMPLES`
+      samples, whichever comes first
   ("counts", gen, {key: (messages, samples, gaps)}, {reason: n}, errors)  deltas,
       every `COUNTS_EVERY_S` and before a switch or stop
   ("state", connected, reason)   the local broker connection came up / went down
@@ -65,7 +66,8 @@ from agent.logs import LOGGER_NAME, kv
 from agent.metrics import Metrics
 
 FLUSH_S = 0.002          # a sample waits at most this long in the child
-MAX_BATCH = 512          # ... or until this many are waiting
+MAX_BATCH = 512          # ... or until this many messages are waiting
+MAX_BATCH_SAMPLES = 32768  # ... or this many samples (waveform blocks)
 COUNTS_EVERY_S = 0.25    # message/sample/reject counts follow this often
 STOP_TIMEOUT_S = 5.0
 RESTART_MIN_S, RESTART_MAX_S = 0.5, 30.0
@@ -105,7 +107,8 @@ class _Batch:
         self.values: list[float] = []
         self.arrivals: list[float] = []
         self.blocks: list[tuple[int, np.ndarray, np.ndarray, float]] = []
-        self.n = 0
+        self.n = 0  # messages
+        self.samples = 0
 
     def add(self, key: int, t: float, value: float, arrival: float) -> None:
         with self.lock:
@@ -119,11 +122,12 @@ class _Batch:
     def add_block(self, key: int, ts: np.ndarray, values: np.ndarray, arrival: float) -> None:
         with self.lock:
             self.blocks.append((key, ts, values, arrival))
-            self.n += int(ts.size)
+            self.n += 1
+            self.samples += int(ts.size)
             self._after_add()
 
     def _after_add(self) -> None:
-        if self.n >= MAX_BATCH:
+        if self.n >= MAX_BATCH or self.samples >= MAX_BATCH_SAMPLES:
             self._send_locked()
         elif self.n and not self.wake.is_set():
             self.wake.set()
@@ -135,7 +139,15 @@ class _Batch:
     def _send_locked(self) -> None:
         if not self.n:
             return
-        msg = ("data", self.gen, self.keys, self.ts, self.values, self.arrivals, self.blocks)
+        blocks: tuple[Any, ...] = ()
+        if self.blocks:
+            # One pair of arrays for all blocks: pickling two large arrays costs far
+            # less than two small ones per message.
+            b = self.blocks
+            blocks = ([k for k, _, _, _ in b], [int(t.size) for _, t, _, _ in b],
+                      [a for _, _, _, a in b], np.concatenate([t for _, t, _, _ in b]),
+                      np.concatenate([v for _, _, v, _ in b]))
+        msg = ("data", self.gen, self.keys, self.ts, self.values, self.arrivals, blocks)
         self._reset()
         self.sender.send(msg)
 
@@ -504,11 +516,15 @@ class ProcessIngest:
             by_asset[ai][key & 0xFFFF].append(t, v, a)
             if t >= close_at[ai]:
                 due = True
-        for key, bts, bvals, a in blocks:
-            ai = key >> KEY_SHIFT
-            by_asset[ai][key & 0xFFFF].append_block(bts, bvals, a)
-            if bts[-1] >= close_at[ai]:
-                due = True
+        if blocks:
+            bkeys, sizes, barrivals, all_ts, all_vals = blocks
+            o = 0
+            for key, n, a in zip(bkeys, sizes, barrivals, strict=True):
+                ai = key >> KEY_SHIFT
+                by_asset[ai][key & 0xFFFF].append_block(all_ts[o:o + n], all_vals[o:o + n], a)
+                o += n
+                if all_ts[o - 1] >= close_at[ai]:
+                    due = True
         if due and handler.wake is not None:
             handler.wake.set()
 

@@ -1,9 +1,13 @@
 """Memory: the daemon's RSS in steady state, 200 assets x 8 channels, 10 s windows.
 
 The daemon runs as a subprocess (`watchkeep run`) with a model per asset, fed by a
-publisher process at 2 Hz per channel (3,200 messages/s) for a minute; RSS is read
-from /proc every 2 s and the steady state is the median of the last half. Beside it:
-a bare Python process that imports the same libraries. Goal: <= 150 MB total.
+publisher process at 2 Hz per channel (3,200 messages/s); memory is read from /proc
+every 2 s and the steady state is the median of the last half. With `ingest.worker:
+process` (the default) the daemon has a child, so both are counted: RSS summed over
+the two (pages of shared libraries counted twice, an upper bound) and PSS summed
+(each shared page split between the processes mapping it: what the service really
+adds to the machine). The same run is repeated with `ingest.worker: thread`. Beside
+them: a bare Python process that imports the same libraries. Goal: <= 150 MB total.
 Run: `python -m tests.bench memory`.
 """
 
@@ -28,7 +32,7 @@ from tests.brokers import Broker
 
 N_ASSETS, N_CHANNELS, RATE_HZ = 200, 8, 2.0
 FEATS = ["mean", "std", "min", "max", "rms"]
-RUN_S = 60.0
+RUN_S = 45.0
 BARE = ("import time, numpy, onnxruntime, onnx, paho.mqtt.client, prometheus_client, yaml, "
         "orjson; time.sleep(4)")
 
@@ -38,6 +42,21 @@ def rss_mb(pid: int) -> float:
         if line.startswith("VmRSS:"):
             return int(line.split()[1]) / 1024
     return float("nan")
+
+
+def pss_mb(pid: int) -> float:
+    for line in Path(f"/proc/{pid}/smaps_rollup").read_text().splitlines():
+        if line.startswith("Pss:"):
+            return int(line.split()[1]) / 1024
+    return float("nan")
+
+
+def tree(pid: int) -> list[int]:
+    """`pid` and its child processes (the ingest worker), from /proc."""
+    kids: list[int] = []
+    for task in Path(f"/proc/{pid}/task").iterdir():
+        kids += [int(c) for c in (task / "children").read_text().split()]
+    return [pid, *kids]
 
 
 def _publisher(port: int, run_s: float) -> None:
@@ -59,7 +78,7 @@ def _publisher(port: int, run_s: float) -> None:
     c.loop_stop()
 
 
-def main() -> int:
+def _measure(worker: str) -> dict[str, Any]:
     with tempfile.TemporaryDirectory() as d:
         tmp = Path(d)
         broker = Broker(tmp / "broker", extra="max_queued_messages 0\n").start()
@@ -69,7 +88,7 @@ def main() -> int:
         cfg = {"site": "bench", "gateway": "mem", "state_dir": str(tmp / "state"),
                "local_broker": {"port": broker.port},
                "upstream_broker": {"port": broker.port},
-               "http": {"port": 0},
+               "http": {"port": 0}, "ingest": {"worker": worker},
                "assets": [{"name": f"A{a:03d}", "bundle": str(bdir),
                            "window": {"length_s": 10.0},
                            "channels": {f"c{c}": {"topic": f"mem/A{a:03d}/c{c}",
@@ -83,7 +102,9 @@ def main() -> int:
         daemon = subprocess.Popen([exe, "run", "--config", str(cpath), "--log-level",
                                    "WARNING"], stdout=subprocess.DEVNULL,
                                   stderr=subprocess.DEVNULL)
-        samples: list[float] = []
+        rss: list[float] = []
+        pss: list[float] = []
+        procs = 0
         try:
             time.sleep(5.0)  # models load
             pub = mp.get_context("spawn").Process(target=_publisher, args=(broker.port, RUN_S))
@@ -91,26 +112,36 @@ def main() -> int:
             t_end = time.monotonic() + RUN_S
             while time.monotonic() < t_end:
                 time.sleep(2.0)
-                samples.append(rss_mb(daemon.pid))
+                pids = tree(daemon.pid)
+                procs = len(pids)
+                rss.append(sum(rss_mb(p) for p in pids))
+                pss.append(sum(pss_mb(p) for p in pids))
             pub.join(30)
         finally:
             daemon.terminate()
             daemon.wait(30)
             broker.stop()
+    return {"worker": worker, "processes": procs,
+            "steady_rss_mb": median(rss[len(rss) // 2:]), "peak_rss_mb": max(rss),
+            "steady_pss_mb": median(pss[len(pss) // 2:]), "samples_rss_mb": rss,
+            "samples_pss_mb": pss}
+
+
+def main() -> int:
+    runs = [_measure("process"), _measure("thread")]
     bare_p = subprocess.Popen([sys.executable, "-c", BARE])
     time.sleep(3.0)
     bare = rss_mb(bare_p.pid)
     bare_p.wait(10)
-    steady = median(samples[len(samples) // 2:])
-    peak = max(samples)
-    rows = [["memory (RSS, MB)", f"{steady:.0f} (peak {peak:.0f})", f"{bare:.0f}",
-             f"{steady / bare:.2f}", "<= 150 MB total"]]
+    rows = [[f"memory, ingest.worker {r['worker']} ({r['processes']} process"
+             f"{'es' if r['processes'] > 1 else ''})",
+             f"{r['steady_rss_mb']:.0f} (peak {r['peak_rss_mb']:.0f})",
+             f"{r['steady_pss_mb']:.0f}", f"{bare:.0f}", "<= 150 MB total"] for r in runs]
     print(f"{N_ASSETS} assets x {N_CHANNELS} channels at {RATE_HZ:g} Hz, 10 s windows, "
-          f"one ONNX session per asset, {RUN_S:.0f} s")
-    print(table(rows, ["benchmark", "watchkeep", "bare imports", "ratio", "goal"]))
-    doc: dict[str, Any] = {"steady_rss_mb": steady, "peak_rss_mb": peak, "bare_rss_mb": bare,
-                           "samples_mb": samples, "goal_mb": 150,
-                           "meets_goal": steady <= 150}
+          f"one ONNX session per asset, {RUN_S:.0f} s per run")
+    print(table(rows, ["benchmark", "watchkeep RSS sum, MB", "PSS sum, MB",
+                       "bare imports RSS, MB", "goal"]))
+    doc: dict[str, Any] = {"runs": runs, "bare_rss_mb": bare, "goal_mb": 150}
     save("memory", doc)
     return 0
 

@@ -166,10 +166,13 @@ def test_batch_is_sent_when_full_and_on_flush() -> None:
     first = parent.recv()  # type: ignore[attr-defined]
     assert first[0] == "data" and first[1] == 7 and len(first[2]) == MAX_BATCH
     batch.add_block(key, np.arange(3.0), np.ones(3), 200.0)
+    batch.add_block(key + 1, np.arange(3.0, 5.0), np.zeros(2), 201.0)
     batch.flush()
     second = parent.recv()  # type: ignore[attr-defined]
     assert second[3] == [float(i) for i in range(MAX_BATCH, MAX_BATCH + 5)]
-    assert len(second[6]) == 1 and second[6][0][0] == key
+    keys, sizes, arrivals, ts, vals = second[6]
+    assert (keys, sizes, arrivals) == ([key, key + 1], [3, 2], [200.0, 201.0])
+    assert ts.tolist() == [0.0, 1.0, 2.0, 3.0, 4.0] and vals.tolist() == [1, 1, 1, 0, 0]
     batch.flush()  # empty: sends nothing
     assert not parent.poll(0.05)  # type: ignore[attr-defined]
 
@@ -189,3 +192,45 @@ def test_counts_are_deltas(tmp_path: Path) -> None:
     assert per_key == {key: (2, 1, 0)}
     assert rejected == {Reason.MALFORMED.value: 1, Reason.UNKNOWN_TOPIC.value: 1}
     assert g.counts() is None
+
+
+def test_waveform_blocks_arrive_whole_and_gaps_are_counted(tmp_path: Path, broker: Broker,
+                                                           upstream_broker: Broker) -> None:
+    """json-batch blocks through the child: every sample counted, windows cut, one gap seen."""
+    import json
+
+    doc = {"name": "F-1", "window": {"length_s": 1.0, "lateness_s": 0.0, "timeout_s": 2.0},
+           "channels": {"acc": {"topic": "plant/F-1/acc", "decoder": "json-batch",
+                                "rate_hz": 200.0, "features": ["rms", "std"]}}}
+    cfg = load_config(write_config(tmp_path / "wk.yaml", broker.port, upstream_broker.port,
+                                   [doc]))
+    daemon = Daemon(cfg, logger=logging.getLogger("watchkeep.test.waveform"))
+    daemon.start()
+    pub = publisher(broker.port)
+    try:
+        wait_for(daemon.ingest.connected.is_set, what="ingest subscribed")
+        t0 = math.floor(time.time()) + 1.0
+        rng = np.random.default_rng(4)
+        sent = 0
+        for b in range(12):  # 0.5 s blocks of 100 samples; block 7 is never sent
+            if b == 7:
+                continue
+            vals = rng.normal(size=100).round(5).tolist()
+            pub.publish("plant/F-1/acc", json.dumps(
+                {"ts": t0 + 0.5 * b, "rate_hz": 200.0, "values": vals}), qos=0)
+            sent += 100
+
+        def sample(name: str) -> float:
+            return daemon.registry.get_sample_value(name, {"asset": "F-1", "channel": "acc"}) \
+                or 0.0
+
+        wait_for(lambda: sample("watchkeep_samples_total") == sent, timeout_s=10,
+                 what="every sample counted")
+        assert sample("watchkeep_sample_gaps_total") == 1
+        wait_for(lambda: (daemon.registry.get_sample_value(
+            "watchkeep_windows_closed_total", {"asset": "F-1"}) or 0) >= 5, timeout_s=10,
+            what="windows cut from the blocks")
+    finally:
+        pub.disconnect()
+        pub.loop_stop()
+        daemon.stop()
