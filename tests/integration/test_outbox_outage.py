@@ -42,11 +42,16 @@ class DurableCollector:
         self.messages: list[dict[str, Any]] = []
         self.lock = threading.Lock()
         self.subscribed = threading.Event()
+        # (time.monotonic(), session present) per CONNACK: whether the broker kept the
+        # session is what the outage test depends on, and what a failure report needs.
+        self.connects: list[tuple[float, bool]] = []
         self.client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=client_id,
                                   clean_session=False)
         self.client.reconnect_delay_set(0.2, 1)
 
         def on_connect(c: mqtt.Client, u: Any, f: Any, rc: Any, p: Any) -> None:
+            with self.lock:
+                self.connects.append((time.monotonic(), bool(f.session_present)))
             c.subscribe(topic, qos=1)
 
         def on_subscribe(c: mqtt.Client, u: Any, mid: Any, rc: Any, p: Any) -> None:
@@ -67,6 +72,10 @@ class DurableCollector:
     def events(self) -> list[dict[str, Any]]:
         with self.lock:
             return list(self.messages)
+
+    def connects_since(self, t: float) -> list[tuple[float, bool]]:
+        with self.lock:
+            return [c for c in self.connects if c[0] >= t]
 
     def close(self) -> None:
         self.client.disconnect()
@@ -94,6 +103,33 @@ def _publish_paced(pub: mqtt.Client, msgs: Iterator[tuple[str, bytes]], window_s
             stop.wait(window_s)
 
 
+class _UpstreamConnects(logging.Handler):
+    """When the daemon's upstream connection came up (time.monotonic()), from its log."""
+
+    def __init__(self) -> None:
+        super().__init__(logging.INFO)
+        self.times: list[float] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        if record.getMessage().startswith("upstream broker connected"):
+            self.times.append(time.monotonic())
+
+
+def _outage_report(collector: DurableCollector, connects: _UpstreamConnects,
+                   restart_at: float, expected: int, upstream: Broker) -> str:
+    """What a failed run needs to tell a lost session from a daemon fault: which events
+    are missing, who reconnected when after the restart, and the broker's own log."""
+    got = {e["data"]["sequence"] for e in collector.events()}
+    missing = sorted(set(range(1, expected + 1)) - got)
+    ours = [f"{t - restart_at:+.2f}s" for t in connects.times if t >= restart_at]
+    theirs = [f"{t - restart_at:+.2f}s session_present={sp}"
+              for t, sp in collector.connects_since(restart_at)]
+    return (f"expected {expected} events, collector has {len(got)}, missing {missing}\n"
+            f"after the upstream restart: daemon connected at {ours}; "
+            f"collector connected at {theirs}\n"
+            f"upstream broker log:\n{upstream.log_text()[-4000:]}")
+
+
 def _anomalies(daemon: Daemon) -> int:
     total = 0.0
     for t in ("anomaly.raised", "anomaly.cleared"):
@@ -103,7 +139,13 @@ def _anomalies(daemon: Daemon) -> int:
 
 def test_upstream_outage_loses_nothing_and_keeps_order(tmp_path: Path, broker: Broker) -> None:
     """Upstream stopped ~22 s while anomalies keep coming: all arrive in order after restart."""
+    # Started as root, mosquitto drops to the `mosquitto` user, which cannot write under
+    # pytest's private temp directory: no persistence file (and no log), so the restart
+    # forgets the collector's session and every event the daemon drains before the
+    # collector has subscribed again is acknowledged and dropped. Stay the starting user.
+    user = "user root\n" if os.geteuid() == 0 else ""
     upstream = Broker(tmp_path / "up", extra=(
+        user +
         "persistence true\n"
         f"persistence_location {tmp_path / 'up'}/\n"
         "autosave_interval 1\n")).start()
@@ -111,11 +153,17 @@ def test_upstream_outage_loses_nothing_and_keeps_order(tmp_path: Path, broker: B
     cfg = load_config(write_config(tmp_path / "wk.yaml", broker.port, upstream.port,
                                    [asset_doc("P-1", bundle)],
                                    ingest={"subscriptions": ["plant/#"]}))
-    daemon = Daemon(cfg, logger=logging.getLogger("watchkeep.test.outage"))
+    log = logging.getLogger("watchkeep.test.outage")
+    # INFO, so the handler sees the daemon's "upstream broker connected" lines.
+    log.setLevel(logging.INFO)
+    upstream_connects = _UpstreamConnects()
+    log.addHandler(upstream_connects)
+    daemon = Daemon(cfg, logger=log)
     collector = DurableCollector(upstream.port, EVENTS, "maint-outage")
     daemon.start()
     stop = threading.Event()
     pub = publisher(broker.port)
+    restart_at = math.inf
     try:
         wait_for(daemon.upstream.connected.is_set, what="upstream connected")
         n_windows = 120
@@ -127,6 +175,8 @@ def test_upstream_outage_loses_nothing_and_keeps_order(tmp_path: Path, broker: B
         wait_for(lambda: len(collector.events()) >= 2, timeout_s=20, what="events before cut")
         upstream.stop()
         cut_at = time.monotonic()
+        # Written at shutdown: without it the broker cannot restore the collector's session.
+        assert (tmp_path / "up" / "mosquitto.db").exists(), upstream.log_text()
         before = _anomalies(daemon)
         # The plant keeps producing: events pile up in the outbox while upstream is down.
         wait_for(lambda: _anomalies(daemon) >= before + 6, timeout_s=30,
@@ -137,7 +187,15 @@ def test_upstream_outage_loses_nothing_and_keeps_order(tmp_path: Path, broker: B
         assert rows and rows >= 6
         assert not daemon.upstream.connected.is_set()
         assert daemon.upstream.seconds_since_ack() >= 20
+        restart_at = time.monotonic()  # before start: the collector may be back at once
         upstream.start()
+        # The premise of "loses nothing": the broker kept the collector's subscription over
+        # the restart, so what the daemon drains before the collector is back is queued for
+        # it. A session that is not present means lost events, not a daemon fault.
+        back = wait_for(lambda: collector.connects_since(restart_at), what="collector back")
+        assert back[0][1], ("upstream broker lost the collector's session over the restart\n"
+                            + _outage_report(collector, upstream_connects, restart_at,
+                                             _anomalies(daemon), upstream))
         feed.join(60)
         assert not feed.is_alive()
         wait_for(lambda: daemon.registry.get_sample_value(
@@ -153,8 +211,12 @@ def test_upstream_outage_loses_nothing_and_keeps_order(tmp_path: Path, broker: B
 
         wait_for(quiet, timeout_s=30, interval_s=0.2, what="no new anomaly events")
         expected = _anomalies(daemon)
-        wait_for(lambda: len({e["id"] for e in collector.events()}) >= expected,
-                 timeout_s=30, what="every event delivered after the restart")
+        try:
+            wait_for(lambda: len({e["id"] for e in collector.events()}) >= expected,
+                     timeout_s=30, what="every event delivered after the restart")
+        except AssertionError:
+            print(_outage_report(collector, upstream_connects, restart_at, expected, upstream))
+            raise
         wait_for(lambda: daemon.outbox.counts()[0] == 0, timeout_s=10, what="outbox drained")
         dups = check_complete_in_order(collector.events(), expected)
         assert expected >= 12
@@ -170,6 +232,8 @@ def test_upstream_outage_loses_nothing_and_keeps_order(tmp_path: Path, broker: B
         daemon.stop()
         collector.close()
         upstream.stop()
+        log.removeHandler(upstream_connects)
+        log.setLevel(logging.NOTSET)
 
 
 def _outbox_events(db_path: Path) -> list[str]:
