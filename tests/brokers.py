@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import shutil
 import socket
 import subprocess
@@ -60,6 +61,10 @@ class Broker:
             f"log_dest file {self.log}\n"
             "log_type error\nlog_type warning\nlog_type notice\n"
             "max_queued_messages 100000\n"
+            # Started as root, mosquitto drops to the `mosquitto` user, which cannot
+            # write into pytest's 0700 temp dirs: no log file, and `persistence true`
+            # would silently save nothing.
+            f"{'user root' if os.geteuid() == 0 else ''}\n"
             f"{self.extra}\n")
 
     def start(self, wait_port: int | None = None) -> Broker:

@@ -153,9 +153,7 @@ def secured_upstream(tmp_path: Path) -> Iterator[Broker]:
     acl.write_text(ACL)
     b = Broker(tmp_path / "upstream", extra=(
         "allow_anonymous false\n"  # the later line wins over Broker's default
-        # Started as root, mosquitto would become user `mosquitto` and could not read the
-        # password file under pytest's private temp dir (no effect for other users).
-        "user root\n"
+        # (tests.brokers keeps a root-started broker root, so it can read the files)
         f"password_file {pw}\nacl_file {acl}\nlog_type subscribe\n")).start()
     yield b
     b.stop()

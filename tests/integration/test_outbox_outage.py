@@ -139,13 +139,11 @@ def _anomalies(daemon: Daemon) -> int:
 
 def test_upstream_outage_loses_nothing_and_keeps_order(tmp_path: Path, broker: Broker) -> None:
     """Upstream stopped ~22 s while anomalies keep coming: all arrive in order after restart."""
-    # Started as root, mosquitto drops to the `mosquitto` user, which cannot write under
-    # pytest's private temp directory: no persistence file (and no log), so the restart
-    # forgets the collector's session and every event the daemon drains before the
-    # collector has subscribed again is acknowledged and dropped. Stay the starting user.
-    user = "user root\n" if os.geteuid() == 0 else ""
+    # tests.brokers keeps a root-started broker root: as user `mosquitto` it could not
+    # write under pytest's private temp directory, saved no session, and the restart
+    # forgot the collector's subscription, so events the daemon drained before the
+    # collector subscribed again were acknowledged and dropped (the old flaky failure).
     upstream = Broker(tmp_path / "up", extra=(
-        user +
         "persistence true\n"
         f"persistence_location {tmp_path / 'up'}/\n"
         "autosave_interval 1\n")).start()
@@ -166,6 +164,9 @@ def test_upstream_outage_loses_nothing_and_keeps_order(tmp_path: Path, broker: B
     restart_at = math.inf
     try:
         wait_for(daemon.upstream.connected.is_set, what="upstream connected")
+        # Readings sent before ingest has subscribed are lost (QoS 0): the scored-window
+        # count below expects every window.
+        wait_for(daemon.ingest.connected.is_set, what="ingest subscribed")
         n_windows = 120
         t0 = math.floor(time.time()) + 1.0
         feed = threading.Thread(target=_publish_paced, daemon=True, args=(
@@ -343,6 +344,7 @@ def test_corrupt_outbox_is_moved_aside_and_reported(tmp_path: Path, broker: Brok
         online = wait_for(lambda: [s for s in status.json("/status") if s["state"] == "online"],
                           what="online status")
         assert online[0]["outbox"]["corrupt_reset"]["moved_to"] == str(moved[0])
+        wait_for(daemon.ingest.connected.is_set, what="ingest subscribed")
         t0 = math.floor(time.time()) + 1.0
         for topic, payload in readings("P-1", t0, 16, seed=7, fault_windows={4, 5, 6}):
             pub.publish(topic, payload, qos=0)

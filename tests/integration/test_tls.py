@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import logging
-import os
 import shutil
 import subprocess
 from collections.abc import Iterator
@@ -68,11 +67,8 @@ def pki(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 def _tls_broker(tmp_path: Path, pki: Path, server: str = "server") -> tuple[Broker, int]:
     port = free_port()
-    # Mosquitto started as root drops to the `mosquitto` user, which cannot read the
-    # test's private temp directory: stay as the user that started it.
-    user = "user root\n" if os.geteuid() == 0 else ""
+    # (tests.brokers keeps a root-started broker root, so it can read the test's files)
     b = Broker(tmp_path / "tlsbroker", extra=(
-        user +
         f"listener {port} 127.0.0.1\n"
         f"cafile {pki / 'ca.crt'}\n"
         f"certfile {pki / (server + '.crt')}\n"
