@@ -77,6 +77,18 @@ def test_wal_synchronous_and_schema_version_are_set(tmp_path: Path, sync: Synchr
     ob.close()
 
 
+@pytest.mark.parametrize(("sync", "code"), [(Synchronous.FULL, 2), (Synchronous.NORMAL, 1)])
+def test_a_delete_leaves_the_configured_synchronous_level(tmp_path: Path, sync: Synchronous,
+                                                          code: int) -> None:
+    """Deletes commit under NORMAL; submits after them are FULL again when configured so."""
+    ob, _ = make(tmp_path / "o.sqlite", synchronous=sync)
+    ob.submit([msg("a", Kind.ANOMALY), msg("b", Kind.ANOMALY)])
+    ob.delete([ob.fetch_after(0, 1)[0].id])
+    assert ob._conn().execute("PRAGMA synchronous").fetchone()[0] == code
+    assert names(ob) == ["b"]
+    ob.close()
+
+
 def test_fetched_rows_carry_their_kind_and_flags(tmp_path: Path) -> None:
     """A fetched row has its Kind, payload bytes, qos and retain flag as submitted."""
     ob, _ = make(tmp_path / "o.sqlite")
