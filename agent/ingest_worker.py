@@ -511,11 +511,28 @@ class ProcessIngest:
         by_asset = handler.buffers.by_asset
         close_at = handler.close_at
         due = False
-        for key, t, v, a in zip(keys, ts, values, arrivals, strict=True):
-            ai = key >> KEY_SHIFT
-            by_asset[ai][key & 0xFFFF].append(t, v, a)
-            if t >= close_at[ai]:
+        i, n_keys = 0, len(keys)
+        while i < n_keys:
+            # A run of samples of one asset (a sensor's channels usually arrive together)
+            # under one take of the asset's lock; what ChannelBuffer.append does, inline.
+            ai = keys[i] >> KEY_SHIFT
+            j = i + 1
+            while j < n_keys and keys[j] >> KEY_SHIFT == ai:
+                j += 1
+            bufs = by_asset[ai]
+            inbox = bufs[0].inbox
+            late = 0
+            with inbox.lock:
+                add = inbox.assembler.add_one
+                for k in range(i, j):
+                    late += add(keys[k] & 0xFFFF, ts[k], values[k], arrivals[k])
+                if late:
+                    inbox.late += late
+            for k in range(i, j):
+                bufs[keys[k] & 0xFFFF].last_arrival = arrivals[k]
+            if max(ts[i:j]) >= close_at[ai]:
                 due = True
+            i = j
         if blocks:
             bkeys, sizes, barrivals, all_ts, all_vals = blocks
             o = 0
