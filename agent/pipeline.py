@@ -311,6 +311,9 @@ class Pipeline:
                                                               strict=True)]
         self._stale_at = [ai for ai, rt in enumerate(runtimes) if rt.stale_channels]
         self._unstarted = [rt for rt in runtimes if rt.started_s is None]
+        # Indices of the assets the last tick visited: only their next window can have
+        # moved (the daemon recomputes ingest's wake-up times for these alone).
+        self.last_due: list[int] = []
         self._times: dict[float, str] = {}  # rfc3339 of window bounds, per tick
         self._topic_cache: dict[str, tuple[str, str]] = {}
         self._layout_keys: dict[int, tuple[np.ndarray, bytes]] = {}
@@ -352,6 +355,7 @@ class Pipeline:
         due = [ai for ai, (asm, ib) in enumerate(self._screen) if ib.late or asm.due(now)]
         if self._stale_at:
             due = sorted(set(due).union(self._stale_at))
+        self.last_due = due
         runtimes = self.runtimes
         seq_before = [runtimes[ai].sequence for ai in due]
         results, lates = close_inboxes([self._inboxes[ai] for ai in due], now)
