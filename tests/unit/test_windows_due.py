@@ -41,6 +41,21 @@ def _state(a: WindowAssembler) -> tuple[float | None, int]:
     return a.next_start, a.pending_samples()
 
 
+def _feed(assemblers: list[WindowAssembler], ts: np.ndarray, chans: np.ndarray, fed: int,
+          more: int, arrival: float) -> tuple[int, float]:
+    """Add the next `more` samples (split by channel) to each assembler; returns the new
+    count fed and the arrival time of the last one."""
+    hi = min(ts.size, fed + more)
+    if hi > fed:
+        arrival = float(ts[hi - 1])
+        for a in assemblers:
+            for c in range(len(RATES)):
+                sel = np.flatnonzero(chans[fed:hi] == c) + fed
+                if sel.size:
+                    a.add(c, ts[sel], sel.astype(float), arrival, presorted=True)
+    return max(fed, hi), arrival
+
+
 @settings(max_examples=200, deadline=None)
 @given(runs())
 def test_due_is_true_exactly_when_close_due_has_work(run) -> None:
@@ -49,14 +64,7 @@ def test_due_is_true_exactly_when_close_due_has_work(run) -> None:
     fed = 0
     arrival = ts[0]
     for more, after in ticks:
-        hi = min(ts.size, fed + more)
-        if hi > fed:
-            arrival = float(ts[hi - 1])
-            for c in range(len(RATES)):
-                sel = np.flatnonzero(chans[fed:hi] == c) + fed
-                if sel.size:
-                    asm.add(c, ts[sel], sel.astype(float), arrival, presorted=True)
-            fed = hi
+        fed, arrival = _feed([asm], ts, chans, fed, more, arrival)
         now = arrival + after
         due = asm.due(now)
         before = _state(asm)
@@ -84,15 +92,7 @@ def test_close_many_keeps_due_in_step_with_close_due(run) -> None:
     fed = 0
     arrival = ts[0]
     for more, after in ticks:
-        hi = min(ts.size, fed + more)
-        if hi > fed:
-            arrival = float(ts[hi - 1])
-            for a in (one, many):
-                for c in range(len(RATES)):
-                    sel = np.flatnonzero(chans[fed:hi] == c) + fed
-                    if sel.size:
-                        a.add(c, ts[sel], sel.astype(float), arrival, presorted=True)
-            fed = hi
+        fed, arrival = _feed([one, many], ts, chans, fed, more, arrival)
         now = arrival + after
         assert one.due(now) == many.due(now)
         one.close_due(now)
