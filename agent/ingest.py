@@ -105,6 +105,22 @@ class ChannelBuffer:
         self.last_arrival = arrival
 
 
+def append_run(bufs: Sequence[ChannelBuffer], chans: Sequence[int], ts: Sequence[float],
+               values: Sequence[float], arrivals: Sequence[float]) -> None:
+    """`ChannelBuffer.append` for several samples of one asset (`bufs` are its channel
+    buffers, `chans` index them), under one take of the asset's lock."""
+    inbox = bufs[0].inbox
+    late = 0
+    with inbox.lock:
+        add = inbox.assembler.add_one
+        for c, t, v, a in zip(chans, ts, values, arrivals, strict=True):
+            late += add(c, t, v, a)
+        if late:
+            inbox.late += late
+    for c, a in zip(chans, arrivals, strict=True):
+        bufs[c].last_arrival = a
+
+
 def asset_buffers(asset: AssetConfig) -> list[ChannelBuffer]:
     """The channel buffers of one asset, sharing one inbox and window assembler."""
     inbox = AssetInbox(WindowAssembler(asset.window, tuple(c.rate_hz for c in asset.channels)))
@@ -121,23 +137,50 @@ class Buffers:
         return self.by_asset[route.asset_index][route.channel_index]
 
 
+class PlainCount:
+    """A counter without Prometheus, for counts another process publishes."""
+
+    __slots__ = ("n", "sent")
+
+    def __init__(self) -> None:
+        self.n = 0
+        self.sent = 0  # how much of `n` has been handed on
+
+    def inc(self, amount: float = 1) -> None:
+        self.n += int(amount)
+
+
 class IngestHandler:
     """Decode-and-append for one message; free of MQTT so it can be driven directly
-    (by `replay`, and by tests)."""
+    (by `replay`, and by tests).
 
-    def __init__(self, cfg: Config, buffers: Buffers, metrics: Metrics,
+    With `metrics=None` (the ingest child, agent/ingest_worker.py) rejections and gaps
+    are counted in `PlainCount`s that the caller hands on, and `flush_counts` does
+    nothing: the daemon's own handler publishes them.
+    """
+
+    def __init__(self, cfg: Config, buffers: Buffers, metrics: Metrics | None,
                  logger: logging.Logger) -> None:
         self.cfg = cfg
         self.routes = build_routes(cfg.assets)
         self.buffers = buffers
         self.metrics = metrics
         self.log = RateLimited(logger)
-        self._rejected = {r: metrics.messages_rejected.labels(r.value) for r in Reason}
-        self._received = {a.name: metrics.messages_received.labels(a.name) for a in cfg.assets}
-        self._samples = {t: metrics.samples.labels(r.asset, r.channel.name)
-                         for t, r in self.routes.items()}
-        self._gaps = {t: metrics.gaps.labels(r.asset, r.channel.name)
-                      for t, r in self.routes.items()}
+        self._rejected: dict[Reason, Any]
+        self._gaps: dict[str, Any]
+        if metrics is None:
+            self._rejected = {r: PlainCount() for r in Reason}
+            self._gaps = {t: PlainCount() for t in self.routes}
+            self._received: dict[str, Any] = {}
+            self._samples: dict[str, Any] = {}
+        else:
+            self._rejected = {r: metrics.messages_rejected.labels(r.value) for r in Reason}
+            self._received = {a.name: metrics.messages_received.labels(a.name)
+                              for a in cfg.assets}
+            self._samples = {t: metrics.samples.labels(r.asset, r.channel.name)
+                             for t, r in self.routes.items()}
+            self._gaps = {t: metrics.gaps.labels(r.asset, r.channel.name)
+                          for t, r in self.routes.items()}
         self._max_bytes = cfg.ingest.max_payload_bytes
         self._max_skew = cfg.ingest.max_clock_skew_s
         # Per asset, the sample time that closes its next window (set by the pipeline
@@ -152,6 +195,8 @@ class IngestHandler:
         Called from the pipeline thread after each tick and before each `/metrics`
         scrape; the network thread only ever increments the plain counts.
         """
+        if self.metrics is None:
+            return
         with self._flush_lock:  # the pipeline thread and a scrape may both flush
             self._flush_locked()
 

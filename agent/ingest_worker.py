@@ -61,7 +61,7 @@ from prometheus_client import CollectorRegistry
 
 from agent.config import Config
 from agent.core.decode import Reason
-from agent.ingest import Ingest, IngestHandler
+from agent.ingest import Ingest, IngestHandler, PlainCount, append_run
 from agent.logs import LOGGER_NAME, kv
 from agent.metrics import Metrics
 
@@ -72,6 +72,12 @@ COUNTS_EVERY_S = 0.25    # message/sample/reject counts follow this often
 STOP_TIMEOUT_S = 5.0
 RESTART_MIN_S, RESTART_MAX_S = 0.5, 30.0
 KEY_SHIFT = 16           # key = asset_index << 16 | channel_index
+KEY_MASK = (1 << KEY_SHIFT) - 1
+
+
+def channel_key(asset_index: int, channel_index: int) -> int:
+    """One int naming a channel on the wire (`key >> KEY_SHIFT`, `key & KEY_MASK`)."""
+    return (asset_index << KEY_SHIFT) | channel_index
 
 Clock = Callable[[], float]
 
@@ -175,22 +181,9 @@ class _Tap:
         self.batch.add_block(self.key, ts, values, arrival)
 
 
-class _PlainCount:
-    """A counter without Prometheus: the child only counts, the parent publishes."""
-
-    __slots__ = ("n", "sent")
-
-    def __init__(self) -> None:
-        self.n = 0
-        self.sent = 0
-
-    def inc(self, amount: float = 1) -> None:
-        self.n += int(amount)
-
-
 class _TapBuffers:
     def __init__(self, cfg: Config, batch: _Batch) -> None:
-        self.by_asset = [[_Tap(batch, (ai << KEY_SHIFT) | ci) for ci in range(len(a.channels))]
+        self.by_asset = [[_Tap(batch, channel_key(ai, ci)) for ci in range(len(a.channels))]
                          for ai, a in enumerate(cfg.assets)]
 
     def get(self, route: Any) -> _Tap:
@@ -204,19 +197,18 @@ class _Generation:
         self.cfg = cfg
         self.batch = _Batch(gen, sender, wake)
         self.taps = _TapBuffers(cfg, self.batch)
-        self.handler = IngestHandler(cfg, self.taps, Metrics(CollectorRegistry()), log)  # type: ignore[arg-type]
-        self.rejected = {r: _PlainCount() for r in Reason}
-        self.gaps = {t: _PlainCount() for t in self.handler.routes}
-        self.handler._rejected = self.rejected  # type: ignore[assignment]
-        self.handler._gaps = self.gaps  # type: ignore[assignment]
-        self.key_of = {t: (r.asset_index << KEY_SHIFT) | r.channel_index
+        # No Metrics: the handler counts rejections and gaps in PlainCounts.
+        self.handler = IngestHandler(cfg, self.taps, None, log)  # type: ignore[arg-type]
+        self.rejected: dict[Reason, PlainCount] = self.handler._rejected
+        self.gaps: dict[str, PlainCount] = self.handler._gaps
+        self.key_of = {t: channel_key(r.asset_index, r.channel_index)
                        for t, r in self.handler.routes.items()}
 
     def counts(self) -> tuple[Any, ...] | None:
         """The deltas since the last call, or None when nothing changed."""
         per_key: dict[int, tuple[int, int, int]] = {}
         for topic, key in self.key_of.items():
-            tap = self.taps.by_asset[key >> KEY_SHIFT][key & 0xFFFF]
+            tap = self.taps.by_asset[key >> KEY_SHIFT][key & KEY_MASK]
             g = self.gaps[topic]
             # Each count read once: the network thread may add to it meanwhile, and what
             # it adds after the read goes out next time.
@@ -320,12 +312,9 @@ def worker_main(conn: Connection, cfg: Config, gen: int, level: int) -> None:
                 break
             if msg[0] == "config":
                 new = _Generation(msg[1], msg[2], sender, wake, log)
-                old_topics = ingest.topics()
                 with gens_lock:
                     previous, current = current, new
-                ingest.handler = new.handler  # one attribute store: old or new per message
-                ingest.cfg = new.cfg
-                ingest.resubscribe(old_topics, ingest.topics())
+                ingest.reconfigure(new.cfg, new.handler)
                 previous.batch.flush()
                 c = previous.counts()
                 if c is not None:
@@ -382,7 +371,7 @@ class ProcessIngest:
         self.worker_pid: int | None = None
 
     def _add_gen(self, gen: int, handler: IngestHandler) -> None:
-        topics = {(r.asset_index << KEY_SHIFT) | r.channel_index: t
+        topics = {channel_key(r.asset_index, r.channel_index): t
                   for t, r in handler.routes.items()}
         self._gens[gen] = (handler, topics)
 
@@ -513,23 +502,14 @@ class ProcessIngest:
         due = False
         i, n_keys = 0, len(keys)
         while i < n_keys:
-            # A run of samples of one asset (a sensor's channels usually arrive together)
-            # under one take of the asset's lock; what ChannelBuffer.append does, inline.
+            # A run of samples of one asset (a sensor's channels usually arrive
+            # together): one take of the asset's lock for the run.
             ai = keys[i] >> KEY_SHIFT
             j = i + 1
             while j < n_keys and keys[j] >> KEY_SHIFT == ai:
                 j += 1
-            bufs = by_asset[ai]
-            inbox = bufs[0].inbox
-            late = 0
-            with inbox.lock:
-                add = inbox.assembler.add_one
-                for k in range(i, j):
-                    late += add(keys[k] & 0xFFFF, ts[k], values[k], arrivals[k])
-                if late:
-                    inbox.late += late
-            for k in range(i, j):
-                bufs[keys[k] & 0xFFFF].last_arrival = arrivals[k]
+            append_run(by_asset[ai], [k & KEY_MASK for k in keys[i:j]], ts[i:j],
+                       values[i:j], arrivals[i:j])
             if max(ts[i:j]) >= close_at[ai]:
                 due = True
             i = j
@@ -538,7 +518,7 @@ class ProcessIngest:
             o = 0
             for key, n, a in zip(bkeys, sizes, barrivals, strict=True):
                 ai = key >> KEY_SHIFT
-                by_asset[ai][key & 0xFFFF].append_block(all_ts[o:o + n], all_vals[o:o + n], a)
+                by_asset[ai][key & KEY_MASK].append_block(all_ts[o:o + n], all_vals[o:o + n], a)
                 o += n
                 if all_ts[o - 1] >= close_at[ai]:
                     due = True
@@ -553,7 +533,7 @@ class ProcessIngest:
         handler, topics = found
         by_asset = handler.buffers.by_asset
         for key, (dm, ds, dg) in per_key.items():
-            buf = by_asset[key >> KEY_SHIFT][key & 0xFFFF]
+            buf = by_asset[key >> KEY_SHIFT][key & KEY_MASK]
             buf.n_messages += dm
             buf.n_samples += ds
             if dg:

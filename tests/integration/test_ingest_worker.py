@@ -19,7 +19,7 @@ import numpy as np
 from agent.config import load_config
 from agent.core.decode import Reason
 from agent.daemon import Daemon
-from agent.ingest_worker import KEY_SHIFT, MAX_BATCH, _Batch, _Generation, _Sender
+from agent.ingest_worker import MAX_BATCH, _Batch, _Generation, _Sender, channel_key
 from tests.brokers import Broker, wait_for
 from tests.helpers import asset_doc, publisher, readings, train_pca_bundle, write_config
 
@@ -159,7 +159,7 @@ def test_batch_is_sent_when_full_and_on_flush() -> None:
     sender, parent = _pair()
     wake = threading.Event()
     batch = _Batch(7, sender, wake)
-    key = (3 << KEY_SHIFT) | 2
+    key = channel_key(3, 2)
     for i in range(MAX_BATCH + 5):
         batch.add(key, float(i), float(-i), 100.0 + i)
     assert wake.is_set()
