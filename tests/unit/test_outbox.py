@@ -7,6 +7,8 @@ import sqlite3
 from pathlib import Path
 
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from prometheus_client import CollectorRegistry
 
 from agent.config import OutboxConfig, Synchronous
@@ -297,3 +299,59 @@ def test_backoff_is_exponential_jittered_and_capped(attempt: int, u: float,
                                                     want: float) -> None:
     """min * 2^(n-1), capped, times a jitter factor in [0.5, 1)."""
     assert backoff_delay(attempt, u) == pytest.approx(want, rel=1e-5)
+
+
+def _file_rows(path: Path, after_id: int, limit: int) -> list[tuple[object, ...]]:
+    """What the file holds, read by a connection of its own (WAL lets it read)."""
+    db = sqlite3.connect(path)
+    try:
+        found = db.execute("SELECT id, kind, topic, payload, qos, retain FROM outbox "
+                           "WHERE id > ? ORDER BY id LIMIT ?", (after_id, limit)).fetchall()
+    finally:
+        db.close()
+    return [(i, Kind(k), t, p, q, r == 1) for i, k, t, p, q, r in found]
+
+
+_OPS = st.lists(st.one_of(
+    st.tuples(st.just("submit"), st.lists(st.sampled_from(list(Kind)), max_size=9)),
+    st.tuples(st.just("delete"), st.lists(st.integers(0, 60), max_size=6)),
+    st.tuples(st.just("fetch"), st.integers(0, 60), st.integers(0, 12)),
+    st.tuples(st.just("reopen"))), max_size=30)
+
+
+@settings(max_examples=60, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(ops=_OPS)
+def test_fetch_after_from_the_memory_tail_is_what_the_file_holds(
+        tmp_path_factory: pytest.TempPathFactory, monkeypatch: pytest.MonkeyPatch,
+        ops: list[tuple[object, ...]]) -> None:
+    """Whatever mix of submits, deletes, bound drops and reopens: every `fetch_after`
+    answers exactly what a query of the file answers, whether the rows come from the
+    in-memory tail (kept short here, so rows fall out of it) or from the file."""
+    monkeypatch.setattr("agent.outbox.TAIL_ROWS", 7)
+    path = tmp_path_factory.mktemp("tail") / "o.sqlite"
+    ob, _ = make(path, max_rows=20)  # small: submits drop rows by the policy
+    n = 0
+    try:
+        for op in ops:
+            if op[0] == "submit":
+                batch = []
+                for kind in op[1]:  # type: ignore[attr-defined]
+                    n += 1
+                    batch.append(msg(f"m{n}", kind, key=f"k{n % 3}" if kind is Kind.STATE
+                                     else None))
+                ob.submit(batch)
+            elif op[0] == "delete":
+                ob.delete(op[1])  # type: ignore[arg-type]
+            elif op[0] == "fetch":
+                after, limit = op[1], op[2]
+                assert [tuple(r) for r in ob.fetch_after(after, limit)] == \
+                    _file_rows(path, after, limit)  # type: ignore[arg-type]
+            else:
+                ob.close()
+                ob, _ = make(path, max_rows=20)
+            for after in (0, ob.max_id - 3, ob.max_id):
+                assert [tuple(r) for r in ob.fetch_after(after, 100)] == \
+                    _file_rows(path, after, 100)
+    finally:
+        ob.close()
