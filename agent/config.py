@@ -15,9 +15,7 @@ from enum import StrEnum
 from pathlib import Path
 from typing import Any
 
-import yaml
-
-from agent.core.detector import DetectorParams
+from agent.core.detector_params import DetectorParams
 from agent.errors import ConfigError, ConfigProblem
 from agent.rebaseline_config import RebaselineConfig, check_mqtt_commands, parse_rebaseline
 
@@ -833,6 +831,8 @@ def load_config(path: str | Path) -> Config:
     except OSError as exc:
         raise ConfigError([ConfigProblem(str(p), "a readable file", exc.strerror or str(exc))]
                           ) from exc
+    import yaml  # here, not at the top: the ingest child unpickles config, never loads it
+
     try:
         doc = yaml.safe_load(text)
     except yaml.YAMLError as exc:

@@ -11,17 +11,18 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from agent.models import DEFAULT_KEEP
-from agent.rebaseline import (
-    DEFAULT_FALSE_ALARM_BUDGET,
-    DEFAULT_MAX_SHIFT,
-    DEFAULT_REHEARSAL_SIZE,
-    DEFAULT_REHEARSAL_TOLERANCE,
-    MIN_NEW_WINDOWS,
-)
-
 if TYPE_CHECKING:
     from agent.config import BrokerConfig
+
+# Copies of agent.rebaseline's defaults and agent.models.DEFAULT_KEEP: those modules
+# bring numpy and the bundle code, and config must load without them (the ingest child
+# unpickles it). tests/unit/test_rebaseline_config.py keeps the copies equal.
+DEFAULT_MAX_SHIFT = 10.0
+DEFAULT_FALSE_ALARM_BUDGET = 0.05
+DEFAULT_REHEARSAL_TOLERANCE = 1.5
+DEFAULT_REHEARSAL_SIZE = 512
+MIN_NEW_WINDOWS = 60
+DEFAULT_KEEP = 5
 
 KEYS = ("enabled", "admin_socket", "models_dir", "windows", "false_alarm_budget",
         "rehearsal_size", "rehearsal_tolerance", "max_shift", "versions_kept", "mqtt_commands")

@@ -9,10 +9,12 @@ recommends against chattering: ISA-18.2 / IEC 62682, numbers from memory).
 from __future__ import annotations
 
 from collections import deque
-from dataclasses import dataclass
 from enum import StrEnum
 
 import numpy as np
+
+# Defined apart (numpy-free, for config and the ingest child); re-exported here.
+from agent.core.detector_params import DetectorParams as DetectorParams
 
 
 class State(StrEnum):
@@ -25,22 +27,6 @@ class State(StrEnum):
 class Transition(StrEnum):
     RAISED = "raised"
     CLEARED = "cleared"
-
-
-@dataclass(frozen=True)
-class DetectorParams:
-    """Raise after `raise_k` of the last `raise_n` windows above threshold;
-    clear after `clear_m` consecutive windows below the clear threshold."""
-
-    raise_k: int = 2
-    raise_n: int = 3
-    clear_m: int = 3
-
-    def __post_init__(self) -> None:
-        if not (1 <= self.raise_k <= self.raise_n):
-            raise ValueError("need 1 <= raise_k <= raise_n")
-        if self.clear_m < 1:
-            raise ValueError("need clear_m >= 1")
 
 
 class Detector:
