@@ -2,6 +2,11 @@
 
 Pure: the arrival time is a parameter. Decoders follow the input contract in
 DESIGN.md: `json` (one reading), `json-batch` (evenly spaced block) and `text`.
+
+No numpy at import: the ingest child (agent/ingest_child.py) decodes with this module
+and stays small. A block comes out of `decode_message` as a `Block` (first time, rate,
+values in an `array('d')`); `Block.arrays` makes the numpy arrays where numpy is loaded
+anyway (the daemon, thread-mode ingest, `decode`).
 """
 
 from __future__ import annotations
@@ -9,13 +14,15 @@ from __future__ import annotations
 import json
 import math
 import re
-from collections.abc import Callable
+from array import array
+from collections.abc import Callable, Sequence
 from enum import StrEnum
-from typing import Any
-
-import numpy as np
+from typing import TYPE_CHECKING, Any
 
 from agent.config import ChannelConfig, Decoder
+
+if TYPE_CHECKING:
+    import numpy as np
 
 try:  # orjson is several times faster at json.loads and does the same job
     import orjson
@@ -101,7 +108,56 @@ def _timestamp(doc: dict[str, Any], ch: ChannelConfig, arrival: float,
     return ts
 
 
-Samples = tuple[float, float] | tuple[np.ndarray, np.ndarray]
+class Block:
+    """An evenly spaced block of samples: sample k at `t0 + k / rate_hz`."""
+
+    __slots__ = ("rate_hz", "t0", "values")
+
+    def __init__(self, t0: float, rate_hz: float, values: array[float]) -> None:
+        self.t0 = t0
+        self.rate_hz = rate_hz
+        self.values = values  # typecode 'd', every value finite
+
+    def __len__(self) -> int:
+        return len(self.values)
+
+    def __repr__(self) -> str:
+        return f"Block(t0={self.t0!r}, rate_hz={self.rate_hz!r}, n={len(self.values)})"
+
+    def time_of(self, k: int) -> float:
+        """Sample k's time, bit for bit what `arrays` gives for it."""
+        return self.t0 + float(k) / self.rate_hz
+
+    def arrays(self) -> tuple[np.ndarray, np.ndarray]:
+        """(timestamps, values) as float64 arrays; the values share the block's memory."""
+        import numpy as np  # only where numpy is loaded anyway (see the module docstring)
+
+        return (block_timestamps(self.t0, self.rate_hz, len(self.values)),
+                np.frombuffer(self.values, dtype=np.float64))
+
+
+def block_timestamps(t0: float, rate_hz: float, n: int) -> np.ndarray:
+    """The timestamps of an n-sample block, sample k at `t0 + k / rate_hz`."""
+    import numpy as np
+
+    return t0 + np.arange(n, dtype=np.float64) / rate_hz
+
+
+def blocks_timestamps(t0s: Sequence[float], rates_hz: Sequence[float],
+                      sizes: Sequence[int]) -> np.ndarray:
+    """`block_timestamps` of several blocks, concatenated, in one pass (the daemon, for a
+    batch of blocks from the ingest child). Bit for bit the same: k is exact in float64,
+    and each time is one division and one addition, as there."""
+    import numpy as np
+
+    n = np.asarray(sizes, dtype=np.int64)
+    k = np.arange(int(n.sum()), dtype=np.float64) - np.repeat(np.cumsum(n) - n, n)
+    return (np.repeat(np.asarray(t0s, dtype=np.float64), n)
+            + k / np.repeat(np.asarray(rates_hz, dtype=np.float64), n))
+
+
+Reading = tuple[float, float]
+Samples = tuple[float, float] | tuple["np.ndarray", "np.ndarray"]
 
 
 def decode(payload: bytes, ch: ChannelConfig, arrival: float, *, max_payload_bytes: int,
@@ -111,8 +167,9 @@ def decode(payload: bytes, ch: ChannelConfig, arrival: float, *, max_payload_byt
     Returns `(ts, value)` floats for a single reading, or `(ts_array, values_array)`
     for a block. Raises `Rejected` for anything unusable.
     """
-    return decode_message(payload, ch, arrival, max_payload_bytes=max_payload_bytes,
-                          max_skew_s=max_skew_s)[0]
+    samples = decode_message(payload, ch, arrival, max_payload_bytes=max_payload_bytes,
+                             max_skew_s=max_skew_s)[0]
+    return samples.arrays() if isinstance(samples, Block) else samples
 
 
 def sequence_number(doc: Any, ch: ChannelConfig) -> int | None:
@@ -124,14 +181,16 @@ def sequence_number(doc: Any, ch: ChannelConfig) -> int | None:
 
 
 def decode_message(payload: bytes, ch: ChannelConfig, arrival: float, *,
-                   max_payload_bytes: int, max_skew_s: float) -> tuple[Samples, int | None]:
-    """`decode`, plus the message's sequence number when the channel names one."""
+                   max_payload_bytes: int, max_skew_s: float
+                   ) -> tuple[Reading | Block, int | None]:
+    """`decode`, but a block as a `Block` (no numpy), plus the message's sequence number
+    when the channel names one."""
     samples, doc = _decode(payload, ch, arrival, max_payload_bytes, max_skew_s)
     return samples, sequence_number(doc, ch)
 
 
 def _decode(payload: bytes, ch: ChannelConfig, arrival: float, max_payload_bytes: int,
-            max_skew_s: float) -> tuple[Samples, Any]:
+            max_skew_s: float) -> tuple[Reading | Block, Any]:
     """The samples and the decoded JSON document (None for `text`)."""
     if len(payload) > max_payload_bytes:
         raise Rejected(Reason.TOO_LARGE, f"{len(payload)} bytes > {max_payload_bytes}")
@@ -168,16 +227,28 @@ def _decode(payload: bytes, ch: ChannelConfig, arrival: float, max_payload_bytes
         else _number(rate_raw, ch.rate_field)
     if rate <= 0:
         raise Rejected(Reason.WRONG_TYPE, f"{ch.rate_field} must be > 0")
-    # numpy would quietly turn true, "1.5" and null into numbers (or NaN); a single
+    # array('d') would take true as 1.0 (and a float conversion takes "1.5"); a single
     # reading with those is a wrong type, so a block element is one too.
     if not set(map(type, values)) <= _NUMBER_TYPES:
         raise Rejected(Reason.WRONG_TYPE,
                        f"{ch.values_field!r} is not a flat list of numbers")
     try:
-        arr = np.asarray(values, dtype=np.float64)
+        arr = array("d", values)
     except OverflowError:  # an integer literal beyond float range
         raise Rejected(Reason.NON_FINITE, f"{ch.values_field!r} overflows") from None
-    if not np.all(np.isfinite(arr)):
-        raise Rejected(Reason.NON_FINITE, f"{int(np.sum(~np.isfinite(arr)))} samples")
-    t = ts + np.arange(arr.size, dtype=np.float64) / rate
-    return (t, arr), doc
+    if not _sum_is_finite(values):
+        # A NaN or infinity makes the sum non-finite, but so can finite values adding
+        # up past the float range: only then look at each one.
+        bad = sum(1 for v in arr if not math.isfinite(v))
+        if bad:
+            raise Rejected(Reason.NON_FINITE, f"{bad} samples")
+    return Block(ts, rate, arr), doc
+
+
+def _sum_is_finite(values: list[int | float]) -> bool:
+    """True when the sum of `values` is finite, which they all are then (a sum with a NaN
+    or an infinity in it never is); False may also mean the sum overflowed."""
+    try:
+        return math.isfinite(sum(values))
+    except OverflowError:  # whole numbers adding up past the float range
+        return False

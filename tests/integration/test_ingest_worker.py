@@ -12,14 +12,15 @@ import subprocess
 import sys
 import threading
 import time
+from array import array
 from pathlib import Path
 
 import numpy as np
 
 from agent.config import load_config
-from agent.core.decode import Reason
+from agent.core.decode import Block, Reason, blocks_timestamps
 from agent.daemon import Daemon
-from agent.ingest_worker import MAX_BATCH, _Batch, _Generation, _Sender, channel_key
+from agent.ingest_child import MAX_BATCH, _Batch, _Generation, _Sender, channel_key
 from tests.brokers import Broker, wait_for
 from tests.helpers import asset_doc, publisher, readings, train_pca_bundle, write_config
 
@@ -165,14 +166,16 @@ def test_batch_is_sent_when_full_and_on_flush() -> None:
     assert wake.is_set()
     first = parent.recv()  # type: ignore[attr-defined]
     assert first[0] == "data" and first[1] == 7 and len(first[2]) == MAX_BATCH
-    batch.add_block(key, np.arange(3.0), np.ones(3), 200.0)
-    batch.add_block(key + 1, np.arange(3.0, 5.0), np.zeros(2), 201.0)
+    batch.add_block(key, Block(0.0, 1.0, array("d", [1.0] * 3)), 200.0)
+    batch.add_block(key + 1, Block(3.0, 2.0, array("d", [0.0] * 2)), 201.0)
     batch.flush()
     second = parent.recv()  # type: ignore[attr-defined]
     assert second[3] == [float(i) for i in range(MAX_BATCH, MAX_BATCH + 5)]
-    keys, sizes, arrivals, ts, vals = second[6]
-    assert (keys, sizes, arrivals) == ([key, key + 1], [3, 2], [200.0, 201.0])
-    assert ts.tolist() == [0.0, 1.0, 2.0, 3.0, 4.0] and vals.tolist() == [1, 1, 1, 0, 0]
+    keys, t0s, rates, sizes, arrivals, raw = second[6]
+    assert (keys, t0s, rates, sizes, arrivals) == ((key, key + 1), (0.0, 3.0), (1.0, 2.0),
+                                                   (3, 2), (200.0, 201.0))
+    assert np.frombuffer(raw).tolist() == [1, 1, 1, 0, 0]
+    assert blocks_timestamps(t0s, rates, sizes).tolist() == [0.0, 1.0, 2.0, 3.0, 3.5]
     batch.flush()  # empty: sends nothing
     assert not parent.poll(0.05)  # type: ignore[attr-defined]
 
@@ -234,3 +237,59 @@ def test_waveform_blocks_arrive_whole_and_gaps_are_counted(tmp_path: Path, broke
         pub.disconnect()
         pub.loop_stop()
         daemon.stop()
+
+
+class _Lines(logging.Handler):
+    def __init__(self) -> None:
+        super().__init__(logging.DEBUG)
+        self.lines: list[str] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.lines.append(record.getMessage())
+
+
+def test_running_child_holds_no_numpy_prometheus_or_onnx(tmp_path: Path, broker: Broker,
+                                                         upstream_broker: Broker) -> None:
+    """After real scalar and block traffic the child has mapped no numpy or onnxruntime
+    library, and the module list it reports at exit names none of the heavy packages."""
+    import json
+
+    bundle = train_pca_bundle(tmp_path / "models" / "P-1", "P-1", seed=5)
+    wave = {"name": "F-1", "window": {"length_s": 1.0, "lateness_s": 0.0, "timeout_s": 2.0},
+            "channels": {"acc": {"topic": "plant/F-1/acc", "decoder": "json-batch",
+                                 "rate_hz": 200.0, "features": ["rms"]}}}
+    cfg = load_config(write_config(tmp_path / "wk.yaml", broker.port, upstream_broker.port,
+                                   [asset_doc("P-1", bundle), wave]))
+    log = logging.getLogger("watchkeep.test.child-modules")
+    log.setLevel(logging.DEBUG)
+    lines = _Lines()
+    log.addHandler(lines)
+    daemon = Daemon(cfg, logger=log)
+    daemon.start()
+    pub = publisher(broker.port)
+    try:
+        wait_for(daemon.ingest.connected.is_set, what="ingest subscribed")
+        t0 = math.floor(time.time()) + 1.0
+        for topic, payload in readings("P-1", t0, 3, seed=2):
+            pub.publish(topic, payload, qos=0)
+        for b in range(4):
+            pub.publish("plant/F-1/acc", json.dumps(
+                {"ts": t0 + 0.5 * b, "values": [0.25 * i for i in range(100)]}), qos=0)
+        wait_for(lambda: (daemon.registry.get_sample_value(
+            "watchkeep_samples_total", {"asset": "F-1", "channel": "acc"}) or 0) == 400,
+            timeout_s=10, what="the blocks applied")
+        pid = daemon.ingest.worker_pid
+        assert pid is not None
+        maps = Path(f"/proc/{pid}/maps").read_text()
+        for lib in ("_multiarray_umath", "openblas", "onnxruntime"):
+            assert lib not in maps, f"the ingest child has {lib} mapped"
+    finally:
+        pub.disconnect()
+        pub.loop_stop()
+        daemon.stop()
+        log.removeHandler(lines)
+    report = [ln for ln in lines.lines if ln.startswith("ingest worker modules")]
+    assert len(report) == 1
+    packages = set(report[0].split("packages=", 1)[1].strip('"').split(","))
+    assert {"paho", "orjson", "agent"} <= packages
+    assert not {"numpy", "prometheus_client", "onnxruntime", "onnx"} & packages
