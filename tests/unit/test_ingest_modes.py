@@ -15,11 +15,12 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import paho.mqtt.client as mqtt
 from prometheus_client import CollectorRegistry
 
 from agent.config import load_config, parse_config
-from agent.ingest import Buffers, IngestHandler, close_inboxes
-from agent.ingest_child import _Generation, _Sender
+from agent.ingest import Buffers, Ingest, IngestHandler, close_inboxes
+from agent.ingest_child import _Generation, _Sender, errors_delta
 from agent.ingest_worker import ProcessIngest
 from agent.metrics import Metrics
 
@@ -135,3 +136,27 @@ def test_unpickling_a_full_config_imports_no_numpy() -> None:
                          "assert cfg.assets and cfg.rebaseline is not None",
                          stdin=pickle.dumps(cfg))
     assert "agent" in mods and not set(HEAVY) & set(mods)
+
+
+def test_child_callback_errors_reach_the_daemons_counter() -> None:
+    """An exception in the child's on_message is counted there and handed on as a delta."""
+    cfg, log = _config(), logging.getLogger("watchkeep.test.modes")
+    ours, theirs = mp.Pipe(duplex=True)
+    child = _Generation(0, cfg, _Sender(theirs), threading.Event(), log)
+    ingest = Ingest(cfg, child.handler, None, log)
+
+    def broken(topic: str, payload: bytes, arrival: float) -> None:
+        raise RuntimeError("a bug in the handler")
+
+    child.handler.handle = broken  # type: ignore[method-assign]
+    for _ in range(2):
+        ingest._on_message(None, None, mqtt.MQTTMessage(topic=b"t/F-1/temp"))  # type: ignore[arg-type]
+    sender = _Sender(theirs)
+    for msg in (errors_delta(ingest._errors), errors_delta(ingest._errors), ("bye",)):
+        if msg is not None:
+            sender.send(msg)
+    m = Metrics(CollectorRegistry())
+    daemon_side = ProcessIngest(cfg, IngestHandler(cfg, Buffers(cfg), m, log), m, log)
+    assert daemon_side._read_until_end(ours)  # type: ignore[arg-type]
+    assert m.registry.get_sample_value("watchkeep_callback_errors_total",
+                                       {"loop": "ingest"}) == 2
