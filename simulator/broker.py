@@ -524,18 +524,20 @@ def main(argv: list[str] | None = None) -> int:
     args = parser.parse_args(argv)
     logging.basicConfig(level=logging.INFO, format="%(levelname)s %(message)s")
     broker = EmbeddedBroker(args.port, max_packet_bytes=args.max_packet_bytes)
+    # Ctrl-C and SIGTERM only set an event, from before the "listening" line: a
+    # KeyboardInterrupt raised between that line and the wait used to skip the stop
+    # below, and the broker's thread then kept the process alive.
+    done = threading.Event()
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(sig, lambda *_: done.set())
     try:
         broker.start()
     except OSError as e:
         print(f"error: cannot listen on {HOST}:{args.port}: {e.strerror}")
         return 1
-    print(f"listening on {HOST}:{broker.port}; Ctrl-C stops", flush=True)
-    done = threading.Event()
-    signal.signal(signal.SIGTERM, lambda *_: done.set())
     try:
+        print(f"listening on {HOST}:{broker.port}; Ctrl-C stops", flush=True)
         done.wait()
-    except KeyboardInterrupt:
-        pass
     finally:
         broker.stop()
     return 0
