@@ -12,8 +12,11 @@ publishers:
 Publishers run in separate processes (one paho publisher tops out well below what a
 subscriber can take), QoS 0, pre-encoded payloads. Every round counts received
 against sent: Mosquitto drops QoS 0 messages silently once a subscriber's queue is
-full, so a rate without a loss count means nothing. Run:
-`python -m tests.bench ingest`.
+full, so a rate without a loss count means nothing. Beside the rates, the CPU the
+subscribing side used per message received (this process's, which for watchkeep
+includes cutting the windows every 100 ms, plus the ingest child's with
+`ingest.worker: process`; publishers and broker not counted): on two busy cores it
+moves less than a rate does. Run: `python -m tests.bench ingest`.
 """
 
 from __future__ import annotations
@@ -21,6 +24,8 @@ from __future__ import annotations
 import json
 import logging
 import multiprocessing as mp
+import os
+import resource
 import tempfile
 import threading
 import time
@@ -173,8 +178,22 @@ def _watchkeep(port: int, kind: str, counter: _Counter, tmp: Path, worker: str):
     return ingest, stop, metrics
 
 
+def _cpu_s(pid: int | None = None) -> float:
+    """CPU seconds (user + system) of this process, or of process `pid` (Linux)."""
+    if pid is None:
+        r = resource.getrusage(resource.RUSAGE_SELF)
+        return r.ru_utime + r.ru_stime
+    try:
+        with open(f"/proc/{pid}/stat") as f:
+            fields = f.read().rsplit(")", 1)[1].split()
+    except OSError:
+        return 0.0
+    return (int(fields[11]) + int(fields[12])) / os.sysconf("SC_CLK_TCK")
+
+
 def _round(port: int, kind: str, which: str, n_per_pub: int, tmp: Path) -> dict[str, float]:
     counter = _Counter()
+    child: int | None = None
     if which == "bare":
         sub = _bare(port, kind, counter)
         closer = lambda: (sub.disconnect(), sub.loop_stop())  # noqa: E731
@@ -190,6 +209,8 @@ def _round(port: int, kind: str, which: str, n_per_pub: int, tmp: Path) -> dict[
             return sum(s.value for f in metrics.registry.collect()
                        if f.name == "watchkeep_messages_rejected" for s in f.samples
                        if s.name.endswith("_total"))
+
+        child = getattr(ingest, "worker_pid", None)
     ctx = mp.get_context("spawn")
     go, done = ctx.Event(), ctx.Queue()
     procs = [ctx.Process(target=_publisher, args=(port, kind, n_per_pub, i, go, done))
@@ -197,6 +218,7 @@ def _round(port: int, kind: str, which: str, n_per_pub: int, tmp: Path) -> dict[
     for p in procs:
         p.start()
     time.sleep(2.0 if kind == "scalar" else 3.0)  # publishers build their payloads
+    cpu0 = _cpu_s() + (_cpu_s(child) if child else 0.0)
     go.set()
     pub_rates = [done.get(timeout=300) for _ in procs]
     for p in procs:
@@ -209,11 +231,13 @@ def _round(port: int, kind: str, which: str, n_per_pub: int, tmp: Path) -> dict[
             break  # nothing more is coming: the rest was dropped
         prev = counter.n
         time.sleep(0.2)
+    cpu = _cpu_s() + (_cpu_s(child) if child else 0.0) - cpu0
     closer()
     span = max(1e-9, counter.last - counter.first)
     return {"rate": counter.n / span, "received": counter.n, "sent": sent,
             "lost": sent - counter.n, "rejected": rejected(),
-            "publishers_rate": sum(pub_rates)}
+            "publishers_rate": sum(pub_rates),
+            "cpu_us_per_msg": 1e6 * cpu / max(1, counter.n)}
 
 
 def main() -> int:
@@ -230,28 +254,32 @@ def main() -> int:
                     for which in variants:
                         res[which].append(_round(broker.port, kind, which, n_per_pub, tmp))
                 br = median([r["rate"] for r in res["bare"]])
+                br_cpu = median([r["cpu_us_per_msg"] for r in res["bare"]])
                 lost_br = sum(r["lost"] for r in res["bare"])
                 pub = median([r["publishers_rate"] for v in variants for r in res[v]])
                 unit = "msg/s" if kind == "scalar" else "samples/s"
                 mult = 1 if kind == "scalar" else 256
                 doc[kind] = {"bare_per_s": br * mult, "goal": 0.8, "rounds": res,
-                             "publishers_msg_per_s": pub}
+                             "publishers_msg_per_s": pub, "bare_cpu_us_per_msg": br_cpu}
                 for v in ("wk-process", "wk-thread"):
                     wk = median([r["rate"] for r in res[v]])
+                    wk_cpu = median([r["cpu_us_per_msg"] for r in res[v]])
                     lost_wk = sum(r["lost"] for r in res[v])
                     limited = "subscriber" if pub > 1.2 * max(wk, br) else "publishers"
                     mode = v.split("-")[1]
                     rows.append([f"{kind} ingest ({unit}), ingest {mode}", f"{wk * mult:,.0f}",
                                  f"{br * mult:,.0f}", f"{wk / br:.2f}", ">= 0.8",
+                                 f"{wk_cpu:.1f} / {br_cpu:.1f}",
                                  f"{lost_wk}/{lost_br}", f"{pub:,.0f} msg/s", limited])
                     doc[kind][mode] = {"watchkeep_per_s": wk * mult, "ratio": wk / br,
-                                       "limited_by": limited, "lost": lost_wk}
+                                       "limited_by": limited, "lost": lost_wk,
+                                       "cpu_us_per_msg": wk_cpu}
         finally:
             broker.stop()
     print(f"{N_ASSETS} assets x {N_CHANNELS} channels, {PUBLISHERS} publisher processes, "
           f"{ROUNDS} alternating rounds, QoS 0")
     print(table(rows, ["benchmark", "watchkeep", "bare", "ratio", "goal",
-                       "lost wk/bare", "publishers", "limited by"]))
+                       "CPU us/msg wk/bare", "lost wk/bare", "publishers", "limited by"]))
     save("ingest", doc)
     return 0
 
