@@ -36,10 +36,10 @@ from agent.bundle import FORMAT, FORMAT_VERSION, MODEL_JSON, MODEL_ONNX
 from agent.errors import BundleError
 from agent.fsutil import FileContent, fsync_dir, replace_dir
 from agent.rebaseline import Rehearsal
+from agent.rebaseline_config import DEFAULT_KEEP  # numpy-free, for the config
 
 ACTIVE = "active"
 REHEARSAL_NPZ = "rehearsal.npz"
-DEFAULT_KEEP = 5
 _VERSION_RE = re.compile(r"^v([1-9][0-9]{0,8})$")
 
 

@@ -52,19 +52,14 @@ from agent.commission.calibrate import (
 from agent.commission.export import ACTIVATIONS, DenseLayer, forward_numpy
 from agent.core.detector import DetectorParams, Transition, run_detector
 from agent.errors import WatchkeepError
+from agent.rebaseline_config import (  # the defaults live with the config section, numpy-free
+    DEFAULT_FALSE_ALARM_BUDGET,
+    DEFAULT_MAX_SHIFT,
+    DEFAULT_REHEARSAL_SIZE,
+    DEFAULT_REHEARSAL_TOLERANCE,
+    MIN_NEW_WINDOWS,
+)
 
-# Defaults (common practice, no source): a shift of 10x the raise threshold is far
-# beyond normal scatter (normal medians sit near 0.2-0.4 of the threshold). A 0.995
-# quantile x 1.25 margin puts well under 1 % of fresh normal windows above threshold,
-# but the held-out test part has only some 40-60 windows, where one window is 2 %: a
-# budget of 5 % tolerates two stray windows and still rejects a model that does not fit
-# (the old model sits at 100 % on the new normal). A rehearsal score 1.5x the old is a
-# model that has started to forget.
-DEFAULT_MAX_SHIFT = 10.0
-DEFAULT_FALSE_ALARM_BUDGET = 0.05
-DEFAULT_REHEARSAL_TOLERANCE = 1.5
-DEFAULT_REHEARSAL_SIZE = 512
-MIN_NEW_WINDOWS = 60
 SPLIT = (0.5, 0.15, 0.175, 0.175)  # train, val, calib, test
 
 

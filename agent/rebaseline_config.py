@@ -14,9 +14,16 @@ from typing import TYPE_CHECKING, Any
 if TYPE_CHECKING:
     from agent.config import BrokerConfig
 
-# Copies of agent.rebaseline's defaults and agent.models.DEFAULT_KEEP: those modules
-# bring numpy and the bundle code, and config must load without them (the ingest child
-# unpickles it). tests/unit/test_rebaseline_config.py keeps the copies equal.
+# The re-learning defaults, here rather than in agent.rebaseline / agent.models (which
+# import them from here): those modules bring numpy and the bundle code, and the config
+# must load without them (the ingest child unpickles it).
+# Defaults (common practice, no source): a shift of 10x the raise threshold is far
+# beyond normal scatter (normal medians sit near 0.2-0.4 of the threshold). A 0.995
+# quantile x 1.25 margin puts well under 1 % of fresh normal windows above threshold,
+# but the held-out test part has only some 40-60 windows, where one window is 2 %: a
+# budget of 5 % tolerates two stray windows and still rejects a model that does not fit
+# (the old model sits at 100 % on the new normal). A rehearsal score 1.5x the old is a
+# model that has started to forget.
 DEFAULT_MAX_SHIFT = 10.0
 DEFAULT_FALSE_ALARM_BUDGET = 0.05
 DEFAULT_REHEARSAL_TOLERANCE = 1.5
