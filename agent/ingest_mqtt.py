@@ -27,6 +27,7 @@ from agent.config import BrokerConfig, Config, MqttProtocol, read_secret
 from agent.core.decode import Block, Reason, Rejected, decode_message
 from agent.core.routing import build_routes
 from agent.logs import RateLimited, kv
+from agent.mqtt_client import ReadAheadClient
 
 if TYPE_CHECKING:
     from agent.ingest import Buffers
@@ -173,13 +174,14 @@ class IngestHandler:
 
 
 def make_client(broker: BrokerConfig, env: dict[str, str] | None = None) -> mqtt.Client:
-    """A paho client for a configured broker: VERSION2 callbacks, credentials, TLS."""
+    """A paho client for a configured broker: VERSION2 callbacks, credentials, TLS,
+    socket reads in large chunks (`agent.mqtt_client`)."""
     import os
     import ssl
 
     proto = mqtt.MQTTv5 if broker.protocol is MqttProtocol.V5 else mqtt.MQTTv311
-    client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=broker.client_id,
-                         protocol=proto, clean_session=None if proto == mqtt.MQTTv5 else True)
+    client = ReadAheadClient(CallbackAPIVersion.VERSION2, client_id=broker.client_id,
+                             protocol=proto, clean_session=None if proto == mqtt.MQTTv5 else True)
     if broker.username:
         client.username_pw_set(broker.username, read_secret(broker, env or dict(os.environ)))
     if broker.tls is not None:
