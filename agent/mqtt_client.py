@@ -70,7 +70,7 @@ class ReadAheadClient(mqtt.Client):
         # flood cannot keep paho's loop from its writes (PUBACKs, PINGREQs).
         self._ra_refill = False
         try:
-            while (rc == MQTTErrorCode.MQTT_ERR_SUCCESS and self._ra_pos < len(self._ra_buf)
+            while (rc == MQTTErrorCode.MQTT_ERR_SUCCESS and self.buffered()
                    and self._sock is not None):
                 rc = super().loop_read(max_packets)
         finally:
