@@ -39,6 +39,7 @@ from typing import Any
 
 import numpy as np
 
+from agent.batched import Layer, dense_layers
 from agent.errors import BundleError
 from agent.fsutil import fsync_dir, replace_dir
 
@@ -182,6 +183,9 @@ class Bundle:
         self._row_in_flat = self._row_out_flat = np.zeros(0, dtype=np.float32)
         self._run_bound: Callable[[], Any] | None = None
         self._bind_failed = False
+        # The weights of a plain dense network, for batched runs across assets
+        # (`agent/batched.py`); None for any other graph.
+        self.dense: tuple[Layer, ...] | None = None
 
     @property
     def n_features(self) -> int:
@@ -323,6 +327,9 @@ def load_bundle(path: str | os.PathLike[str]) -> Bundle:
                                   f"{list(probe.shape)}, expected the same shape")
         if not np.all(np.isfinite(out)):
             raise BundleError(sp, "the model gives non-finite output on a probe batch")
+    dense = dense_layers(model_bytes)
+    if dense is not None and dense[0].weight.shape[0] == n and dense[-1].weight.shape[1] == n:
+        bundle.dense = dense
     h = hashlib.sha256(model_bytes)
     h.update(meta_path.read_bytes())
     bundle.digest = h.hexdigest()

@@ -35,6 +35,7 @@ import numpy as np
 import orjson
 from prometheus_client import Counter, Gauge
 
+from agent.batched import BatchedModels
 from agent.bundle import Bundle, load_bundle
 from agent.config import FEATURES, AssetConfig, Config
 from agent.core.detector import Detector, State, Transition
@@ -321,6 +322,9 @@ class Pipeline:
         for rt in runtimes:
             rt.shown_threshold = rt.shown_anomalous = None
             self._publish_model_gauges(rt)
+        self._batched = BatchedModels(())
+        self._batched_stale = False
+        self._rebuild_batched()
 
     def _publish_model_gauges(self, rt: AssetRuntime) -> None:
         self.metrics.model_loaded.labels(rt.cfg.name).set(1 if rt.bundle else 0)
@@ -674,7 +678,12 @@ class Pipeline:
             recon = np.empty_like(z)
             ok = np.ones(len(group), dtype=bool)
             failed: set[int] = set()
-            for j, (p, _, b, _) in enumerate(group):
+            # Models served by a batched group run in one call per group (batched.py);
+            # the rest, and any group whose call fails, one by one below.
+            alone = self._run_batched(group, z, recon) if self._batched.groups \
+                else range(len(group))
+            for j in alone:
+                p, _, b, _ = group[j]
                 if id(b) in failed:
                     ok[j] = False
                     self._skip(p.rt, "model_error")
@@ -692,8 +701,46 @@ class Pipeline:
             for j, (p, _, b, _) in enumerate(group):
                 if ok[j]:
                     results[id(p)] = (float(scores[j]), err[j], b)
+        if self._batched_stale:
+            self._rebuild_batched()
         self.metrics.inference_seconds.observe(time.perf_counter() - t1)
         return results
+
+    def _run_batched(self, group: list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]],
+                     z: np.ndarray, recon: np.ndarray) -> list[int]:
+        """Reconstruct the rows whose models sit in a batched group, one run per group,
+        into `recon`; return the positions of the rows left to run one by one."""
+        where = self._batched.slot_of
+        alone: list[int] = []
+        by_group: dict[int, tuple[list[int], list[int]]] = {}
+        for j, it in enumerate(group):
+            got = where(it[2])
+            if got is None:
+                alone.append(j)
+                if not self._batched.considered(it[2]):  # swapped in since the build
+                    self._batched_stale = True
+            else:
+                js, slots = by_group.setdefault(got[0], ([], []))
+                js.append(j)
+                slots.append(got[1])
+        for gi, (js, slots) in by_group.items():
+            try:
+                recon[js] = self._batched.groups[gi].run(z[js], np.asarray(slots, np.int64))
+            except Exception as exc:  # the models' own runs decide which asset fails
+                self.log.error(kv("batched inference failed; running the models one by one",
+                                  n=len(js), error=str(exc)[:200]))
+                alone.extend(js)
+        return alone
+
+    def _rebuild_batched(self) -> None:
+        """Group every model the runtimes now hold (after a model swap, at start)."""
+        bundles = [b for rt in self.runtimes
+                   for b in (rt.asset_bundle, *rt.mode_bundles.values()) if b is not None]
+        self._batched = BatchedModels(bundles, self.log)
+        self._batched_stale = False
+        if self._batched.n_models:
+            self.log.info(kv("batched inference", models=self._batched.n_models,
+                             groups=len(self._batched.groups), of=len(bundles)))
 
     def _step(self, rt: AssetRuntime, w: ClosedWindow, mode: str, bundle: Bundle, score: float,
               sq: np.ndarray, out: list[OutMessage], stats: TickStats) -> None:

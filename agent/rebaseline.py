@@ -49,7 +49,7 @@ from agent.commission.calibrate import (
     DEFAULT_QUANTILE,
     calibrate,
 )
-from agent.commission.export import ACTIVATIONS, DenseLayer, forward_numpy
+from agent.commission.export import DenseLayer, forward_numpy
 from agent.core.detector import DetectorParams, Transition, run_detector
 from agent.errors import WatchkeepError
 from agent.rebaseline_config import (  # the defaults live with the config section, numpy-free
@@ -147,39 +147,15 @@ def reservoir(x: np.ndarray, names: Sequence[str], size: int, *, seed: int = 0,
 def layers_from_onnx(model_bytes: bytes) -> list[DenseLayer]:
     """The dense layers of an ONNX model written by `export_dense` (Gemm + activation
     chain), read back from its initializers; RebaselineError for any other graph."""
-    import onnx
-    from onnx import numpy_helper
+    from agent.batched import dense_layers
 
-    model = onnx.load_model_from_string(model_bytes)
-    g = model.graph
-    inits = {t.name: numpy_helper.to_array(t) for t in g.initializer}
-    acts = {v: k for k, v in ACTIVATIONS.items() if v is not None}
-    layers: list[DenseLayer] = []
-    nodes = list(g.node)
-    i = 0
-    prev = g.input[0].name if len(g.input) == 1 else None
-    while i < len(nodes):
-        n = nodes[i]
-        odd = any((a.name in ("transA", "transB") and a.i)
-                  or (a.name in ("alpha", "beta") and a.f != 1.0) for a in n.attribute)
-        if n.op_type != "Gemm" or len(n.input) != 3 or n.input[0] != prev or odd:
-            raise RebaselineError("the model is not a plain dense network (Gemm chain); "
-                                  "rebaseline can only fine-tune models `watchkeep train` made")
-        w, b = inits.get(n.input[1]), inits.get(n.input[2])
-        if w is None or b is None or w.ndim != 2:
-            raise RebaselineError("the model's Gemm weights are not constant initializers")
-        act = "linear"
-        out = n.output[0]
-        if i + 1 < len(nodes) and nodes[i + 1].op_type in acts and nodes[i + 1].input[0] == out:
-            act = acts[nodes[i + 1].op_type]
-            out = nodes[i + 1].output[0]
-            i += 1
-        layers.append(DenseLayer(w.astype(np.float64), b.astype(np.float64).reshape(-1), act))
-        prev = out
-        i += 1
-    if not layers or prev != g.output[0].name:
-        raise RebaselineError("the model's graph does not end in its output")
-    return layers
+    layers = dense_layers(model_bytes)
+    if layers is None:
+        raise RebaselineError("the model is not a plain dense network (Gemm chain with "
+                              "constant weights); rebaseline can only fine-tune models "
+                              "`watchkeep train` made")
+    return [DenseLayer(ly.weight.astype(np.float64), ly.bias.astype(np.float64),
+                       ly.activation) for ly in layers]
 
 
 # -- fine-tuning --------------------------------------------------------------------------

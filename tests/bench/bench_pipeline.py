@@ -44,10 +44,13 @@ class NullSink:
 def build(tmp: Path):
     rng = np.random.default_rng(0)
     names = [f"c{c}.{f}" for c in range(N_CHANNELS) for f in FEATS]
-    z = rng.normal(size=(500, len(names)))
-    bdir, model = quiet_bundle(tmp / "bundle", names, z, mean=0.0)
+    # Every asset its own model (weights of its own), as on a plant: batching the
+    # inference across assets must not lean on models being shared.
+    made = [quiet_bundle(tmp / f"bundle{i:03d}", names,
+                         rng.normal(size=(500, len(names))) * rng.uniform(0.5, 2, len(names)),
+                         mean=0.0) for i in range(N_ASSETS)]
     doc = {"site": "bench", "gateway": "gw", "state_dir": str(tmp / "state"),
-           "assets": [{"name": f"A{i:03d}", "bundle": str(bdir),
+           "assets": [{"name": f"A{i:03d}", "bundle": str(made[i][0]),
                        "window": {"length_s": 1.0, "lateness_s": 0.0, "timeout_s": 0.5},
                        "channels": {f"c{c}": {"topic": f"b/A{i:03d}/c{c}",
                                               "decoder": "json-batch", "rate_hz": N_SAMPLES,
@@ -57,11 +60,12 @@ def build(tmp: Path):
     cfg = parse_config(doc, tmp)
     metrics = Metrics(CollectorRegistry())
     buffers = Buffers(cfg)
-    runtimes = [AssetRuntime.build(a, load_bundle(bdir), None) for a in cfg.assets]
+    runtimes = [AssetRuntime.build(a, load_bundle(made[i][0]), None)
+                for i, a in enumerate(cfg.assets)]
     pipe = Pipeline(cfg, buffers, NullSink(), metrics, logging.getLogger("bench"), runtimes)
     sessions = [ort.InferenceSession(model, sess_options=_session_options(),
                                      providers=["CPUExecutionProvider"])
-                for _ in range(N_ASSETS)]
+                for _, model in made]
     return pipe, buffers, sessions, rng
 
 
