@@ -101,3 +101,33 @@ def test_written_tensors_and_value_infos_read_back_with_onnx() -> None:
 def test_garbage_does_not_parse() -> None:
     with pytest.raises(Exception):  # noqa: B017 - protobuf's DecodeError
         ox.parse_model(b"\xff\xff\xff\xff not a model")
+
+
+def test_the_daemon_does_not_import_onnx(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    """The point of the subset: a daemon loading bundles and building a batched group
+    never loads the onnx package and its ~17 MB."""
+    import subprocess
+    import sys
+
+    from agent.bundle import write_bundle
+    from agent.commission.export import export_dense, pca_autoencoder
+
+    rng = np.random.default_rng(0)
+    names = [f"c.f{i}" for i in range(5)]
+    meta = {"asset": "A", "mode": "default", "model_id": "A/default", "version": 1,
+            "feature_names": names, "scaler": {"mean": [0.0] * 5, "scale": [1.0] * 5},
+            "score": {"function": "mse"}, "threshold": 1.0, "clear_threshold": 0.5,
+            "onnx": {"input": "x", "output": "recon"}}
+    dirs = [write_bundle(tmp_path / f"b{i}", export_dense(pca_autoencoder(
+        rng.normal(size=(50, 5)), 2)), meta) for i in range(2)]
+    code = ("import sys\n"
+            "import agent.daemon\n"
+            "from agent.batched import BatchedModels\n"
+            "from agent.bundle import load_bundle\n"
+            f"b = BatchedModels([load_bundle(p) for p in {[str(d) for d in dirs]!r}])\n"
+            "assert b.n_models == 2, b.n_models\n"
+            "assert 'onnx' not in sys.modules\n"
+            "print('ok')\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         timeout=120)
+    assert out.returncode == 0 and out.stdout.strip() == "ok", out.stderr
