@@ -134,7 +134,7 @@ def check_bundle_fits(asset: AssetConfig, bundle: Bundle) -> str | None:
     return None
 
 
-@dataclass
+@dataclass(slots=True)
 class AssetRuntime:
     """Everything the pipeline keeps for one asset between ticks."""
 
