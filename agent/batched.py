@@ -14,8 +14,9 @@ run, 0.3 us per window, onnxruntime 1.23 on this 2-core gateway, 2026-12-02,
 `python -m tests.bench pipeline`).
 
 Nothing changes for any other model: a graph of another shape, a model trained
-elsewhere, a group of one, a member whose batched output does not match its own
-session on the probe rows all keep their per-model run (`Bundle.reconstruct_row`).
+elsewhere, a group of one, a model above `MAX_PARAMS`, a member whose batched output
+does not match its own session on the probe rows all keep their per-model run
+(`Bundle.reconstruct_row`).
 The batched result equals the model's own run to float32 rounding (MatMul + Add
 instead of Gemm sum in a different order: at most a few 1e-7 on values of order 1),
 which the build checks member by member.
@@ -41,6 +42,12 @@ IR_VERSION = 8
 # How far a member's batched output may be from its own session's on the probe rows:
 # float32 rounding of a different summation order (common practice, no source).
 RTOL, ATOL = 1e-4, 1e-5
+# Models above this many weights and biases run alone: a run gathers every row's
+# weights, and past some size that copy costs more than the per-call overhead that
+# batching saves. 200 models, one row each, per window (onnxruntime 1.32, this 2-core
+# machine, 2026-12-02): 688 parameters 0.37 us batched against 10.6 us alone; 2,090:
+# 1.7 against 16.3; 12,725: 7.3 against 24.6; 50,450: 114 against 37.
+MAX_PARAMS = 16_384
 
 
 @dataclass(frozen=True)
@@ -101,6 +108,11 @@ def dense_layers(model_bytes: bytes) -> tuple[Layer, ...] | None:
     if not layers or prev != g.output[0].name or len(g.output) != 1:
         return None
     return tuple(layers)
+
+
+def n_params(layers: Sequence[Layer]) -> int:
+    """Weights and biases of a dense network."""
+    return sum(ly.weight.size + ly.bias.size for ly in layers)
 
 
 def _signature(layers: Sequence[Layer]) -> tuple[tuple[int, int, str], ...]:
@@ -166,7 +178,7 @@ class BatchedModels:
             if id(b) in self._seen:
                 continue
             self._seen[id(b)] = b
-            if b.dense is None:
+            if b.dense is None or n_params(b.dense) > MAX_PARAMS:
                 continue
             by_sig.setdefault(_signature(b.dense), []).append(b)
         for members in by_sig.values():

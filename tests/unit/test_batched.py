@@ -19,7 +19,7 @@ from hypothesis import strategies as st
 from onnx import TensorProto, helper, numpy_helper
 from onnx.reference import ReferenceEvaluator
 
-from agent.batched import BatchedModels, batched_model, dense_layers
+from agent.batched import MAX_PARAMS, BatchedModels, batched_model, dense_layers, n_params
 from agent.bundle import Bundle, load_bundle, write_bundle
 from agent.commission.export import ACTIVATIONS, DenseLayer, export_dense, forward_numpy
 
@@ -159,3 +159,15 @@ def test_a_member_that_does_not_match_its_own_run_runs_alone(
     assert batched.slot_of(bad) is None and batched.considered(bad)
     assert batched.slot_of(bundles[0]) is not None and batched.slot_of(bundles[2]) is not None
     assert "differs from its own run" in caplog.text
+
+
+def test_models_above_the_size_cap_run_alone(tmp_path: Path) -> None:
+    rng = np.random.default_rng(4)
+    hidden = MAX_PARAMS // (2 * F) + 1  # just over the cap
+    big = [_bundle(tmp_path, f"A{i}", export_dense(_layers(rng, [F, hidden, F],
+                                                            ["relu", "linear"])))
+           for i in range(2)]
+    assert big[0].dense is not None and n_params(big[0].dense) > MAX_PARAMS
+    batched = BatchedModels(big)
+    assert batched.n_models == 0 and not batched.groups
+    assert all(batched.considered(b) for b in big)
