@@ -10,7 +10,7 @@ builds one ONNX graph holding their weights stacked `[M, in, out]`. A run takes 
 tick's standardised rows and the model slot of each row, gathers each row's weights
 and applies batched MatMul + Add + activation: onnxruntime still does all of the
 arithmetic, once per tick instead of once per window (200 rows: about 60 us per
-run, 0.3 us per window, onnxruntime 1.23 on this 2-core gateway, 2026-12-02,
+run, 0.3 us per window, onnxruntime 1.32 on this 2-core gateway, 2026-12-02,
 `python -m tests.bench pipeline`).
 
 Nothing changes for any other model: a graph of another shape, a model trained
@@ -26,17 +26,18 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from agent import onnx_subset as ox
+from agent.commission.export import ACTIVATIONS, DenseLayer  # numpy only
 
 if TYPE_CHECKING:
     from agent.bundle import Bundle
 
-ACTIVATION_OPS = {"Tanh": "tanh", "Relu": "relu", "Sigmoid": "sigmoid"}
+# ONNX op -> activation name: the inverse of what `export_dense` writes.
+ACTIVATION_OPS = {op: name for name, op in ACTIVATIONS.items() if op is not None}
 OPSET = 17  # Unsqueeze/Squeeze take their axes as an input from opset 13
 IR_VERSION = 8
 # How far a member's batched output may be from its own session's on the probe rows:
@@ -50,19 +51,11 @@ RTOL, ATOL = 1e-4, 1e-5
 MAX_PARAMS = 16_384
 
 
-@dataclass(frozen=True)
-class Layer:
-    """y = act(x @ weight + bias); weight [in, out] float32, bias [out] float32."""
-
-    weight: np.ndarray
-    bias: np.ndarray
-    activation: str  # "linear", "tanh", "relu" or "sigmoid"
-
-
-def dense_layers(model_bytes: bytes) -> tuple[Layer, ...] | None:
-    """The layers of a plain dense network: one graph input, a chain of Gemm nodes
-    with constant weights and default attributes, each optionally followed by one
-    activation, ending in the graph's first output. None for any other graph."""
+def dense_layers(model_bytes: bytes) -> tuple[DenseLayer, ...] | None:
+    """The layers of a plain dense network (weights and biases float32): one graph
+    input, a chain of Gemm nodes with constant weights and default attributes, each
+    optionally followed by one activation, ending in the graph's first output. None
+    for any other graph."""
     try:
         m = ox.parse_model(model_bytes)
     except Exception:  # protobuf's DecodeError, or anything else it finds wrong
@@ -75,7 +68,7 @@ def dense_layers(model_bytes: bytes) -> tuple[Layer, ...] | None:
     if len(inputs) != 1:
         return None
     prev, nodes, i = inputs[0], list(g.node), 0
-    layers: list[Layer] = []
+    layers: list[DenseLayer] = []
     while i < len(nodes):
         n = nodes[i]
         if (n.op_type != "Gemm" or n.domain not in ("", "ai.onnx") or len(n.input) != 3
@@ -102,7 +95,8 @@ def dense_layers(model_bytes: bytes) -> tuple[Layer, ...] | None:
             i += 1
         if layers and layers[-1].weight.shape[1] != w.shape[0]:
             return None
-        layers.append(Layer(w.astype(np.float32), b.reshape(-1).astype(np.float32), act))
+        layers.append(DenseLayer(w.astype(np.float32), b.reshape(-1).astype(np.float32),
+                                 act))
         prev = out
         i += 1
     if not layers or prev != g.output[0].name or len(g.output) != 1:
@@ -110,16 +104,16 @@ def dense_layers(model_bytes: bytes) -> tuple[Layer, ...] | None:
     return tuple(layers)
 
 
-def n_params(layers: Sequence[Layer]) -> int:
+def n_params(layers: Sequence[DenseLayer]) -> int:
     """Weights and biases of a dense network."""
     return sum(ly.weight.size + ly.bias.size for ly in layers)
 
 
-def _signature(layers: Sequence[Layer]) -> tuple[tuple[int, int, str], ...]:
+def _signature(layers: Sequence[DenseLayer]) -> tuple[tuple[int, int, str], ...]:
     return tuple((ly.weight.shape[0], ly.weight.shape[1], ly.activation) for ly in layers)
 
 
-def batched_model(members: Sequence[Sequence[Layer]]) -> bytes:
+def batched_model(members: Sequence[Sequence[DenseLayer]]) -> bytes:
     """The ONNX graph that runs row k through model `slot[k]` of `members` (all of one
     signature): inputs `x` [K, F] float32 and `slot` [K] int64, output `recon` [K, F]."""
     sig = _signature(members[0])
@@ -138,8 +132,8 @@ def batched_model(members: Sequence[Sequence[Layer]]) -> bytes:
         g.node.add(op_type="MatMul", input=[prev, f"w{i}"], output=[f"m{i}"])
         g.node.add(op_type="Add", input=[f"m{i}", f"b{i}"], output=[f"a{i}"])
         prev = f"a{i}"
-        if act != "linear":
-            op = next(k for k, v in ACTIVATION_OPS.items() if v == act)
+        op = ACTIVATIONS[act]
+        if op is not None:
             g.node.add(op_type=op, input=[prev], output=[f"y{i}"])
             prev = f"y{i}"
     g.node.add(op_type="Squeeze", input=[prev, "axis1"], output=["recon"])

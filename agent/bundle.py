@@ -39,7 +39,8 @@ from typing import Any
 
 import numpy as np
 
-from agent.batched import Layer, dense_layers
+from agent.batched import dense_layers
+from agent.commission.export import DenseLayer
 from agent.errors import BundleError
 from agent.fsutil import fsync_dir, replace_dir
 
@@ -185,7 +186,7 @@ class Bundle:
         self._bind_failed = False
         # The weights of a plain dense network, for batched runs across assets
         # (`agent/batched.py`); None for any other graph.
-        self.dense: tuple[Layer, ...] | None = None
+        self.dense: tuple[DenseLayer, ...] | None = None
 
     @property
     def n_features(self) -> int:

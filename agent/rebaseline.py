@@ -154,6 +154,7 @@ def layers_from_onnx(model_bytes: bytes) -> list[DenseLayer]:
         raise RebaselineError("the model is not a plain dense network (Gemm chain with "
                               "constant weights); rebaseline can only fine-tune models "
                               "`watchkeep train` made")
+    # fine-tuning works in float64
     return [DenseLayer(ly.weight.astype(np.float64), ly.bias.astype(np.float64),
                        ly.activation) for ly in layers]
 

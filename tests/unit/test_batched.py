@@ -153,7 +153,7 @@ def test_a_member_that_does_not_match_its_own_run_runs_alone(
     bad = bundles[1]
     assert bad.dense is not None
     w0 = bad.dense[0]
-    bad.dense = (type(w0)(w0.weight * 2, w0.bias, w0.activation), *bad.dense[1:])
+    bad.dense = (DenseLayer(w0.weight * 2, w0.bias, w0.activation), *bad.dense[1:])
     with caplog.at_level(logging.WARNING):
         batched = BatchedModels(bundles, logging.getLogger("t"))
     assert batched.slot_of(bad) is None and batched.considered(bad)
