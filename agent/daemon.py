@@ -223,7 +223,8 @@ class Daemon:
                 registry=self.registry, logger=self.log)
             self.upstream.accept_commands(self.commands.topic_filter, self.commands.offer)
         self.pipeline = Pipeline(cfg, self.buffers, sink, self.metrics, self.log, runtimes,
-                                 observer=self.rebaseline.observe)
+                                 observer=self.rebaseline.observe,
+                                 observes=self.rebaseline.collecting)
         self.handler = IngestHandler(cfg, self.buffers, self.metrics, self.log)
         # A child process stamps arrivals with the wall clock: a daemon built on another
         # clock (the demo's and some tests' simulated time) keeps ingest in a thread.

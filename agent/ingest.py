@@ -14,6 +14,7 @@ import numpy as np
 
 from agent.config import AssetConfig, Config
 from agent.core.decode import Block
+from agent.core.lockstep import LockstepCut, cut_lockstep
 from agent.core.routing import Route
 from agent.core.windows import AssembleResult, WindowAssembler, close_many
 from agent.ingest_mqtt import Ingest, IngestHandler, PlainCount, make_client
@@ -36,24 +37,43 @@ class AssetInbox:
         self.late = 0
 
 
-def close_inboxes(inboxes: Sequence[AssetInbox], now: float
-                  ) -> tuple[list[AssembleResult], list[int]]:
-    """Every asset's windows due at `now` (cut together, `close_many`), and the late
-    samples counted since the last call; under every asset's lock, held for the one
-    cut."""
+def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
+                  lockstep: Sequence[int] = ()
+                  ) -> tuple[list[AssembleResult | None], list[int], list[LockstepCut]]:
+    """Every asset's windows due at `now` and the late samples counted since the last
+    call, under every asset's lock, held for the one cut.
+
+    The assets at the positions `lockstep` are first offered to `cut_lockstep`; those it
+    cuts come back as None in the results and as rows of the returned cuts. The rest
+    are cut together by `close_many`."""
     held = []
     try:
         for ib in inboxes:
             ib.lock.acquire()
             held.append(ib.lock)
-        results = close_many([ib.assembler for ib in inboxes], now)
+        assemblers = [ib.assembler for ib in inboxes]
+        results: list[AssembleResult | None]
+        if lockstep:
+            cuts, _ = cut_lockstep(assemblers, lockstep, now)
+            results = [None] * len(inboxes)
+            taken = [False] * len(inboxes)
+            for c in cuts:
+                for i, _, _ in c.items:
+                    taken[i] = True
+            general = [i for i, t in enumerate(taken) if not t]
+            for i, r in zip(general, close_many([assemblers[i] for i in general], now),
+                            strict=True):
+                results[i] = r
+        else:
+            cuts = []
+            results = list(close_many(assemblers, now))
         late = [ib.late for ib in inboxes]
         for ib in inboxes:
             ib.late = 0
     finally:
         for lock in held:
             lock.release()
-    return results, late
+    return results, late, cuts
 
 
 class ChannelBuffer:

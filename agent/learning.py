@@ -246,6 +246,13 @@ class RebaselineManager:
 
     # -- the pipeline side (pipeline thread, loop lock held) -----------------------------
 
+    def collecting(self, asset: str) -> bool:
+        """Whether `observe` wants the asset's windows now (a job collecting for it): the
+        pipeline asks per window. Read without the lock, as a dict read is atomic;
+        `observe` decides again under it."""
+        job = self._jobs.get(asset)
+        return job is not None and job.phase is Phase.COLLECTING
+
     def observe(self, asset: str, mode: str, w: ClosedWindow, row: np.ndarray,
                 names: tuple[str, ...]) -> None:
         """The pipeline's window observer: keeps the windows a collecting job wants."""

@@ -43,6 +43,7 @@ from agent.core.events import EventType, Source, make_event, rfc3339, severity_f
 from agent.core.features import FEATURE_INDEX, block_features, segment_features, stack_rows
 from agent.core.health import Change, ChannelHealth, HealthChange, HealthLimits
 from agent.core.limits import ZONES, FeatureLimits, LimitRise, ZoneLimits, zone_of
+from agent.core.lockstep import LockstepCut
 from agent.core.modes import UNKNOWN_MODE, ModeTracker
 from agent.core.spectral import spectral_features
 from agent.core.windows import Block, ClosedWindow, WindowAssembler
@@ -65,6 +66,8 @@ class Sink(Protocol):
 
 
 WindowObserver = Callable[[str, str, ClosedWindow, np.ndarray, tuple[str, ...]], None]
+# Whether the observer wants an asset's windows now (asked per window; None: always).
+WindowWanted = Callable[[str], bool]
 
 
 def asset_feature_names(asset: AssetConfig) -> tuple[str, ...]:
@@ -177,6 +180,10 @@ class AssetRuntime:
     # Time-domain features any consumer of the row reads (config, limits; models are
     # checked to need no others): the feature pass computes only these.
     td_needed: frozenset[str] = frozenset()
+    # Nothing to judge per window but its score: no health checks or staleness, modes,
+    # spectral features or limits (from the config; `Pipeline` takes such assets'
+    # windows through its lockstep path when their channels allow).
+    plain: bool = False
 
     @classmethod
     def build(cls, cfg: AssetConfig, bundle: Bundle | None, bundle_error: str | None,
@@ -219,6 +226,8 @@ class AssetRuntime:
             for cname in cfg.iso10816.channels:
                 feat = f"{cname}.velocity_rms_mm_s"
                 rt.limits.append((chan_pos[cname], layout[feat], ZoneLimits(feat, cfg.iso10816)))
+        rt.plain = not (rt.checked or rt.stale_channels or rt.modes is not None
+                        or rt.mode_bundles or rt.spectral or rt.limits or rt.velocity_at)
         rt.set_bundle(bundle, bundle_error)
         return rt
 
@@ -287,7 +296,12 @@ class Pipeline:
 
     def __init__(self, cfg: Config, buffers: Buffers, sink: Sink, metrics: Metrics,
                  logger: logging.Logger, runtimes: list[AssetRuntime], *,
-                 observer: WindowObserver | None = None) -> None:
+                 observer: WindowObserver | None = None, observes: WindowWanted | None = None,
+                 lockstep: bool = True) -> None:
+        """`observer` gets every scoreable window with its feature row; `observes(asset)`
+        says whether it wants an asset's windows now (without it, it wants all).
+        `lockstep=False` takes every window through the general path (the tests compare
+        the two)."""
         self.cfg = cfg
         self.buffers = buffers
         self.sink = sink
@@ -295,6 +309,8 @@ class Pipeline:
         self.log = logger
         self.runtimes = runtimes
         self.observer = observer
+        self.observes = observes
+        self.lockstep = lockstep
         self.source = Source(cfg.site, cfg.gateway)
         self.prefix = cfg.topic_prefix
         self._m = {rt.cfg.name: _AssetMetrics.of(metrics, rt.cfg.name) for rt in runtimes}
@@ -319,6 +335,7 @@ class Pipeline:
         self._topic_cache: dict[str, tuple[str, str]] = {}
         self._layout_keys: dict[int, tuple[np.ndarray, bytes]] = {}
         self._scaler_cache: dict[int, tuple[tuple[Bundle, ...], np.ndarray, np.ndarray]] = {}
+        self._plans: dict[tuple[int, ...], _Plan] = {}
         for rt in runtimes:
             rt.shown_threshold = rt.shown_anomalous = None
             self._publish_model_gauges(rt)
@@ -362,11 +379,22 @@ class Pipeline:
         self.last_due = due
         runtimes = self.runtimes
         seq_before = [runtimes[ai].sequence for ai in due]
-        results, lates = close_inboxes([self._inboxes[ai] for ai in due], now)
+        lockstep: list[int] = []
+        if self.lockstep:
+            observer, wants = self.observer, self.observes
+            if observer is None:
+                lockstep = [pos for pos, ai in enumerate(due) if runtimes[ai].plain]
+            elif wants is not None:  # an observed window takes the general path, whole
+                lockstep = [pos for pos, ai in enumerate(due)
+                            if runtimes[ai].plain and not wants(runtimes[ai].cfg.name)]
+        results, lates, cuts = close_inboxes([self._inboxes[ai] for ai in due], now,
+                                             lockstep)
         for ai, res, late in zip(due, results, lates, strict=True):
-            rt = runtimes[ai]
             if late:
                 self._m_at[ai].late.inc(late)
+            if res is None:  # cut in lockstep
+                continue
+            rt = runtimes[ai]
             if rt.stale_channels:
                 self._check_stale(rt, ai, now, out, stats)
             if res.empty_skipped:
@@ -377,6 +405,9 @@ class Pipeline:
                 pending.append(self._judge_window(rt, w, out, stats))
         if pending:
             self._score(pending, out, stats)
+        for cut in cuts:
+            self._score_lockstep([runtimes[due[pos]] for pos, _, _ in cut.items], cut, out,
+                                 stats)
         if out:
             seqs = {runtimes[ai].cfg.name: runtimes[ai].sequence
                     for ai, b in zip(due, seq_before, strict=True)
@@ -631,7 +662,8 @@ class Pipeline:
                 self._skip(rt, p.reason)
                 continue
             assert row is not None
-            if self.observer is not None:
+            if self.observer is not None and (self.observes is None
+                                              or self.observes(rt.cfg.name)):
                 self.observer(rt.cfg.name, p.mode, p.w, row[rt.record_index],
                               rt.record_names)
             bundle, index = rt.bundle_for(p.mode)
@@ -649,7 +681,7 @@ class Pipeline:
             if not math.isfinite(score):
                 self._skip(p.rt, "model_error")
                 continue
-            self._step(p.rt, p.w, p.mode, bundle, score, sq, out, stats)
+            self._step(p.rt, p.w.start, p.w.end, p.mode, bundle, score, sq, out, stats)
 
     def _infer(self, items: list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]]
                ) -> dict[int, tuple[float, np.ndarray, Bundle]]:
@@ -677,25 +709,13 @@ class Pipeline:
             z = ((x - mean) / scale).astype(np.float32)
             recon = np.empty_like(z)
             ok = np.ones(len(group), dtype=bool)
-            failed: set[int] = set()
             # Models served by a batched group run in one call per group (batched.py);
-            # the rest, and any group whose call fails, one by one below.
+            # the rest, and any group whose call fails, one by one.
             alone = self._run_batched(group, z, recon) if self._batched.groups \
                 else range(len(group))
-            for j in alone:
-                p, _, b, _ = group[j]
-                if id(b) in failed:
-                    ok[j] = False
-                    self._skip(p.rt, "model_error")
-                    continue
-                try:
-                    b.reconstruct_row(z[j], recon[j])
-                except Exception as exc:  # a model failing at run time fails its asset only
-                    failed.add(id(b))
-                    ok[j] = False
-                    self.log.error(kv("model failed", asset=p.rt.cfg.name,
-                                      error=str(exc)[:200]))
-                    self._skip(p.rt, "model_error")
+            if alone:
+                self._run_alone(alone, [b for _, _, b, _ in group],
+                                [p.rt for p, _, _, _ in group], z, recon, ok)
             err = (z - recon).astype(np.float64) ** 2
             scores = err.mean(axis=1)
             for j, (p, _, b, _) in enumerate(group):
@@ -705,6 +725,26 @@ class Pipeline:
         if self._batched_stale:  # after the timing: a rebuild is not this tick's inference
             self._rebuild_batched()
         return results
+
+    def _run_alone(self, alone: Sequence[int], bundles: Sequence[Bundle],
+                   rts: Sequence[AssetRuntime], z: np.ndarray, recon: np.ndarray,
+                   ok: np.ndarray) -> None:
+        """Reconstruct rows `alone` of `z` into `recon`, each by its own model; a model
+        that raises fails its rows only: they are marked in `ok` and counted skipped."""
+        failed: set[int] = set()
+        for j in alone:
+            b, rt = bundles[j], rts[j]
+            if id(b) in failed:
+                ok[j] = False
+                self._skip(rt, "model_error")
+                continue
+            try:
+                b.reconstruct_row(z[j], recon[j])
+            except Exception as exc:  # a model failing at run time fails its asset only
+                failed.add(id(b))
+                ok[j] = False
+                self.log.error(kv("model failed", asset=rt.cfg.name, error=str(exc)[:200]))
+                self._skip(rt, "model_error")
 
     def _run_batched(self, group: list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]],
                      z: np.ndarray, recon: np.ndarray) -> list[int]:
@@ -738,12 +778,114 @@ class Pipeline:
                    for b in (rt.asset_bundle, *rt.mode_bundles.values()) if b is not None]
         self._batched = BatchedModels(bundles, self.log)
         self._batched_stale = False
+        self._plans.clear()
         if self._batched.n_models:
             self.log.info(kv("batched inference", models=self._batched.n_models,
                              groups=len(self._batched.groups), of=len(bundles)))
 
-    def _step(self, rt: AssetRuntime, w: ClosedWindow, mode: str, bundle: Bundle, score: float,
-              sq: np.ndarray, out: list[OutMessage], stats: TickStats) -> None:
+    # -- the lockstep path ---------------------------------------------------------------
+
+    def _score_lockstep(self, rts: list[AssetRuntime], cut: LockstepCut,
+                        out: list[OutMessage], stats: TickStats) -> None:
+        """Score the windows of one lockstep cut (`agent/core/lockstep.py`): the plain
+        assets' complete windows, one per asset, rows of one matrix.
+
+        What `_score` would do with these windows, in fewer steps: the feature rows are
+        the feature pass's output reshaped (a plain asset's row is its channels'
+        time-domain features in channel order), and what standardising and running
+        the models needs is planned once per set of models (`_plan`)."""
+        t0 = time.perf_counter()
+        n = len(rts)
+        needed = frozenset().union(*{rt.td_needed for rt in rts})
+        rows = block_features(cut.values, needed).reshape(n, cut.n_ch * _NF)
+        self.metrics.feature_seconds.observe(time.perf_counter() - t0)
+        t1 = time.perf_counter()
+        idx = [j for j, rt in enumerate(rts) if rt.asset_bundle is not None]
+        if len(idx) < n:
+            sel = [rts[j] for j in idx]
+            rows = rows[idx]
+        else:
+            sel = rts
+        scores: list[float] = []
+        ok = np.ones(len(sel), dtype=bool)
+        if sel:
+            plan = self._plan(sel)
+            x = rows[:, plan.index] if plan.index is not None else \
+                np.stack([r[i] for r, i in zip(rows, plan.indices, strict=True)])
+            z = ((x - plan.mean) / plan.scale).astype(np.float32)
+            recon = np.empty_like(z)
+            alone = list(plan.alone)
+            for gi, pos, slots in plan.runs:
+                try:
+                    recon[pos] = self._batched.groups[gi].run(z[pos], slots)
+                except Exception as exc:  # the models' own runs decide which asset fails
+                    self.log.error(kv("batched inference failed; running the models one by "
+                                      "one", n=len(slots), error=str(exc)[:200]))
+                    alone.extend(np.arange(len(sel))[pos].tolist())
+            if alone:
+                self._run_alone(sorted(alone), plan.bundles, sel, z, recon, ok)
+            err = (z - recon).astype(np.float64) ** 2
+            scores = err.mean(axis=1).tolist()
+        self.metrics.inference_seconds.observe(time.perf_counter() - t1)
+        if self._batched_stale:
+            self._rebuild_batched()
+        k = 0
+        m_at = self._m
+        for rt, (_, start, end) in zip(rts, cut.items, strict=True):
+            m_at[rt.cfg.name].closed.inc()
+            bundle = rt.asset_bundle
+            if bundle is None:
+                self._skip(rt, "no_model")
+                continue
+            j = k
+            k += 1
+            if not ok[j]:
+                continue
+            score = scores[j]
+            if not math.isfinite(score):
+                self._skip(rt, "model_error")
+                continue
+            self._step(rt, start, end, rt.mode, bundle, score, err[j], out, stats)
+        stats.windows_closed += n
+
+    def _plan(self, rts: list[AssetRuntime]) -> _Plan:
+        """How to score one window of each of `rts` (assets with a model) together,
+        remembered while their models stay the same."""
+        key = tuple([id(rt.model_index) for rt in rts])  # a new model, a new index
+        plan = self._plans.get(key)
+        if plan is not None:
+            return plan
+        bundles = [rt.asset_bundle for rt in rts]
+        assert all(b is not None for b in bundles)
+        bs: list[Bundle] = bundles  # type: ignore[assignment]
+        indices = [rt.model_index for rt in rts]
+        first = indices[0].tobytes()
+        same = all(i.tobytes() == first for i in indices[1:])
+        runs: dict[int, tuple[list[int], list[int]]] = {}
+        alone: list[int] = []
+        for j, b in enumerate(bs):
+            got = self._batched.slot_of(b)
+            if got is None:
+                alone.append(j)
+                if not self._batched.considered(b):  # swapped in since the build
+                    self._batched_stale = True
+            else:
+                js, slots = runs.setdefault(got[0], ([], []))
+                js.append(j)
+                slots.append(got[1])
+        plan = _Plan(bs, indices, indices[0] if same else None,
+                     np.stack([b.meta.scaler_mean for b in bs]),
+                     np.stack([b.meta.scaler_scale for b in bs]),
+                     [(gi, slice(None) if len(js) == len(bs) else np.asarray(js, np.int64),
+                       np.asarray(slots, np.int64)) for gi, (js, slots) in runs.items()],
+                     alone)
+        if len(self._plans) > 16:
+            self._plans.clear()
+        self._plans[key] = plan
+        return plan
+
+    def _step(self, rt: AssetRuntime, start: float, end: float, mode: str, bundle: Bundle,
+              score: float, sq: np.ndarray, out: list[OutMessage], stats: TickStats) -> None:
         meta = bundle.meta
         name = rt.cfg.name
         m = self._m[name]
@@ -754,34 +896,34 @@ class Pipeline:
             rt.shown_threshold = meta.threshold
         stats.windows_scored += 1
         rt.last_score = score
-        rt.last_window_end = w.end
+        rt.last_window_end = end
         tr = rt.detector.step(score, meta.threshold, meta.clear_threshold)
-        end_s = self._time(w.end)
+        end_s = self._time(end)
         model = bundle.model_ref
         if tr is not None:
             src = self.source.for_asset(name)
             base = {"asset": name, "mode": mode,
-                    "window": {"start": self._time(w.start), "end": end_s},
+                    "window": {"start": self._time(start), "end": end_s},
                     "score": round(score, 6), "threshold": meta.threshold,
                     "clear_threshold": meta.clear_threshold, "model": model}
         if tr is Transition.RAISED:
             rt.sequence += 1
-            rt.raised_at = w.end
-            rt.raised_window = (w.start, w.end)
+            rt.raised_at = end
+            rt.raised_window = (start, end)
             data = {**base, "severity": severity_for(score, meta.threshold).value,
                     "contributors": top_contributors(meta.feature_names, sq),
                     "sequence": rt.sequence}
-            self._event(rt, EventType.ANOMALY_RAISED, src, w.end, data, out, Kind.ANOMALY,
-                        id_key=f"{w.start:.3f}")
+            self._event(rt, EventType.ANOMALY_RAISED, src, end, data, out, Kind.ANOMALY,
+                        id_key=f"{start:.3f}")
             stats.events += 1
         elif tr is Transition.CLEARED:
             rt.sequence += 1
             data = {**base, "peak_score": round(rt.detector.peak_score, 6),
                     "raised_at": rfc3339(rt.raised_at) if rt.raised_at else None,
-                    "duration_s": round(w.end - rt.raised_at, 3) if rt.raised_at else None,
+                    "duration_s": round(end - rt.raised_at, 3) if rt.raised_at else None,
                     "sequence": rt.sequence}
-            self._event(rt, EventType.ANOMALY_CLEARED, src, w.end, data, out, Kind.ANOMALY,
-                        id_key=f"{w.start:.3f}")
+            self._event(rt, EventType.ANOMALY_CLEARED, src, end, data, out, Kind.ANOMALY,
+                        id_key=f"{start:.3f}")
             rt.raised_at = None
             stats.events += 1
         state = rt.detector.state  # a StrEnum: it serialises as its value
@@ -871,6 +1013,22 @@ class Pipeline:
                 "limits": limits,
             })
         return {"site": self.cfg.site, "gateway": self.cfg.gateway, "assets": assets}
+
+
+@dataclass(eq=False, slots=True)
+class _Plan:
+    """How a lockstep cut's rows are scored: per row its model and feature positions
+    (`index` when all rows share them), the stacked scalers, the batched runs (group,
+    rows, slots) and the rows whose models run alone. Holding the runtimes' index
+    arrays keeps their ids, the key it is found by, their own."""
+
+    bundles: list[Bundle]
+    indices: list[np.ndarray]
+    index: np.ndarray | None
+    mean: np.ndarray
+    scale: np.ndarray
+    runs: list[tuple[int, slice | np.ndarray, np.ndarray]]
+    alone: list[int]
 
 
 @dataclass(eq=False, slots=True)

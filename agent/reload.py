@@ -252,7 +252,8 @@ class Reloader:
         handler = IngestHandler(new, buffers, d.metrics, d.log)
         with d.loop.paused():
             pipeline = Pipeline(new, buffers, old_pipeline.sink, d.metrics, d.log, runtimes,
-                                observer=old_pipeline.observer)
+                                observer=old_pipeline.observer,
+                                observes=old_pipeline.observes)
             # Samples decoded from here on land in the new buffers (kept assets' buffers
             # are the same objects); subscriptions follow the new config.
             d.ingest.reconfigure(new, handler)

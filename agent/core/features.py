@@ -99,14 +99,15 @@ def _buffer(name: str, shape: tuple[int, int]) -> np.ndarray:
     return b[:size].reshape(shape)
 
 
-def stack_rows(parts: Sequence[np.ndarray]) -> np.ndarray:
-    """Matrices of equal width stacked into one, in a reusable work array of this thread
-    (valid until the next call): the input of one `block_features` pass."""
+def stack_rows(parts: Sequence[np.ndarray], buffer: str = "x") -> np.ndarray:
+    """Matrices of equal width stacked into one, in the reusable work array `buffer` of
+    this thread (valid until the next call with that name): the input of one
+    `block_features` pass. A single part comes back as it is."""
     if len(parts) == 1:
         return parts[0]
     width = parts[0].shape[1]
     n = sum(p.shape[0] for p in parts)
-    return np.concatenate(parts, out=_buffer("x", (n, width)))
+    return np.concatenate(parts, out=_buffer(buffer, (n, width)))
 
 
 def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES) -> np.ndarray:

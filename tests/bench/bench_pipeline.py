@@ -4,7 +4,8 @@
 the daemon), beside a bare reference on the same batch: one vectorised numpy feature
 pass over a [windows x channels, samples] array plus bare onnxruntime `run` per model.
 The watchkeep figure times `Pipeline.tick` (windows closed out of the buffers, sensor
-health, features, inference, detectors, messages); putting the samples into the
+health, features, inference, detectors, messages), with a window observer asked per
+window as the daemon's re-learning manager is; putting the samples into the
 buffers is ingest's work, measured by the ingest benchmarks and printed here apart.
 Rounds alternate so machine noise hits both alike. Run: `python -m tests.bench pipeline`.
 """
@@ -41,6 +42,20 @@ class NullSink:
         self.n += len(msgs)
 
 
+class IdleLearning:
+    """The window observer as the daemon has it between re-learning jobs
+    (`RebaselineManager.observe` / `.collecting`): asked per window, wanting none."""
+
+    def __init__(self) -> None:
+        self.jobs: dict[str, object] = {}
+
+    def collecting(self, asset: str) -> bool:
+        return self.jobs.get(asset) is not None
+
+    def observe(self, *_: object) -> None:  # not called: no job collects
+        return None
+
+
 def build(tmp: Path):
     rng = np.random.default_rng(0)
     names = [f"c{c}.{f}" for c in range(N_CHANNELS) for f in FEATS]
@@ -62,7 +77,9 @@ def build(tmp: Path):
     buffers = Buffers(cfg)
     runtimes = [AssetRuntime.build(a, load_bundle(made[i][0]), None)
                 for i, a in enumerate(cfg.assets)]
-    pipe = Pipeline(cfg, buffers, NullSink(), metrics, logging.getLogger("bench"), runtimes)
+    idle = IdleLearning()
+    pipe = Pipeline(cfg, buffers, NullSink(), metrics, logging.getLogger("bench"), runtimes,
+                    observer=idle.observe, observes=idle.collecting)
     sessions = [ort.InferenceSession(model, sess_options=_session_options(),
                                      providers=["CPUExecutionProvider"])
                 for _, model in made]
