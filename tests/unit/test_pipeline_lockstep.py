@@ -201,3 +201,30 @@ def test_a_failing_batched_run_in_lockstep_falls_back_to_each_model(
         assert (x is None) == (y is None)
         if x is not None:
             np.testing.assert_allclose(x, y, rtol=1e-5)
+
+
+def test_an_observed_asset_takes_the_general_path_and_the_rest_are_not_observed(
+        tmp_path: Path) -> None:
+    """`observes` picks the assets whose windows the observer gets (with the feature
+    row); the others are neither observed nor kept from the lockstep path."""
+    (pipe, bufs, _), _ = _twins(tmp_path)
+    seen: list[tuple[str, float, int]] = []
+    pipe.observer = lambda asset, mode, w, row, names: seen.append((asset, w.start, row.size))
+    pipe.observes = lambda asset: asset == "P0"
+    taken: list[str] = []
+    score_lockstep = pipe._score_lockstep
+
+    def counted(rts, cut, out, stats):  # type: ignore[no-untyped-def]
+        taken.extend(rt.cfg.name for rt in rts)
+        score_lockstep(rts, cut, out, stats)
+
+    pipe._score_lockstep = counted  # type: ignore[method-assign]
+    rng = np.random.default_rng(3)
+    for k in range(4):
+        for ai, name in enumerate(FLEET):
+            for ci, r in enumerate(FLEET[name][0]):
+                bufs.by_asset[ai][ci].append_block(T0 + k + np.arange(r) / r,
+                                                   rng.normal(0.0, 1.0, r), T0 + k + 1.0)
+        pipe.tick(T0 + k + 2.0)
+    assert seen == [("P0", T0 + k, 3 * len(FEATS)) for k in range(4)]
+    assert "P0" not in taken and {"P1", "Q0", "N0"} <= set(taken)
