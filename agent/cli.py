@@ -48,7 +48,7 @@ def _channel_checks(ch: Any) -> str:
 def _model_line(asset: Any, path: Any, label: str) -> tuple[str, bool]:
     from agent.bundle import load_bundle
     from agent.errors import BundleError
-    from agent.pipeline import check_bundle_fits
+    from agent.runtime import check_bundle_fits
 
     if path is None:
         return f"    {label}: none (windows are not scored)", True

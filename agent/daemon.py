@@ -34,8 +34,9 @@ from agent.metrics import HttpServer, Metrics, TickGauges
 from agent.mqtt_commands import CommandReceiver
 from agent.notify import MAX_WATCHDOG_INTERVAL_S, Notifier
 from agent.outbox import Outbox
-from agent.pipeline import AssetRuntime, Pipeline, Sink
+from agent.pipeline import Pipeline, Sink
 from agent.reload import Reloader
+from agent.runtime import AssetRuntime
 from agent.upstream import Upstream
 
 

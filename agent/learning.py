@@ -63,15 +63,15 @@ from agent.errors import WatchkeepError
 from agent.logs import kv
 from agent.messages import Kind, OutMessage
 from agent.models import ModelStore, read_rehearsal
-from agent.pipeline import AssetRuntime, Sink, check_bundle_fits, feature_layout
+from agent.pipeline import Sink
 from agent.rebaseline import MIN_NEW_WINDOWS, RebaselineError
 from agent.rebaseline_config import RebaselineConfig
 from agent.rebaseline_worker import JOB_JSON, RESULT_JSON, WINDOWS_NPZ, write_json
+from agent.runtime import DEFAULT_MODE, AssetRuntime, check_bundle_fits, feature_layout
 
 if TYPE_CHECKING:
     from agent.daemon import Daemon
 
-DEFAULT_MODE = "default"
 UNKNOWN_MODES = ("unknown", "")
 # The worker runs numpy on one core: OpenBLAS/MKL/OpenMP would otherwise start a thread
 # per core and compete with detection.

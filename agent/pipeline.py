@@ -19,6 +19,16 @@ Per closed window, in time order for each asset:
    skip reasons counted in `watchkeep_windows_skipped_total` are `no_data`,
    `sensor_fault`, `incomplete`, `unknown_mode`, `not_scored` (a mode marked
    `scored: false`), `settling`, `no_model` and `model_error`, first match wins.
+
+Two ways through a tick, with the same result (a twin-pipeline test holds them to
+it): the general path above, window by window, and the lockstep path for the common
+case. A *plain* asset (no health checks or staleness, modes, spectral features or
+limits; `AssetRuntime.plain`) whose channels share one rate and hold exactly their
+next tumbling window, in step, is cut together with the others like it into one
+matrix (`agent/core/lockstep.py`); its feature row is a slice of one feature pass, and
+standardising and the batched model runs are planned once per set of models. Only
+the score, the detector step and the messages are left per window. An asset the
+window observer wants (`observes`) takes the general path.
 """
 
 from __future__ import annotations
@@ -28,7 +38,7 @@ import logging
 import math
 import time
 from collections.abc import Callable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Protocol
 
 import numpy as np
@@ -36,24 +46,23 @@ import orjson
 from prometheus_client import Counter, Gauge
 
 from agent.batched import BatchedModels
-from agent.bundle import Bundle, load_bundle
-from agent.config import FEATURES, AssetConfig, Config
+from agent.bundle import Bundle
+from agent.config import FEATURES, Config
 from agent.core.detector import Detector, State, Transition
 from agent.core.events import EventType, Source, make_event, rfc3339, severity_for, top_contributors
-from agent.core.features import FEATURE_INDEX, block_features, segment_features, stack_rows
-from agent.core.health import Change, ChannelHealth, HealthChange, HealthLimits
+from agent.core.features import block_features, segment_features, stack_rows
+from agent.core.health import Change, HealthChange
 from agent.core.limits import ZONES, FeatureLimits, LimitRise, ZoneLimits, zone_of
 from agent.core.lockstep import LockstepCut
-from agent.core.modes import UNKNOWN_MODE, ModeTracker
+from agent.core.modes import UNKNOWN_MODE
 from agent.core.spectral import spectral_features
-from agent.core.windows import Block, ClosedWindow, WindowAssembler
-from agent.errors import BundleError
+from agent.core.windows import Block, ClosedWindow
 from agent.ingest import AssetInbox, Buffers, close_inboxes
 from agent.logs import kv
 from agent.messages import Kind, OutMessage
 from agent.metrics import Metrics, PlainSeries
+from agent.runtime import AssetRuntime
 
-DEFAULT_MODE = "default"
 _NF = len(FEATURES)
 
 
@@ -68,201 +77,6 @@ class Sink(Protocol):
 WindowObserver = Callable[[str, str, ClosedWindow, np.ndarray, tuple[str, ...]], None]
 # Whether the observer wants an asset's windows now (asked per window; None: always).
 WindowWanted = Callable[[str], bool]
-
-
-def asset_feature_names(asset: AssetConfig) -> tuple[str, ...]:
-    """Every feature the asset's config asks for, `<channel>.<feature>`, in config order
-    (each channel's time-domain features, then its spectral ones)."""
-    return tuple(f"{ch.name}.{f}" for ch in asset.channels for f in ch.all_features)
-
-
-def feature_layout(asset: AssetConfig) -> dict[str, int]:
-    """Position of every computable feature in a window's full row: per channel, all
-    FEATURES (time domain), then the channel's spectral features."""
-    pos: dict[str, int] = {}
-    off = 0
-    for ch in asset.channels:
-        for f, i in FEATURE_INDEX.items():
-            pos[f"{ch.name}.{f}"] = off + i
-        off += _NF
-        for f in ch.spectral_features:
-            pos[f"{ch.name}.{f}"] = off
-            off += 1
-    return pos
-
-
-def _full_index(asset: AssetConfig, names: Sequence[str]) -> np.ndarray:
-    """Positions of `names` in the asset's full feature row."""
-    layout = feature_layout(asset)
-    return np.asarray([layout[n] for n in names], dtype=np.int64)
-
-
-def load_mode_bundles(asset: AssetConfig, logger: logging.Logger | None = None
-                      ) -> tuple[dict[str, Bundle], dict[str, str]]:
-    """The bundles of the asset's modes (`modes.states.<mode>.bundle`), and why any failed."""
-    bundles: dict[str, Bundle] = {}
-    errors: dict[str, str] = {}
-    if asset.modes is None:
-        return bundles, errors
-    for m in asset.modes.states:
-        if m.bundle is None:
-            continue
-        try:
-            b = load_bundle(m.bundle)
-        except BundleError as exc:
-            errors[m.name] = str(exc)
-            if logger is not None:
-                logger.error(kv("mode bundle rejected; the mode runs without a model",
-                                asset=asset.name, mode=m.name, error=str(exc)))
-            continue
-        why = check_bundle_fits(asset, b)
-        if why is not None:
-            errors[m.name] = why
-            if logger is not None:
-                logger.error(kv("mode bundle does not fit", asset=asset.name, mode=m.name,
-                                error=why))
-            continue
-        bundles[m.name] = b
-    return bundles, errors
-
-
-def check_bundle_fits(asset: AssetConfig, bundle: Bundle) -> str | None:
-    """Why a bundle cannot serve an asset (feature names it cannot compute), or None."""
-    have = set(asset_feature_names(asset))
-    missing = [n for n in bundle.meta.feature_names if n not in have]
-    if missing:
-        shown = ", ".join(missing[:5]) + (" ..." if len(missing) > 5 else "")
-        return (f"the model needs features this asset's config does not compute: {shown} "
-                f"(add them to the channels' `features`)")
-    return None
-
-
-@dataclass(slots=True)
-class AssetRuntime:
-    """Everything the pipeline keeps for one asset between ticks."""
-
-    cfg: AssetConfig
-    assembler: WindowAssembler
-    detector: Detector
-    bundle: Bundle | None = None
-    bundle_error: str | None = None
-    model_index: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))
-    record_index: np.ndarray = field(default_factory=lambda: np.empty(0, np.int64))
-    record_names: tuple[str, ...] = ()
-    mode: str = DEFAULT_MODE
-    sequence: int = 0
-    last_score: float | None = None
-    last_window_end: float | None = None
-    last_event: dict[str, Any] | None = None
-    raised_at: float | None = None
-    raised_window: tuple[float, float] | None = None
-    # Machine know-how: per-mode bundles, mode tracking, sensor health, limits.
-    asset_bundle: Bundle | None = None
-    mode_bundles: dict[str, Bundle] = field(default_factory=dict)
-    mode_bundle_errors: dict[str, str] = field(default_factory=dict)
-    mode_index: dict[str, np.ndarray] = field(default_factory=dict)
-    modes: ModeTracker | None = None
-    settling: bool = False
-    health: list[ChannelHealth] = field(default_factory=list)
-    # (channel index, row position, monitor) for every configured limit and ISO zone
-    limits: list[tuple[int, int, FeatureLimits | ZoneLimits]] = field(default_factory=list)
-    last_velocity_mm_s: dict[str, float] = field(default_factory=dict)
-    started_s: float | None = None
-    spectral: list[int] = field(default_factory=list)  # channels with spectral features
-    speed_index: int | None = None
-    mode_index_ch: int | None = None
-    velocity_at: list[tuple[int, int]] = field(default_factory=list)  # (channel, row position)
-    stale_channels: list[int] = field(default_factory=list)  # channels with `stale_s`
-    checked: list[int] = field(default_factory=list)  # channels with any health check
-    # What the threshold and anomalous gauges were last set to by `_step` (None: unknown).
-    shown_threshold: float | None = None
-    shown_anomalous: int | None = None
-    # Time-domain features any consumer of the row reads (config, limits; models are
-    # checked to need no others): the feature pass computes only these.
-    td_needed: frozenset[str] = frozenset()
-    # Nothing to judge per window but its score: no health checks or staleness, modes,
-    # spectral features or limits (from the config; `Pipeline` takes such assets'
-    # windows through its lockstep path when their channels allow).
-    plain: bool = False
-
-    @classmethod
-    def build(cls, cfg: AssetConfig, bundle: Bundle | None, bundle_error: str | None,
-              mode_bundles: tuple[dict[str, Bundle], dict[str, str]] | None = None
-              ) -> AssetRuntime:
-        """A fresh runtime. The per-mode bundles are loaded from the config unless given."""
-        rt = cls(cfg=cfg,
-                 assembler=WindowAssembler(cfg.window, tuple(c.rate_hz for c in cfg.channels)),
-                 detector=Detector(cfg.detector))
-        rt.record_names = asset_feature_names(cfg)
-        rt.record_index = _full_index(cfg, rt.record_names)
-        rt.mode_bundles, rt.mode_bundle_errors = (mode_bundles if mode_bundles is not None
-                                                  else load_mode_bundles(cfg))
-        rt.mode_index = {m: _full_index(cfg, b.meta.feature_names)
-                         for m, b in rt.mode_bundles.items()}
-        chan_pos = {c.name: i for i, c in enumerate(cfg.channels)}
-        if cfg.modes is not None:
-            rt.modes = ModeTracker(cfg.modes)
-            rt.mode = UNKNOWN_MODE
-            rt.mode_index_ch = chan_pos.get(cfg.modes.channel)
-        rt.speed_index = chan_pos.get(cfg.speed_channel) if cfg.speed_channel else None
-        rt.health = [ChannelHealth(HealthLimits(c.min_value, c.max_value, c.stale_s,
-                                                c.flatline_windows, c.max_rate_per_s))
-                     for c in cfg.channels]
-        rt.spectral = [i for i, c in enumerate(cfg.channels) if c.spectrum is not None]
-        rt.stale_channels = [i for i, c in enumerate(cfg.channels) if c.stale_s is not None]
-        rt.checked = [i for i, h in enumerate(rt.health) if not h.limits.passive]
-        td = {f for c in cfg.channels for f in c.all_features if f in FEATURE_INDEX}
-        td |= {lim.feature for c in cfg.channels for lim in c.limits
-               if lim.feature in FEATURE_INDEX}
-        rt.td_needed = frozenset(td)
-        layout = feature_layout(cfg)
-        rt.velocity_at = [(i, layout[f"{c.name}.velocity_rms_mm_s"])
-                          for i, c in enumerate(cfg.channels)
-                          if c.spectrum is not None and c.spectrum.velocity_rms]
-        for i, c in enumerate(cfg.channels):
-            for lim in c.limits:
-                rt.limits.append((i, layout[f"{c.name}.{lim.feature}"], FeatureLimits(lim)))
-        if cfg.iso10816 is not None:
-            for cname in cfg.iso10816.channels:
-                feat = f"{cname}.velocity_rms_mm_s"
-                rt.limits.append((chan_pos[cname], layout[feat], ZoneLimits(feat, cfg.iso10816)))
-        rt.plain = not (rt.checked or rt.stale_channels or rt.modes is not None
-                        or rt.mode_bundles or rt.spectral or rt.limits or rt.velocity_at)
-        rt.set_bundle(bundle, bundle_error)
-        return rt
-
-    def set_bundle(self, bundle: Bundle | None, error: str | None) -> None:
-        """Set the asset-level bundle (serves every mode without a bundle of its own)."""
-        if bundle is not None and error is None:
-            error = check_bundle_fits(self.cfg, bundle)
-        if error is not None:
-            bundle = None
-        self.asset_bundle = bundle
-        # `bundle` is what the metrics and readiness look at: the asset's model, or when
-        # only modes have models, the first of them.
-        self.bundle = bundle if bundle is not None else next(iter(self.mode_bundles.values()),
-                                                              None)
-        self.bundle_error = error
-        self.model_index = (_full_index(self.cfg, bundle.meta.feature_names)
-                            if bundle is not None else np.empty(0, np.int64))
-        self.detector.reset()
-        self.raised_at = None
-
-    def bundle_for(self, mode: str) -> tuple[Bundle | None, np.ndarray]:
-        """The bundle that scores windows in `mode`, and its positions in the full row."""
-        b = self.mode_bundles.get(mode)
-        if b is not None:
-            return b, self.mode_index[mode]
-        return self.asset_bundle, self.model_index
-
-    @property
-    def faulty_channels(self) -> list[str]:
-        return [c.name for c, h in zip(self.cfg.channels, self.health, strict=True)
-                if h.faulty]
-
-    @property
-    def state(self) -> State:
-        return self.detector.state
 
 
 @dataclass(frozen=True)

@@ -36,7 +36,8 @@ from agent.config import AssetConfig, Config, load_config
 from agent.errors import BundleError, WatchkeepError
 from agent.ingest import Buffers, ChannelBuffer, IngestHandler, asset_buffers
 from agent.logs import kv
-from agent.pipeline import AssetRuntime, Pipeline, check_bundle_fits
+from agent.pipeline import Pipeline
+from agent.runtime import AssetRuntime, check_bundle_fits
 
 if TYPE_CHECKING:
     from agent.daemon import Daemon

@@ -31,7 +31,8 @@ from agent.ingest import Buffers, Ingest, IngestHandler
 from agent.logs import setup_logging
 from agent.messages import OutMessage
 from agent.metrics import Metrics
-from agent.pipeline import AssetRuntime, Pipeline
+from agent.pipeline import Pipeline
+from agent.runtime import AssetRuntime
 
 RAW_NAME = "raw.jsonl"
 

@@ -26,7 +26,8 @@ from agent.config import Config, load_config
 from agent.ingest import Buffers, IngestHandler
 from agent.messages import Kind, OutMessage
 from agent.metrics import Metrics
-from agent.pipeline import AssetRuntime, Pipeline, WindowObserver
+from agent.pipeline import Pipeline, WindowObserver
+from agent.runtime import AssetRuntime
 
 
 @dataclass

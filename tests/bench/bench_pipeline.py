@@ -25,7 +25,8 @@ from agent.config import parse_config
 from agent.daemon import freeze_heap
 from agent.ingest import Buffers
 from agent.metrics import Metrics
-from agent.pipeline import AssetRuntime, Pipeline
+from agent.pipeline import Pipeline
+from agent.runtime import AssetRuntime
 from tests.bench.common import alternate, median, quiet_bundle, save, table
 
 N_ASSETS, N_CHANNELS, N_SAMPLES = 200, 8, 100

@@ -19,7 +19,8 @@ from agent.core.features import FEATURE_INDEX, segment_features
 from agent.core.windows import ClosedWindow
 from agent.ingest import Buffers
 from agent.metrics import Metrics
-from agent.pipeline import AssetRuntime, Pipeline
+from agent.pipeline import Pipeline
+from agent.runtime import AssetRuntime
 
 FEATS = ["mean", "std", "rms", "peak_to_peak", "kurtosis", "skewness"]
 

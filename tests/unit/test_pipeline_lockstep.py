@@ -26,7 +26,8 @@ from agent.commission.export import export_dense, pca_autoencoder
 from agent.config import parse_config
 from agent.ingest import Buffers
 from agent.metrics import Metrics
-from agent.pipeline import AssetRuntime, Pipeline
+from agent.pipeline import Pipeline
+from agent.runtime import AssetRuntime
 
 FEATS = ["mean", "std", "rms", "peak_to_peak"]
 RATE = 20
