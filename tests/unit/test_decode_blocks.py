@@ -75,6 +75,39 @@ def test_block_decodes_as_the_numpy_decoder_did(values: list[Any], t0: float,
         assert bits(got[0]) == bits(want[0]) and bits(got[1]) == bits(want[1])
 
 
+def old_rule(values: list[Any]) -> tuple[str, str] | None:
+    """The verdict the decoder gave before it skipped the type look for payloads with no
+    `true`/`false`: every element's type first, then overflow and finiteness."""
+    if not {type(v) for v in values} <= {int, float}:
+        return ("wrong_type", "'values' is not a flat list of numbers")
+    ref = reference(values, 0.0, 1.0)
+    return ref if isinstance(ref[0], str) else None  # type: ignore[return-value]
+
+
+ANY_ELEMENT = (ELEMENT | st.booleans() | st.none() | st.text(max_size=3)
+               | st.lists(st.integers(-3, 3), max_size=2)
+               | st.dictionaries(st.sampled_from(["v", "true"]), st.booleans(), max_size=1))
+
+
+@settings(max_examples=500, deadline=None)
+@given(values=st.lists(ANY_ELEMENT, min_size=1, max_size=12),
+       extra=st.sampled_from([None, "true", "false", True, "a true story"]))
+def test_element_types_give_the_verdict_they_always_did(values: list[Any],
+                                                        extra: Any) -> None:
+    """Strings, null, bools, lists and objects among the samples are a wrong type, and
+    it is found whether or not the type look is skipped (a `true` literal elsewhere in
+    the payload, or none at all); overflow and NaN keep their own reasons."""
+    doc: dict[str, Any] = {"values": values}
+    if extra is not None:
+        doc["note"] = extra
+    got = outcome(json.dumps(doc).encode())
+    want = old_rule(_loads_relaxed(json.dumps(values).encode()))
+    if want is None:
+        assert isinstance(got[0], np.ndarray)
+    else:
+        assert got == want
+
+
 @pytest.mark.parametrize(("values", "detail"), [
     ([1.0, float("nan"), 2.0], "1 samples"),
     ([float("inf"), float("-inf")], "2 samples"),
