@@ -231,17 +231,16 @@ def _decode(payload: bytes, ch: ChannelConfig, arrival: float, max_payload_bytes
     # would take true as 1.0; a single reading that is a bool is a wrong type, so a block
     # element is one too. JSON makes a bool only from a `true` or `false` literal, so the
     # element types are looked at (4-5 us per 256 samples) only when the payload holds one.
-    if _may_hold_bool(payload) and not set(map(type, values)) <= _NUMBER_TYPES:
-        raise Rejected(Reason.WRONG_TYPE, f"{ch.values_field!r} is not a flat list of numbers")
+    not_numbers = f"{ch.values_field!r} is not a flat list of numbers"
+    if _may_hold_bool(payload) and not _all_numbers(values):
+        raise Rejected(Reason.WRONG_TYPE, not_numbers)
     try:
         arr = array("d", values)
     except TypeError:
-        raise Rejected(Reason.WRONG_TYPE,
-                       f"{ch.values_field!r} is not a flat list of numbers") from None
+        raise Rejected(Reason.WRONG_TYPE, not_numbers) from None
     except OverflowError:  # an integer literal beyond float range (or a wrong type after it)
-        if not set(map(type, values)) <= _NUMBER_TYPES:
-            raise Rejected(Reason.WRONG_TYPE,
-                           f"{ch.values_field!r} is not a flat list of numbers") from None
+        if not _all_numbers(values):
+            raise Rejected(Reason.WRONG_TYPE, not_numbers) from None
         raise Rejected(Reason.NON_FINITE, f"{ch.values_field!r} overflows") from None
     if not _sum_is_finite(values):
         # A NaN or infinity makes the sum non-finite, but so can finite values adding
@@ -254,10 +253,14 @@ def _decode(payload: bytes, ch: ChannelConfig, arrival: float, max_payload_bytes
 
 def _may_hold_bool(payload: bytes) -> bool:
     """False only when the JSON text has no `true` or `false` literal, so no bool in it."""
-    try:
-        return b"true" in payload or b"false" in payload
-    except TypeError:  # not bytes-like: assume it may
-        return True
+    if not isinstance(payload, bytes | bytearray):
+        return True  # `b"true" in memoryview(...)` compares single bytes: always False
+    return b"true" in payload or b"false" in payload
+
+
+def _all_numbers(values: list[Any]) -> bool:
+    """Every element an int or a float (not a bool, which is an int subclass)."""
+    return set(map(type, values)) <= _NUMBER_TYPES
 
 
 def _sum_is_finite(values: list[int | float]) -> bool:

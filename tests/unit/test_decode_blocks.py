@@ -162,3 +162,12 @@ def test_batch_timestamps_are_each_blocks_own(blocks: list[tuple[float, float, i
     one_by_one = np.concatenate([block_timestamps(t, r, n) for t, r, n in blocks])
     assert bits(together) == bits(one_by_one)
     assert all(math.isfinite(t) for t in together)
+
+
+def test_a_bool_in_a_memoryview_payload_is_still_a_wrong_type() -> None:
+    """The no-literal shortcut is only taken for bytes: `in` on a memoryview compares
+    single bytes and would never find `true`."""
+    with pytest.raises(Rejected) as rej:
+        decode_message(memoryview(b'{"values": [1.5, true]}'), BATCH, ARRIVAL,  # type: ignore[arg-type]
+                       **LIMITS)
+    assert rej.value.reason.value == "wrong_type"
