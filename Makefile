@@ -21,8 +21,9 @@ test: $(STAMP) check-mosquitto
 	$(BIN)/ruff check agent simulator tests
 	$(BIN)/pytest -q
 
+# DURATION (seconds of wall time) and DEMO_ARGS (e.g. --plain --summary-json F) are optional.
 demo: $(STAMP)
-	$(BIN)/watchkeep demo --duration $${DURATION:-180}
+	$(BIN)/watchkeep demo --duration $${DURATION:-180} $${DEMO_ARGS:-}
 
 bench: $(STAMP) check-mosquitto
 	$(BIN)/python -m tests.bench

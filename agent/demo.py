@@ -138,16 +138,17 @@ def demo_config(state_dir: Path, port: int, models: Models | None = None) -> Con
     """`config/demo/watchkeep.yaml` with the demo's broker port, state dir and bundles
     (the asset's `bundle`, or each mode's own for assets with operating modes)."""
     doc = yaml.safe_load((DEMO_DIR / "watchkeep.yaml").read_text(encoding="utf-8"))
-    doc["state_dir"] = str(state_dir)
+    # parse_config resolves relative paths against config/demo/: hand it absolute ones.
+    doc["state_dir"] = str(state_dir.resolve())
     doc["local_broker"] = {**doc.get("local_broker", {}), "port": port}
     doc["upstream_broker"] = {**doc.get("upstream_broker", {}), "port": port}
     doc["http"] = {**doc.get("http", {}), "port": 0}
     for a in doc["assets"]:
         for mode, path in (models or {}).get(a["name"], {}).items():
             if "modes" in a:
-                a["modes"]["states"][mode]["bundle"] = str(path)
+                a["modes"]["states"][mode]["bundle"] = str(path.resolve())
             else:
-                a["bundle"] = str(path)
+                a["bundle"] = str(path.resolve())
     return parse_config(doc, DEMO_DIR, DEMO_DIR / "watchkeep.yaml")
 
 
@@ -360,6 +361,9 @@ def run_demo(duration_s: float, state_dir: Path, out: TextIO, *,
     from simulator.publish import publish
     from simulator.scenario import labels, load_scenario
 
+    # The demo config resolves relative paths against config/demo/, not the working
+    # directory: every path handed to it must be absolute.
+    state_dir = state_dir.expanduser().resolve()
     state_dir.mkdir(parents=True, exist_ok=True)
     interactive = out.isatty() if interactive is None else interactive
     models = ensure_models(state_dir, out, train_s)
