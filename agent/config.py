@@ -22,6 +22,14 @@ from agent.rebaseline_config import RebaselineConfig, check_mqtt_commands, parse
 FEATURES = ("mean", "std", "min", "max", "rms", "peak_to_peak", "crest_factor",
             "skewness", "kurtosis")
 DEFAULT_FEATURES = ("mean", "std", "min", "max", "rms")
+# A channel that delivers few samples per window gets only its level and spread by
+# default: the extremes and higher moments of a handful of samples are mostly sampling
+# noise (the standard error of a sample kurtosis is about sqrt(24/n): 1.1 for n = 20
+# against a Gaussian's 3; textbook, e.g. Kendall & Stuart). Below this many samples per
+# window min/max/rms add noise (rms of a level-type reading is its mean) rather than
+# information. The cut at 100 (SE of kurtosis ~0.5) is common practice, no source.
+FEW_SAMPLES_FEATURES = ("mean", "std")
+FEW_SAMPLES_PER_WINDOW = 100
 WAVEFORM_DEFAULT_FEATURES = ("rms", "std", "peak_to_peak", "crest_factor", "kurtosis")
 NAME_RE = re.compile(r"^[A-Za-z0-9][A-Za-z0-9_.-]{0,63}$")
 
@@ -189,6 +197,12 @@ class AssetConfig:
     speed_channel: str | None = None
     modes: ModesConfig | None = None
     iso10816: IsoConfig | None = None
+
+    @property
+    def window_detector(self) -> DetectorParams:
+        """`detector` as applied to this asset's windows (hopping windows stretch the
+        raise rule over the same span of time: `DetectorParams.over_windows`)."""
+        return self.detector.over_windows(self.window.length_s, self.window.hop_s)
 
     def channel(self, name: str) -> ChannelConfig:
         for ch in self.channels:
@@ -449,7 +463,8 @@ def _window(r: _Reader, node: Any, path: str) -> WindowConfig:
     return WindowConfig(length, hop, late, timeout, cov)
 
 
-def _channel(r: _Reader, name: Any, node: Any, path: str) -> ChannelConfig | None:
+def _channel(r: _Reader, name: Any, node: Any, path: str,
+             window_length_s: float | None = None) -> ChannelConfig | None:
     if not _name(name):
         r.bad(path, "a channel name of letters, digits, '_', '.', '-' (at most 64)", name)
     keys = ("topic", "decoder", "rate_hz", "features", "unit", "ts_field", "value_field",
@@ -466,8 +481,11 @@ def _channel(r: _Reader, name: Any, node: Any, path: str) -> ChannelConfig | Non
     decoder = Decoder(dec) if dec in {d.value for d in Decoder} else Decoder.JSON
     rate = r.get(n, "rate_hz", path, "num", _REQUIRED, lambda v: 0 < v <= 1e6,
                  "a sample rate in Hz, > 0 and at most 1000000")
-    default_feats = WAVEFORM_DEFAULT_FEATURES if decoder is Decoder.JSON_BATCH \
-        else DEFAULT_FEATURES
+    default_feats: tuple[str, ...] = WAVEFORM_DEFAULT_FEATURES \
+        if decoder is Decoder.JSON_BATCH else DEFAULT_FEATURES
+    if (decoder is not Decoder.JSON_BATCH and isinstance(rate, int | float)
+            and window_length_s is not None and rate * window_length_s < FEW_SAMPLES_PER_WINDOW):
+        default_feats = FEW_SAMPLES_FEATURES
     feats = r.get(n, "features", path, "list", list(default_feats))
     for i, f in enumerate(feats):
         if f not in FEATURES:
@@ -675,16 +693,16 @@ def _asset(r: _Reader, node: Any, path: str) -> AssetConfig | None:
                                "speed_channel", "modes", "iso10816"))
     name = r.get(n, "name", path, "str", _REQUIRED, _name,
                  "an asset name of letters, digits, '_', '.', '-' (at most 64)")
+    window = _window(r, n.get("window"), f"{path}.window")
     chans_node = n.get("channels")
     channels: list[ChannelConfig] = []
     if not isinstance(chans_node, dict) or not chans_node:
         r.bad(f"{path}.channels", "a mapping of channel name to channel settings", chans_node)
     else:
         for cname, cnode in chans_node.items():
-            ch = _channel(r, cname, cnode, f"{path}.channels.{cname}")
+            ch = _channel(r, cname, cnode, f"{path}.channels.{cname}", window.length_s)
             if ch is not None:
                 channels.append(ch)
-    window = _window(r, n.get("window"), f"{path}.window")
     dpath = f"{path}.detector"
     d = r.mapping(n.get("detector"), dpath, ("raise_k", "raise_n", "clear_m"))
     pos = "an integer >= 1"

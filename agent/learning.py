@@ -443,7 +443,7 @@ class RebaselineManager:
                 os.fsync(fh.fileno())
             os.replace(tmp, job_dir / WINDOWS_NPZ)
             rt = self._runtime(job.asset)
-            det = rt.cfg.detector
+            det = rt.cfg.window_detector
             c = self.cfg
             write_json(job_dir / JOB_JSON, {
                 "asset": job.asset, "mode": job.slot_mode,

@@ -285,7 +285,7 @@ class Pipeline:
         rt.mode = mode
         if rt.detector.state is State.NORMAL:
             # Windows scored in the old mode must not count toward a raise in the new one.
-            rt.detector = Detector(rt.cfg.detector)
+            rt.detector = Detector(rt.cfg.window_detector)
 
     def _sensor_event(self, rt: AssetRuntime, ci: int, change: HealthChange, time_s: float,
                       key: str, w: ClosedWindow | None, out: list[OutMessage],

@@ -153,7 +153,7 @@ class AssetRuntime:
         """A fresh runtime. The per-mode bundles are loaded from the config unless given."""
         rt = cls(cfg=cfg,
                  assembler=WindowAssembler(cfg.window, tuple(c.rate_hz for c in cfg.channels)),
-                 detector=Detector(cfg.detector))
+                 detector=Detector(cfg.window_detector))
         rt.record_names = asset_feature_names(cfg)
         rt.record_index = _full_index(cfg, rt.record_names)
         rt.mode_bundles, rt.mode_bundle_errors = (mode_bundles if mode_bundles is not None

@@ -27,9 +27,11 @@ import numpy as np
 from agent.commission.export import DenseLayer, forward_numpy
 
 STD_FLOOR_ABS = 1e-6
-# A feature that barely moves in normal data (a setpoint, a quantised temperature)
-# must not give z-scores in the thousands for a change at sensor resolution; a floor
-# of 0.1 % of the feature's magnitude keeps such features meaningful but bounded.
+# A feature that barely moves in normal data (a setpoint, a quantised temperature, a
+# flow reading that sat on one value) must not give z-scores in the thousands for a
+# change at sensor resolution: a floor of 0.1 % of the feature's magnitude keeps such
+# features meaningful but bounded (1 % was tried: it hid a pump's 1.5 % flow drop).
+# `block_spread` adds a floor from the recording itself.
 STD_FLOOR_REL = 1e-3
 
 
@@ -46,13 +48,31 @@ class Scaler:
 
 
 def fit_scaler(x: np.ndarray, *, floor_abs: float = STD_FLOOR_ABS,
-               floor_rel: float = STD_FLOOR_REL) -> Scaler:
-    """Per-feature mean and floored standard deviation of rows `x` [N, F]."""
+               floor_rel: float = STD_FLOOR_REL, floor: np.ndarray | None = None) -> Scaler:
+    """Per-feature mean and floored standard deviation of rows `x` [N, F]; `floor`, if
+    given, is a further per-feature floor (see `block_spread`)."""
     x = np.asarray(x, np.float64)
     mean = x.mean(axis=0)
     std = x.std(axis=0)
     scale = np.maximum(std, np.maximum(floor_abs, floor_rel * np.abs(mean)))
+    if floor is not None:
+        scale = np.maximum(scale, np.asarray(floor, np.float64))
     return Scaler(mean=mean, scale=scale, std=std)
+
+
+def block_spread(x: np.ndarray, blocks: int = 10) -> np.ndarray:
+    """The spread of a recording's block means: rows `x` [N, F] in time order cut into
+    `blocks` equal runs, the standard deviation of their means per feature.
+
+    A floor for the scaler: a feature that held still inside each stretch of the
+    recording but moved between stretches has a within-window spread far below its
+    real normal movement; standardised by it, its first change would own the score."""
+    x = np.asarray(x, np.float64)
+    b = min(blocks, x.shape[0])
+    if b < 2:
+        return np.zeros(x.shape[1])
+    means = np.stack([part.mean(axis=0) for part in np.array_split(x, b)])
+    return np.asarray(means.std(axis=0, ddof=1))
 
 
 def default_widths(n_features: int) -> list[int]:
@@ -155,7 +175,8 @@ def _to_layers(params: list[list[np.ndarray]]) -> list[DenseLayer]:
 
 
 def fit_autoencoder(x_train: np.ndarray, x_val: np.ndarray,
-                    config: TrainConfig = TrainConfig()) -> FitResult:
+                    config: TrainConfig = TrainConfig(), *,
+                    scale_floor: np.ndarray | None = None) -> FitResult:
     """Fit on raw feature rows `x_train`, early-stop on `x_val`; same seed -> same weights.
 
     The scaler is fitted on `x_train` only. Adam (Kingma & Ba 2015) on mini-batches
@@ -170,7 +191,7 @@ def fit_autoencoder(x_train: np.ndarray, x_val: np.ndarray,
         raise ValueError("need at least 2 training rows and 1 validation row")
     f = x_train.shape[1]
     widths = tuple(config.widths) if config.widths is not None else tuple(default_widths(f))
-    scaler = fit_scaler(x_train)
+    scaler = fit_scaler(x_train, floor=scale_floor)
     z_tr = scaler.transform(x_train)
     z_va = scaler.transform(x_val)
     rng = np.random.default_rng(config.seed)
@@ -220,3 +241,40 @@ def reconstruction_scores(layers: Sequence[DenseLayer], scaler: Scaler,
     """Score per row in numpy: mean squared error of the standardised features."""
     z = scaler.transform(x)
     return np.mean((forward_numpy(layers, z) - z) ** 2, axis=1)
+
+
+# The share of the standardised variance a linear model keeps: the usual rule for the
+# number of principal components (Jolliffe, "Principal Component Analysis", 2nd ed.,
+# 6.1.1, which gives 70-90 %; the upper end, so faults off the normal subspace show).
+PCA_VARIANCE = 0.90
+
+
+def fit_pca(x_train: np.ndarray, x_val: np.ndarray, *,
+            scale_floor: np.ndarray | None = None,
+            variance: float = PCA_VARIANCE) -> FitResult:
+    """A linear autoencoder: the principal subspace of the standardised `x_train`.
+
+    encode z -> z @ P (k components keeping `variance` of the variance), decode
+    -> (z @ P) @ P.T; as two linear Gemm layers it exports and scores exactly like the
+    dense network, and its score is the SPE (Q statistic) divided by F. Cheap and hard
+    to over-fit on the few hundred near-duplicate windows of a short recording.
+    """
+    scaler = fit_scaler(x_train, floor=scale_floor)
+    z_tr = scaler.transform(x_train)
+    z_va = scaler.transform(x_val)
+    n_f = z_tr.shape[1]
+    _, s, vt = np.linalg.svd(z_tr - z_tr.mean(axis=0), full_matrices=False)
+    var = s ** 2
+    total = float(var.sum())
+    k = n_f - 1 if total <= 0 else int(np.searchsorted(np.cumsum(var) / total, variance) + 1)
+    k = max(1, min(k, n_f - 1))
+    p = vt[:k].T
+    c = z_tr.mean(axis=0)
+    # recon = (z - c) P P^T + c  ->  layer 1: z @ P - c @ P; layer 2: h @ P^T + c
+    layers = [DenseLayer(p.copy(), -(c @ p)), DenseLayer(p.T.copy(), c.copy())]
+
+    def lin_mse(z: np.ndarray) -> float:
+        return float(np.mean(((z - c) @ p @ p.T + c - z) ** 2))
+
+    return FitResult(layers=layers, scaler=scaler, widths=(k,), train_loss=lin_mse(z_tr),
+                     val_loss=lin_mse(z_va), best_epoch=0, epochs_run=0, stopped_early=False)

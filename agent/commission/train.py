@@ -24,19 +24,34 @@ import numpy as np
 
 from agent import __version__
 from agent.bundle import MODEL_JSON, Bundle, parse_meta, write_bundle
-from agent.commission.autoencoder import FitResult, TrainConfig, fit_autoencoder
-from agent.commission.calibrate import (
-    DEFAULT_CLEAR_RATIO,
-    DEFAULT_MARGIN,
-    DEFAULT_QUANTILE,
-    Calibration,
-    calibrate,
+from agent.commission.autoencoder import (
+    FitResult,
+    TrainConfig,
+    block_spread,
+    fit_autoencoder,
+    fit_pca,
 )
+from agent.commission.coverage import Coverage, WindowGeometry, assess, window_geometry
 from agent.commission.dataset import DEFAULT_MIN_WINDOWS, Dataset, read_dataset
 from agent.commission.export import INPUT_NAME, IR_VERSION, OPSET, OUTPUT_NAME, export_dense
+from agent.commission.tail import (
+    DEFAULT_BUDGET_PER_WEEK,
+    DEFAULT_CLEAR_RATIO,
+    DEFAULT_MARGIN,
+    MIN_FORWARD_WINDOWS,
+    TailCalibration,
+    calibrate_tail,
+)
+from agent.core.detector_params import DetectorParams
 from agent.errors import BundleError, DatasetError
 
 SPLIT_BLOCK = 10
+DEFAULT_VAL_FRACTION = 0.15
+# The later part of the recording that the threshold comes from. It must be long enough
+# to show how normal running moves after the part the model was fitted on; 40 % keeps
+# most of a short recording for the fit while giving the threshold a real stretch of
+# "later". Common practice for a time-ordered hold-out, no source.
+DEFAULT_CALIB_FRACTION = 0.4
 
 
 @dataclass(frozen=True)
@@ -56,7 +71,8 @@ class TrainReport:
     val_loss: float
     best_epoch: int
     epochs_run: int
-    calibration: Calibration
+    calibration: TailCalibration
+    coverage: Coverage
     n_params: int
     onnx_bytes: int
     train_time_s: float
@@ -78,10 +94,71 @@ class TrainReport:
             f"ONNX {self.onnx_bytes} bytes",
             f"final loss      train {self.train_loss:.5g}, val {self.val_loss:.5g} "
             f"(best epoch {self.best_epoch} of {self.epochs_run})",
-            f"threshold       {c.threshold:.5g} = q{c.quantile:g} {c.quantile_score:.5g} x "
-            f"margin {c.margin:g}; clear {c.clear_threshold:.5g}",
+            f"threshold       {c.threshold:.5g} ({_method_text(c)}); clear "
+            f"{c.clear_threshold:.5g}",
+            f"false alarms    {_budget_text(c)}",
+            *(f"  note: {r}" for r in c.reasons),
+            *(f"recording       {line}" for line in self.coverage.lines()),
             f"training time   {self.train_time_s:.2f} s",
         ])
+
+
+@dataclass(frozen=True)
+class _Candidate:
+    family: str
+    fit: FitResult
+    model_bytes: bytes
+    doc: dict[str, Any]
+    scores: np.ndarray
+    cal: TailCalibration
+
+
+def _method_text(c: TailCalibration) -> str:
+    if c.method == "pot-gpd" and c.fit is not None:
+        return (f"peaks over threshold, GPD xi {c.fit.xi:.3g}, at per-window rate "
+                f"{c.target_exceedance:.2g}, x margin {c.margin:g}")
+    return (f"largest of {c.n_windows} later-normal scores {c.max_score:.5g} x margin "
+            f"{c.margin:g}")
+
+
+def _budget_text(c: TailCalibration) -> str:
+    if c.promised and c.expected_per_week is not None:
+        return (f"about {c.expected_per_week:.2g} per week expected (budget "
+                f"{c.budget_per_week:g}; {c.n_independent} independent later-normal windows)")
+    return (f"budget of {c.budget_per_week:g} per week NOT promised: the recording is too "
+            f"short or unsteady ({c.n_independent} independent later-normal windows, "
+            f"about {c.needed_independent} needed)")
+
+
+def forward_windows(n: int, calib_fraction: float, geometry: WindowGeometry) -> int:
+    """How many of the last windows calibrate (forward validation); DatasetError when the
+    recording cannot give the minimum (see tail.MIN_FORWARD_WINDOWS)."""
+    if not 0 < calib_fraction < 1:
+        raise ValueError("calib_fraction must be in (0, 1)")
+    need = MIN_FORWARD_WINDOWS * geometry.per_length
+    n_cal = max(round(calib_fraction * n), need)
+    if n - n_cal < need:
+        raise DatasetError(
+            f"{n} window(s) cannot give both a fit and a forward calibration: the threshold "
+            f"needs the last {need} windows ({MIN_FORWARD_WINDOWS} independent windows of "
+            f"{geometry.length_s:g} s at a hop of {geometry.hop_s:g} s) and the fit at least "
+            f"as many before them; record for at least "
+            f"{2 * MIN_FORWARD_WINDOWS * geometry.length_s:g} s")
+    return int(n_cal)
+
+
+def split_early(n: int, val_fraction: float, *, seed: int) -> tuple[np.ndarray, np.ndarray]:
+    """(train, val) indices of the first `n` windows, a seeded split of whole blocks
+    (validation only decides early stopping, so it may interleave with the fit)."""
+    if not 0 < val_fraction < 1:
+        raise ValueError("val_fraction must be in (0, 1)")
+    n_blocks = max(2, -(-n // SPLIT_BLOCK))
+    blocks = np.minimum(np.arange(n) * n_blocks // max(n, 1), n_blocks - 1)
+    order = np.random.default_rng([seed, 0x5A17]).permutation(n_blocks)
+    val_b = order[: max(1, round(val_fraction * n_blocks))]
+    is_val = np.isin(blocks, val_b)
+    idx = np.arange(n)
+    return idx[~is_val], idx[is_val]
 
 
 def split_blocks(n: int, val_fraction: float, calib_fraction: float, *, seed: int,
@@ -151,9 +228,12 @@ def train_bundle(dataset_dir: str | os.PathLike[str], out_dir: str | os.PathLike
                  asset: str | None = None, mode: str | None = None,
                  widths: tuple[int, ...] | list[int] | None = None, seed: int = 0,
                  epochs: int = 300, batch_size: int = 64, learning_rate: float = 2e-3,
-                 patience: int = 25, weight_decay: float = 0.0, val_fraction: float = 0.15,
-                 calib_fraction: float = 0.15, quantile: float = DEFAULT_QUANTILE,
+                 patience: int = 25, weight_decay: float = 0.0,
+                 val_fraction: float = DEFAULT_VAL_FRACTION,
+                 calib_fraction: float = DEFAULT_CALIB_FRACTION,
+                 budget: float = DEFAULT_BUDGET_PER_WEEK,
                  margin: float = DEFAULT_MARGIN, clear_ratio: float = DEFAULT_CLEAR_RATIO,
+                 detector: DetectorParams | None = None,
                  min_windows: int = DEFAULT_MIN_WINDOWS,
                  now: datetime | None = None) -> TrainReport:
     """Train, calibrate and write a bundle to `out_dir` (temp-and-rename, never in place).
@@ -177,44 +257,80 @@ def train_bundle(dataset_dir: str | os.PathLike[str], out_dir: str | os.PathLike
     config = TrainConfig(widths=tuple(widths) if widths else None, epochs=epochs,
                          batch_size=batch_size, learning_rate=learning_rate,
                          weight_decay=weight_decay, patience=patience, seed=seed)
-    tr, va, ca = split_blocks(ds.n_windows, val_fraction, calib_fraction, seed=seed)
-    x = ds.features
-    t0 = time.perf_counter()
-    fit: FitResult = fit_autoencoder(x[tr], x[va], config)
-    train_time = time.perf_counter() - t0
-    model_bytes = export_dense(fit.layers, doc=f"watchkeep autoencoder {asset_name}/"
-                                                f"{chosen_mode} v{version}")
+    geometry = window_geometry(ds.window, ds.window_start, ds.window_end)
+    n_cal = forward_windows(ds.n_windows, calib_fraction, geometry)
+    early = ds.n_windows - n_cal
+    coverage = assess(ds.feature_names, ds.features[:early], geometry)
+    names = [n for n in ds.feature_names if n not in set(coverage.excluded)]
+    if len(names) < 2:
+        raise DatasetError(f"dataset {ds.path}: after leaving out the level of slow channels "
+                           f"({', '.join(coverage.excluded)}), fewer than 2 features remain; "
+                           "record for longer or add features")
+    x = ds.columns(names)
+    tr, va = split_early(early, val_fraction, seed=seed)
+    ca = np.arange(early, ds.n_windows)
+    floor = block_spread(x[:early])
+    det = detector or DetectorParams()
     stamp = (now or datetime.now(UTC)).astimezone(UTC)
-    doc: dict[str, Any] = {
+    base_doc: dict[str, Any] = {
         "asset": asset_name,
         "mode": chosen_mode,
         "model_id": f"{asset_name}/{chosen_mode}",
         "version": version,
-        "feature_names": list(ds.feature_names),
-        "scaler": {"mean": fit.scaler.mean.tolist(), "scale": fit.scaler.scale.tolist()},
+        "feature_names": names,
         "score": {"function": "mse"},
         "onnx": {"input": INPUT_NAME, "output": OUTPUT_NAME, "opset": OPSET,
                  "ir_version": IR_VERSION},
         "created": stamp.isoformat(timespec="seconds").replace("+00:00", "Z"),
         "watchkeep_version": __version__,
     }
-    scores = _runtime_scores(model_bytes, doc, x[ca])
-    cal = calibrate(scores, quantile=quantile, margin=margin, clear_ratio=clear_ratio)
+
+    def candidate(family: str, fit: FitResult) -> _Candidate:
+        model_bytes = export_dense(fit.layers, doc=f"watchkeep {family} {asset_name}/"
+                                                    f"{chosen_mode} v{version}")
+        doc = {**base_doc, "scaler": {"mean": fit.scaler.mean.tolist(),
+                                      "scale": fit.scaler.scale.tolist()}}
+        scores = _runtime_scores(model_bytes, doc, x[ca])
+        cal = calibrate_tail(scores, length_s=geometry.length_s, hop_s=geometry.hop_s,
+                             raise_k=det.raise_k, raise_n=det.raise_n,
+                             budget_per_week=budget, margin=margin, clear_ratio=clear_ratio)
+        return _Candidate(family, fit, model_bytes, doc, scores, cal)
+
+    t0 = time.perf_counter()
+    # Two model families, chosen by forward validation: both are calibrated to the same
+    # false-alarm budget on the same later windows, in the same units (mean squared
+    # error of the same standardised features), so the lower threshold is the model
+    # that sees a smaller departure from normal at the same promised false-alarm rate.
+    cands = [candidate("dense-autoencoder", fit_autoencoder(x[tr], x[va], config,
+                                                            scale_floor=floor)),
+             candidate("pca", fit_pca(x[tr], x[va], scale_floor=floor))]
+    train_time = time.perf_counter() - t0
+    best = min(cands, key=lambda c: (not c.cal.promised, c.cal.threshold))
+    fit, model_bytes, doc, scores, cal = best.fit, best.model_bytes, best.doc, best.scores, \
+        best.cal
     doc["threshold"] = cal.threshold
     doc["clear_threshold"] = cal.clear_threshold
-    doc["calibration"] = cal.as_json()
+    doc["calibration"] = {**cal.as_json(),
+                          "detector": {"raise_k": det.raise_k, "raise_n": det.raise_n}}
+    doc["coverage"] = coverage.as_json()
     doc["training"] = {
         "n_windows": ds.n_windows,
+        "features_recorded": list(ds.feature_names),
         "data_sha256": ds.content_sha256,
         "dataset": str(ds.path) if ds.path else "",
-        "split": {"method": "blocked-random", "block_windows": SPLIT_BLOCK, "seed": seed,
+        "split": {"method": "forward: calibration on the last windows in time, validation "
+                            "blocked-random within the earlier ones",
+                  "block_windows": SPLIT_BLOCK, "seed": seed,
                   "train": len(tr), "val": len(va), "calib": len(ca)},
         "feature_mean": fit.scaler.mean.tolist(),
         "feature_std": fit.scaler.std.tolist(),
         "time_span": {"start": float(ds.window_start.min()), "end": float(ds.window_end.max())},
         "window": dict(ds.window),
         "units": dict(ds.units),
-        "architecture": {"widths": list(fit.widths), "hidden_activation": "tanh",
+        "model_selection": {c.family: {"threshold": c.cal.threshold,
+                                       "budget_promised": c.cal.promised} for c in cands},
+        "architecture": {"family": best.family, "widths": list(fit.widths),
+                         "hidden_activation": "tanh" if best.family != "pca" else "linear",
                          "output_activation": "linear", "n_params": fit.n_params},
         "optimiser": {"method": "adam", "learning_rate": learning_rate,
                       "batch_size": batch_size, "weight_decay": weight_decay,
@@ -231,6 +347,7 @@ def train_bundle(dataset_dir: str | os.PathLike[str], out_dir: str | os.PathLike
         n_windows=ds.n_windows, n_train=len(tr), n_val=len(va), n_calib=len(ca),
         widths=fit.widths, train_loss=fit.train_loss, val_loss=fit.val_loss,
         best_epoch=fit.best_epoch, epochs_run=fit.epochs_run, calibration=cal,
+        coverage=coverage,
         n_params=fit.n_params, onnx_bytes=len(model_bytes), train_time_s=train_time,
         calib_scores=scores, calib_index=ca)
 
@@ -262,7 +379,20 @@ def add_train_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--patience", type=int, default=25,
                         help="stop after this many epochs without validation gain")
     parser.add_argument("--weight-decay", type=float, default=0.0, help="L2 weight decay")
-    parser.add_argument("--quantile", type=float, default=DEFAULT_QUANTILE)
+    parser.add_argument("--budget", type=float, default=DEFAULT_BUDGET_PER_WEEK,
+                        help="false alarms per asset-week the threshold aims at (default "
+                             f"{DEFAULT_BUDGET_PER_WEEK:g}); train says when the recording "
+                             "cannot promise it")
+    parser.add_argument("--val-fraction", type=float, default=DEFAULT_VAL_FRACTION,
+                        help="share of the earlier windows held out for early stopping "
+                             f"(default {DEFAULT_VAL_FRACTION:g})")
+    parser.add_argument("--calib-fraction", type=float, default=DEFAULT_CALIB_FRACTION,
+                        help="share of the recording, its last windows in time, that the "
+                             f"threshold comes from (default {DEFAULT_CALIB_FRACTION:g})")
+    parser.add_argument("--raise-k", type=int, default=DetectorParams().raise_k,
+                        help="the detector's raise_k the budget is computed for")
+    parser.add_argument("--raise-n", type=int, default=DetectorParams().raise_n,
+                        help="the detector's raise_n the budget is computed for")
     parser.add_argument("--margin", type=float, default=DEFAULT_MARGIN)
     parser.add_argument("--clear-ratio", type=float, default=DEFAULT_CLEAR_RATIO)
     parser.add_argument("--min-windows", type=int, default=DEFAULT_MIN_WINDOWS)
@@ -277,7 +407,10 @@ def cmd_train(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
         args.dataset, args.out, asset=args.asset, mode=args.mode, widths=args.widths,
         seed=args.seed, epochs=args.epochs, batch_size=args.batch_size,
         learning_rate=args.learning_rate, patience=args.patience,
-        weight_decay=args.weight_decay, quantile=args.quantile, margin=args.margin,
+        weight_decay=args.weight_decay, val_fraction=args.val_fraction,
+        calib_fraction=args.calib_fraction, budget=args.budget,
+        detector=DetectorParams(args.raise_k, max(args.raise_n, args.raise_k)),
+        margin=args.margin,
         clear_ratio=args.clear_ratio, min_windows=args.min_windows)
     print(report.format(), file=out or sys.stdout)
     return 0
