@@ -47,6 +47,7 @@ from agent.errors import BundleError, DatasetError
 
 SPLIT_BLOCK = 10
 DEFAULT_VAL_FRACTION = 0.15
+FAMILIES = ("auto", "dense-autoencoder", "pca")
 # The later part of the recording that the threshold comes from. It must be long enough
 # to show how normal running moves after the part the model was fitted on; 40 % keeps
 # most of a short recording for the fit while giving the threshold a real stretch of
@@ -234,6 +235,7 @@ def train_bundle(dataset_dir: str | os.PathLike[str], out_dir: str | os.PathLike
                  budget: float = DEFAULT_BUDGET_PER_WEEK,
                  margin: float = DEFAULT_MARGIN, clear_ratio: float = DEFAULT_CLEAR_RATIO,
                  detector: DetectorParams | None = None,
+                 family: str = "auto",
                  min_windows: int = DEFAULT_MIN_WINDOWS,
                  now: datetime | None = None) -> TrainReport:
     """Train, calibrate and write a bundle to `out_dir` (temp-and-rename, never in place).
@@ -301,9 +303,16 @@ def train_bundle(dataset_dir: str | os.PathLike[str], out_dir: str | os.PathLike
     # false-alarm budget on the same later windows, in the same units (mean squared
     # error of the same standardised features), so the lower threshold is the model
     # that sees a smaller departure from normal at the same promised false-alarm rate.
-    cands = [candidate("dense-autoencoder", fit_autoencoder(x[tr], x[va], config,
-                                                            scale_floor=floor)),
-             candidate("pca", fit_pca(x[tr], x[va], scale_floor=floor))]
+    if family not in FAMILIES:
+        raise ValueError(f"family must be one of {', '.join(FAMILIES)}")
+    if widths and family == "auto":
+        family = "dense-autoencoder"  # widths describe the dense network only
+    cands = []
+    if family in ("auto", "dense-autoencoder"):
+        cands.append(candidate("dense-autoencoder", fit_autoencoder(x[tr], x[va], config,
+                                                                    scale_floor=floor)))
+    if family in ("auto", "pca"):
+        cands.append(candidate("pca", fit_pca(x[tr], x[va], scale_floor=floor)))
     train_time = time.perf_counter() - t0
     best = min(cands, key=lambda c: (not c.cal.promised, c.cal.threshold))
     fit, model_bytes, doc, scores, cal = best.fit, best.model_bytes, best.doc, best.scores, \
@@ -312,10 +321,10 @@ def train_bundle(dataset_dir: str | os.PathLike[str], out_dir: str | os.PathLike
     doc["clear_threshold"] = cal.clear_threshold
     doc["calibration"] = {**cal.as_json(),
                           "detector": {"raise_k": det.raise_k, "raise_n": det.raise_n}}
-    doc["coverage"] = coverage.as_json()
     doc["training"] = {
         "n_windows": ds.n_windows,
         "features_recorded": list(ds.feature_names),
+        "coverage": coverage.as_json(),
         "data_sha256": ds.content_sha256,
         "dataset": str(ds.path) if ds.path else "",
         "split": {"method": "forward: calibration on the last windows in time, validation "
@@ -379,6 +388,9 @@ def add_train_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--patience", type=int, default=25,
                         help="stop after this many epochs without validation gain")
     parser.add_argument("--weight-decay", type=float, default=0.0, help="L2 weight decay")
+    parser.add_argument("--model", choices=FAMILIES, default="auto",
+                        help="model family; auto fits both and keeps the one with the lower "
+                             "threshold at the same false-alarm budget (default auto)")
     parser.add_argument("--budget", type=float, default=DEFAULT_BUDGET_PER_WEEK,
                         help="false alarms per asset-week the threshold aims at (default "
                              f"{DEFAULT_BUDGET_PER_WEEK:g}); train says when the recording "
@@ -410,7 +422,7 @@ def cmd_train(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
         weight_decay=args.weight_decay, val_fraction=args.val_fraction,
         calib_fraction=args.calib_fraction, budget=args.budget,
         detector=DetectorParams(args.raise_k, max(args.raise_n, args.raise_k)),
-        margin=args.margin,
+        margin=args.margin, family=args.model,
         clear_ratio=args.clear_ratio, min_windows=args.min_windows)
     print(report.format(), file=out or sys.stdout)
     return 0

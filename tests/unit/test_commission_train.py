@@ -53,7 +53,7 @@ def _dataset(path: Path, n: int = 800, seed: int = 0, modes: list[str] | None = 
 def trained(tmp_path_factory: pytest.TempPathFactory):
     d = tmp_path_factory.mktemp("train")
     ds = _dataset(d / "ds")
-    report = train_bundle(ds, d / "bundle", epochs=60, now=NOW)
+    report = train_bundle(ds, d / "bundle", epochs=60, now=NOW, family="dense-autoencoder")
     return d, report
 
 
@@ -68,7 +68,8 @@ def test_bundle_loads_and_has_exactly_the_documented_keys(trained) -> None:
     assert doc["created"] == "2026-03-04T05:06:07Z"
     assert doc["watchkeep_version"] == __version__
     assert doc["onnx"] == {"input": "x", "output": "recon", "opset": 17, "ir_version": 8}
-    assert doc["calibration"]["method"] == "quantile"
+    assert doc["calibration"]["method"] in ("pot-gpd", "max-margin")
+    assert doc["calibration"]["validation"] == "forward"
     assert doc["calibration"]["n_windows"] == report.n_calib
     tr = doc["training"]
     assert tr["n_windows"] == 800 and re.fullmatch(r"[0-9a-f]{64}", tr["data_sha256"])

@@ -10,6 +10,7 @@ import yaml
 
 from agent.config import (
     DEFAULT_FEATURES,
+    FEW_SAMPLES_FEATURES,
     WAVEFORM_DEFAULT_FEATURES,
     Config,
     Decoder,
@@ -136,7 +137,8 @@ def test_defaults(tmp_path: Path) -> None:
     assert (d.raise_k, d.raise_n, d.clear_m) == (2, 3, 3)
     assert pump.bundle is None
     temp = pump.channel("bearing_temp")
-    assert temp.decoder is Decoder.JSON and temp.features == DEFAULT_FEATURES
+    # 1 Hz over a 10 s window: too few samples for extremes and higher moments
+    assert temp.decoder is Decoder.JSON and temp.features == FEW_SAMPLES_FEATURES
     assert (temp.ts_field, temp.value_field, temp.unit) == ("ts", "value", "")
     vib = cfg.asset("B-201").channel("vib")
     assert vib.features == WAVEFORM_DEFAULT_FEATURES
@@ -194,3 +196,16 @@ def test_parse_config_is_frozen_and_typed(tmp_path: Path) -> None:
     assert isinstance(cfg, Config)
     with pytest.raises(AttributeError):
         cfg.site = "elsewhere"  # type: ignore[misc]
+
+
+def test_default_features_follow_samples_per_window() -> None:
+    """A channel with 100 or more samples per window gets the full default set; fewer, mean
+    and std (extremes and higher moments of a handful of samples are noise)."""
+    doc = {"site": "s", "gateway": "g", "local_broker": {"host": "127.0.0.1"},
+           "upstream_broker": {"host": "127.0.0.1"},
+           "assets": [{"name": "A", "window": {"length_s": 10},
+                       "channels": {"fast": {"topic": "t/fast", "rate_hz": 10},
+                                    "slow": {"topic": "t/slow", "rate_hz": 9.9}}}]}
+    a = parse_config(doc, Path("."))
+    assert a.asset("A").channel("fast").features == DEFAULT_FEATURES
+    assert a.asset("A").channel("slow").features == FEW_SAMPLES_FEATURES

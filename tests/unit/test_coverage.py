@@ -1,0 +1,65 @@
+"""What a recording covers: slow channels are found and left out; fast ones stay."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from agent.commission.autoencoder import block_spread, fit_scaler
+from agent.commission.coverage import WindowGeometry, assess, window_geometry
+from agent.core.detector_params import DetectorParams
+
+
+def _windows(samples: np.ndarray, per_window: int) -> np.ndarray:
+    w = samples[: samples.size // per_window * per_window].reshape(-1, per_window)
+    return np.column_stack([w.mean(axis=1), w.std(axis=1)])
+
+
+def test_a_wandering_level_is_slow_and_white_noise_is_not() -> None:
+    """A random walk's level is slow and uncovered; white noise around a level is fast."""
+    rng = np.random.default_rng(0)
+    walk = 60 + np.cumsum(rng.normal(0, 0.05, 4000))
+    noise = 32 + rng.normal(0, 0.2, 4000)
+    x = np.column_stack([_windows(walk, 20), _windows(noise, 20)])
+    names = ("temp.mean", "temp.std", "flow.mean", "flow.std")
+    cov = assess(names, x, WindowGeometry(20, 20))
+    by = {c.channel: c for c in cov.channels}
+    assert by["temp"].slow and not by["temp"].covered
+    assert not by["flow"].slow and by["flow"].covered
+    assert cov.excluded == ("temp.mean", "temp.std")
+    assert "temp" in cov.lines()[0]
+
+
+def test_geometry_from_the_manifest_or_the_times() -> None:
+    """Window length and hop come from the manifest, else from the windows' times."""
+    ws = np.arange(0.0, 100.0, 2.0)
+    assert window_geometry({"length_s": 10, "hop_s": 2}, ws, ws + 10).per_length == 5
+    g = window_geometry({}, ws, ws + 10)
+    assert (g.length_s, g.hop_s, g.per_length) == (10.0, 2.0, 5)
+
+
+def test_spread_floor_on_a_constant_channel() -> None:
+    """A feature that never moved gets the floor, so a change at sensor resolution scores
+    a bounded z (here 0.01 l/min on 32.0: z = 0.3125), never thousands."""
+    x = np.column_stack([np.full(200, 32.0), np.random.default_rng(1).normal(0, 1, 200)])
+    sc = fit_scaler(x, floor=block_spread(x))
+    assert sc.std[0] == 0.0 and sc.scale[0] == pytest.approx(0.032)
+    z = sc.transform(np.array([[32.01, 0.0]]))
+    assert abs(z[0, 0]) == pytest.approx(0.3125)
+
+
+def test_block_spread_floors_a_feature_that_moved_between_stretches() -> None:
+    """A feature flat inside each stretch but stepping between them gets its block spread."""
+    x = np.repeat(np.arange(10.0), 20)[:, None] * 0.1 + 5.0
+    floor = block_spread(x)
+    assert floor[0] == pytest.approx(np.std(np.arange(10.0) * 0.1, ddof=1))
+
+
+@pytest.mark.parametrize(("length", "hop", "want"), [
+    (10, 10, (2, 3, 3)), (20, 1, (40, 60, 3)), (10, 4, (6, 9, 3)),
+])
+def test_raise_rule_stretched_over_hopping_windows(length: float, hop: float,
+                                                   want: tuple[int, int, int]) -> None:
+    """k of n independent windows becomes k*w of n*w hopped ones; clear_m stays."""
+    d = DetectorParams().over_windows(length, hop)
+    assert (d.raise_k, d.raise_n, d.clear_m) == want
