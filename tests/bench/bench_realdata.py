@@ -242,7 +242,7 @@ def baseline_preds(f_train: np.ndarray, f_test: np.ndarray) -> dict[str, np.ndar
     sd = np.where(sd > 1e-12, sd, 1.0)
     z = (f_train - mu) / sd
     zt = (np.nan_to_num(f_test, nan=0.0) - mu) / sd
-    u, s, vt = np.linalg.svd(z, full_matrices=False)
+    _u, s, vt = np.linalg.svd(z, full_matrices=False)
     var = s ** 2 / (len(z) - 1)
     k = int(np.searchsorted(np.cumsum(var) / var.sum(), 0.90) + 1)
     p = vt[:k].T
