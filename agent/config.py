@@ -199,6 +199,11 @@ class AssetConfig:
     iso10816: IsoConfig | None = None
 
     @property
+    def window_overlap(self) -> int:
+        """Windows that share any one instant: ceil(length_s / hop_s)."""
+        return max(1, math.ceil(self.window.length_s / self.window.hop_s - 1e-9))
+
+    @property
     def window_detector(self) -> DetectorParams:
         """`detector` as applied to this asset's windows (hopping windows stretch the
         raise rule over the same span of time: `DetectorParams.over_windows`)."""

@@ -46,9 +46,10 @@ import orjson
 from prometheus_client import Counter, Gauge
 
 from agent.batched import BatchedModels
-from agent.bundle import Bundle
+from agent.bundle import Bundle, BundleMeta
 from agent.config import FEATURES, Config
 from agent.core.detector import Detector, State, Transition
+from agent.core.escalation import Escalated, leading_channels
 from agent.core.events import EventType, Source, make_event, rfc3339, severity_for, top_contributors
 from agent.core.features import block_features, segment_features, stack_rows
 from agent.core.health import Change, HealthChange
@@ -724,12 +725,20 @@ class Pipeline:
             rt.sequence += 1
             rt.raised_at = end
             rt.raised_window = (start, end)
-            data = {**base, "severity": severity_for(score, meta.threshold).value,
+            sev = severity_for(score, meta.threshold)
+            rt.escalation.start(sev, leading_channels(meta.feature_names, sq))
+            data = {**base, "severity": sev.value,
                     "contributors": top_contributors(meta.feature_names, sq),
                     "sequence": rt.sequence}
             self._event(rt, EventType.ANOMALY_RAISED, src, end, data, out, Kind.ANOMALY,
                         id_key=f"{start:.3f}")
             stats.events += 1
+        elif tr is None and rt.detector.state is State.ANOMALOUS:
+            esc = rt.escalation.step(severity_for(score, meta.threshold),
+                                     leading_channels(meta.feature_names, sq))
+            if esc is not None:
+                self._escalated(rt, esc, start, end, mode, score, meta, model, sq, out)
+                stats.events += 1
         elif tr is Transition.CLEARED:
             rt.sequence += 1
             data = {**base, "peak_score": round(rt.detector.peak_score, 6),
@@ -739,6 +748,7 @@ class Pipeline:
             self._event(rt, EventType.ANOMALY_CLEARED, src, end, data, out, Kind.ANOMALY,
                         id_key=f"{start:.3f}")
             rt.raised_at = None
+            rt.escalation.stop()
             stats.events += 1
         state = rt.detector.state  # a StrEnum: it serialises as its value
         anomalous = 1 if state is State.ANOMALOUS else 0
@@ -767,6 +777,25 @@ class Pipeline:
                 self._scaler_cache.clear()
             self._scaler_cache[len(bundles)] = got
         return got[1], got[2]
+
+    def _escalated(self, rt: AssetRuntime, esc: Escalated, start: float, end: float,
+                   mode: str, score: float, meta: BundleMeta, model: dict[str, Any],
+                   sq: np.ndarray, out: list[OutMessage]) -> None:
+        """`anomaly.escalated`: a raised asset got worse or changed character."""
+        rt.sequence += 1
+        data = {"asset": rt.cfg.name, "mode": mode,
+                "window": {"start": self._time(start), "end": self._time(end)},
+                "score": round(score, 6), "threshold": meta.threshold,
+                "clear_threshold": meta.clear_threshold, "model": model,
+                "reason": esc.reason.value, "severity": esc.severity.value,
+                "previous_severity": esc.previous_severity.value,
+                "channels": sorted(esc.channels),
+                "previous_channels": sorted(esc.previous_channels),
+                "contributors": top_contributors(meta.feature_names, sq),
+                "raised_at": rfc3339(rt.raised_at) if rt.raised_at else None,
+                "sequence": rt.sequence}
+        self._event(rt, EventType.ANOMALY_ESCALATED, self.source.for_asset(rt.cfg.name), end,
+                    data, out, Kind.ANOMALY, id_key=f"{start:.3f}")
 
     def _topics(self, asset: str) -> tuple[str, str]:
         """The asset's state and scores topics."""

@@ -19,6 +19,7 @@ import numpy as np
 from agent.bundle import Bundle, load_bundle
 from agent.config import AssetConfig
 from agent.core.detector import Detector, State
+from agent.core.escalation import EscalationTracker
 from agent.core.features import FEATURE_INDEX
 from agent.core.health import ChannelHealth, HealthLimits
 from agent.core.limits import FeatureLimits, ZoneLimits
@@ -117,6 +118,7 @@ class AssetRuntime:
     last_event: dict[str, Any] | None = None
     raised_at: float | None = None
     raised_window: tuple[float, float] | None = None
+    escalation: EscalationTracker = field(default_factory=EscalationTracker)
     # Machine know-how: per-mode bundles, mode tracking, sensor health, limits.
     asset_bundle: Bundle | None = None
     mode_bundles: dict[str, Bundle] = field(default_factory=dict)
@@ -153,7 +155,8 @@ class AssetRuntime:
         """A fresh runtime. The per-mode bundles are loaded from the config unless given."""
         rt = cls(cfg=cfg,
                  assembler=WindowAssembler(cfg.window, tuple(c.rate_hz for c in cfg.channels)),
-                 detector=Detector(cfg.window_detector))
+                 detector=Detector(cfg.window_detector),
+                 escalation=EscalationTracker(persist=cfg.window_overlap))
         rt.record_names = asset_feature_names(cfg)
         rt.record_index = _full_index(cfg, rt.record_names)
         rt.mode_bundles, rt.mode_bundle_errors = (mode_bundles if mode_bundles is not None

@@ -13,12 +13,12 @@ i.e. the level is a slowly moving state (a temperature, a tank level, a drifting
 setpoint), not noise around a fixed value. (The ratio is the one-way ANOVA of the
 window means against the within-window variance; textbook.)
 
-A slow channel's level is only *covered* by the recording when the recording holds
-enough independent looks at it: the effective number of independent windows of its
-mean, `n (1 - r1) / (1 + r1)` with `r1` the lag-1 autocorrelation of the
-non-overlapping window means (the AR(1) effective sample size, e.g. Wilks, "Statistical
-Methods in the Atmospheric Sciences", 5.2.3), must reach `MIN_EFFECTIVE_WINDOWS`
-(30, the usual minimum for a stable estimate of a spread; common practice, no source).
+A slow channel's level is only *covered* by the recording when the recording shows
+its wander repeatedly: its non-overlapping window means must cross their median at
+least `MIN_CROSSINGS` times (each crossing is half a swing; 10 is five full swings,
+enough to have seen the range it moves over and how fast; common practice, no
+source). A temperature that follows the load cycle six times in an hour is covered; one
+that crept one way during a ten-minute recording is not, however many windows it gave.
 A model trained on a recording that holds only a few minutes of a temperature that
 wanders over hours has learnt one point of its range: every later value looks
 anomalous (on the SKAB pump test bed, the engine and fluid temperatures were the top
@@ -39,7 +39,7 @@ from typing import Any
 
 import numpy as np
 
-MIN_EFFECTIVE_WINDOWS = 30
+MIN_CROSSINGS = 10
 
 
 @dataclass(frozen=True)
@@ -76,13 +76,13 @@ class ChannelCoverage:
     channel: str
     slow: bool
     level_ratio: float          # var(window means) / mean(within-window variance)
-    effective_windows: float    # independent looks at its level in the recording
+    crossings: int              # times its window means crossed their median
     covered: bool
 
     def as_json(self) -> dict[str, Any]:
         return {"channel": self.channel, "slow": self.slow,
                 "level_ratio": round(self.level_ratio, 4),
-                "effective_windows": round(self.effective_windows, 2),
+                "median_crossings": self.crossings,
                 "covered": self.covered}
 
 
@@ -99,30 +99,30 @@ class Coverage:
     def as_json(self) -> dict[str, Any]:
         return {"window": {"length_s": self.geometry.length_s, "hop_s": self.geometry.hop_s},
                 "independent_windows": self.independent_windows,
-                "min_effective_windows": MIN_EFFECTIVE_WINDOWS,
+                "min_median_crossings": MIN_CROSSINGS,
                 "slow_channels": [c.as_json() for c in self.channels if c.slow],
                 "excluded_features": list(self.excluded)}
 
     def lines(self) -> list[str]:
         """What the recording covers, for `train`'s summary."""
         out = []
+        span_s = self.independent_windows * self.geometry.length_s
         for c in self.uncovered():
-            need_s = (MIN_EFFECTIVE_WINDOWS / max(c.effective_windows, 1e-9)
-                      * self.independent_windows * self.geometry.length_s)
+            need_s = MIN_CROSSINGS / max(c.crossings, 1) * span_s
             out.append(f"{c.channel}: its level wanders slower than a window "
-                       f"(ratio {c.level_ratio:.3g}) and the recording holds "
-                       f"{c.effective_windows:.1f} independent looks at it (needs "
-                       f"{MIN_EFFECTIVE_WINDOWS}); it is not modelled "
-                       f"(watch it with a limit, or record about {need_s / 3600:.1g} h)")
+                       f"(ratio {c.level_ratio:.3g}) and crossed its median {c.crossings} "
+                       f"time(s) in the {span_s / 60:.0f} min recorded (needs "
+                       f"{MIN_CROSSINGS}); it is not modelled: watch it with a limit, or "
+                       f"record until its wander repeats (at this pace about "
+                       f"{need_s / 3600:.2g} h)")
         return out
 
 
-def _lag1(x: np.ndarray) -> float:
-    d = x - x.mean()
-    v = float(np.dot(d, d))
-    if v <= 0.0 or d.size < 3:
-        return 0.0
-    return float(np.dot(d[1:], d[:-1]) / v)
+def median_crossings(x: np.ndarray) -> int:
+    """How often the series crosses its median (values on the median are skipped)."""
+    d = np.sign(np.asarray(x, dtype=np.float64) - np.median(x))
+    d = d[d != 0]
+    return int(np.count_nonzero(d[1:] != d[:-1]))
 
 
 def assess(feature_names: tuple[str, ...] | list[str], features: np.ndarray,
@@ -144,11 +144,10 @@ def assess(feature_names: tuple[str, ...] | list[str], features: np.ndarray,
         within = float(np.mean(sub[:, si] ** 2))
         between = float(np.var(means, ddof=1))
         ratio = between / within if within > 0 else (math.inf if between > 0 else 0.0)
-        r1 = min(max(_lag1(means), -0.99), 0.99)
-        n_eff = means.size * (1.0 - r1) / (1.0 + r1)
+        crossings = median_crossings(means)
         slow = ratio >= 1.0
-        covered = (not slow) or n_eff >= MIN_EFFECTIVE_WINDOWS
-        out.append(ChannelCoverage(ch, slow, ratio, n_eff, covered))
+        covered = (not slow) or crossings >= MIN_CROSSINGS
+        out.append(ChannelCoverage(ch, slow, ratio, crossings, covered))
         if not covered:
             excluded += [n for n in feature_names if n.rsplit(".", 1)[0] == ch]
     return Coverage(geometry, tuple(out), tuple(excluded), int(sub.shape[0]))

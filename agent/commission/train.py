@@ -265,9 +265,10 @@ def train_bundle(dataset_dir: str | os.PathLike[str], out_dir: str | os.PathLike
     coverage = assess(ds.feature_names, ds.features[:early], geometry)
     names = [n for n in ds.feature_names if n not in set(coverage.excluded)]
     if len(names) < 2:
-        raise DatasetError(f"dataset {ds.path}: after leaving out the level of slow channels "
-                           f"({', '.join(coverage.excluded)}), fewer than 2 features remain; "
-                           "record for longer or add features")
+        raise DatasetError(f"dataset {ds.path}: after leaving out the slow channels the recording "
+                           f"does not cover ({', '.join(coverage.excluded)}), fewer than 2 "
+                           "features remain; record until their wander repeats, or add "
+                           "channels")
     x = ds.columns(names)
     tr, va = split_early(early, val_fraction, seed=seed)
     ca = np.arange(early, ds.n_windows)

@@ -25,6 +25,9 @@ _ID_NAMESPACE = uuid.UUID("6f1c9a52-4b8e-5d0e-9a77-2c1f0e5b3d41")
 class EventType(StrEnum):
     ANOMALY_RAISED = "anomaly.raised"
     ANOMALY_CLEARED = "anomaly.cleared"
+    # A raised asset got worse (a higher severity band) or its error moved to other
+    # channels; agent/core/escalation.py.
+    ANOMALY_ESCALATED = "anomaly.escalated"
     SENSOR_FAULT = "sensor.fault"
     SENSOR_RECOVERED = "sensor.recovered"
     LIMIT_EXCEEDED = "limit.exceeded"

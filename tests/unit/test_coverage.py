@@ -15,19 +15,23 @@ def _windows(samples: np.ndarray, per_window: int) -> np.ndarray:
     return np.column_stack([w.mean(axis=1), w.std(axis=1)])
 
 
-def test_a_wandering_level_is_slow_and_white_noise_is_not() -> None:
-    """A random walk's level is slow and uncovered; white noise around a level is fast."""
+def test_a_creeping_level_is_slow_and_uncovered_and_noise_is_fast() -> None:
+    """A temperature creeping one way is slow and uncovered (left out); white noise around
+    a level is fast; a level following a cycle seen six times is slow but covered."""
     rng = np.random.default_rng(0)
-    walk = 60 + np.cumsum(rng.normal(0, 0.05, 4000))
-    noise = 32 + rng.normal(0, 0.2, 4000)
-    x = np.column_stack([_windows(walk, 20), _windows(noise, 20)])
-    names = ("temp.mean", "temp.std", "flow.mean", "flow.std")
+    t = np.arange(4000.0)
+    creep = 60 + 0.001 * t + rng.normal(0, 0.02, t.size)
+    noise = 32 + rng.normal(0, 0.2, t.size)
+    cycle = 5 + np.sin(2 * np.pi * t / 660) + rng.normal(0, 0.02, t.size)
+    x = np.column_stack([_windows(creep, 20), _windows(noise, 20), _windows(cycle, 20)])
+    names = ("temp.mean", "temp.std", "flow.mean", "flow.std", "load.mean", "load.std")
     cov = assess(names, x, WindowGeometry(20, 20))
     by = {c.channel: c for c in cov.channels}
     assert by["temp"].slow and not by["temp"].covered
     assert not by["flow"].slow and by["flow"].covered
+    assert by["load"].slow and by["load"].covered and by["load"].crossings >= 10
     assert cov.excluded == ("temp.mean", "temp.std")
-    assert "temp" in cov.lines()[0]
+    assert "temp" in cov.lines()[0] and len(cov.lines()) == 1
 
 
 def test_geometry_from_the_manifest_or_the_times() -> None:
