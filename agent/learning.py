@@ -455,7 +455,7 @@ class RebaselineManager:
                              "false_alarm_budget": c.false_alarm_budget,
                              "rehearsal_tolerance": c.rehearsal_tolerance,
                              "rehearsal_size": c.rehearsal_size},
-                "detector": [det.raise_k, det.raise_n, det.clear_m]})
+                "detector": [det.raise_k, det.raise_n, det.clear_m, det.stride]})
             env = {**os.environ, **ONE_THREAD, **self.worker_env}
             with open(job_dir / "worker.log", "wb") as errf:
                 proc = subprocess.Popen([self.python, "-m", "agent.rebaseline_worker",

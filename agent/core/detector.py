@@ -35,22 +35,34 @@ class Detector:
     def __init__(self, params: DetectorParams) -> None:
         self.params = params
         self.state = State.NORMAL
-        self._recent: deque[bool] = deque(maxlen=params.raise_n)
+        self._stride = params.stride
+        span = (params.raise_n - 1) * params.stride + 1
+        self._recent: deque[bool] = deque(maxlen=span)
         self._n_above = 0  # how many of `_recent` are True (kept, not summed per window)
         self._below = 0
         self.peak_score = 0.0
 
-    def step(self, score: float, threshold: float, clear_threshold: float) -> Transition | None:
-        """Feed one window's score; return the transition it causes, if any."""
-        above = score > threshold
-        if self.state is State.NORMAL:
-            recent = self._recent
+    def _rises(self, above: bool) -> bool:
+        """Append this window's verdict; whether k of the last n (strided) are above."""
+        recent = self._recent
+        if self._stride == 1:
             if len(recent) == recent.maxlen and recent[0]:
                 self._n_above -= 1  # about to fall out of the last n
             recent.append(above)
             if above:
                 self._n_above += 1
-            if self._n_above >= self.params.raise_k:
+            return self._n_above >= self.params.raise_k
+        recent.append(above)
+        if not above:
+            return False
+        n = len(recent)
+        return sum(recent[i] for i in range(n - 1, -1, -self._stride)) >= self.params.raise_k
+
+    def step(self, score: float, threshold: float, clear_threshold: float) -> Transition | None:
+        """Feed one window's score; return the transition it causes, if any."""
+        above = score > threshold
+        if self.state is State.NORMAL:
+            if self._rises(above):
                 self.state = State.ANOMALOUS
                 self._below = 0
                 self.peak_score = score

@@ -60,10 +60,26 @@ def test_block_spread_floors_a_feature_that_moved_between_stretches() -> None:
 
 
 @pytest.mark.parametrize(("length", "hop", "want"), [
-    (10, 10, (2, 3, 3)), (20, 1, (40, 60, 3)), (10, 4, (6, 9, 3)),
+    (10, 10, (2, 3, 3, 1)), (20, 1, (2, 3, 3, 20)), (10, 4, (2, 3, 3, 3)),
 ])
-def test_raise_rule_stretched_over_hopping_windows(length: float, hop: float,
-                                                   want: tuple[int, int, int]) -> None:
-    """k of n independent windows becomes k*w of n*w hopped ones; clear_m stays."""
+def test_raise_rule_strided_over_hopping_windows(length: float, hop: float,
+                                                 want: tuple[int, int, int, int]) -> None:
+    """k of n independent windows: the n windows are a window length apart."""
     d = DetectorParams().over_windows(length, hop)
-    assert (d.raise_k, d.raise_n, d.clear_m) == want
+    assert (d.raise_k, d.raise_n, d.clear_m, d.stride) == want
+
+
+@pytest.mark.parametrize(("stride", "above", "raised_at"), [
+    (20, [1] * 3 + [0] * 40, None),            # a 3-window spike fills one strided slot
+    (20, [1] * 25, 20),                        # held: windows 0 and 20 are both above
+    (10, [1] + [0] * 9 + [1] + [0] * 20, 10),  # two separate windows a stride apart
+    (10, [1] + [0] * 8 + [1] + [0] * 20, None),  # not a stride apart
+    (1, [1, 0, 1], 2),                         # stride 1 is the plain k of n
+])
+def test_strided_detector(stride: int, above: list[int], raised_at: int | None) -> None:
+    """With a stride, 2 of 3 counts only windows a stride apart."""
+    from agent.core.detector import Transition, run_detector
+    params = DetectorParams(2, 3, 3, stride=stride)
+    got = [i for i, t in run_detector(np.array(above, float), 0.5, 0.4, params)
+           if t is Transition.RAISED]
+    assert got == ([] if raised_at is None else [raised_at])
