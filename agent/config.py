@@ -199,6 +199,13 @@ class AssetConfig:
     iso10816: IsoConfig | None = None
 
     @property
+    def level_channels(self) -> frozenset[str]:
+        """Channels that read a level (not waveform blocks): the ones a drift can be
+        blamed on (agent/core/suspect.py)."""
+        return frozenset(c.name for c in self.channels
+                         if c.decoder is not Decoder.JSON_BATCH and c.spectrum is None)
+
+    @property
     def window_overlap(self) -> int:
         """Windows that share any one instant: ceil(length_s / hop_s)."""
         return max(1, math.ceil(self.window.length_s / self.window.hop_s - 1e-9))

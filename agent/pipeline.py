@@ -57,6 +57,7 @@ from agent.core.limits import ZONES, FeatureLimits, LimitRise, ZoneLimits, zone_
 from agent.core.lockstep import LockstepCut
 from agent.core.modes import UNKNOWN_MODE
 from agent.core.spectral import spectral_features
+from agent.core.suspect import ALONE_SHARE, dominant_channel, drifting_channel
 from agent.core.windows import Block, ClosedWindow
 from agent.ingest import AssetInbox, Buffers, close_inboxes
 from agent.logs import kv
@@ -712,9 +713,28 @@ class Pipeline:
         stats.windows_scored += 1
         rt.last_score = score
         rt.last_window_end = end
+        rt.sq_history.append(np.array(sq, dtype=np.float64))
         tr = rt.detector.step(score, meta.threshold, meta.clear_threshold)
         end_s = self._time(end)
         model = bundle.model_ref
+        if rt.suspects:
+            self._suspects_recover(rt, score, meta.clear_threshold, end, out, stats)
+        if tr is Transition.RAISED:
+            hist = rt.sq_history
+            earlier = hist[0] if len(hist) == hist.maxlen else None
+            lead, share = dominant_channel(meta.feature_names, sq)
+            drift = lead if lead in rt.suspects and share >= ALONE_SHARE else \
+                drifting_channel(meta.feature_names, sq, meta.clear_threshold, earlier,
+                                 rt.cfg.level_channels)
+            if drift is not None:
+                # The signature of a drifting sensor, not of the machine: say so once,
+                # and do not raise the machine for what that one channel alone explains.
+                rt.detector.reset()
+                tr = None
+                if drift not in rt.suspects:
+                    self._suspect_event(rt, drift, True, start, end, score, meta, sq, out)
+                    stats.events += 1
+                rt.suspects[drift] = 0
         if tr is not None:
             src = self.source.for_asset(name)
             base = {"asset": name, "mode": mode,
@@ -777,6 +797,39 @@ class Pipeline:
                 self._scaler_cache.clear()
             self._scaler_cache[len(bundles)] = got
         return got[1], got[2]
+
+    def _suspects_recover(self, rt: AssetRuntime, score: float, clear_threshold: float,
+                          end: float, out: list[OutMessage], stats: TickStats) -> None:
+        """Suspect channels recover after `clear_m` consecutive normal windows."""
+        if score >= clear_threshold:
+            for ch in rt.suspects:
+                rt.suspects[ch] = 0
+            return
+        for ch in list(rt.suspects):
+            rt.suspects[ch] += 1
+            if rt.suspects[ch] >= rt.cfg.detector.clear_m:
+                del rt.suspects[ch]
+                self._suspect_event(rt, ch, False, end, end, score, None, None, out)
+                stats.events += 1
+
+    def _suspect_event(self, rt: AssetRuntime, channel: str, suspect: bool, start: float,
+                       end: float, score: float, meta: BundleMeta | None,
+                       sq: np.ndarray | None, out: list[OutMessage]) -> None:
+        """`sensor.fault` (reason `suspect_drift`) for a channel whose drift alone explains
+        the anomaly, `sensor.recovered` when the asset is back to normal."""
+        rt.sequence += 1
+        unit = next((c.unit for c in rt.cfg.channels if c.name == channel), "")
+        data: dict[str, Any] = {"asset": rt.cfg.name, "channel": channel, "mode": rt.mode,
+                                "reasons": ["suspect_drift"], "unit": unit,
+                                "sequence": rt.sequence,
+                                "window": {"start": self._time(start), "end": self._time(end)}}
+        if meta is not None and sq is not None:
+            data["detail"] = {"score": round(score, 6), "threshold": meta.threshold,
+                              "contributors": top_contributors(meta.feature_names, sq)}
+        self.metrics.sensor_fault.labels(rt.cfg.name, channel).set(1 if suspect else 0)
+        etype = EventType.SENSOR_FAULT if suspect else EventType.SENSOR_RECOVERED
+        self._event(rt, etype, self.source.for_asset(rt.cfg.name), end, data, out,
+                    Kind.EVENT, id_key=f"{channel}|suspect|{start:.3f}")
 
     def _escalated(self, rt: AssetRuntime, esc: Escalated, start: float, end: float,
                    mode: str, score: float, meta: BundleMeta, model: dict[str, Any],

@@ -10,6 +10,7 @@ models, limits and the window observer read. Built once per asset from the confi
 from __future__ import annotations
 
 import logging
+from collections import deque
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -119,6 +120,11 @@ class AssetRuntime:
     raised_at: float | None = None
     raised_window: tuple[float, float] | None = None
     escalation: EscalationTracker = field(default_factory=EscalationTracker)
+    # Per-feature squared errors of the last windows, as far back as the raise rule looks
+    # (the drifting-sensor check compares the oldest with the newest); channels reported
+    # as drifting sensors -> consecutive normal windows since.
+    sq_history: deque[np.ndarray] = field(default_factory=lambda: deque(maxlen=1))
+    suspects: dict[str, int] = field(default_factory=dict)
     # Machine know-how: per-mode bundles, mode tracking, sensor health, limits.
     asset_bundle: Bundle | None = None
     mode_bundles: dict[str, Bundle] = field(default_factory=dict)
@@ -156,7 +162,9 @@ class AssetRuntime:
         rt = cls(cfg=cfg,
                  assembler=WindowAssembler(cfg.window, tuple(c.rate_hz for c in cfg.channels)),
                  detector=Detector(cfg.window_detector),
-                 escalation=EscalationTracker(persist=cfg.window_overlap))
+                 escalation=EscalationTracker(persist=cfg.window_overlap),
+                 sq_history=deque(maxlen=(cfg.window_detector.raise_n - 1)
+                                  * cfg.window_detector.stride + 1))
         rt.record_names = asset_feature_names(cfg)
         rt.record_index = _full_index(cfg, rt.record_names)
         rt.mode_bundles, rt.mode_bundle_errors = (mode_bundles if mode_bundles is not None
