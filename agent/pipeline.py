@@ -68,6 +68,11 @@ from agent.runtime import AssetRuntime
 _NF = len(FEATURES)
 
 
+
+def _ratio(score: float, threshold: float) -> float | None:
+    """The score relative to the threshold, as people read it (1.0 = at the threshold)."""
+    return round(score / threshold, 3) if threshold > 0 else None
+
 class Sink(Protocol):
     """Takes one tick's messages; `sequences` are the assets' event sequence numbers
     after the tick (only those that changed), stored with the messages."""
@@ -740,6 +745,7 @@ class Pipeline:
             base = {"asset": name, "mode": mode,
                     "window": {"start": self._time(start), "end": end_s},
                     "score": round(score, 6), "threshold": meta.threshold,
+                    "score_ratio": _ratio(score, meta.threshold),
                     "clear_threshold": meta.clear_threshold, "model": model}
         if tr is Transition.RAISED:
             rt.sequence += 1
@@ -778,6 +784,7 @@ class Pipeline:
         state_topic, scores_topic = self._topics(name)
         rounded = round(score, 6)
         doc = {"asset": name, "state": state, "mode": mode, "score": rounded,
+               "score_ratio": _ratio(score, meta.threshold),
                "threshold": meta.threshold, "window_end": end_s, "model": model,
                "last_event": rt.last_event}
         out.append(OutMessage(state_topic, _json(doc), Kind.STATE, 1, True, state_topic))
@@ -839,6 +846,7 @@ class Pipeline:
         data = {"asset": rt.cfg.name, "mode": mode,
                 "window": {"start": self._time(start), "end": self._time(end)},
                 "score": round(score, 6), "threshold": meta.threshold,
+                "score_ratio": _ratio(score, meta.threshold),
                 "clear_threshold": meta.clear_threshold, "model": model,
                 "reason": esc.reason.value, "severity": esc.severity.value,
                 "previous_severity": esc.previous_severity.value,
