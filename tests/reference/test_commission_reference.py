@@ -77,20 +77,39 @@ def test_threshold_is_numpy_quantile_times_margin(q: float, margin: float,
 
 
 def test_trained_bundle_threshold_from_its_held_out_scores(tmp_path: Path) -> None:
-    """Source: numpy.quantile of the held-out windows' scores, recomputed here through
-    agent.bundle.load_bundle (the daemon's scoring), times the margin in model.json."""
+    """The threshold is recomputed from the held-out windows' scores through
+    agent.bundle.load_bundle (the daemon's scoring): those windows are the last in time
+    (forward validation), and calibrate_tail on their scores with the settings in
+    model.json gives the bundle's threshold; a pot-gpd tail's level is checked against
+    scipy.stats.genpareto (source: its ppf)."""
+    from scipy import stats
+
+    from agent.commission.tail import calibrate_tail
+
     t = 1.75e9 + 10.0 * np.arange(700)
     x = _windows(700, 2)
     write_dataset(tmp_path / "ds", x, NAMES, t, t + 10, ["run"] * 700, asset="P-101")
     report = train_bundle(tmp_path / "ds", tmp_path / "b", epochs=20)
     doc = json.loads((tmp_path / "b" / "model.json").read_text())
-    scores, _ = load_bundle(tmp_path / "b").score(x[report.calib_index])
+    ca = report.calib_index
+    np.testing.assert_array_equal(ca, np.arange(700 - len(ca), 700))  # the last windows
+    scores, _ = load_bundle(tmp_path / "b").score(x[ca])
     cal = doc["calibration"]
-    expected = np.quantile(scores, cal["quantile"]) * cal["margin"]
-    assert doc["threshold"] == pytest.approx(expected, rel=1e-12)
-    assert cal["n_windows"] == len(report.calib_index)
-    # the held-out windows were not used to fit the weights
-    assert doc["training"]["split"]["calib"] == len(report.calib_index)
+    det = cal["detector"]
+    again = calibrate_tail(scores, length_s=10, hop_s=10, raise_k=det["raise_k"],
+                           raise_n=det["raise_n"],
+                           budget_per_week=cal["false_alarm_budget_per_week"],
+                           margin=cal["margin"], clear_ratio=cal["clear_ratio"])
+    assert doc["threshold"] == pytest.approx(again.threshold, rel=1e-6)
+    assert cal["n_windows"] == len(ca)
+    if cal["method"] == "pot-gpd":
+        g = cal["gpd"]
+        level = g["u"] + stats.genpareto.ppf(1 - cal["target_exceedance_per_window"] / g["zeta"],
+                                              g["xi"], 0, g["sigma"])
+        assert doc["threshold"] == pytest.approx(level * cal["margin"], rel=1e-6)
+    else:
+        assert doc["threshold"] == pytest.approx(float(scores.max()) * cal["margin"], rel=1e-6)
+    assert doc["training"]["split"]["calib"] == len(ca)
 
 
 def _auc_cases():
