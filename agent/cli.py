@@ -70,7 +70,9 @@ def cmd_check_config(args: argparse.Namespace) -> int:
     print(f"config {args.config}: OK")
     print(f"  site {cfg.site}, gateway {cfg.gateway}, topic prefix {cfg.topic_prefix}")
     lb, ub = cfg.local_broker, cfg.upstream_broker
-    print(f"  local broker {lb.host}:{lb.port}  upstream broker {ub.host}:{ub.port}"
+    ups = ", ".join(str(e) for e in ub.targets())
+    print(f"  local broker {lb.host}:{lb.port}  upstream broker"
+          f"{' endpoints' if len(ub.targets()) > 1 else ''} {ups}"
           f"{' (TLS)' if ub.tls else ''}  MQTT {ub.protocol.value}")
     print(f"  state dir {cfg.state_dir}  outbox {cfg.outbox.path} "
           f"(synchronous={cfg.outbox.synchronous.value})")

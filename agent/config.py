@@ -234,7 +234,19 @@ class TlsConfig:
 
 
 @dataclass(frozen=True)
+class Endpoint:
+    """One address of a broker (a node of a cluster)."""
+
+    host: str
+    port: int
+
+    def __str__(self) -> str:
+        return f"[{self.host}]:{self.port}" if ":" in self.host else f"{self.host}:{self.port}"
+
+
+@dataclass(frozen=True)
 class BrokerConfig:
+    # The first endpoint; with `endpoints` given, `host` and `port` are its address.
     host: str = "127.0.0.1"
     port: int = 1883
     client_id: str = ""
@@ -244,6 +256,13 @@ class BrokerConfig:
     password_file: Path | None = None
     protocol: MqttProtocol = MqttProtocol.V311
     tls: TlsConfig | None = None
+    # Upstream only: the nodes of a clustered broker, tried in turn when the connection is
+    # lost (agent/upstream.py). Empty: the one `host`/`port`.
+    endpoints: tuple[Endpoint, ...] = ()
+
+    def targets(self) -> tuple[Endpoint, ...]:
+        """Every address to try, in order; at least one."""
+        return self.endpoints or (Endpoint(self.host, self.port),)
 
 
 @dataclass(frozen=True)
@@ -417,13 +436,48 @@ def _matches(flt: str, topic: str) -> bool:
     return len(fl) == len(tl)
 
 
-def _broker(r: _Reader, node: Any, path: str, default_id: str, default_port: int) -> BrokerConfig:
+def _port_ok(v: int) -> bool:
+    return 0 < v < 65536
+
+
+def _endpoints(r: _Reader, n: dict[str, Any], path: str, default_port: int
+               ) -> tuple[Endpoint, ...]:
+    """`endpoints: [{host, port}, ...]`: the nodes of a clustered upstream broker."""
+    where = f"{path}.endpoints"
+    items = r.get(n, "endpoints", path, "list", [], lambda v: len(v) > 0,
+                  "a non-empty list of {host, port} mappings")
+    if items and (n.get("host") is not None or n.get("port") is not None):
+        # Two ways to say where the broker is: which one wins would be a silent surprise.
+        r.bad(where, "either host/port or endpoints, not both")
+    out: list[Endpoint] = []
+    for i, item in enumerate(items):
+        ipath = f"{where}[{i}]"
+        if not isinstance(item, dict):
+            r.bad(ipath, "a mapping with host and port", item)
+            continue
+        e = r.mapping(item, ipath, ("host", "port"))
+        host = r.get(e, "host", ipath, "str", _REQUIRED, expected="a host name or address")
+        port = r.get(e, "port", ipath, "int", default_port, _port_ok, "a TCP port 1-65535")
+        if host is None:
+            continue
+        ep = Endpoint(host, port)
+        if ep in out:
+            r.bad(ipath, "each endpoint listed once", found=f"{ep} again")
+            continue
+        out.append(ep)
+    return tuple(out)
+
+
+def _broker(r: _Reader, node: Any, path: str, default_id: str, default_port: int,
+            *, cluster: bool = False) -> BrokerConfig:
     keys = ("host", "port", "client_id", "keepalive_s", "username", "password",
-            "password_file", "protocol", "tls")
+            "password_file", "protocol", "tls") + (("endpoints",) if cluster else ())
     n = r.mapping(node, path, keys)
     host = r.get(n, "host", path, "str", "127.0.0.1")
-    port = r.get(n, "port", path, "int", default_port, lambda v: 0 < v < 65536,
-                 "a TCP port 1-65535")
+    port = r.get(n, "port", path, "int", default_port, _port_ok, "a TCP port 1-65535")
+    endpoints = _endpoints(r, n, path, default_port) if cluster else ()
+    if endpoints:
+        host, port = endpoints[0].host, endpoints[0].port
     client_id = r.get(n, "client_id", path, "str", default_id)
     keepalive = r.get(n, "keepalive_s", path, "int", 20, lambda v: 5 <= v <= 3600,
                       "seconds between 5 and 3600")
@@ -455,7 +509,8 @@ def _broker(r: _Reader, node: Any, path: str, default_id: str, default_port: int
     return BrokerConfig(host=host, port=port, client_id=client_id, keepalive_s=keepalive,
                         username=r.get(n, "username", path, "str", None),
                         password=r.get(n, "password", path, "str", None),
-                        password_file=pw_file, protocol=MqttProtocol(protocol), tls=tls)
+                        password_file=pw_file, protocol=MqttProtocol(protocol), tls=tls,
+                        endpoints=endpoints)
 
 
 def _window(r: _Reader, node: Any, path: str) -> WindowConfig:
@@ -770,7 +825,7 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
     role = f"watchkeep-{site}-{gateway}"
     local = _broker(r, top.get("local_broker"), "local_broker", f"{role}-ingest", 1883)
     upstream = _broker(r, top.get("upstream_broker"), "upstream_broker", f"{role}-upstream",
-                       1883)
+                       1883, cluster=True)
     ing = r.mapping(top.get("ingest"), "ingest",
                     ("max_payload_bytes", "max_clock_skew_s", "subscriptions", "worker"))
     subs = r.get(ing, "subscriptions", "ingest", "list", [])

@@ -318,6 +318,7 @@ class Daemon:
         doc["version"] = __version__
         doc["local_connected"] = self.ingest.connected.is_set()
         doc["upstream_connected"] = self.upstream.connected.is_set()
+        doc["upstream"] = self.upstream.status()
         doc["outbox"] = self.outbox.status()
         self.rebaseline.annotate(doc)
         return doc

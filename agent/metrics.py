@@ -235,6 +235,10 @@ class Metrics:
         self.published = Counter(
             "watchkeep_upstream_published_total", "Messages acknowledged by the upstream broker",
             ["kind"], registry=r)
+        self.upstream_endpoint = Gauge(
+            "watchkeep_upstream_endpoint",
+            "1 on the upstream endpoint (host:port from upstream_broker) in use while "
+            "connected, 0 on the others", ["endpoint"], registry=r)
         self.since_ack = Gauge(
             "watchkeep_upstream_seconds_since_last_ack",
             "Seconds since the upstream broker last acknowledged a message", registry=r)

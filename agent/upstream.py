@@ -20,6 +20,17 @@ the DUP flag and their old message ids, before anything newer: delivery resumes
 from the oldest unacknowledged row, in order. After a restart the outbox
 starts again from its oldest row. Either way, duplicates can only be messages
 that were in flight at the cut; event ids are stable, so consumers de-duplicate.
+
+**Endpoints** (`upstream_broker.endpoints`, the nodes of a clustered broker): every
+failed attempt and every lost connection moves on to the next endpoint in the list
+(round robin), after the same capped, jittered backoff, so a dead node costs one
+backoff step. paho's in-flight messages are kept across the switch
+(`connect_async` only changes the address), so the new node gets the oldest
+unacknowledged rows first, with the DUP flag, then the rest in order. The endpoint
+in use stays until its connection is lost (no fail-back). It is in `status()`, the
+`watchkeep_upstream_endpoint{endpoint}` gauge and the connect log line; TLS settings,
+credentials and the client id are the same for every endpoint, and each endpoint's
+certificate is checked against its own host name.
 """
 
 from __future__ import annotations
@@ -40,7 +51,7 @@ from typing import Any
 import paho.mqtt.client as mqtt
 
 from agent import __version__
-from agent.config import BrokerConfig, Config
+from agent.config import BrokerConfig, Config, Endpoint
 from agent.errors import ConfigError, ConfigProblem
 from agent.ingest import make_client
 from agent.logs import RateLimited, kv
@@ -74,13 +85,15 @@ def backoff_delay(attempt: int, u: float, min_s: float = RECONNECT_MIN_S,
     return base * (0.5 + 0.5 * u)
 
 
-def describe_connect_error(exc: BaseException, broker: BrokerConfig) -> str:
+def describe_connect_error(exc: BaseException, broker: BrokerConfig,
+                           endpoint: Endpoint | None = None) -> str:
     """One line that says what failed and what to check."""
-    where = f"{broker.host}:{broker.port}"
+    ep = endpoint or Endpoint(broker.host, broker.port)
+    where = str(ep)
     if isinstance(exc, ssl.SSLCertVerificationError):
         return (f"TLS certificate verification failed for {where}: {exc.verify_message} "
                 f"(check upstream_broker.tls.ca_file and that the broker's certificate "
-                f"names {broker.host})")
+                f"names {ep.host})")
     if isinstance(exc, ssl.SSLError):
         return f"TLS handshake with {where} failed: {exc.reason or exc}"
     if isinstance(exc, ConnectionRefusedError):
@@ -107,6 +120,12 @@ class Upstream:
                  rand: Callable[[], float] = random.random) -> None:
         self.cfg = cfg
         self.broker = cfg.upstream_broker
+        self.endpoints = self.broker.targets()
+        # The endpoint being tried or in use (network thread writes, anyone reads), and
+        # the one the last connection went to (None before the first).
+        self.endpoint = self.endpoints[0]
+        self._ep_index = 0
+        self._last_connected: Endpoint | None = None
         self.outbox = outbox
         self.metrics = metrics
         self.log = logger
@@ -141,6 +160,8 @@ class Upstream:
         self._paho_error: str | None = None
         self._connack_seen = False
         self._gauge = metrics.connected.labels("upstream")
+        # Every endpoint's series exists from the start, at 0; 1 on the one in use.
+        self._ep_gauges = {e: metrics.upstream_endpoint.labels(str(e)) for e in self.endpoints}
         self._errors = metrics.callback_errors.labels("upstream")
         self._published = {k: metrics.published.labels(k.label) for k in Kind}
         self._rl = RateLimited(logger)
@@ -173,7 +194,8 @@ class Upstream:
             self.log.warning(kv("upstream keepalive outside 15-30 s: a half-open "
                                 "connection is noticed late or pings are frequent",
                                 keepalive_s=b.keepalive_s))
-        self._client.connect_async(b.host, b.port, keepalive=b.keepalive_s)
+        self._client.connect_async(self.endpoint.host, self.endpoint.port,
+                                   keepalive=b.keepalive_s)
         self._store.start()
         self._net.start()
 
@@ -201,6 +223,8 @@ class Upstream:
 
     def status(self) -> dict[str, Any]:
         return {"connected": self.connected.is_set(), "last_error": self.last_error,
+                "endpoint": str(self.endpoint),
+                "endpoints": [str(e) for e in self.endpoints],
                 "inflight": len(self._inflight),
                 "seconds_since_ack": round(self.seconds_since_ack(), 3),
                 "protocol": self.broker.protocol.value, "tls": self.broker.tls is not None,
@@ -215,9 +239,10 @@ class Upstream:
             try:
                 self._client.reconnect()
             except Exception as exc:  # every way a connect can fail: explained, retried
-                self._note_error(describe_connect_error(exc, self.broker))
+                self._note_error(describe_connect_error(exc, self.broker, self.endpoint))
                 attempt += 1
                 self._stop_net.wait(backoff_delay(attempt, self.rand()))
+                self._next_endpoint()
                 continue
             self._paho_error = None
             self._connack_seen = False
@@ -225,7 +250,7 @@ class Upstream:
                 try:
                     rc = self._client.loop(timeout=self._loop_timeout())
                 except Exception as exc:
-                    self._note_error(describe_connect_error(exc, self.broker))
+                    self._note_error(describe_connect_error(exc, self.broker, self.endpoint))
                     rc = mqtt.MQTT_ERR_CONN_LOST
                 if self.connected.is_set():
                     attempt = 0
@@ -237,12 +262,22 @@ class Upstream:
             if not self._connack_seen:
                 self._note_error(self._closed_early_message())
             elif self._paho_error:
-                b = self.broker
-                self._note_error(f"connection to {b.host}:{b.port} lost: {self._paho_error}")
+                self._note_error(f"connection to {self.endpoint} lost: {self._paho_error}")
             self._set_disconnected()
             attempt += 1
             self._stop_net.wait(backoff_delay(attempt, self.rand()))
+            self._next_endpoint()
         self._shutdown()
+
+    def _next_endpoint(self) -> None:
+        """Point the client at the next endpoint (round robin); paho keeps its in-flight
+        messages across `connect_async`, which only changes the address."""
+        if len(self.endpoints) < 2 or self._stop_net.is_set():
+            return
+        self._ep_index = (self._ep_index + 1) % len(self.endpoints)
+        self.endpoint = self.endpoints[self._ep_index]
+        self._client.connect_async(self.endpoint.host, self.endpoint.port,
+                                   keepalive=self.broker.keepalive_s)
 
     def _loop_timeout(self) -> float:
         """Short while rows wait in the outbox: the store thread's hand-over cannot wake
@@ -295,7 +330,7 @@ class Upstream:
 
     def _closed_early_message(self) -> str:
         b = self.broker
-        msg = f"connection to {b.host}:{b.port} closed before the broker accepted it"
+        msg = f"connection to {self.endpoint} closed before the broker accepted it"
         if self._paho_error:
             msg += f" ({self._paho_error})"
         if b.tls is not None:
@@ -314,6 +349,8 @@ class Upstream:
         self.connected.clear()
         self.commands_subscribed.clear()
         self._gauge.set(0)
+        for g in self._ep_gauges.values():
+            g.set(0)
 
     # -- paho callbacks (network thread; never block, never raise) ----------------
 
@@ -335,11 +372,19 @@ class Upstream:
                                           outbox=self.outbox.status()),
                            qos=1, retain=True)
             self.last_error = None
+            ep, before = self.endpoint, self._last_connected
+            self._last_connected = ep
             self.connected.set()
             self._gauge.set(1)
-            self.log.info(kv("upstream broker connected", host=self.broker.host,
-                             port=self.broker.port, protocol=self.broker.protocol.value,
+            self._ep_gauges[ep].set(1)
+            self.log.info(kv("upstream broker connected", host=ep.host, port=ep.port,
+                             endpoint=f"{self._ep_index + 1}/{len(self.endpoints)}",
+                             protocol=self.broker.protocol.value,
                              tls=self.broker.tls is not None, resending=len(self._inflight)))
+            if before is not None and before != ep:
+                self.log.warning(kv("upstream broker failover: now connected to another "
+                                    "endpoint", endpoint=str(ep), previous=str(before),
+                                    resending=len(self._inflight)))
         except Exception:
             self._errors.inc()
             self.log.exception("error in upstream on_connect")

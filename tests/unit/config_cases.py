@@ -249,6 +249,36 @@ BROKEN: tuple[Broken, ...] = (
            _set("upstream_broker", {"password": "s3cret", "password_file": "upstream.secret"}),
            ("upstream_broker.password_file: expected either password or password_file, "
             "not both",)),
+    Broken("endpoint port out of range",
+           _set("upstream_broker", {"endpoints": [{"host": "broker-a", "port": 8883},
+                                                  {"host": "broker-b", "port": 70000}]}),
+           ("upstream_broker.endpoints[1].port: expected a TCP port 1-65535, got 70000",)),
+    Broken("endpoint without a host", _set("upstream_broker", {"endpoints": [{"port": 8883}]}),
+           ("upstream_broker.endpoints[0].host: expected a host name or address (required)",)),
+    Broken("endpoint written as host:port",
+           _set("upstream_broker", {"endpoints": [{"host": "broker-a"}, "broker-b:8883"]}),
+           ("upstream_broker.endpoints[1]: expected a mapping with host and port, "
+            "got 'broker-b:8883'",)),
+    Broken("TLS inside an endpoint",
+           _set("upstream_broker", {"endpoints": [{"host": "broker-a", "tls": {}}]}),
+           ("upstream_broker.endpoints[0].tls: expected one of the known keys (host, port), "
+            "got unknown key 'tls'",)),
+    Broken("empty endpoint list", _set("upstream_broker", {"endpoints": []}),
+           ("upstream_broker.endpoints: expected a non-empty list of {host, port} mappings, "
+            "got an empty list",)),
+    Broken("endpoint listed twice",
+           _set("upstream_broker", {"endpoints": [{"host": "broker-a", "port": 8883},
+                                                  {"host": "broker-a", "port": 8883}]}),
+           ("upstream_broker.endpoints[1]: expected each endpoint listed once, "
+            "got broker-a:8883 again",)),
+    Broken("host and endpoints together",
+           _set("upstream_broker", {"host": "broker-a", "endpoints": [{"host": "broker-b"}]}),
+           ("upstream_broker.endpoints: expected either host/port or endpoints, not both",)),
+    Broken("endpoints on the local broker",
+           _set("local_broker", {"endpoints": [{"host": "127.0.0.1"}]}),
+           ("local_broker.endpoints: expected one of the known keys (host, port, client_id, "
+            "keepalive_s, username, password, password_file, protocol, tls), "
+            "got unknown key 'endpoints'",)),
     Broken("scores not a boolean", _set("publish", {"scores": "sometimes"}),
            ("publish.scores: expected true or false, got 'sometimes'",)),
     Broken("tick too short", _set("pipeline", {"tick_s": 0}),

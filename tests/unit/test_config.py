@@ -14,6 +14,7 @@ from agent.config import (
     WAVEFORM_DEFAULT_FEATURES,
     Config,
     Decoder,
+    Endpoint,
     MqttProtocol,
     Synchronous,
     load_config,
@@ -143,6 +144,34 @@ def test_defaults(tmp_path: Path) -> None:
     vib = cfg.asset("B-201").channel("vib")
     assert vib.features == WAVEFORM_DEFAULT_FEATURES
     assert (vib.values_field, vib.rate_field) == ("values", "rate_hz")
+
+
+@pytest.mark.parametrize(("upstream", "targets"), [
+    ({}, [("127.0.0.1", 1883)]),                                   # the default
+    ({"host": "broker-a", "port": 8883}, [("broker-a", 8883)]),     # the single form
+    ({"endpoints": [{"host": "broker-a", "port": 8883}, {"host": "broker-b"},
+                    {"host": "fd00::7", "port": 18883}]},
+     [("broker-a", 8883), ("broker-b", 1883), ("fd00::7", 18883)]),  # port defaults to 1883
+    ({"endpoints": [{"host": "broker-a", "port": 8883}], "host": None},
+     [("broker-a", 8883)]),                                         # null host: not given
+])
+def test_upstream_endpoints(upstream: dict[str, Any], targets: list[tuple[str, int]],
+                            tmp_path: Path) -> None:
+    """The upstream broker is one host/port or a list of endpoints, in the listed order;
+    host and port are the first endpoint's."""
+    doc = base_doc()
+    doc["upstream_broker"] = upstream
+    ub = load_config(write(tmp_path, doc)).upstream_broker
+    assert [(e.host, e.port) for e in ub.targets()] == targets
+    assert (ub.host, ub.port) == targets[0]
+    assert ub.endpoints == (tuple(Endpoint(h, p) for h, p in targets)
+                            if "endpoints" in upstream else ())
+
+
+def test_endpoint_names_itself() -> None:
+    """An endpoint prints as host:port, an IPv6 address in brackets (the metric label)."""
+    assert [str(Endpoint("broker-a", 8883)), str(Endpoint("fd00::7", 1883))] == \
+        ["broker-a:8883", "[fd00::7]:1883"]
 
 
 @pytest.mark.parametrize(("window", "expected"), [

@@ -113,6 +113,7 @@ MAPPINGS = {
     "local_broker": ("local_broker",),
     "upstream_broker": ("upstream_broker",),
     "upstream_broker.tls": ("upstream_broker", "tls"),
+    "upstream_broker.endpoints[0]": ("upstream_broker", "endpoints", "*"),
     "ingest": ("ingest",),
     "pipeline": ("pipeline",),
     "publish": ("publish",),
@@ -140,6 +141,7 @@ def loader_keys(where: str, tmp_path: Path) -> set[str]:
     """The keys the loader accepts at `where`, read from its unknown-key message."""
     doc = base_doc()
     doc.setdefault("upstream_broker", {})["tls"] = {}
+    doc["upstream_broker"]["endpoints"] = [{"host": "broker-a"}]
     node: Any = doc
     for part in re.findall(r"[^.\[\]]+", where):
         node = node[int(part)] if part.isdigit() else node.setdefault(part, {})
