@@ -103,6 +103,9 @@ def render_status(doc: Mapping[str, Any]) -> str:
     for key, name in (("local_connected", "local broker"), ("upstream_connected", "upstream")):
         if key in doc:
             conn.append(f"{name} {'connected' if doc[key] else 'DISCONNECTED'}")
+    up = doc.get("upstream")
+    if isinstance(up, Mapping) and up.get("endpoint") and "upstream_connected" in doc:
+        conn[-1] += f" ({up['endpoint']})"  # which node of the upstream cluster
     outbox = doc.get("outbox")
     if isinstance(outbox, Mapping) and "rows" in outbox:
         conn.append(f"outbox {outbox['rows']} rows")

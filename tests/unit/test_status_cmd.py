@@ -34,6 +34,15 @@ def test_render_status_table() -> None:
     assert header.index("STATE") == p101.index("ANOMALOUS")  # columns line up
 
 
+def test_upstream_endpoint_in_the_connection_line() -> None:
+    """The upstream endpoint in use (a node of a cluster) follows the upstream state."""
+    doc = {**DOC, "upstream_connected": True,
+           "upstream": {"endpoint": "broker-b:8883", "endpoints": ["broker-a:8883",
+                                                                   "broker-b:8883"]}}
+    assert render_status(doc).splitlines()[1] == \
+        "local broker connected  upstream connected (broker-b:8883)  outbox 12 rows"
+
+
 def test_learning_column() -> None:
     """A learning asset shows its phase and progress (and held events); one that learnt
     before shows the last outcome; the others a dash."""
