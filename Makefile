@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: test demo bench lint typecheck clean check-mosquitto
+.PHONY: test demo bench lint typecheck clean check-mosquitto check-nats
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -17,7 +17,13 @@ check-mosquitto:
 	  if [ "$$(id -u)" = 0 ]; then apt-get update -qq && apt-get install -y -qq mosquitto; \
 	  else echo "mosquitto is missing: run 'sudo apt-get install -y mosquitto' and try again" >&2; exit 1; fi; }
 
-test: $(STAMP) check-mosquitto
+# The fleet test's clustered upstream broker (tests/integration/test_fleet_nats.py).
+check-nats:
+	@command -v nats-server >/dev/null 2>&1 || [ -x /usr/sbin/nats-server ] || { \
+	  if [ "$$(id -u)" = 0 ]; then apt-get update -qq && apt-get install -y -qq nats-server; \
+	  else echo "nats-server is missing: run 'sudo apt-get install -y nats-server' and try again" >&2; exit 1; fi; }
+
+test: $(STAMP) check-mosquitto check-nats
 	$(BIN)/ruff check agent simulator tests
 	$(BIN)/pytest -q
 

@@ -98,3 +98,103 @@ class Broker:
 
     def log_text(self) -> str:
         return self.log.read_text() if self.log.exists() else ""
+
+
+NATS_SERVER = shutil.which("nats-server") or "/usr/sbin/nats-server"
+
+
+class NatsNode:
+    """One nats-server of a `NatsCluster`: client, cluster route, MQTT and monitoring
+    listeners on loopback ports, JetStream files under `workdir`."""
+
+    def __init__(self, workdir: Path, name: str) -> None:
+        self.workdir = workdir
+        self.workdir.mkdir(parents=True, exist_ok=True)
+        self.name = name
+        self.client_port, self.route_port = free_port(), free_port()
+        self.mqtt_port, self.http_port = free_port(), free_port()
+        self.conf = workdir / "nats.conf"
+        self.log = workdir / "nats.log"
+        self.proc: subprocess.Popen[bytes] | None = None
+
+    def start(self) -> NatsNode:
+        if not Path(NATS_SERVER).exists():
+            raise RuntimeError("nats-server is missing: apt-get install nats-server "
+                               "(make test and .ci/run install it)")
+        self.proc = subprocess.Popen([NATS_SERVER, "-c", str(self.conf)],
+                                     stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+        return self
+
+    def kill(self) -> None:
+        """SIGKILL by PID: the node is gone at once, as on a power cut."""
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.kill()
+            self.proc.wait(10)
+        self.proc = None
+
+    def stop(self) -> None:
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.terminate()
+            try:
+                self.proc.wait(10)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait(5)
+        self.proc = None
+
+    def healthy(self) -> bool:
+        """`/healthz` answers 200: the server runs and its JetStream is current."""
+        import urllib.error
+        import urllib.request
+
+        try:
+            with urllib.request.urlopen(f"http://127.0.0.1:{self.http_port}/healthz",
+                                        timeout=1) as r:
+                return bool(r.status == 200)
+        except (OSError, urllib.error.URLError):
+            return False
+
+    def log_text(self) -> str:
+        return self.log.read_text() if self.log.exists() else ""
+
+
+class NatsCluster:
+    """A three-node (by default) NATS cluster with JetStream and the MQTT listener, on
+    loopback ports, from a temp config. `mqtt` lines go into each node's `mqtt {}` block."""
+
+    def __init__(self, workdir: Path, nodes: int = 3, mqtt: str = "",
+                 name: str = "wkfleet") -> None:
+        self.nodes = [NatsNode(workdir / f"n{i + 1}", f"n{i + 1}") for i in range(nodes)]
+        routes = ", ".join(f"nats-route://127.0.0.1:{n.route_port}" for n in self.nodes)
+        for n in self.nodes:
+            n.conf.write_text(
+                f"server_name: {n.name}\n"
+                f"listen: 127.0.0.1:{n.client_port}\n"
+                f"http: 127.0.0.1:{n.http_port}\n"
+                f"log_file: {n.log}\n"
+                f"jetstream {{\n  store_dir: {n.workdir / 'js'}\n"
+                "  max_memory_store: 64MB\n  max_file_store: 512MB\n}\n"
+                f"cluster {{\n  name: {name}\n  listen: 127.0.0.1:{n.route_port}\n"
+                f"  routes: [{routes}]\n}}\n"
+                f"mqtt {{\n  listen: 127.0.0.1:{n.mqtt_port}\n{mqtt}\n}}\n")
+
+    def start(self, timeout_s: float = 60.0) -> NatsCluster:
+        for n in self.nodes:
+            n.start()
+        self.wait_healthy(self.nodes, timeout_s)
+        return self
+
+    def wait_healthy(self, nodes: list[NatsNode], timeout_s: float = 60.0) -> None:
+        deadline = time.monotonic() + timeout_s
+        for n in nodes:
+            while not n.healthy():
+                if n.proc is None or n.proc.poll() is not None:
+                    raise RuntimeError(f"nats-server {n.name} exited: {n.log_text()[-2000:]}")
+                if time.monotonic() > deadline:
+                    raise RuntimeError(f"nats-server {n.name} not healthy: "
+                                       f"{n.log_text()[-2000:]}")
+                time.sleep(0.1)
+
+    def stop(self) -> None:
+        for n in self.nodes:
+            n.stop()

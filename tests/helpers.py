@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import threading
+import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -157,3 +158,42 @@ def publisher(port: int, client_id: str = "test-publisher") -> mqtt.Client:
     c.connect("127.0.0.1", port)
     c.loop_start()
     return c
+
+
+class StampedCollector:
+    """A maintenance-side subscriber on one broker noting when (time.monotonic()) each
+    message came; `clean_session=False` keeps its session and QoS 1 queue on the broker."""
+
+    def __init__(self, port: int, topic: str, client_id: str, *,
+                 clean_session: bool = True) -> None:
+        self.got: list[tuple[float, dict[str, Any]]] = []
+        self.lock = threading.Lock()
+        self.suback: list[Any] = []
+        ready = threading.Event()
+        self.client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=client_id,
+                                  clean_session=clean_session)
+        self.client.reconnect_delay_set(0.2, 1)
+
+        def on_subscribe(c: mqtt.Client, u: Any, mid: Any, rcs: Any, p: Any) -> None:
+            self.suback = list(rcs)
+            ready.set()
+
+        self.client.on_connect = lambda c, u, f, rc, p: c.subscribe(topic, qos=1)
+        self.client.on_subscribe = on_subscribe
+        self.client.on_message = self._on_message
+        self.client.connect("127.0.0.1", port, keepalive=15)
+        self.client.loop_start()
+        if not ready.wait(20):
+            raise RuntimeError("collector did not subscribe")
+
+    def _on_message(self, c: mqtt.Client, u: Any, msg: mqtt.MQTTMessage) -> None:
+        with self.lock:
+            self.got.append((time.monotonic(), json.loads(msg.payload)))
+
+    def events(self) -> list[tuple[float, dict[str, Any]]]:
+        with self.lock:
+            return list(self.got)
+
+    def close(self) -> None:
+        self.client.disconnect()
+        self.client.loop_stop()

@@ -13,45 +13,20 @@ import urllib.request
 from pathlib import Path
 from typing import Any
 
-import paho.mqtt.client as mqtt
-from paho.mqtt.enums import CallbackAPIVersion
-
 from agent.config import load_config
 from agent.daemon import Daemon
 from tests.brokers import Broker, wait_for
-from tests.helpers import asset_doc, publisher, readings, train_pca_bundle, write_config
+from tests.helpers import (
+    StampedCollector,
+    asset_doc,
+    publisher,
+    readings,
+    train_pca_bundle,
+    write_config,
+)
 from tests.integration.test_outbox_outage import _anomalies, _publish_paced, fault_cycles
 
 EVENTS = "watchkeep/testworks/gw1/assets/+/events"
-
-
-class StampedCollector:
-    """A plain subscriber on one broker that notes when (time.monotonic()) each event came."""
-
-    def __init__(self, port: int, client_id: str) -> None:
-        self.got: list[tuple[float, dict[str, Any]]] = []
-        self.lock = threading.Lock()
-        ready = threading.Event()
-        self.client = mqtt.Client(CallbackAPIVersion.VERSION2, client_id=client_id)
-        self.client.on_connect = lambda c, u, f, rc, p: c.subscribe(EVENTS, qos=1)
-        self.client.on_subscribe = lambda c, u, mid, rc, p: ready.set()
-        self.client.on_message = self._on_message
-        self.client.connect("127.0.0.1", port, keepalive=15)
-        self.client.loop_start()
-        if not ready.wait(10):
-            raise RuntimeError("collector did not subscribe")
-
-    def _on_message(self, c: mqtt.Client, u: Any, msg: mqtt.MQTTMessage) -> None:
-        with self.lock:
-            self.got.append((time.monotonic(), json.loads(msg.payload)))
-
-    def events(self) -> list[tuple[float, dict[str, Any]]]:
-        with self.lock:
-            return list(self.got)
-
-    def close(self) -> None:
-        self.client.disconnect()
-        self.client.loop_stop()
 
 
 class _Lines(logging.Handler):
@@ -93,7 +68,8 @@ def test_first_endpoint_killed_events_continue_through_the_second(tmp_path: Path
     lines = _Lines()
     log.addHandler(lines)
     daemon = Daemon(cfg, logger=log)
-    on_a, on_b = StampedCollector(a.port, "maint-a"), StampedCollector(b.port, "maint-b")
+    on_a = StampedCollector(a.port, EVENTS, "maint-a")
+    on_b = StampedCollector(b.port, EVENTS, "maint-b")
     stop = threading.Event()
     pub = publisher(broker.port)
     daemon.start()
