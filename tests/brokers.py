@@ -103,6 +103,35 @@ class Broker:
 NATS_SERVER = shutil.which("nats-server") or "/usr/sbin/nats-server"
 
 
+_HANDED: set[int] = set()  # fixed ports given out in this process, never twice
+
+
+def fixed_port() -> int:
+    """A free loopback port below the kernel's ephemeral range, for a listener that must
+    get the same port again after a restart: outgoing connections (the cluster's own
+    routes among them) take their local ports from the ephemeral range, where one could
+    be sitting on the port by then (seen: "bind: address already in use")."""
+    import random
+
+    try:
+        low = int(Path("/proc/sys/net/ipv4/ip_local_port_range").read_text().split()[0])
+    except (OSError, ValueError, IndexError):
+        low = 32768
+    lo = max(1024, low - 12000)
+    for _ in range(200):
+        port = random.randrange(lo, low)
+        if port in _HANDED:
+            continue
+        with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
+            try:
+                s.bind(("127.0.0.1", port))
+            except OSError:
+                continue
+            _HANDED.add(port)
+            return port
+    return free_port()
+
+
 class NatsNode:
     """One nats-server of a `NatsCluster`: client, cluster route, MQTT and monitoring
     listeners on loopback ports, JetStream files under `workdir`."""
@@ -111,8 +140,8 @@ class NatsNode:
         self.workdir = workdir
         self.workdir.mkdir(parents=True, exist_ok=True)
         self.name = name
-        self.client_port, self.route_port = free_port(), free_port()
-        self.mqtt_port, self.http_port = free_port(), free_port()
+        self.client_port, self.route_port = fixed_port(), fixed_port()
+        self.mqtt_port, self.http_port = fixed_port(), fixed_port()
         self.conf = workdir / "nats.conf"
         self.log = workdir / "nats.log"
         self.proc: subprocess.Popen[bytes] | None = None

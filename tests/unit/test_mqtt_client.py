@@ -144,3 +144,70 @@ def test_without_a_socket_it_raises_as_paho_does() -> None:
     client = ReadAheadClient(CallbackAPIVersion.VERSION2, client_id="t")
     with pytest.raises(ConnectionError):
         client._sock_recv(1)
+
+
+def _accept_connect(server: socket.socket) -> socket.socket:
+    """Accept the client, read its CONNECT and answer CONNACK accepted (MQTT 3.1.1 3.2)."""
+    conn, _ = server.accept()
+    conn.settimeout(5)
+    assert conn.recv(1)[0] >> 4 == 1  # CONNECT
+    length = mult = 0
+    while True:
+        b = conn.recv(1)[0]
+        length += (b & 0x7F) << mult
+        mult += 7
+        if not b & 0x80:
+            break
+    while length:
+        length -= len(conn.recv(length))
+    conn.sendall(b"\x20\x02\x00\x00")
+    return conn
+
+
+def _read_all(conn: socket.socket, quiet_s: float = 0.3) -> bytes:
+    out = b""
+    conn.settimeout(quiet_s)
+    try:
+        while chunk := conn.recv(65536):
+            out += chunk
+    except TimeoutError:
+        pass
+    return out
+
+
+def test_unacknowledged_messages_go_to_the_next_endpoint_first_with_dup() -> None:
+    """What agent/upstream.py relies on when it fails over: `connect_async` to another
+    address keeps paho's unacknowledged QoS 1 messages, and after the reconnect they go
+    out first, in order, with the DUP flag (MQTT 3.1.1 section 3.3.1.1)."""
+    servers = [socket.create_server(("127.0.0.1", 0)) for _ in range(2)]
+    client = ReadAheadClient(CallbackAPIVersion.VERSION2, client_id="failover-probe")
+    try:
+        client.connect("127.0.0.1", servers[0].getsockname()[1])
+        a = _accept_connect(servers[0])
+        for _ in range(5):
+            client.loop(0.05)
+        mids = [client.publish("t", f"m{i}".encode(), qos=1).mid for i in range(3)]
+        for _ in range(5):
+            client.loop(0.05)
+        first = _read_all(a)
+        assert first.count(b"\x32") >= 3 and b"m2" in first  # sent once, never acknowledged
+        a.close()  # the node dies
+        for _ in range(20):
+            if client.loop(0.05) != mqtt.MQTT_ERR_SUCCESS:
+                break
+        client.connect_async("127.0.0.1", servers[1].getsockname()[1])
+        client.reconnect()
+        b = _accept_connect(servers[1])
+        for _ in range(10):
+            client.loop(0.05)
+        resent = _read_all(b)
+        # Three PUBLISH packets, QoS 1 with DUP (0x3A), the same ids, in the old order.
+        expected = b"".join(b"\x3a" + remaining_length(2 + 1 + 2 + 2) + b"\x00\x01t"
+                            + mid.to_bytes(2, "big") + f"m{i}".encode()
+                            for i, mid in enumerate(mids))
+        assert resent.startswith(expected), resent
+        b.close()
+    finally:
+        client.loop(0.01)
+        for s in servers:
+            s.close()
