@@ -107,3 +107,27 @@ def test_bundles_are_checked(tmp_path: Path) -> None:
     assert f"P-101/default v1, {len(CHANNELS) * 2} features" in good_model
     bad_model = next(x for x in lines[second:] if "model:" in x)
     assert "model: ERROR" in bad_model and str(empty) in bad_model
+
+
+def test_endpoints_listed_and_a_bad_entry_named(tmp_path: Path) -> None:
+    """A cluster's endpoints are listed in order; a bad entry exits 2 naming its key path."""
+    doc = yaml.safe_load((CONFIG_DIR / "example.yaml").read_text())
+    doc["upstream_broker"].pop("host")
+    doc["upstream_broker"].pop("port")
+    doc["upstream_broker"].pop("password_file", None)
+    doc["upstream_broker"].pop("username", None)
+    doc["upstream_broker"]["endpoints"] = [{"host": "broker-a.fernbrook.lan", "port": 8883},
+                                           {"host": "broker-b.fernbrook.lan"}]
+    path = tmp_path / "cluster.yaml"
+    path.write_text(yaml.safe_dump(doc, sort_keys=False))
+    done = check_config(path)
+    assert done.returncode == 0, done.stderr
+    assert ("upstream broker endpoints broker-a.fernbrook.lan:8883, "
+            "broker-b.fernbrook.lan:1883") in done.stdout
+    doc["upstream_broker"]["endpoints"][1]["port"] = "8883"
+    path.write_text(yaml.safe_dump(doc, sort_keys=False))
+    done = check_config(path)
+    assert done.returncode == 2
+    assert done.stderr.splitlines() == [
+        f"watchkeep: {path}: upstream_broker.endpoints[1].port: expected a TCP port 1-65535, "
+        "got '8883'"]
