@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import shutil
 import subprocess
@@ -12,7 +13,7 @@ from typing import Any
 import pytest
 from prometheus_client import CollectorRegistry
 
-from agent.config import Config, load_config
+from agent.config import Config, Endpoint, load_config
 from agent.errors import ConfigError
 from agent.messages import Kind, OutMessage
 from agent.metrics import Metrics
@@ -65,10 +66,11 @@ def pki(tmp_path_factory: pytest.TempPathFactory) -> Path:
     return d
 
 
-def _tls_broker(tmp_path: Path, pki: Path, server: str = "server") -> tuple[Broker, int]:
+def _tls_broker(tmp_path: Path, pki: Path, server: str = "server",
+                name: str = "tlsbroker") -> tuple[Broker, int]:
     port = free_port()
     # (tests.brokers keeps a root-started broker root, so it can read the test's files)
-    b = Broker(tmp_path / "tlsbroker", extra=(
+    b = Broker(tmp_path / name, extra=(
         f"listener {port} 127.0.0.1\n"
         f"cafile {pki / 'ca.crt'}\n"
         f"certfile {pki / (server + '.crt')}\n"
@@ -188,3 +190,39 @@ def test_verification_off_needs_allow_insecure_and_warns(tmp_path: Path, pki: Pa
         assert any("TLS VERIFICATION IS OFF" in r.getMessage() for r in caplog.records)
     finally:
         broker.stop()
+
+
+def test_tls_applies_to_every_endpoint(tmp_path: Path, pki: Path, run_upstream: Any,
+                                       caplog: pytest.LogCaptureFixture) -> None:
+    """Endpoints A, W, B with one TLS block: A killed by PID, W's certificate names another
+    host and is refused (mismatch), B is verified and takes the events, mutual TLS."""
+    brokers = {name: _tls_broker(tmp_path, pki, server, name)
+               for name, server in (("a", "server"), ("w", "wrongname"), ("b", "server"))}
+    try:
+        cfg = _cfg(tmp_path, brokers["a"][1], {"ca_file": str(pki / "ca.crt"),
+                                               "cert_file": str(pki / "client.crt"),
+                                               "key_file": str(pki / "client.key")})
+        cfg = dataclasses.replace(cfg, upstream_broker=dataclasses.replace(
+            cfg.upstream_broker, endpoints=tuple(Endpoint("127.0.0.1", brokers[n][1])
+                                                 for n in ("a", "w", "b"))))
+        on_b = Collector(brokers["b"][0].port, "watchkeep/testworks/gw1/#", "maint-tls-b")
+        up = run_upstream(cfg)
+        wait_for(up.connected.is_set, what="TLS connection to A")
+        assert up.status()["endpoint"] == f"127.0.0.1:{brokers['a'][1]}"
+        proc = brokers["a"][0].proc
+        assert proc is not None
+        proc.kill()
+        proc.wait(5)
+        wait_for(lambda: up.connected.is_set()
+                 and up.status()["endpoint"] == f"127.0.0.1:{brokers['b'][1]}",
+                 timeout_s=30, what="TLS connection to B")
+        up.outbox.submit([OutMessage("watchkeep/testworks/gw1/assets/P-1/events",
+                                     b'{"id":"x2"}', Kind.ANOMALY)])
+        wait_for(lambda: on_b.json("/events"), what="event over TLS through B")
+        on_b.close()
+        w = f"127.0.0.1:{brokers['w'][1]}"
+        assert any(w in r.getMessage() and "mismatch" in r.getMessage()
+                   for r in caplog.records), [r.getMessage() for r in caplog.records]
+    finally:
+        for b, _ in brokers.values():
+            b.stop()
