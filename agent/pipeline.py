@@ -727,8 +727,8 @@ class Pipeline:
         if tr is Transition.RAISED:
             hist = rt.sq_history
             earlier = hist[0] if len(hist) == hist.maxlen else None
-            lead, share = dominant_channel(meta.feature_names, sq)
-            drift = lead if lead in rt.suspects and share >= ALONE_SHARE else \
+            top, share = dominant_channel(meta.feature_names, sq)
+            drift = top if top in rt.suspects and share >= ALONE_SHARE else \
                 drifting_channel(meta.feature_names, sq, meta.clear_threshold, earlier,
                                  rt.cfg.level_channels)
             if drift is not None:
@@ -747,12 +747,16 @@ class Pipeline:
                     "score": round(score, 6), "threshold": meta.threshold,
                     "score_ratio": _ratio(score, meta.threshold),
                     "clear_threshold": meta.clear_threshold, "model": model}
+        # The escalation tracker sees every window's band (the raise rule's evidence);
+        # the leading channels are worked out only while raised.
+        lead = leading_channels(meta.feature_names, sq) \
+            if tr is not None or rt.detector.state is State.ANOMALOUS else frozenset()
+        rt.escalation.observe(severity_for(score, meta.threshold), lead)
         if tr is Transition.RAISED:
             rt.sequence += 1
             rt.raised_at = end
             rt.raised_window = (start, end)
-            sev = severity_for(score, meta.threshold)
-            rt.escalation.start(sev, leading_channels(meta.feature_names, sq))
+            sev = rt.escalation.start(lead)
             data = {**base, "severity": sev.value,
                     "contributors": top_contributors(meta.feature_names, sq),
                     "sequence": rt.sequence}
@@ -760,8 +764,7 @@ class Pipeline:
                         id_key=f"{start:.3f}")
             stats.events += 1
         elif tr is None and rt.detector.state is State.ANOMALOUS:
-            esc = rt.escalation.step(severity_for(score, meta.threshold),
-                                     leading_channels(meta.feature_names, sq))
+            esc = rt.escalation.step()
             if esc is not None:
                 self._escalated(rt, esc, start, end, mode, score, meta, model, sq, out)
                 stats.events += 1

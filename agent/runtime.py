@@ -162,7 +162,9 @@ class AssetRuntime:
         rt = cls(cfg=cfg,
                  assembler=WindowAssembler(cfg.window, tuple(c.rate_hz for c in cfg.channels)),
                  detector=Detector(cfg.window_detector),
-                 escalation=EscalationTracker(persist=cfg.window_overlap),
+                 escalation=EscalationTracker(cfg.window_detector.raise_k,
+                                              cfg.window_detector.raise_n,
+                                              cfg.window_detector.stride),
                  sq_history=deque(maxlen=(cfg.window_detector.raise_n - 1)
                                   * cfg.window_detector.stride + 1))
         rt.record_names = asset_feature_names(cfg)

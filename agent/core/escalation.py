@@ -2,24 +2,28 @@
 
 Pure. A raised asset stays raised until its score is back under the clear threshold, so
 without this a second fault that starts while the first (or a false alarm) is still up
-produces no event and no explanation. `anomaly.escalated` is published when, for one
-independent window's worth of consecutive windows (`persist`, the windows that share
-an instant: `ceil(length_s / hop_s)`, so one disturbance is not counted twice):
+produces no event and no explanation. `anomaly.escalated` is published when the
+detector's own raise rule (`raise_k` of the last `raise_n` windows, strided over hopping
+windows: `DetectorParams`) holds for:
 
-* `severity`: the score's severity band is above every band reported since the raise
-  (minor -> major -> critical); or
-* `explanation`: the channels that carry the error are none of the channels reported
-  since the raise (the leading channels: the fewest channels whose summed share of the
-  squared error reaches half).
+* `severity`: a severity band above the reference band (minor -> major -> critical);
+  or
+* `explanation`: leading channels none of which were reported since the raise (the
+  leading channels: the fewest channels whose summed share of the squared error reaches
+  half).
 
-Each escalation becomes the new reference, so one change is reported once. Channels,
-not features, are compared: the features of one channel trade places from window to
-window without the machine changing.
+The reference band at the raise is the band the raise rule itself held (the `raise_k`-th
+highest of the windows it looked at), not the band of the one window that completed it,
+so a fault whose windows scatter across a band edge is not escalated at once. Each
+escalation becomes the new reference, so one change is reported once. Channels, not
+features, are compared: the features of one channel trade places from window to window
+without the machine changing.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from collections import deque
+from dataclasses import dataclass
 from enum import StrEnum
 
 import numpy as np
@@ -27,6 +31,7 @@ import numpy as np
 from agent.core.events import Severity
 
 _RANK = {Severity.MINOR: 0, Severity.MAJOR: 1, Severity.CRITICAL: 2}
+_BAND = {v: k for k, v in _RANK.items()}
 LEADING_SHARE = 0.5
 
 
@@ -64,55 +69,62 @@ class Escalated:
     previous_channels: frozenset[str]
 
 
-@dataclass
 class EscalationTracker:
-    """One asset's reference (what was last reported) and the pending change."""
+    """One asset's reference (what was last reported) and the recent windows."""
 
-    persist: int = 1
-    severity: Severity | None = None
-    channels: frozenset[str] = field(default_factory=frozenset)
-    seen: frozenset[str] = field(default_factory=frozenset)
-    _run: int = 0
-    _run_reason: Reason | None = None
+    def __init__(self, raise_k: int = 1, raise_n: int = 1, stride: int = 1) -> None:
+        self.k = raise_k
+        self.n = raise_n
+        self.stride = stride
+        self._recent: deque[tuple[int, frozenset[str]]] = deque(
+            maxlen=(raise_n - 1) * stride + 1)
+        self.severity: Severity | None = None
+        self.channels: frozenset[str] = frozenset()
+        self.seen: frozenset[str] = frozenset()
 
-    def start(self, severity: Severity, channels: frozenset[str]) -> None:
-        """The asset was raised with this severity and explanation."""
-        self.severity = severity
+    def _looked_at(self) -> list[tuple[int, frozenset[str]]]:
+        """The windows the raise rule looks at: the newest and every stride-th before."""
+        r = self._recent
+        return [r[i] for i in range(len(r) - 1, -1, -self.stride)][: self.n]
+
+    def observe(self, severity: Severity, channels: frozenset[str]) -> None:
+        """Every scored window, raised or not (the raise rule's evidence)."""
+        self._recent.append((_RANK[severity], channels))
+
+    def start(self, channels: frozenset[str]) -> Severity:
+        """The asset was raised on the windows observed; returns the band the raise rule
+        held (the reference), and takes `channels` as the reported explanation."""
+        ranks = sorted((r for r, _ in self._looked_at()), reverse=True)
+        held = ranks[min(self.k, len(ranks)) - 1] if ranks else 0
+        self.severity = _BAND[held]
         self.channels = channels
         self.seen = channels
-        self._run = 0
-        self._run_reason = None
+        return self.severity
 
     def stop(self) -> None:
         """The asset cleared (or its detector was reset)."""
         self.severity = None
         self.channels = frozenset()
         self.seen = frozenset()
-        self._run = 0
-        self._run_reason = None
 
-    def step(self, severity: Severity, channels: frozenset[str]) -> Escalated | None:
-        """One raised window; the escalation it completes, if any."""
-        if self.severity is None:
+    def step(self) -> Escalated | None:
+        """After `observe` of a raised window: the escalation it completes, if any."""
+        if self.severity is None or not self._recent:
             return None
-        reason: Reason | None = None
-        if _RANK[severity] > _RANK[self.severity]:
-            reason = Reason.SEVERITY
-        elif channels and not (channels & self.seen):
-            reason = Reason.EXPLANATION
-        if reason is None:
-            self._run = 0
-            self._run_reason = None
+        looked = self._looked_at()
+        ref = _RANK[self.severity]
+        higher = sorted((r for r, _ in looked if r > ref), reverse=True)
+        rank, channels = self._recent[-1]
+        if len(higher) >= self.k:
+            out = Escalated(Reason.SEVERITY, _BAND[higher[self.k - 1]], self.severity,
+                            channels, self.channels)
+            self.severity = out.severity
+        elif channels and not (channels & self.seen) and sum(
+                1 for _, c in looked if c and not (c & self.seen)) >= self.k:
+            out = Escalated(Reason.EXPLANATION, _BAND[rank], self.severity, channels,
+                            self.channels)
+        else:
             return None
-        self._run = self._run + 1 if reason is self._run_reason else 1
-        self._run_reason = reason
-        if self._run < self.persist:
-            return None
-        out = Escalated(reason, severity, self.severity, channels, self.channels)
-        if reason is Reason.SEVERITY:
-            self.severity = severity
         self.channels = channels
         self.seen = self.seen | channels
-        self._run = 0
-        self._run_reason = None
         return out

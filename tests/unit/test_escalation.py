@@ -25,33 +25,46 @@ def test_leading_channels(sq: list[float], want: set[str]) -> None:
     assert leading_channels(names, np.array(sq)) == frozenset(want)
 
 
-@pytest.mark.parametrize(("steps", "persist", "want"), [
-    ([(MAJOR, VIB)], 1, [(0, Reason.SEVERITY)]),
-    ([(MAJOR, VIB), (MAJOR, VIB)], 2, [(1, Reason.SEVERITY)]),
-    ([(MAJOR, VIB), (MINOR, VIB), (MAJOR, VIB)], 2, []),          # not held
-    ([(MINOR, TEMP), (MINOR, TEMP)], 2, [(1, Reason.EXPLANATION)]),
-    ([(MINOR, VIB | TEMP)] * 3, 1, []),                            # overlaps the reference
-    ([(MAJOR, VIB), (CRIT, VIB), (CRIT, VIB)], 1,
-     [(0, Reason.SEVERITY), (1, Reason.SEVERITY)]),                # each band once
-    ([(MINOR, TEMP), (MINOR, VIB), (MINOR, TEMP)], 1, [(0, Reason.EXPLANATION)]),
+@pytest.mark.parametrize(("k", "n", "steps", "want"), [
+    (1, 1, [(MAJOR, VIB)], [(0, Reason.SEVERITY)]),
+    (2, 3, [(MAJOR, VIB), (MAJOR, VIB)], [(1, Reason.SEVERITY)]),
+    (2, 3, [(MAJOR, VIB), (MINOR, VIB), (MINOR, VIB), (MAJOR, VIB)], []),  # not 2 of 3
+    (2, 3, [(MINOR, TEMP), (MINOR, TEMP)], [(1, Reason.EXPLANATION)]),
+    (1, 1, [(MINOR, VIB | TEMP)] * 3, []),                           # overlaps the reference
+    (1, 1, [(MAJOR, VIB), (CRIT, VIB), (CRIT, VIB)],
+     [(0, Reason.SEVERITY), (1, Reason.SEVERITY)]),                  # each band once
+    (1, 1, [(MINOR, TEMP), (MINOR, VIB), (MINOR, TEMP)], [(0, Reason.EXPLANATION)]),
 ])
-def test_escalation_table(steps: list[tuple[Severity, frozenset[str]]], persist: int,
+def test_escalation_table(k: int, n: int, steps: list[tuple[Severity, frozenset[str]]],
                           want: list[tuple[int, Reason]]) -> None:
-    """Raised at minor on vib; which later windows escalate, and why."""
-    t = EscalationTracker(persist=persist)
-    t.start(MINOR, VIB)
+    """Raised at minor on vib (after two minor windows); which later windows escalate."""
+    t = EscalationTracker(k, n)
+    for _ in range(2):
+        t.observe(MINOR, VIB)
+    assert t.start(VIB) is MINOR
     got = []
     for i, (sev, ch) in enumerate(steps):
-        e = t.step(sev, ch)
+        t.observe(sev, ch)
+        e = t.step()
         if e is not None:
             got.append((i, e.reason))
     assert got == want
 
 
+def test_reference_is_the_band_the_raise_rule_held() -> None:
+    """2 of 3: windows minor, critical, major -> the raise held major, not critical."""
+    t = EscalationTracker(2, 3)
+    for sev in (MINOR, CRIT, MAJOR):
+        t.observe(sev, VIB)
+    assert t.start(VIB) is MAJOR
+
+
 def test_nothing_before_a_raise_or_after_a_clear() -> None:
     """A tracker that is not started (or was stopped) never escalates."""
     t = EscalationTracker()
-    assert t.step(CRIT, TEMP) is None
-    t.start(MINOR, VIB)
+    t.observe(CRIT, TEMP)
+    assert t.step() is None
+    t.start(VIB)
     t.stop()
-    assert t.step(CRIT, TEMP) is None
+    t.observe(CRIT, TEMP)
+    assert t.step() is None
