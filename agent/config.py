@@ -351,7 +351,7 @@ class _Reader:
 
     def bundle_dir(self, p: Path | None, where: str) -> None:
         """A model bundle path must exist, unless the caller commissions it (`record`)."""
-        if p is not None and self.require_bundles and not p.is_dir():
+        if p is not None and not p.is_dir() and (self.require_bundles or p.exists()):
             self.bad(where, "an existing model bundle directory (record, and check-config "
                      "with --allow-missing-bundles, accept one not trained yet)", found=str(p))
 
