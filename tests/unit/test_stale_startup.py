@@ -93,3 +93,23 @@ def test_replay_scores_file_has_score_state_and_features(tmp_path: Path) -> None
     assert first["threshold"] > 0 and first["state"] in ("normal", "anomalous")
     assert any(x["state"] == "anomalous" for x in lines)
     assert max(x["score"] for x in lines[15:22]) > first["threshold"]
+
+
+def test_replay_cli_scores_option(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """`watchkeep replay --scores FILE --out EVENTS`: both files, the count on stderr."""
+    from agent.capture import write_capture
+    from agent.cli import main
+
+    bundle = train_pca_bundle(tmp_path / "m", "P-1")
+    cfg_path = write_config(tmp_path / "c.yaml", 1883, 1883, [asset_doc("P-1", bundle)])
+    cap = tmp_path / "cap.jsonl"
+    write_capture(cap, [(json.loads(p)["ts"], tp, p) for tp, p in
+                        readings("P-1", T0, 12, seed=3)])
+    rc = main(["replay", "-c", str(cfg_path), str(cap), "--out", str(tmp_path / "ev.jsonl"),
+               "--scores", str(tmp_path / "scores.jsonl")])
+    err = capsys.readouterr().err
+    assert rc == 0, err
+    lines = (tmp_path / "scores.jsonl").read_text().splitlines()
+    assert f", {len(lines)} window lines in {tmp_path / 'scores.jsonl'}" in err
+    assert len(lines) >= 11 and (tmp_path / "ev.jsonl").is_file()
+    assert all(json.loads(x)["score"] is not None for x in lines)
