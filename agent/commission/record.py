@@ -267,9 +267,9 @@ def add_record_arguments(p: argparse.ArgumentParser) -> None:
                         "config, else its name); repeat per channel")
     p.add_argument("--delimiter", choices=(",", ";", "tab"),
                    help="CSV: the delimiter (default: found from the header line)")
-    p.add_argument("--time-format", choices=("auto", "iso", "unix"), default="auto",
-                   help="CSV: ISO 8601 date-times (no zone: UTC) or unix seconds "
-                        "(default: auto, from the first row)")
+    p.add_argument("--time-format", choices=("auto", "iso", "unix", "unix_ms"), default="auto",
+                   help="CSV: ISO 8601 date-times (no zone: UTC), unix seconds or unix "
+                        "milliseconds (default: auto, ISO or seconds from the first row)")
 
 
 def _tail_time(path: Path) -> float | None:

@@ -17,7 +17,8 @@ is judged against the data's clock: a two-year-old export is not "skewed".
 Columns: the channel's `column:` in the config, else the channel's name; `column_map`
 (channel -> header) overrides both. Times: ISO 8601 date-times (``2024-03-01
 10:15:00``, ``2024-03-01T10:15:00.250``, an offset such as ``+01:00`` or ``Z`` where
-the export has one; a time without a zone is taken as UTC) or unix seconds. Delimiter:
+the export has one; a time without a zone is taken as UTC), unix seconds, or unix
+milliseconds when asked for (`time_format="unix_ms"`; never guessed). Delimiter:
 ``,``, ``;`` or a tab, found from the header line unless given; with ``;`` a decimal
 comma (``1,5``) is read as a decimal point, as spreadsheet exports in many locales
 write it. An empty cell is a missing sample; a cell that is not a number is skipped
@@ -44,7 +45,7 @@ from typing import Any
 from agent.config import AssetConfig, ChannelConfig, Decoder
 from agent.errors import DatasetError
 
-TIME_FORMATS = ("auto", "iso", "unix")
+TIME_FORMATS = ("auto", "iso", "unix", "unix_ms")
 _DELIMITERS = (",", ";", "\t")
 _DECIMAL_COMMA = re.compile(r"^[+-]?\d*,\d+(?:[eE][+-]?\d+)?$")
 
@@ -68,11 +69,20 @@ def sniff_delimiter(header: str) -> str:
 
 
 def parse_time(text: str, time_format: str = "auto") -> float:
-    """Unix seconds from an ISO 8601 date-time (no zone: UTC) or from unix seconds.
+    """Unix seconds from an ISO 8601 date-time (no zone: UTC), unix seconds, or (only
+    when `time_format` is `unix_ms`, never guessed) unix milliseconds.
 
     ValueError when `text` is neither (or not the one `time_format` asks for).
     """
     s = text.strip()
+    if time_format == "unix_ms":
+        try:
+            ms = float(s)
+        except ValueError:
+            raise ValueError(f"{s!r} is not unix milliseconds") from None
+        if not math.isfinite(ms):
+            raise ValueError(f"{s!r} is not a finite time")
+        return ms / 1000.0
     if time_format in ("auto", "unix"):
         try:
             v = float(s)

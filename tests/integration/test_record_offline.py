@@ -168,6 +168,23 @@ def test_record_cli_from_csv_with_a_bundle_not_trained_yet(
     assert (tmp_path / "ds.raw.jsonl").is_file()
 
 
+def test_record_cli_from_capture_matches_the_csv_route(tmp_path: Path) -> None:
+    """The capture `record --from-csv --raw` writes, recorded again with --from-capture,
+    gives the same dataset rows as the CSV did."""
+    cfg_path = write_config(tmp_path / "c.yaml", 1883, 1883, [asset_doc("P-1", None)])
+    rows = _rows_from_readings(list(readings("P-1", OLD_T0, 20, seed=6)))
+    csv_path = _write_csv(tmp_path / "e.csv", rows, iso=True)
+    base = ["record", "-c", str(cfg_path), "--asset", "P-1"]
+    assert main([*base, "--out", str(tmp_path / "a"), "--from-csv", str(csv_path),
+                 "--raw"]) == 0
+    assert main([*base, "--out", str(tmp_path / "b"), "--from-capture",
+                 str(tmp_path / "a.raw.jsonl")]) == 0
+    a, b = read_dataset(tmp_path / "a"), read_dataset(tmp_path / "b")
+    assert a.n_windows >= 19
+    assert np.array_equal(a.features, b.features)
+    assert np.array_equal(a.window_start, b.window_start)
+
+
 def test_record_cli_names_a_missing_column(tmp_path: Path,
                                            capsys: pytest.CaptureFixture[str]) -> None:
     """A channel without a column is one clear error naming the channel and the columns."""

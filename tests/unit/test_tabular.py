@@ -35,6 +35,7 @@ def _asset(**channels: dict[str, Any]) -> Any:
     ("2024-03-01T00:00:00.500", "iso", 1_709_251_200.5),
     ("2024-03-01T01:00:00+01:00", "auto", 1_709_251_200.0),
     ("2024-03-01T00:00:00Z", "auto", 1_709_251_200.0),
+    ("1709251200250", "unix_ms", 1_709_251_200.25),
 ])
 def test_parse_time(text: str, fmt: str, unix: float) -> None:
     """ISO 8601 (no zone taken as UTC, offsets honoured) and unix seconds."""
@@ -42,7 +43,8 @@ def test_parse_time(text: str, fmt: str, unix: float) -> None:
 
 
 @pytest.mark.parametrize(("text", "fmt"), [("01.03.2024 10:00", "auto"), ("nan", "auto"),
-                                           ("2024-03-01", "unix"), ("", "iso")])
+                                           ("2024-03-01", "unix"), ("", "iso"),
+                                           ("2024-03-01", "unix_ms")])
 def test_parse_time_refuses(text: str, fmt: str) -> None:
     with pytest.raises(ValueError):
         parse_time(text, fmt)
