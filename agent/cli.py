@@ -42,6 +42,8 @@ def _channel_checks(ch: Any) -> str:
         parts.append(f"{len(ch.limits)} limit(s)")
     if ch.seq_field:
         parts.append(f"counter {ch.seq_field}")
+    if getattr(ch, "column", None):
+        parts.append(f"csv column {ch.column!r}")
     return "; ".join(parts)
 
 
