@@ -42,6 +42,8 @@ def _channel_checks(ch: Any) -> str:
         parts.append(f"{len(ch.limits)} limit(s)")
     if ch.seq_field:
         parts.append(f"counter {ch.seq_field}")
+    if getattr(ch, "column", None):
+        parts.append(f"csv column {ch.column!r}")
     return "; ".join(parts)
 
 
@@ -52,6 +54,9 @@ def _model_line(asset: Any, path: Any, label: str) -> tuple[str, bool]:
 
     if path is None:
         return f"    {label}: none (windows are not scored)", True
+    if not path.exists():  # only with --allow-missing-bundles: the loader refuses it otherwise
+        return (f"    {label}: not trained yet ({path} does not exist; the daemon will not "
+                "start with this config until it does)"), True
     try:
         b = load_bundle(path)
         why = check_bundle_fits(asset, b)
@@ -63,10 +68,18 @@ def _model_line(asset: Any, path: Any, label: str) -> tuple[str, bool]:
             f"threshold {b.meta.threshold:.4g}"), True
 
 
+def _missing_bundles(asset: Any) -> int:
+    """How many of the asset's bundle paths do not exist (yet)."""
+    paths = [asset.bundle, *(m.bundle for m in asset.modes.states)] if asset.modes \
+        else [asset.bundle]
+    return sum(1 for p in paths if p is not None and not p.exists())
+
+
 def cmd_check_config(args: argparse.Namespace) -> int:
     from agent.config import load_config
 
-    cfg = load_config(args.config)
+    allow = bool(getattr(args, "allow_missing_bundles", False))
+    cfg = load_config(args.config, require_bundles=not allow)
     print(f"config {args.config}: OK")
     print(f"  site {cfg.site}, gateway {cfg.gateway}, topic prefix {cfg.topic_prefix}")
     lb, ub = cfg.local_broker, cfg.upstream_broker
@@ -81,6 +94,7 @@ def cmd_check_config(args: argparse.Namespace) -> int:
         print(f"  rebaseline: admin socket {'on' if rb.enabled else 'off'}, "
               f"MQTT commands {'on' if rb.mqtt_commands else 'off'}")
     bad = 0
+    missing = 0
     for a in cfg.assets:
         w = a.window
         hop = "" if w.hop_s == w.length_s else f", hop {w.hop_s:g} s"
@@ -96,6 +110,7 @@ def cmd_check_config(args: argparse.Namespace) -> int:
             iso = a.iso10816
             print(f"    ISO 10816-3 zones: group {iso.group}, {iso.support} support"
                   + (f", baseline {iso.baseline_mm_s:g} mm/s" if iso.baseline_mm_s else ""))
+        missing += _missing_bundles(a)
         if a.modes is None:
             line, ok = _model_line(a, a.bundle, "model")
             print(line)
@@ -110,6 +125,9 @@ def cmd_check_config(args: argparse.Namespace) -> int:
             line, ok = _model_line(a, m.bundle or a.bundle, f"model [{m.name}]")
             print(line)
             bad += not ok
+    if missing:
+        print(f"warning: {missing} model bundle(s) not trained yet: fine for `record`, "
+              "not for `run`", file=sys.stderr)
     if bad:
         print(f"{bad} model bundle(s) cannot be used", file=sys.stderr)
         return 3
@@ -152,6 +170,9 @@ def build_parser() -> argparse.ArgumentParser:
 
     chk = sub.add_parser("check-config", help="check a config file and summarise it")
     chk.add_argument("config")
+    chk.add_argument("--allow-missing-bundles", action="store_true",
+                     help="accept model bundle paths not trained yet (a config to record "
+                          "with), with a warning")
     chk.set_defaults(func=cmd_check_config)
 
     _add_optional_commands(sub)

@@ -129,6 +129,8 @@ class ChannelConfig:
     flatline_windows: int | None = None
     max_rate_per_s: float | None = None
     limits: tuple[LimitConfig, ...] = ()
+    # The channel's column in a CSV/historian export (`record --from-csv`); None: its name.
+    column: str | None = None
 
     @property
     def spectral_features(self) -> tuple[str, ...]:
@@ -276,6 +278,10 @@ class IngestConfig:
     # samples over in batches, so ingest and the pipeline do not share one interpreter
     # lock. `thread`: both in the daemon's process (one core's worth for everything).
     worker: IngestWorker = IngestWorker.PROCESS
+    # After a start, a channel that has not published yet is "waiting", not stale, for
+    # this long (or its own stale_s, if longer): sensors publish on their own cycle and
+    # the broker connection takes a moment.
+    startup_grace_s: float = 120.0
 
 
 @dataclass(frozen=True)
@@ -338,9 +344,16 @@ def _describe(v: Any) -> str:
 class _Reader:
     """Walks a decoded YAML tree, collecting problems instead of stopping at the first."""
 
-    def __init__(self, base_dir: Path) -> None:
+    def __init__(self, base_dir: Path, *, require_bundles: bool = True) -> None:
         self.problems: list[ConfigProblem] = []
         self.base_dir = base_dir
+        self.require_bundles = require_bundles
+
+    def bundle_dir(self, p: Path | None, where: str) -> None:
+        """A model bundle path must exist, unless the caller commissions it (`record`)."""
+        if p is not None and not p.is_dir() and (self.require_bundles or p.exists()):
+            self.bad(where, "an existing model bundle directory (record, and check-config "
+                     "with --allow-missing-bundles, accept one not trained yet)", found=str(p))
 
     def bad(self, path: str, expected: str, got: Any = ..., *, found: str = "") -> None:
         """Record a problem; `got` is a config value to describe, `found` ready-made words."""
@@ -536,7 +549,7 @@ def _channel(r: _Reader, name: Any, node: Any, path: str,
         r.bad(path, "a channel name of letters, digits, '_', '.', '-' (at most 64)", name)
     keys = ("topic", "decoder", "rate_hz", "features", "unit", "ts_field", "value_field",
             "values_field", "rate_field", "seq_field", "spectrum", "min", "max", "stale_s",
-            "flatline_windows", "max_rate_per_s", "limits")
+            "flatline_windows", "max_rate_per_s", "limits", "column")
     if not isinstance(node, dict):
         r.bad(path, "a mapping of channel settings (topic, decoder, rate_hz, ...)", node)
         return None
@@ -587,7 +600,9 @@ def _channel(r: _Reader, name: Any, node: Any, path: str,
         rate_field=r.get(n, "rate_field", path, "str", "rate_hz"),
         seq_field=r.get(n, "seq_field", path, "str", None),
         spectrum=spectrum, min_value=lo, max_value=hi, stale_s=stale, flatline_windows=flat,
-        max_rate_per_s=max_rate, limits=limits)
+        max_rate_per_s=max_rate, limits=limits,
+        column=r.get(n, "column", path, "str", None, expected="the header of the channel's "
+                     "column in a CSV export (a non-empty string)"))
 
 
 def _hz_pair(r: _Reader, v: Any, where: str, nyquist: float) -> tuple[float, float] | None:
@@ -705,8 +720,7 @@ def _modes(r: _Reader, node: Any, path: str, channels: dict[str, ChannelConfig]
         if lo is not None and hi is not None and lo >= hi:
             r.bad(f"{where}.max", f"more than min ({lo:g})", hi)
         bundle = r.path(r.get(m, "bundle", where, "str", None))
-        if bundle is not None and not bundle.is_dir():
-            r.bad(f"{where}.bundle", "an existing model bundle directory", found=str(bundle))
+        r.bundle_dir(bundle, f"{where}.bundle")
         states.append(ModeSpec(str(mname), lo, hi, code, bundle,
                                r.get(m, "scored", where, "bool", True),
                                r.get(m, "settling_s", where, "num", settle, lambda v: v >= 0,
@@ -780,8 +794,7 @@ def _asset(r: _Reader, node: Any, path: str) -> AssetConfig | None:
         r.bad(f"{dpath}.raise_k", f"at most raise_n ({nn})", k)
         k = nn
     bundle = r.path(r.get(n, "bundle", path, "str", None))
-    if bundle is not None and not bundle.is_dir():
-        r.bad(f"{path}.bundle", "an existing model bundle directory", found=str(bundle))
+    r.bundle_dir(bundle, f"{path}.bundle")
     by_name = {c.name: c for c in channels}
     speed = r.get(n, "speed_channel", path, "str", None)
     if speed is not None and by_name and speed not in by_name:
@@ -805,9 +818,14 @@ TOP_KEYS = ("site", "gateway", "topic_prefix", "state_dir", "local_broker", "ups
             "ingest", "pipeline", "outbox", "http", "publish", "assets", "rebaseline")
 
 
-def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config:
-    """Check a decoded YAML document and build the frozen config; raise ConfigError."""
-    r = _Reader(base_dir)
+def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
+                 require_bundles: bool = True) -> Config:
+    """Check a decoded YAML document and build the frozen config; raise ConfigError.
+
+    With `require_bundles=False` a model bundle path that does not exist yet is kept
+    as it is (the config that records an asset may name the bundle it commissions).
+    """
+    r = _Reader(base_dir, require_bundles=require_bundles)
     if doc is not None and not isinstance(doc, dict):
         raise ConfigError([ConfigProblem("(top level)", "a mapping of settings (site, gateway, "
                                          "assets, ...)", _describe(doc))],
@@ -827,7 +845,8 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
     upstream = _broker(r, top.get("upstream_broker"), "upstream_broker", f"{role}-upstream",
                        1883, cluster=True)
     ing = r.mapping(top.get("ingest"), "ingest",
-                    ("max_payload_bytes", "max_clock_skew_s", "subscriptions", "worker"))
+                    ("max_payload_bytes", "max_clock_skew_s", "subscriptions", "worker",
+                     "startup_grace_s"))
     subs = r.get(ing, "subscriptions", "ingest", "list", [])
     for i, f in enumerate(subs):
         if not isinstance(f, str) or not _filter_ok(f):
@@ -839,7 +858,9 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None) -> Config
               "a number of seconds > 0"),
         tuple(f for f in subs if isinstance(f, str)),
         IngestWorker(r.get(ing, "worker", "ingest", "str", "process",
-                           lambda v: v in ("process", "thread"), "process or thread")))
+                           lambda v: v in ("process", "thread"), "process or thread")),
+        r.get(ing, "startup_grace_s", "ingest", "num", 120.0, lambda v: v >= 0,
+              "a number of seconds >= 0"))
     pipe = r.mapping(top.get("pipeline"), "pipeline", ("tick_s",))
     tick = r.get(pipe, "tick_s", "pipeline", "num", 0.1, lambda v: 0.01 <= v <= 10,
                  "seconds between 0.01 and 10")
@@ -908,8 +929,8 @@ def _cross_checks(r: _Reader, assets: list[tuple[int, AssetConfig]]) -> None:
                 seen_topics[ch.topic] = where
 
 
-def load_config(path: str | Path) -> Config:
-    """Read and check a YAML config file."""
+def load_config(path: str | Path, *, require_bundles: bool = True) -> Config:
+    """Read and check a YAML config file (`parse_config` for `require_bundles`)."""
     p = Path(path)
     try:
         text = p.read_text(encoding="utf-8")
@@ -919,14 +940,45 @@ def load_config(path: str | Path) -> Config:
     import yaml  # here, not at the top: the ingest child unpickles config, never loads it
 
     try:
-        doc = yaml.safe_load(text)
+        doc = yaml_load(text)
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = (f"line {mark.line + 1}, column {mark.column + 1}" if mark is not None
                  else "(file)")
         raise ConfigError([ConfigProblem(where, "valid YAML", str(getattr(exc, "problem", exc)))],
                           str(p)) from exc
-    return parse_config(doc, p.resolve().parent, p)
+    return parse_config(doc, p.resolve().parent, p, require_bundles=require_bundles)
+
+
+# YAML 1.1 (PyYAML's resolver) reads a float only with a dot and a signed exponent
+# (`1.0e+6`); `1e6` and `1.0e6` stay strings. YAML 1.2's core schema (section 10.3.2,
+# tag resolution) reads all three as floats, as editors' YAML language servers do:
+# the loader accepts them too. The regex is the 1.2 core schema's float pattern
+# without its .inf/.nan forms (YAML 1.1 resolves those already).
+_FLOAT_12 = re.compile(r"^[-+]?(?:\.[0-9]+|[0-9]+(?:\.[0-9]*)?)(?:[eE][-+]?[0-9]+)$")
+_loader_cls: Any = None
+
+
+def _config_loader() -> Any:
+    global _loader_cls
+    if _loader_cls is None:
+        import yaml
+
+        class ConfigLoader(yaml.SafeLoader):
+            """SafeLoader that also reads YAML 1.2 exponent floats (`1e6`, `1.0e6`)."""
+
+        # add_implicit_resolver copies the inherited table first: SafeLoader is unchanged.
+        ConfigLoader.add_implicit_resolver("tag:yaml.org,2002:float", _FLOAT_12,
+                                           list("-+0123456789."))
+        _loader_cls = ConfigLoader
+    return _loader_cls
+
+
+def yaml_load(text: str) -> Any:
+    """YAML text as Python values, as the config loader reads it (safe, plus 1.2 floats)."""
+    import yaml
+
+    return yaml.load(text, Loader=_config_loader())  # a SafeLoader subclass: safe
 
 
 def read_secret(broker: BrokerConfig, env: Mapping[str, str]) -> str | None:

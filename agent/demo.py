@@ -31,9 +31,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any, TextIO
 
-import yaml
-
-from agent.config import Config, parse_config
+from agent.config import Config, parse_config, yaml_load
 from agent.core.events import rfc3339
 from agent.logs import setup_logging
 
@@ -137,7 +135,7 @@ Models = dict[str, dict[str, Path]]  # asset -> mode -> bundle directory
 def demo_config(state_dir: Path, port: int, models: Models | None = None) -> Config:
     """`config/demo/watchkeep.yaml` with the demo's broker port, state dir and bundles
     (the asset's `bundle`, or each mode's own for assets with operating modes)."""
-    doc = yaml.safe_load((DEMO_DIR / "watchkeep.yaml").read_text(encoding="utf-8"))
+    doc = yaml_load((DEMO_DIR / "watchkeep.yaml").read_text(encoding="utf-8"))
     # parse_config resolves relative paths against config/demo/: hand it absolute ones.
     doc["state_dir"] = str(state_dir.resolve())
     doc["local_broker"] = {**doc.get("local_broker", {}), "port": port}

@@ -148,6 +148,11 @@ class Pipeline:
         self._screen = [(rt.assembler, ib) for rt, ib in zip(runtimes, self._inboxes,
                                                               strict=True)]
         self._stale_at = [ai for ai, rt in enumerate(runtimes) if rt.stale_channels]
+        # Staleness is judged every tick while this is true. A replay or an offline
+        # record turns it off for the ticks after the data has ended (the end of a
+        # recording is not every sensor going silent).
+        self.judge_stale = True
+        self._grace_s = cfg.ingest.startup_grace_s
         self._unstarted = [rt for rt in runtimes if rt.started_s is None]
         # Indices of the assets the last tick visited: only their next window can have
         # moved (the daemon recomputes ingest's wake-up times for these alone).
@@ -195,7 +200,7 @@ class Pipeline:
         # sample arriving just after this tick (the next tick, which ingest wakes, takes
         # it); what is closed is decided again under the locks.
         due = [ai for ai, (asm, ib) in enumerate(self._screen) if ib.late or asm.due(now)]
-        if self._stale_at:
+        if self._stale_at and self.judge_stale:
             due = sorted(set(due).union(self._stale_at))
         self.last_due = due
         runtimes = self.runtimes
@@ -216,7 +221,7 @@ class Pipeline:
             if res is None:  # cut in lockstep
                 continue
             rt = runtimes[ai]
-            if rt.stale_channels:
+            if rt.stale_channels and self.judge_stale:
                 self._check_stale(rt, ai, now, out, stats)
             if res.empty_skipped:
                 self._skip(rt, "no_data", res.empty_skipped)
@@ -247,7 +252,15 @@ class Pipeline:
         for ci in rt.stale_channels:
             h = rt.health[ci]
             buf = self.buffers.by_asset[ai][ci]
-            last = buf.last_arrival or rt.started_s or now
+            if not buf.last_arrival:
+                # Never published since start: *waiting*, not stale, for the startup
+                # grace (or the channel's own stale_s, if longer); then stale.
+                since = now - (rt.started_s if rt.started_s is not None else now)
+                if since <= max(self._grace_s, h.limits.stale_s or 0.0):
+                    continue
+                last = rt.started_s if rt.started_s is not None else now
+            else:
+                last = buf.last_arrival
             change = h.check_stale(now - last)
             if change is not None:
                 self._sensor_event(rt, ci, change, now, f"stale|{last:.3f}", None, out, stats)

@@ -30,7 +30,7 @@ import json
 import math
 import os
 import sys
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, TextIO
@@ -247,9 +247,16 @@ def judge(scores: np.ndarray, window_start: np.ndarray, window_end: np.ndarray,
           kinds: np.ndarray, events: Sequence[TruthEvent], threshold: float,
           clear_threshold: float, params: DetectorParams) -> Detection:
     """Run the daemon's detector over `scores` and score it against the truth."""
-    n = len(scores)
-    faulty = np.asarray([k != "" for k in kinds], bool)
     transitions = run_detector(scores, threshold, clear_threshold, params)
+    return judge_transitions(transitions, len(scores), window_start, window_end, kinds, events,
+                             params)
+
+
+def judge_transitions(transitions: Sequence[tuple[int, Transition]], n: int,
+                      window_start: np.ndarray, window_end: np.ndarray, kinds: np.ndarray,
+                      events: Sequence[TruthEvent], params: DetectorParams) -> Detection:
+    """`judge` from the detector's transitions (index into the `n` windows) already run."""
+    faulty = np.asarray([k != "" for k in kinds], bool)
     anomalous = np.zeros(n, bool)
     state, last = False, 0
     for idx, t in transitions:
@@ -272,6 +279,140 @@ def judge(scores: np.ndarray, window_start: np.ndarray, window_end: np.ndarray,
     normal_s = union_duration_s(np.asarray(window_start)[~faulty],
                                 np.asarray(window_end)[~faulty])
     return Detection(params, outcomes, false_alarms, normal_s, len(raises))
+
+
+def fitted_mask(training: Any, ds: Dataset) -> np.ndarray:
+    """Windows the bundle was trained and calibrated on: all of them when the dataset is
+    the training dataset (same content hash), else those inside the training time span."""
+    n = ds.n_windows
+    if not isinstance(training, Mapping):
+        return np.zeros(n, bool)
+    if ds.content_sha256 and training.get("data_sha256") == ds.content_sha256:
+        return np.ones(n, bool)
+    span = training.get("time_span")
+    if not isinstance(span, Mapping):
+        return np.zeros(n, bool)
+    try:
+        lo, hi = float(span["start"]), float(span["end"])
+    except (KeyError, TypeError, ValueError):
+        return np.zeros(n, bool)
+    return np.asarray((ds.window_start >= lo) & (ds.window_end <= hi), bool)
+
+
+def drop_sensor_spans(ds: Dataset, spans: Sequence[FaultSpan], asset: str, notes: list[str]
+                      ) -> tuple[Dataset, list[FaultSpan]]:
+    """The dataset without the windows of sensor-class spans, and the other spans."""
+    sensor = [sp for sp in spans if sp.fault_class == "sensor" and sp.asset == asset]
+    rest = [sp for sp in spans if sp.fault_class != "sensor"]
+    if not sensor:
+        return ds, rest
+    hit = np.zeros(ds.n_windows, bool)
+    for sp in sensor:
+        hit |= (ds.window_start < sp.end) & (ds.window_end > sp.start)
+    if hit.any():
+        kinds = sorted({sp.kind for sp in sensor})
+        notes.append(f"{int(hit.sum())} window(s) in {len(sensor)} sensor-class label span(s) "
+                     f"({', '.join(kinds)}) left out: a sensor fault is for the sensor-health "
+                     "checks (sensor.fault), not a machine fault for the model to find")
+        if hit.all():
+            raise DatasetError(f"dataset {ds.path}: every window lies in a sensor-class label "
+                               "span; nothing left to evaluate")
+        ds = ds.select(~hit)
+    return ds, rest
+
+
+# --- whole asset (several modes) -------------------------------------------------------
+
+@dataclass(frozen=True)
+class WholeAsset:
+    """An asset with several modes judged as the daemon runs it: each window scored by
+    its mode's bundle, one detector for the asset, reset on a mode change while normal."""
+
+    modes: dict[str, dict[str, Any]]
+    detection: Detection
+    scored: int
+    windows: int
+
+    def as_json(self) -> dict[str, Any]:
+        d = self.detection
+        w, sec = d.delays()
+        return {"windows": self.windows, "scored": self.scored, "modes": self.modes,
+                "events": d.n_events, "detected": d.n_detected,
+                "detection_rate": _num(d.detection_rate),
+                "median_delay_s": float(np.median(sec)) if sec else None,
+                "median_delay_windows": float(np.median(w)) if w else None,
+                "raises": d.raises, "false_alarms": d.false_alarms,
+                "normal_hours": d.normal_s / 3600.0,
+                "false_alarms_per_day": _num(d.false_alarms_per_day)}
+
+
+def whole_asset(bundles: Mapping[str, Bundle], dataset: Dataset, *,
+                spans: Sequence[FaultSpan] | None = None,
+                params: DetectorParams | None = None,
+                notes: list[str] | None = None, held_out: bool = False) -> WholeAsset:
+    """Judge every window of `dataset`, whatever its mode (see `WholeAsset`). Windows in
+    a mode without a bundle are not scored (the daemon skips them as `no_model`) and
+    leave the detector as it was."""
+    from agent.core.detector import Detector
+
+    params = params or DetectorParams()
+    notes = notes if notes is not None else []
+    ds = dataset
+    asset = ds.asset or next(iter(bundles.values())).meta.asset
+    fitted = np.zeros(ds.n_windows, bool)
+    for b in bundles.values():
+        fitted |= fitted_mask(b.meta.training, ds)
+    if held_out and fitted.any():
+        if fitted.all():
+            raise DatasetError(f"dataset {ds.path}: no window is held out from the bundles' "
+                               "training spans")
+        ds = ds.select(~fitted)
+    elif fitted.any():
+        notes.append(f"whole asset: {int(fitted.sum())} of {ds.n_windows} windows lie in a "
+                     "span a bundle was trained and calibrated on (false alarms on them "
+                     "understate new data)")
+    if spans is not None:
+        ds, spans = drop_sensor_spans(ds, spans, asset, notes)
+        kinds, events = truth_from_spans(ds.window_start, ds.window_end, spans, asset)
+    elif ds.label is not None:
+        kinds = np.asarray(["" if v == 0 else f"label_{int(v)}" for v in ds.label], object)
+        events = truth_from_runs(ds.window_start, kinds)
+    else:
+        kinds = np.full(ds.n_windows, "", dtype=object)
+        events = []
+    scores = np.full(ds.n_windows, np.nan)
+    for mode, b in bundles.items():
+        mask = ds.mode == mode
+        if mask.any():
+            scores[mask] = _score(b, ds.columns(b.meta.feature_names)[mask])
+    det = Detector(params)
+    transitions: list[tuple[int, Transition]] = []
+    last_mode: str | None = None
+    for i, mode in enumerate(str(m) for m in ds.mode):
+        if mode != last_mode:
+            if det.state.value == "normal":  # the daemon's rule (pipeline._set_mode)
+                det = Detector(params)
+            last_mode = mode
+        mb = bundles.get(mode)
+        if mb is None:
+            continue
+        t = det.step(float(scores[i]), mb.meta.threshold, mb.meta.clear_threshold)
+        if t is not None:
+            transitions.append((i, t))
+    detection = judge_transitions(transitions, ds.n_windows, ds.window_start, ds.window_end,
+                                  kinds, events, params)
+    modes: dict[str, dict[str, Any]] = {}
+    for mode in ds.modes:
+        mask = ds.mode == mode
+        mb = bundles.get(mode)
+        modes[mode] = {"windows": int(mask.sum()),
+                       "model": mb.meta.model_id if mb is not None else None,
+                       "threshold": mb.meta.threshold if mb is not None else None}
+    unscored = [m for m in ds.modes if m not in bundles]
+    if unscored:
+        notes.append(f"whole asset: windows in mode(s) {', '.join(unscored)} have no bundle "
+                     "and are not scored (as the daemon skips them)")
+    return WholeAsset(modes, detection, int(np.isfinite(scores).sum()), ds.n_windows)
 
 
 # --- scenarios --------------------------------------------------------------------------
@@ -301,6 +442,7 @@ class Evaluation:
     clear_threshold: float
     scenarios: list[Scenario]
     notes: list[str]
+    whole_asset: WholeAsset | None = None
 
     def overall(self) -> list[dict[str, Any]]:
         """Per (k, n, m): detection and delay over every scenario's fault events, false
@@ -374,11 +516,16 @@ def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | N
              inject_specs: Sequence[InjectSpec] = (),
              params: DetectorParams | None = None,
              alternatives: Sequence[tuple[int, int, int]] = DEFAULT_ALTERNATIVES,
-             seed: int = 0, raw: RawCapture | None = None) -> Evaluation:
+             seed: int = 0, raw: RawCapture | None = None,
+             held_out: bool = False) -> Evaluation:
     """Score `dataset` with `bundle`, judge each scenario (see the module docstring).
 
     With `raw`, injected faults go into the raw capture and are replayed (the raw path);
-    without it they are injected on the feature windows.
+    without it they are injected on the feature windows. Labelled spans of class
+    `sensor` are not faults for the model to find (the sensor-health checks report
+    them, and the daemon does not score a faulty channel's windows): their windows are
+    left out. Windows inside the span the bundle was trained and calibrated on are
+    counted (`dataset.fitted_windows`, a note), or left out with `held_out`.
     """
     params = params or DetectorParams()
     meta = bundle.meta
@@ -398,7 +545,7 @@ def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | N
                            f"{meta.mode!r} (its modes: {list(modes)})")
     if ds.asset and ds.asset != meta.asset:
         notes.append(f"dataset asset {ds.asset!r} differs from the bundle's {meta.asset!r}")
-    x = ds.columns(meta.feature_names)
+    ds.columns(meta.feature_names)  # the model's features are all there (or a clear error)
     extra = [n for n in ds.feature_names if n not in set(meta.feature_names)]
     if extra:
         notes.append(f"{len(extra)} dataset feature(s) the model does not use were ignored")
@@ -407,7 +554,23 @@ def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | N
     if params not in alt_params:
         alt_params.append(params)
 
+    fitted = fitted_mask(meta.training, ds)
+    if held_out and fitted.any():
+        if fitted.all():
+            raise DatasetError(f"dataset {ds.path}: every window lies in the span the model "
+                               "was trained and calibrated on; nothing is held out (record a "
+                               "later stretch, or evaluate without --held-out)")
+        notes.append(f"--held-out: {int(fitted.sum())} window(s) the model was trained and "
+                     "calibrated on were left out")
+        ds = ds.select(~fitted)
+        fitted = np.zeros(ds.n_windows, bool)
+    elif fitted.any():
+        notes.append(f"{int(fitted.sum())} of {ds.n_windows} windows lie in the span the model "
+                     "was trained and calibrated on: false alarms per day on them understate "
+                     "what to expect on new data (evaluate a later recording, or --held-out)")
     if spans is not None:
+        ds, spans = drop_sensor_spans(ds, spans, ds.asset or meta.asset, notes)
+        fitted = fitted_mask(meta.training, ds) if not held_out else np.zeros(ds.n_windows, bool)
         kinds, events = truth_from_spans(ds.window_start, ds.window_end, spans,
                                          ds.asset or meta.asset)
         if not events:
@@ -418,6 +581,7 @@ def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | N
     else:
         kinds = np.full(ds.n_windows, "", dtype=object)
         events = []
+    x = ds.columns(meta.feature_names)
     scores = _score(bundle, x)
     scenarios = [_scenario("recorded", "recorded", scores, ds, kinds, events, thr, clear,
                            params, alt_params)]
@@ -453,7 +617,8 @@ def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | N
               "threshold": thr, "clear_threshold": clear, "n_features": bundle.n_features}
     info_d = {"path": str(ds.path) if ds.path else "", "asset": ds.asset,
               "n_windows": ds.n_windows, "content_sha256": ds.content_sha256,
-              "time_span": [float(ds.window_start.min()), float(ds.window_end.max())]}
+              "time_span": [float(ds.window_start.min()), float(ds.window_end.max())],
+              "fitted_windows": int(fitted.sum())}
     if injection:
         info_d["injection"] = injection
     return Evaluation(info_b, info_d, params, thr, clear, scenarios, notes)
@@ -524,6 +689,12 @@ def add_evaluate_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--raise-n", type=int, default=d.raise_n)
     parser.add_argument("--clear-m", type=int, default=d.clear_m)
     parser.add_argument("--seed", type=int, default=0, help="seed for injected faults")
+    parser.add_argument("--mode-bundle", action="append", default=[], metavar="MODE=BUNDLE",
+                        help="the bundle of another operating mode (repeat per mode): adds "
+                             "a whole-asset view, every window judged by its mode's bundle "
+                             "with one detector, as the daemon runs the asset")
+    parser.add_argument("--held-out", action="store_true",
+                        help="leave out the windows the model was trained and calibrated on")
 
 
 def cmd_evaluate(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
@@ -543,9 +714,24 @@ def cmd_evaluate(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
     spans = load_labels(args.labels) if args.labels else None
     raw, why = _raw_capture(args, ds, bundle) if args.inject else (None, "")
     result = evaluate(bundle, ds, spans=spans, inject_specs=list(args.inject), params=params,
-                      seed=args.seed, raw=raw)
+                      seed=args.seed, raw=raw, held_out=bool(getattr(args, "held_out", False)))
     if why:
         result.notes.append(why)
+    extra = getattr(args, "mode_bundle", None) or []
+    if extra:
+        bundles = {bundle.meta.mode: bundle}
+        for item in extra:
+            mode, sep, path = item.partition("=")
+            if not sep or not mode or not path:
+                raise DatasetError(f"--mode-bundle {item!r}: expected MODE=BUNDLE")
+            b = load_bundle(path)
+            if b.meta.mode != mode:
+                result.notes.append(f"--mode-bundle {mode}: the bundle was trained for mode "
+                                    f"{b.meta.mode!r}; used for {mode!r} as asked")
+            bundles[mode] = b
+        result = dataclasses.replace(result, whole_asset=whole_asset(
+            bundles, ds, spans=spans, params=params, notes=result.notes,
+            held_out=bool(getattr(args, "held_out", False))))
     print(format_summary(result), file=stream)
     if args.report:
         written = write_report(result, args.report)

@@ -79,6 +79,7 @@ def to_json(ev: Evaluation) -> dict[str, Any]:
                      "clear_threshold": ev.clear_threshold},
         "scenarios": [_scenario_json(s) for s in ev.scenarios],
         "alternatives_overall": ev.overall(),
+        "whole_asset": ev.whole_asset.as_json() if ev.whole_asset is not None else None,
         "notes": list(ev.notes),
     }
 
@@ -93,7 +94,10 @@ def format_summary(ev: Evaluation) -> str:
     lines = [f"bundle {ev.bundle['model_id']} v{ev.bundle['version']}: threshold "
              f"{ev.threshold:.5g}, clear {ev.clear_threshold:.5g}; detector raise "
              f"{p.raise_k} of {p.raise_n}, clear after {p.clear_m}",
-             f"dataset {ev.dataset['path']}: {ev.dataset['n_windows']} windows", ""]
+             f"dataset {ev.dataset['path']}: {ev.dataset['n_windows']} windows"
+             + (f", {ev.dataset['fitted_windows']} of them in the span the model was trained "
+                "and calibrated on (FA/day there is not a forecast)"
+                if ev.dataset.get("fitted_windows") else ""), ""]
     lines.append(f"{'scenario':<36} {'AUC':>14} {'events':>7} {'detected':>9} "
                  f"{'delay w':>8} {'delay s':>9} {'FA/day':>8}")
     for s in ev.scenarios:
@@ -117,6 +121,20 @@ def format_summary(ev: Evaluation) -> str:
                      f"{_fmt(r['median_delay_s'], '.0f'):>15} "
                      f"{_fmt(r['false_alarms_per_day'], '.2f'):>8} "
                      f"{_fmt(r['spikes_raised'], '.0%'):>14}{mark}")
+    wa = ev.whole_asset
+    if wa is not None:
+        j = wa.as_json()
+        lines += ["", f"whole asset ({len(wa.modes)} modes, each window judged by its mode's "
+                  "bundle, one detector):"]
+        for mode, m in wa.modes.items():
+            model = f"{m['model']} threshold {m['threshold']:.5g}" if m["model"] else \
+                "no bundle: not scored"
+            lines.append(f"  {mode:<16} {m['windows']:>7} windows  {model}")
+        lines.append(f"  {j['scored']} of {j['windows']} windows scored; {j['events']} fault "
+                     f"events, {j['detected']} detected, median delay "
+                     f"{_fmt(j['median_delay_s'], '.0f')} s; {j['false_alarms']} false "
+                     f"alarm(s), {_fmt(j['false_alarms_per_day'], '.2f')} per day over "
+                     f"{j['normal_hours']:.1f} h of normal running")
     lines += [f"note: {n}" for n in ev.notes]
     return "\n".join(lines)
 

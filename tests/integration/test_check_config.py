@@ -131,3 +131,22 @@ def test_endpoints_listed_and_a_bad_entry_named(tmp_path: Path) -> None:
     assert done.stderr.splitlines() == [
         f"watchkeep: {path}: upstream_broker.endpoints[1].port: expected a TCP port 1-65535, "
         "got '8883'"]
+
+
+def test_bundles_not_trained_yet(tmp_path: Path) -> None:
+    """A bundle path that does not exist yet fails the check (exit 2, naming the flag) and
+    passes with --allow-missing-bundles, with a warning: the config `record` runs with."""
+    doc = {"site": "fernbrook", "gateway": "gw1", "state_dir": str(tmp_path / "state"),
+           "assets": [asset_doc("P-101", tmp_path / "models" / "P-101", prefix="fernbrook")]}
+    path = tmp_path / "watchkeep.yaml"
+    path.write_text(yaml.safe_dump(doc, sort_keys=False))
+    done = check_config(path)
+    assert done.returncode == 2, done.stderr
+    assert "assets[0].bundle" in done.stderr and "--allow-missing-bundles" in done.stderr
+    done = subprocess.run([str(WATCHKEEP), "check-config", "--allow-missing-bundles", str(path)],
+                          capture_output=True, text=True, timeout=120, check=False)
+    assert done.returncode == 0, done.stderr
+    model = next(x for x in done.stdout.splitlines() if "model:" in x)
+    assert "not trained yet" in model and str(tmp_path / "models" / "P-101") in model
+    assert done.stderr.strip() == ("warning: 1 model bundle(s) not trained yet: fine for "
+                                   "`record`, not for `run`")

@@ -35,7 +35,8 @@ FEATURE_LIST = "mean, std, min, max, rms, peak_to_peak, crest_factor, skewness, 
 TOP_KEYS = ("site, gateway, topic_prefix, state_dir, local_broker, upstream_broker, ingest, "
             "pipeline, outbox, http, publish, assets, rebaseline")
 CHANNEL_KEYS = "topic, decoder, rate_hz, features, unit, ts_field, value_field, values_field, " \
-    "rate_field, seq_field, spectrum, min, max, stale_s, flatline_windows, max_rate_per_s, limits"
+    "rate_field, seq_field, spectrum, min, max, stale_s, flatline_windows, max_rate_per_s, " \
+    "limits, column"
 
 
 def base_doc() -> dict[str, Any]:
@@ -204,10 +205,12 @@ BROKEN: tuple[Broken, ...] = (
             "got 'fernbrook/raw-water/P-101/current', also assets[0].channels.current.topic"),
            schema_blind="a rule across list items (uniqueItems compares whole items only)"),
     Broken("bundle that does not exist", _bundle_missing,
-           ("assets[0].bundle: expected an existing model bundle directory, "
+           ("assets[0].bundle: expected an existing model bundle directory (record, and "
+            "check-config with --allow-missing-bundles, accept one not trained yet), "
             "got {tmp}/no-such-bundle",), schema_blind="the file system"),
     Broken("bundle that is a file", _bundle_is_file,
-           ("assets[0].bundle: expected an existing model bundle directory, "
+           ("assets[0].bundle: expected an existing model bundle directory (record, and "
+            "check-config with --allow-missing-bundles, accept one not trained yet), "
             "got {tmp}/model.onnx",), schema_blind="the file system"),
     Broken("TLS CA file that does not exist", _ca_missing,
            ("upstream_broker.tls.ca_file: expected an existing file, got {tmp}/plant-ca.pem",),

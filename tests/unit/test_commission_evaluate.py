@@ -315,3 +315,75 @@ def test_cli_entry(setup: Path, tmp_path: Path) -> None:
     text = out.getvalue()
     assert "raise 3 of 5" in text and "inject:stuck" in text and "<- current" in text
     assert (tmp_path / "rep" / REPORT_JSON).is_file()
+
+
+# --- sensor labels, fitted windows, the whole asset ------------------------------------
+
+def _with_sensor_span(setup: Path, tmp_path: Path) -> tuple[Path, Path]:
+    """The eval windows with a second disturbance at 500:520, labelled a sensor fault."""
+    ds = read_dataset(setup / "eval")
+    x = ds.features.copy()
+    x[500:520, 20:25] += 8.0 * load_bundle(setup / "bundle").meta.scaler_scale[20:25]
+    write_dataset(tmp_path / "ds", x, ds.feature_names, ds.window_start, ds.window_end,
+                  ds.mode, asset="P-101")
+    sensor = {"asset": "P-101", "kind": "drifting_transmitter", "class": "sensor",
+              "start": float(ds.window_start[500]), "end": float(ds.window_end[519])}
+    spans = [*json.loads((setup / "labels.json").read_text()), sensor]
+    (tmp_path / "labels.json").write_text(json.dumps(spans))
+    return tmp_path / "ds", tmp_path / "labels.json"
+
+
+def test_sensor_class_labels_are_not_faults_to_detect(setup: Path, tmp_path: Path) -> None:
+    """A sensor-class span is neither an event the model must find nor a false alarm:
+    its windows are left out, with a note."""
+    ds_path, labels = _with_sensor_span(setup, tmp_path)
+    ev = evaluate(load_bundle(setup / "bundle"), read_dataset(ds_path),
+                  spans=load_labels(labels))
+    rec = ev.scenarios[0]
+    assert [e.event.kind for e in rec.detection.events] == ["imbalance"]
+    assert rec.detection.n_detected == 1 and rec.detection.false_alarms == 0
+    assert ev.dataset["n_windows"] == 800 - 20
+    assert any("sensor-class label span" in n and "drifting_transmitter" in n for n in ev.notes)
+
+
+def test_windows_the_model_was_fitted_to_are_named(setup: Path) -> None:
+    """Evaluating on the training data says so (report, summary); --held-out refuses when
+    nothing is held out; a later recording has no fitted window."""
+    from agent.commission.report import format_summary, to_json
+
+    b = load_bundle(setup / "bundle")
+    ev = evaluate(b, read_dataset(setup / "train"))
+    assert ev.dataset["fitted_windows"] == 800
+    assert any("trained and calibrated on" in n for n in ev.notes)
+    assert "800 of them in the span the model was trained" in format_summary(ev)
+    assert to_json(ev)["dataset"]["fitted_windows"] == 800
+    with pytest.raises(DatasetError, match="nothing is held out"):
+        evaluate(b, read_dataset(setup / "train"), held_out=True)
+    later = evaluate(b, read_dataset(setup / "eval"))
+    assert later.dataset["fitted_windows"] == 0
+    assert not any("trained and calibrated on" in n for n in later.notes)
+
+
+def test_whole_asset_view_of_several_modes(setup: Path, tmp_path: Path) -> None:
+    """--mode-bundle: every window judged by its mode's bundle with one detector; a mode
+    without a bundle is not scored; the fault is found, no false alarm."""
+    ds = read_dataset(setup / "eval")
+    # an invented duty cycle in blocks of 100 windows; the fault (300:340) falls in boost
+    modes = np.tile(np.repeat(["run", "boost", "idle", "boost"], 100), 2)
+    write_dataset(tmp_path / "ds", ds.features, ds.feature_names, ds.window_start,
+                  ds.window_end, modes, asset="P-101", label=ds.label)
+    parser = argparse.ArgumentParser()
+    add_evaluate_arguments(parser)
+    args = parser.parse_args([str(setup / "bundle"), str(tmp_path / "ds"),
+                              "--mode-bundle", f"boost={setup / 'bundle'}",
+                              "--report", str(tmp_path / "rep")])
+    out = io.StringIO()
+    assert cmd_evaluate(args, out=out) == 0
+    text = out.getvalue()
+    assert "whole asset (3 modes" in text and "no bundle: not scored" in text
+    doc = json.loads((tmp_path / "rep" / REPORT_JSON).read_text())
+    wa = doc["whole_asset"]
+    assert wa["windows"] == 800 and wa["scored"] == 600
+    assert wa["modes"]["idle"] == {"windows": 200, "model": None, "threshold": None}
+    assert wa["events"] == 1 and wa["detected"] == 1 and wa["false_alarms"] == 0
+    assert any("idle have no bundle" in n for n in doc["notes"])

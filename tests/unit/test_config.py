@@ -238,3 +238,57 @@ def test_default_features_follow_samples_per_window() -> None:
     a = parse_config(doc, Path("."))
     assert a.asset("A").channel("fast").features == DEFAULT_FEATURES
     assert a.asset("A").channel("slow").features == FEW_SAMPLES_FEATURES
+
+
+@pytest.mark.parametrize(("text", "value"), [
+    ("1e6", 1e6), ("1.0e6", 1e6), ("1.0e+6", 1e6), ("1E6", 1e6), ("-2.5e-3", -2.5e-3),
+    ("+1e3", 1e3), (".5e2", 50.0), ("1000", 1000), ("0.5", 0.5), ("1_000", 1000),
+])
+def test_exponent_numbers_are_numbers(tmp_path: Path, text: str, value: float) -> None:
+    """YAML 1.2 exponent floats (YAML 1.2.2 section 10.3.2: `1e6`, `1.0e6`) are numbers,
+    as they are to an editor's YAML language server, not the strings PyYAML's YAML 1.1
+    resolver makes of them; YAML 1.1 forms still read as before."""
+    from agent.config import yaml_load
+
+    got = yaml_load(f"x: {text}")["x"]
+    assert got == value and type(got) is type(value)
+    doc = yaml.safe_dump(base_doc(), sort_keys=False) + f"pipeline:\n  tick_s: {text}\n"
+    if 0.01 <= value <= 10:
+        assert load_config(write(tmp_path, doc)).tick_s == pytest.approx(value)
+    else:  # out of range: refused as a number, not as "a string"
+        assert problems_of(write(tmp_path, doc)) == [
+            f"pipeline.tick_s: expected seconds between 0.01 and 10, got {value}"]
+
+
+@pytest.mark.parametrize("text", ["'1e6'", '"1.0e6"', "v1e6", "1e", "e6", "1.2.3e4",
+                                  "0x1e6", "2024-01-01", "1e6 rpm"])
+def test_exponent_resolver_leaves_other_text_alone(text: str) -> None:
+    """Quoted numbers, names and dates are not taken for exponent floats."""
+    from agent.config import yaml_load
+
+    assert yaml_load(f"x: {text}") == yaml.safe_load(f"x: {text}")
+
+
+def test_column_and_startup_grace(tmp_path: Path) -> None:
+    """A channel's CSV `column:` and `ingest.startup_grace_s` are read; defaults none, 120 s."""
+    doc = base_doc()
+    cfg = parse_config(doc, tmp_path)
+    assert cfg.ingest.startup_grace_s == 120.0
+    assert all(ch.column is None for a in cfg.assets for ch in a.channels)
+    first = next(iter(doc["assets"][0]["channels"]))
+    doc["assets"][0]["channels"][first]["column"] = "FT-101 [m3/h]"
+    doc["ingest"] = {"startup_grace_s": 30}
+    cfg = parse_config(doc, tmp_path)
+    assert cfg.assets[0].channels[0].column == "FT-101 [m3/h]"
+    assert cfg.ingest.startup_grace_s == 30.0
+
+
+def test_missing_bundle_is_accepted_only_when_asked(tmp_path: Path) -> None:
+    """A bundle not trained yet: an error naming the key, unless require_bundles=False."""
+    doc = base_doc()
+    doc["assets"][0]["bundle"] = str(tmp_path / "models" / "not-yet")
+    with pytest.raises(ConfigError) as info:
+        parse_config(doc, tmp_path)
+    assert [p.key_path for p in info.value.problems] == ["assets[0].bundle"]
+    cfg = parse_config(doc, tmp_path, require_bundles=False)
+    assert cfg.assets[0].bundle == tmp_path / "models" / "not-yet"
