@@ -322,8 +322,9 @@ class SparkplugDecoder:
         node.devices = {}  # a new NBIRTH starts a new session: DBIRTHs follow it
         if node.offline:
             node.offline = False
-            self.notes.append((Note.ONLINE, self.device_routes(group, node_id, None),
-                               arrival))
+            routes = self.device_routes(group, node_id, None)
+            if routes:
+                self.notes.append((Note.ONLINE, routes, arrival))
         return self._samples(msg, table, arrival, group, node_id)
 
     def _dbirth(self, node: _Node, msg: Any, group: str, node_id: str, device: str,
@@ -336,8 +337,9 @@ class SparkplugDecoder:
         off = node.offline_devices
         if off is not None and device in off:
             off.discard(device)
-            self.notes.append((Note.ONLINE, self.device_routes(group, node_id, device),
-                               arrival))
+            routes = self.device_routes(group, node_id, device)
+            if routes:
+                self.notes.append((Note.ONLINE, routes, arrival))
         return self._samples(msg, table, arrival, group, node_id)
 
     def _ndeath(self, node: _Node, msg: Any, group: str, node_id: str, arrival: float

@@ -35,8 +35,8 @@ FEATURE_LIST = "mean, std, min, max, rms, peak_to_peak, crest_factor, skewness, 
 TOP_KEYS = ("site, gateway, topic_prefix, state_dir, local_broker, upstream_broker, ingest, "
             "pipeline, outbox, http, publish, assets, rebaseline")
 CHANNEL_KEYS = "topic, decoder, rate_hz, features, unit, ts_field, value_field, values_field, " \
-    "rate_field, seq_field, spectrum, min, max, stale_s, flatline_windows, max_rate_per_s, limits, " \
-    "metric"
+    "rate_field, seq_field, spectrum, min, max, stale_s, flatline_windows, max_rate_per_s, " \
+    "limits, metric"
 
 
 def base_doc() -> dict[str, Any]:
@@ -406,7 +406,8 @@ BROKEN: tuple[Broken, ...] = (
          f"{W0}.hop: expected one of the known keys (length_s, hop_s, lateness_s, timeout_s, "
          "min_coverage), got unknown key 'hop'",
          f"{W0}.length_s: expected a number of seconds > 0, got 0",
-         "assets[1].channels.vib.decoder: expected one of json, json-batch, text, sparkplug-b, got 'wav'")),
+         "assets[1].channels.vib.decoder: expected one of json, json-batch, text, sparkplug-b, "
+         "got 'wav'")),
 )
 
 # YAML that does not parse: the loader names the line and column (1-based).
