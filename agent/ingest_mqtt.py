@@ -345,6 +345,11 @@ class Ingest:
         """Route with `handler` from now on (reload) and follow the subscriptions."""
         old = self.topics()
         handler.publish = self._publish
+        if handler.sparkplug is not None and self.handler.sparkplug is not None:
+            # Births seen so far stay good; the paho thread may still be in the old
+            # handler, so a message it reads meanwhile is in the old state only (the
+            # next sequence number then looks like a gap, no worse).
+            handler.sparkplug.adopt(self.handler.sparkplug)
         self.handler = handler  # one attribute store: the paho thread sees old or new
         self.cfg = cfg  # later reconnects subscribe for the new config
         self.resubscribe(old, self.topics())

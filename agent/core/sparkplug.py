@@ -141,6 +141,9 @@ class _Device:
         self.alias_first = bool(self.by_alias) and 0 not in self.by_alias
 
 
+Declared = list[tuple[str, int | None, int]]  # a birth's metrics: (name, alias, datatype)
+
+
 @dataclass
 class _Node:
     born: bool = False
@@ -151,6 +154,9 @@ class _Node:
     node_metrics: _Device | None = None
     devices: dict[str, _Device] | None = None
     offline_devices: set[str] | None = None
+    # What the current births declared (None: the node's own NBIRTH), so a reload can
+    # bind its new channels without waiting for the next birth.
+    declared: dict[str | None, Declared] | None = None
 
 
 _MISSING = object()
@@ -305,26 +311,51 @@ class SparkplugDecoder:
 
     # -- births and deaths ----------------------------------------------------------------
 
-    def _table(self, msg: Any, wanted: dict[str, list[Route]], where: str) -> _Device:
+    def adopt(self, old: SparkplugDecoder) -> None:
+        """Carry the births, sequence numbers and deaths of `old` (the decoder of the
+        config before a reload) over for the edge nodes both read, bound to this config's
+        channels: a reload must not wait for every edge node's next birth."""
+        for key, was in old._nodes.items():
+            node = self._nodes.get(key)
+            if node is None:
+                continue
+            wanted = self._wanted[key]
+            node.born, node.seq, node.bd_seq = was.born, was.seq, was.bd_seq
+            node.offline, node.last_rebirth = was.offline, was.last_rebirth
+            node.offline_devices = set(was.offline_devices or ())
+            node.declared = dict(was.declared or {})
+            where = "/".join(key)
+            node.node_metrics = None if None not in node.declared or not was.born \
+                else self._table(node.declared[None], wanted.get(None, {}), where)
+            node.devices = None if not was.born else {
+                d: self._table(decl, wanted.get(d, {}), f"{where}/{d}")
+                for d, decl in node.declared.items() if d is not None}
+
+    @staticmethod
+    def _declared(msg: Any) -> Declared:
+        return [(m.name, m.alias if m.HasField("alias") else None, m.datatype)
+                for m in msg.metrics]
+
+    def _table(self, declared: Declared, wanted: dict[str, list[Route]], where: str
+               ) -> _Device:
         """The metric table of a birth: every declared metric, the wanted ones bound."""
         by_alias: dict[int, Any] = {}
         by_name: dict[str, Any] = {}
-        for m in msg.metrics:
-            name = m.name
+        for name, alias, dtype in declared:
             routes = wanted.get(name)
             entry: Any = None
             if routes is not None:
-                read = _READ.get(m.datatype)
+                read = _READ.get(dtype)
                 if read is None:
                     self.notes.append((Note.REJECTED, Reason.WRONG_TYPE,
-                                       f"{where} {name!r}: datatype {m.datatype} is not a "
+                                       f"{where} {name!r}: datatype {dtype} is not a "
                                        "number, a boolean or an array of them"))
                 else:
-                    entry = (routes, read[0], read[1], read[2], m.datatype,
+                    entry = (routes, read[0], read[1], read[2], dtype,
                              routes[0] if len(routes) == 1 else None)
             by_name[name] = entry
-            if m.HasField("alias"):
-                by_alias[m.alias] = entry
+            if alias is not None:
+                by_alias[alias] = entry
         missing = sorted(set(wanted) - set(by_name))
         if missing:
             self.notes.append((Note.LOG, f"spb_missing:{where}", "metric not in the birth "
@@ -340,9 +371,11 @@ class SparkplugDecoder:
         for m in msg.metrics:
             if m.name == BDSEQ_METRIC:
                 node.bd_seq = _int_of(m)
-        table = self._table(msg, wanted.get(None, {}), f"{group}/{node_id}")
+        declared = self._declared(msg)
+        table = self._table(declared, wanted.get(None, {}), f"{group}/{node_id}")
         node.node_metrics = table
         node.devices = {}  # a new NBIRTH starts a new session: DBIRTHs follow it
+        node.declared = {None: declared}
         if node.offline:
             node.offline = False
             routes = self.device_routes(group, node_id, None)
@@ -353,10 +386,14 @@ class SparkplugDecoder:
     def _dbirth(self, node: _Node, msg: Any, group: str, node_id: str, device: str,
                 arrival: float) -> list[tuple[Route, float, float | Block]]:
         wanted = self._wanted[(group, node_id)]
-        table = self._table(msg, wanted.get(device, {}), f"{group}/{node_id}/{device}")
+        declared = self._declared(msg)
+        table = self._table(declared, wanted.get(device, {}), f"{group}/{node_id}/{device}")
         if node.devices is None:
             node.devices = {}
         node.devices[device] = table
+        if node.declared is None:
+            node.declared = {}
+        node.declared[device] = declared
         off = node.offline_devices
         if off is not None and device in off:
             off.discard(device)
@@ -379,6 +416,7 @@ class SparkplugDecoder:
         node.born = False
         node.seq = None
         node.node_metrics = None
+        node.declared = None
         devices = set(node.devices or ()) | set(self._wanted[(group, node_id)]) - {None}
         node.devices = None
         node.offline = True
@@ -391,6 +429,8 @@ class SparkplugDecoder:
                 ) -> None:
         if node.devices is not None:
             node.devices.pop(device, None)
+        if node.declared is not None:
+            node.declared.pop(device, None)
         if node.offline_devices is None:
             node.offline_devices = set()
         node.offline_devices.add(device)

@@ -362,3 +362,17 @@ def test_death_certificate_raises_sensor_fault_at_once(tmp_path: Path) -> None:
     assert sorted((e["type"], e["data"]["channel"]) for e in events) == [
         ("io.watchkeep.sensor.recovered", "flow"),
         ("io.watchkeep.sensor.recovered", "pressure")]
+
+
+def test_reload_keeps_births() -> None:
+    """After a reload the new config's channels read the edge node at once (births, aliases
+    and sequence carried over), even a channel the old config did not have."""
+    old = _decoder(_config({"flow": "Pump/Flow"}))
+    _born(old, [FLOW, PRESSURE])
+    new = _decoder(_config({"pressure": "Pump/Discharge Pressure", "flow": "Pump/Flow"}))
+    new.adopt(old)
+    got = new.decode(DDATA, _payload(2, [{"alias": 1, "double_value": 4.0},
+                                         {"alias": 2, "float_value": 5.0}]), NOW)
+    assert _values(got) == {"flow": (MS / 1000, 4.0), "pressure": (MS / 1000, 5.0)}
+    assert [r.channel_index for r, _, _ in got] == [1, 0]  # the new config's layout
+    assert new.notes == []
