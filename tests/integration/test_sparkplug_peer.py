@@ -30,6 +30,8 @@ from agent.ingest import Buffers, IngestHandler, close_inboxes
 from agent.ingest_worker import ProcessIngest
 from agent.metrics import Metrics
 from tests.brokers import Broker, wait_for
+from tests.helpers import Collector, write_config
+from tests.integration.test_daemon_process import WATCHKEEP
 from tests.integration.test_mqtt_commands_daemon import USERS, write_password_file
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -211,3 +213,77 @@ def test_pysparkplug_edge_node_through_the_ingest_child(auth_broker: Broker) -> 
     for ci, values in sent.items():
         assert [p for p in got[ci] if p[0] >= ts[0]] == list(zip(ts, values, strict=True))
     assert np.isfinite([v for vs in got.values() for _, v in vs]).all()
+
+
+@pytest.mark.skipif(not PEER_PATH.is_dir(), reason="the peer's packages are installed by "
+                    "`make .venv/.installed` into .venv/spb-peer")
+def test_daemon_raises_sensor_fault_when_the_edge_node_dies(tmp_path: Path,
+                                                            auth_broker: Broker,
+                                                            upstream_broker: Broker) -> None:
+    """`watchkeep run` (ingest child, pipeline, outbox, upstream): the edge node killed ->
+    its NDEATH will -> one sensor.fault per channel upstream (reason node_death); born
+    again and sending -> sensor.recovered. No anomaly either way (no model)."""
+    chans = {c: {"topic": TOPIC, "decoder": "sparkplug-b", "metric": m, "rate_hz": 4.0,
+                 "features": ["mean"]} for c, m in CHANNELS.items()}
+    asset = {"name": "C-301", "channels": chans,
+             "window": {"length_s": 1.0, "lateness_s": 0.2, "timeout_s": 2.0,
+                        "min_coverage": 0.5}}
+    config = write_config(tmp_path / "watchkeep.yaml", auth_broker.port, upstream_broker.port,
+                          [asset], local_broker={"host": "127.0.0.1", "port": auth_broker.port,
+                                                 "username": USER, "password": USERS[USER]})
+    events = Collector(upstream_broker.port, "watchkeep/testworks/gw1/assets/+/events",
+                       "spb-events")
+    status = Collector(upstream_broker.port, "watchkeep/testworks/gw1/status", "spb-status")
+    env = {k: v for k, v in os.environ.items() if k not in ("NOTIFY_SOCKET", "WATCHDOG_USEC")}
+    proc = subprocess.Popen([WATCHKEEP, "run", "--config", str(config)], env=env,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    peers: list[Peer] = []
+
+    def send(peer: Peer, seconds: float) -> None:
+        """Readings 4 per second, stamped now, for `seconds`."""
+        end = time.time() + seconds
+        k = 0
+        while time.time() < end:
+            k += 1
+            peer.cmd(f"data {int(time.time() * 1000)} {10 + k % 3} {2 + k % 2} 1 {k % 5}")
+            time.sleep(0.25)
+
+    def sensor_events(kind: str) -> list[dict[str, Any]]:
+        return [e for e in events.events() if e["type"] == f"io.watchkeep.sensor.{kind}"]
+
+    try:
+        wait_for(lambda: any(s.get("state") == "online" for s in status.json())
+                 or proc.poll() is not None, timeout_s=30, what="the daemon online")
+        assert proc.poll() is None, proc.stderr.read().decode() if proc.stderr else ""
+        time.sleep(0.5)  # the ingest child subscribes just after it connects
+        a = Peer(auth_broker.port, alias_base=10)
+        peers.append(a)
+        send(a, 2.0)
+        assert sensor_events("fault") == []
+        killed = time.monotonic()
+        a.kill()
+        wait_for(lambda: len(sensor_events("fault")) == 4, timeout_s=10,
+                 what="a sensor.fault per channel")
+        took = time.monotonic() - killed
+        faults = sensor_events("fault")
+        assert sorted(e["data"]["channel"] for e in faults) == sorted(CHANNELS)
+        assert all(e["data"]["reasons"] == ["node_death"] for e in faults)
+        print(f"NDEATH -> sensor.fault upstream in {took:.2f} s")
+        b = Peer(auth_broker.port, alias_base=50)
+        peers.append(b)
+        send(b, 4.0)
+        wait_for(lambda: len(sensor_events("recovered")) == 4, timeout_s=10,
+                 what="a sensor.recovered per channel")
+        assert not [e for e in events.events() if "anomaly" in e["type"]]
+    finally:
+        for p in peers:
+            p.kill()
+        if proc.poll() is None:
+            proc.send_signal(signal.SIGTERM)
+            try:
+                proc.wait(15)
+            except subprocess.TimeoutExpired:
+                proc.kill()
+                proc.wait(10)
+        events.close()
+        status.close()
