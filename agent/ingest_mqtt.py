@@ -108,6 +108,7 @@ class IngestHandler:
                           for r in self.channels}
         self._max_bytes = cfg.ingest.max_payload_bytes
         self._max_skew = cfg.ingest.max_clock_skew_s
+        self._flush_rows: list[tuple[Any, Any, Any]] | None = None
         spb = [r for r in self.channels if r.channel.decoder is Decoder.SPARKPLUG_B]
         self.sparkplug: SparkplugDecoder | None = None
         if spb:
@@ -137,14 +138,17 @@ class IngestHandler:
             self._flush_locked()
 
     def _flush_locked(self) -> None:
-        for route in self.channels:
-            buf = self.buffers.get(route)
+        rows = self._flush_rows
+        if rows is None:  # once: (buffer, its asset's message counter, its sample counter)
+            rows = self._flush_rows = [(self.buffers.get(r), self._received[r.asset],
+                                        self._samples[r.key]) for r in self.channels]
+        for buf, received, samples in rows:
             n, s = buf.n_messages, buf.n_samples
             if n != buf.flushed_messages:
-                self._received[route.asset].inc(n - buf.flushed_messages)
+                received.inc(n - buf.flushed_messages)
                 buf.flushed_messages = n
             if s != buf.flushed_samples:
-                self._samples[route.key].inc(s - buf.flushed_samples)
+                samples.inc(s - buf.flushed_samples)
                 buf.flushed_samples = s
 
     def handle(self, topic: str, payload: bytes, arrival: float) -> None:
