@@ -10,6 +10,9 @@ $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
 	$(BIN)/pip install --quiet --upgrade pip
 	$(BIN)/pip install --quiet -e '.[dev,plot]'
+	rm -rf $(VENV)/spb-peer
+	$(BIN)/pip install --quiet --no-warn-conflicts --target $(VENV)/spb-peer \
+	  -r tests/spb_peer_requirements.txt
 	touch $(STAMP)
 
 check-mosquitto:

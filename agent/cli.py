@@ -102,7 +102,8 @@ def cmd_check_config(args: argparse.Namespace) -> int:
               f"raise {a.detector.raise_k} of {a.detector.raise_n}, "
               f"clear after {a.detector.clear_m}")
         for ch in a.channels:
-            print(f"    {ch.name:<16} {ch.decoder.value:<10} {ch.rate_hz:>8g} Hz  {ch.topic}")
+            where = ch.topic if ch.metric is None else f"metric {ch.metric!r} of {ch.topic}"
+            print(f"    {ch.name:<16} {ch.decoder.value:<10} {ch.rate_hz:>8g} Hz  {where}")
             checks = _channel_checks(ch)
             if checks:
                 print(f"      {checks}")

@@ -38,6 +38,7 @@ class Decoder(StrEnum):
     JSON = "json"
     JSON_BATCH = "json-batch"
     TEXT = "text"
+    SPARKPLUG_B = "sparkplug-b"
 
 
 class MqttProtocol(StrEnum):
@@ -131,6 +132,8 @@ class ChannelConfig:
     limits: tuple[LimitConfig, ...] = ()
     # The channel's column in a CSV/historian export (`record --from-csv`); None: its name.
     column: str | None = None
+    # sparkplug-b: the metric's name in the edge node's or device's birth certificate.
+    metric: str | None = None
 
     @property
     def spectral_features(self) -> tuple[str, ...]:
@@ -268,6 +271,18 @@ class BrokerConfig:
 
 
 @dataclass(frozen=True)
+class SparkplugConfig:
+    """`ingest.sparkplug`: how the sparkplug-b decoder answers a broken stream."""
+
+    # Answer a sequence gap, data before a birth or an unknown alias with the
+    # specification's rebirth request (NCMD `Node Control/Rebirth` = true). Off by
+    # default: it publishes to the edge node, so the local broker must know who we are.
+    rebirth_requests: bool = False
+    # At most one request per edge node in this many seconds (common practice, no source).
+    rebirth_min_interval_s: float = 10.0
+
+
+@dataclass(frozen=True)
 class IngestConfig:
     max_payload_bytes: int = 262144
     max_clock_skew_s: float = 300.0
@@ -282,6 +297,7 @@ class IngestConfig:
     # this long (or its own stale_s, if longer): sensors publish on their own cycle and
     # the broker connection takes a moment.
     startup_grace_s: float = 120.0
+    sparkplug: SparkplugConfig = field(default_factory=SparkplugConfig)
 
 
 @dataclass(frozen=True)
@@ -425,6 +441,26 @@ def _topic_ok(v: str) -> bool:
     return not any(c in v for c in "+#\0") and not v.startswith("$")
 
 
+SPARKPLUG_NAMESPACE = "spBv1.0"
+SPARKPLUG_DATA_VERBS = ("NDATA", "DDATA")
+
+
+def sparkplug_topic(topic: str) -> tuple[str, str, str, str | None] | None:
+    """(group, verb, edge node, device or None) of a Sparkplug B topic, or None.
+
+    `spBv1.0/<group_id>/<message_type>/<edge_node_id>[/<device_id>]` (Sparkplug 3.0,
+    chapter 4 Topics, "Sparkplug Topic Namespace Elements"); node verbs have four levels,
+    device verbs five, and no element is empty.
+    """
+    parts = topic.split("/")
+    if parts[0] != SPARKPLUG_NAMESPACE or len(parts) not in (4, 5) or not all(parts):
+        return None
+    verb = parts[2]
+    if (len(parts) == 5) != verb.startswith("D"):
+        return None
+    return parts[1], verb, parts[3], parts[4] if len(parts) == 5 else None
+
+
 def _filter_ok(f: str) -> bool:
     """An MQTT topic filter: '#' only last and alone in its level, '+' alone in its level."""
     if not f or "\0" in f:
@@ -549,7 +585,7 @@ def _channel(r: _Reader, name: Any, node: Any, path: str,
         r.bad(path, "a channel name of letters, digits, '_', '.', '-' (at most 64)", name)
     keys = ("topic", "decoder", "rate_hz", "features", "unit", "ts_field", "value_field",
             "values_field", "rate_field", "seq_field", "spectrum", "min", "max", "stale_s",
-            "flatline_windows", "max_rate_per_s", "limits", "column")
+            "flatline_windows", "max_rate_per_s", "limits", "column", "metric")
     if not isinstance(node, dict):
         r.bad(path, "a mapping of channel settings (topic, decoder, rate_hz, ...)", node)
         return None
@@ -557,8 +593,19 @@ def _channel(r: _Reader, name: Any, node: Any, path: str,
     topic = r.get(n, "topic", path, "str", _REQUIRED, _topic_ok,
                   "a topic string without wildcards")
     dec = r.get(n, "decoder", path, "str", "json", lambda v: v in {d.value for d in Decoder},
-                "one of json, json-batch, text")
+                "one of json, json-batch, text, sparkplug-b")
     decoder = Decoder(dec) if dec in {d.value for d in Decoder} else Decoder.JSON
+    metric = r.get(n, "metric", path, "str", None)
+    if decoder is Decoder.SPARKPLUG_B:
+        if n.get("metric") is None:
+            r.bad(f"{path}.metric", "the metric's name in the edge node's or device's "
+                  "birth certificate (required for decoder sparkplug-b)")
+        spb = sparkplug_topic(topic) if topic is not None else None
+        if topic is not None and (spb is None or spb[1] not in SPARKPLUG_DATA_VERBS):
+            r.bad(f"{path}.topic", "a Sparkplug B data topic: spBv1.0/<group>/NDATA/<edge "
+                  "node> or spBv1.0/<group>/DDATA/<edge node>/<device>", topic)
+    elif metric is not None:
+        r.bad(f"{path}.metric", "no metric (only decoder sparkplug-b names one)", metric)
     rate = r.get(n, "rate_hz", path, "num", _REQUIRED, lambda v: 0 < v <= 1e6,
                  "a sample rate in Hz, > 0 and at most 1000000")
     default_feats: tuple[str, ...] = WAVEFORM_DEFAULT_FEATURES \
@@ -602,7 +649,8 @@ def _channel(r: _Reader, name: Any, node: Any, path: str,
         spectrum=spectrum, min_value=lo, max_value=hi, stale_s=stale, flatline_windows=flat,
         max_rate_per_s=max_rate, limits=limits,
         column=r.get(n, "column", path, "str", None, expected="the header of the channel's "
-                     "column in a CSV export (a non-empty string)"))
+                     "column in a CSV export (a non-empty string)"),
+        metric=metric if decoder is Decoder.SPARKPLUG_B else None)
 
 
 def _hz_pair(r: _Reader, v: Any, where: str, nyquist: float) -> tuple[float, float] | None:
@@ -846,7 +894,7 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
                        1883, cluster=True)
     ing = r.mapping(top.get("ingest"), "ingest",
                     ("max_payload_bytes", "max_clock_skew_s", "subscriptions", "worker",
-                     "startup_grace_s"))
+                     "startup_grace_s", "sparkplug"))
     subs = r.get(ing, "subscriptions", "ingest", "list", [])
     for i, f in enumerate(subs):
         if not isinstance(f, str) or not _filter_ok(f):
@@ -860,7 +908,8 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
         IngestWorker(r.get(ing, "worker", "ingest", "str", "process",
                            lambda v: v in ("process", "thread"), "process or thread")),
         r.get(ing, "startup_grace_s", "ingest", "num", 120.0, lambda v: v >= 0,
-              "a number of seconds >= 0"))
+              "a number of seconds >= 0"),
+        _sparkplug(r, ing.get("sparkplug"), "ingest.sparkplug", local))
     pipe = r.mapping(top.get("pipeline"), "pipeline", ("tick_s",))
     tick = r.get(pipe, "tick_s", "pipeline", "num", 0.1, lambda v: 0.01 <= v <= 10,
                  "seconds between 0.01 and 10")
@@ -900,9 +949,11 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
     if ingest.subscriptions:
         for a in assets:
             for ch in a.channels:
-                if not any(_matches(f, ch.topic) for f in ingest.subscriptions):
-                    r.bad("ingest.subscriptions", f"filters that cover every channel topic "
-                          f"(none covers {ch.topic!r} of asset {a.name})")
+                for t in _topics_needed(ch):
+                    if not any(_matches(f, t) for f in ingest.subscriptions):
+                        r.bad("ingest.subscriptions", f"filters that cover every channel "
+                              f"topic (none covers {t!r} of asset {a.name})")
+                        break
     if r.problems:
         raise ConfigError(r.problems, str(source) if source else "")
     return Config(site=site, gateway=gateway, topic_prefix=prefix, state_dir=state_dir,
@@ -911,10 +962,45 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
                   source=source, rebaseline=rebaseline)
 
 
+def _topics_needed(ch: ChannelConfig) -> tuple[str, ...]:
+    """The topics a channel's samples depend on: its own, and for sparkplug-b also the
+    births and deaths of its edge node (and device)."""
+    spb = sparkplug_topic(ch.topic) if ch.decoder is Decoder.SPARKPLUG_B else None
+    if spb is None:
+        return (ch.topic,)
+    group, _, node, device = spb
+    base = f"{SPARKPLUG_NAMESPACE}/{group}"
+    out = [ch.topic, f"{base}/NBIRTH/{node}", f"{base}/NDEATH/{node}"]
+    if device is not None:
+        out += [f"{base}/DBIRTH/{node}/{device}", f"{base}/DDEATH/{node}/{device}"]
+    return tuple(out)
+
+
+def _sparkplug(r: _Reader, node: Any, path: str, local: BrokerConfig) -> SparkplugConfig:
+    n = r.mapping(node, path, ("rebirth_requests", "rebirth_min_interval_s"))
+    ask = r.get(n, "rebirth_requests", path, "bool", False)
+    every = r.get(n, "rebirth_min_interval_s", path, "num", 10.0, lambda v: 1 <= v <= 3600,
+                  "seconds between 1 and 3600")
+    authenticated = (local.username is not None
+                     and (local.password is not None or local.password_file is not None)) \
+        or (local.tls is not None and local.tls.cert_file is not None)
+    if ask and not authenticated:
+        # A rebirth request makes an edge node publish its whole birth sequence again:
+        # only a client the broker knows (and its ACL allows on NCMD) may send one.
+        r.bad(f"{path}.rebirth_requests", "false unless local_broker authenticates (username "
+              "with password or password_file, or tls.cert_file): the broker's ACL must "
+              "allow this client to publish on spBv1.0/+/NCMD/+", True)
+    return SparkplugConfig(ask, every)
+
+
 def _cross_checks(r: _Reader, assets: list[tuple[int, AssetConfig]]) -> None:
-    """Asset names are unique and no two channels share a topic; `idx` is the list index."""
+    """Asset names are unique and no two channels share a topic, except sparkplug-b
+    channels, which share their edge node's or device's topic but not a metric there;
+    `idx` is the list index."""
     seen_names: dict[str, int] = {}
     seen_topics: dict[str, str] = {}
+    spb_topics: dict[str, str] = {}  # sparkplug-b topic -> the first channel using it
+    seen_metrics: dict[tuple[str, str], str] = {}
     for idx, a in assets:
         if a.name in seen_names:
             r.bad(f"assets[{idx}].name", "a name no other asset has",
@@ -922,9 +1008,22 @@ def _cross_checks(r: _Reader, assets: list[tuple[int, AssetConfig]]) -> None:
         seen_names.setdefault(a.name, idx)
         for ch in a.channels:
             where = f"assets[{idx}].channels.{ch.name}.topic"
-            if ch.topic in seen_topics:
+            if ch.decoder is Decoder.SPARKPLUG_B:
+                if ch.topic in seen_topics:
+                    r.bad(where, "a topic no channel of another decoder uses",
+                          found=f"{ch.topic!r}, also {seen_topics[ch.topic]}")
+                spb_topics.setdefault(ch.topic, where)
+                key = (ch.topic, ch.metric or "")
+                mwhere = f"assets[{idx}].channels.{ch.name}.metric"
+                if key in seen_metrics:
+                    r.bad(mwhere, "a metric no other channel of this topic reads",
+                          found=f"{ch.metric!r}, also {seen_metrics[key]}")
+                else:
+                    seen_metrics[key] = mwhere
+            elif ch.topic in seen_topics or ch.topic in spb_topics:
                 r.bad(where, "a topic no other channel uses",
-                      found=f"{ch.topic!r}, also {seen_topics[ch.topic]}")
+                      found=f"{ch.topic!r}, also "
+                            f"{seen_topics.get(ch.topic) or spb_topics[ch.topic]}")
             else:
                 seen_topics[ch.topic] = where
 

@@ -29,12 +29,20 @@ class AssetInbox:
     pipeline (closing windows) share. Late samples are counted here until a tick
     takes the count."""
 
-    __slots__ = ("assembler", "late", "lock")
+    __slots__ = ("assembler", "late", "liveness", "lock")
 
     def __init__(self, assembler: WindowAssembler) -> None:
         self.lock = threading.Lock()
         self.assembler = assembler
         self.late = 0
+        # (channel, death reason or None for alive again, time) from Sparkplug death and
+        # birth certificates, until a tick takes them (`take_liveness`).
+        self.liveness: list[tuple[int, str | None, float]] = []
+
+    def take_liveness(self) -> list[tuple[int, str | None, float]]:
+        with self.lock:
+            notes, self.liveness = self.liveness, []
+        return notes
 
 
 def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
@@ -121,6 +129,13 @@ class ChannelBuffer:
         """A block as the decoder gives it (`IngestHandler`, thread mode)."""
         ts, values = block.arrays()
         self.append_block(ts, values, arrival)
+
+    def set_liveness(self, death: str | None, t: float) -> None:
+        """A death certificate (`death` says which) or a birth after one, at time `t`:
+        the pipeline's next tick turns it into the channel's sensor health."""
+        inbox = self.inbox
+        with inbox.lock:
+            inbox.liveness.append((self.channel, death, t))
 
 
 def append_run(bufs: Sequence[ChannelBuffer], chans: Sequence[int], ts: Sequence[float],

@@ -134,6 +134,11 @@ class _Tap:
     def append_decoded(self, block: Block, arrival: float) -> None:
         self.batch.add_block(self.key, block, arrival)
 
+    def set_liveness(self, death: str | None, t: float) -> None:
+        # After the samples decoded before it, so the daemon sees them in order.
+        self.batch.flush()
+        self.batch.sender.send(("live", self.batch.gen, self.key, death, t))
+
 
 class _TapBuffers:
     def __init__(self, cfg: Config, batch: _Batch) -> None:
@@ -154,16 +159,18 @@ class _Generation:
         # No Metrics: the handler counts rejections and gaps in PlainCounts.
         self.handler = IngestHandler(cfg, self.taps, None, log)  # type: ignore[arg-type]
         self.rejected: dict[Reason, PlainCount] = self.handler._rejected
-        self.gaps: dict[str, PlainCount] = self.handler._gaps
+        self.gaps: dict[tuple[int, int], PlainCount] = self.handler._gaps
         self.key_of = {t: channel_key(r.asset_index, r.channel_index)
                        for t, r in self.handler.routes.items()}
+        self.channel_keys = [(r.key, channel_key(r.asset_index, r.channel_index))
+                             for r in self.handler.channels]
 
     def counts(self) -> tuple[Any, ...] | None:
         """The deltas since the last call, or None when nothing changed."""
         per_key: dict[int, tuple[int, int, int]] = {}
-        for topic, key in self.key_of.items():
+        for ck, key in self.channel_keys:
             tap = self.taps.by_asset[key >> KEY_SHIFT][key & KEY_MASK]
-            g = self.gaps[topic]
+            g = self.gaps[ck]
             # Each count read once: the network thread may add to it meanwhile, and what
             # it adds after the read goes out next time.
             nm, ns, ng = tap.n_messages, tap.n_samples, g.n

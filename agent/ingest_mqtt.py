@@ -23,13 +23,21 @@ from typing import TYPE_CHECKING, Any
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion
 
-from agent.config import BrokerConfig, Config, MqttProtocol, read_secret
+from agent.config import (
+    SPARKPLUG_NAMESPACE,
+    BrokerConfig,
+    Config,
+    Decoder,
+    MqttProtocol,
+    read_secret,
+)
 from agent.core.decode import Block, Reason, Rejected, decode_message
-from agent.core.routing import build_routes
+from agent.core.routing import Route, build_routes, channel_routes
 from agent.logs import RateLimited, kv
 from agent.mqtt_client import ReadAheadClient
 
 if TYPE_CHECKING:
+    from agent.core.sparkplug import SparkplugDecoder
     from agent.ingest import Buffers
     from agent.metrics import Metrics
 
@@ -76,27 +84,42 @@ class IngestHandler:
     def __init__(self, cfg: Config, buffers: Buffers, metrics: Metrics | None,
                  logger: logging.Logger) -> None:
         self.cfg = cfg
+        # Topic -> channel for the decoders with a topic each; sparkplug-b channels
+        # share their edge node's topics and go through `self.sparkplug`.
         self.routes = build_routes(cfg.assets)
+        self.channels: list[Route] = channel_routes(cfg.assets)  # every channel
         self.buffers = buffers
         self.metrics = metrics
         self.log = RateLimited(logger)
         self._rejected: dict[Reason, Any]
-        self._gaps: dict[str, Any]
+        self._gaps: dict[tuple[int, int], Any]  # by (asset index, channel index)
         if metrics is None:
             self._rejected = {r: PlainCount() for r in Reason}
-            self._gaps = {t: PlainCount() for t in self.routes}
+            self._gaps = {r.key: PlainCount() for r in self.channels}
             self._received: dict[str, Any] = {}
-            self._samples: dict[str, Any] = {}
+            self._samples: dict[tuple[int, int], Any] = {}
         else:
             self._rejected = {r: metrics.messages_rejected.labels(r.value) for r in Reason}
             self._received = {a.name: metrics.messages_received.labels(a.name)
                               for a in cfg.assets}
-            self._samples = {t: metrics.samples.labels(r.asset, r.channel.name)
-                             for t, r in self.routes.items()}
-            self._gaps = {t: metrics.gaps.labels(r.asset, r.channel.name)
-                          for t, r in self.routes.items()}
+            self._samples = {r.key: metrics.samples.labels(r.asset, r.channel.name)
+                             for r in self.channels}
+            self._gaps = {r.key: metrics.gaps.labels(r.asset, r.channel.name)
+                          for r in self.channels}
         self._max_bytes = cfg.ingest.max_payload_bytes
         self._max_skew = cfg.ingest.max_clock_skew_s
+        self._flush_rows: list[tuple[Any, Any, Any]] | None = None
+        spb = [r for r in self.channels if r.channel.decoder is Decoder.SPARKPLUG_B]
+        self.sparkplug: SparkplugDecoder | None = None
+        if spb:
+            from agent.core.sparkplug import SparkplugDecoder  # protobuf only where used
+
+            sc = cfg.ingest.sparkplug
+            self.sparkplug = SparkplugDecoder(
+                spb, max_payload_bytes=self._max_bytes, max_skew_s=self._max_skew,
+                rebirth_interval_s=sc.rebirth_min_interval_s if sc.rebirth_requests else None)
+        # Where a rebirth request goes (the local broker's client; `Ingest` sets it).
+        self.publish: Callable[[str, bytes], None] | None = None
         # Per asset, the sample time that closes its next window (set by the pipeline
         # after each tick); a sample at or past it sets `wake`.
         self.close_at: list[float] = [math.inf] * len(cfg.assets)
@@ -115,19 +138,25 @@ class IngestHandler:
             self._flush_locked()
 
     def _flush_locked(self) -> None:
-        for topic, route in self.routes.items():
-            buf = self.buffers.get(route)
+        rows = self._flush_rows
+        if rows is None:  # once: (buffer, its asset's message counter, its sample counter)
+            rows = self._flush_rows = [(self.buffers.get(r), self._received[r.asset],
+                                        self._samples[r.key]) for r in self.channels]
+        for buf, received, samples in rows:
             n, s = buf.n_messages, buf.n_samples
             if n != buf.flushed_messages:
-                self._received[route.asset].inc(n - buf.flushed_messages)
+                received.inc(n - buf.flushed_messages)
                 buf.flushed_messages = n
             if s != buf.flushed_samples:
-                self._samples[topic].inc(s - buf.flushed_samples)
+                samples.inc(s - buf.flushed_samples)
                 buf.flushed_samples = s
 
     def handle(self, topic: str, payload: bytes, arrival: float) -> None:
         route = self.routes.get(topic)
         if route is None:
+            if self.sparkplug is not None and topic.startswith(_SPB_PREFIX):
+                self._handle_sparkplug(self.sparkplug, topic, payload, arrival)
+                return
             self._rejected[Reason.UNKNOWN_TOPIC].inc()
             self.log.warning("unknown_topic", "message on a topic no channel uses",
                              reason="unknown_topic")
@@ -149,7 +178,7 @@ class IngestHandler:
             # A counter that does not follow on: messages lost between sensor and us (or
             # a sensor restart, which looks the same from here).
             if buf.last_seq is not None and seq != buf.last_seq + 1:
-                self._gaps[topic].inc()
+                self._gaps[route.key].inc()
             buf.last_seq = seq
         if isinstance(samples, Block):
             # Sample times as `Block.arrays` makes them, so the gap test sees what the
@@ -159,7 +188,7 @@ class IngestHandler:
             step = samples.time_of(1) - t0 if n > 1 else 1.0 / ch.rate_hz
             expected = buf.next_block_ts
             if expected is not None and abs(t0 - expected) > 0.5 * step:
-                self._gaps[topic].inc()
+                self._gaps[route.key].inc()
             last = samples.time_of(n - 1)
             buf.next_block_ts = last + step
             buf.append_decoded(samples, arrival)
@@ -171,6 +200,79 @@ class IngestHandler:
         wake = self.wake
         if wake is not None and last >= self.close_at[route.asset_index]:
             wake.set()
+
+    def _handle_sparkplug(self, spb: SparkplugDecoder, topic: str, payload: bytes,
+                          arrival: float) -> None:
+        """One Sparkplug B message: samples for every channel it feeds, and what the
+        decoder noted (rejections, gaps, deaths, births, rebirth requests)."""
+        try:
+            samples = spb.decode(topic, payload, arrival)
+        except Rejected as rej:
+            self._rejected[rej.reason].inc()
+            self.log.warning(f"{rej.reason.value}:{topic}", "message rejected",
+                             reason=rej.reason.value, topic=topic, detail=rej.detail)
+            samples = []
+        if spb.notes:
+            self._sparkplug_notes(spb)
+        if not samples:
+            return
+        get = self.buffers.get
+        close_at = self.close_at
+        due = False
+        for route, ts, value in samples:
+            buf = get(route)
+            buf.n_messages += 1
+            if isinstance(value, Block):
+                buf.append_decoded(value, arrival)
+                buf.n_samples += len(value)
+                ts = value.time_of(len(value) - 1)
+            else:
+                buf.append(ts, value, arrival)
+                buf.n_samples += 1
+            if ts >= close_at[route.asset_index]:
+                due = True
+        wake = self.wake
+        if due and wake is not None:
+            wake.set()
+
+    def _sparkplug_notes(self, spb: SparkplugDecoder) -> None:
+        from agent.core.sparkplug import Note
+
+        notes, spb.notes = spb.notes, []
+        for note in notes:
+            kind = note[0]
+            if kind is Note.REJECTED:
+                reason: Reason = note[1]
+                self._rejected[reason].inc()
+                self.log.warning(f"{reason.value}:sparkplug", "metric rejected",
+                                 reason=reason.value, detail=note[2])
+            elif kind is Note.GAP:
+                for r in note[1]:
+                    self._gaps[r.key].inc()
+                self.log.warning(f"spb_gap:{note[2][:20]}", "Sparkplug messages lost",
+                                 detail=note[2], channels=len(note[1]))
+            elif kind is Note.OFFLINE or kind is Note.ONLINE:
+                offline = kind is Note.OFFLINE
+                reason_s = note[2] if offline else None
+                t = note[3] if offline else note[2]
+                for r in note[1]:
+                    self.buffers.get(r).set_liveness(reason_s, t)
+                self.log.warning(f"spb_live:{note[1][0].asset}:{offline}",
+                                 "Sparkplug death certificate" if offline
+                                 else "Sparkplug birth after a death",
+                                 asset=note[1][0].asset, channels=len(note[1]),
+                                 reason=reason_s or "birth")
+            elif kind is Note.REBIRTH:
+                publish = self.publish
+                if publish is not None:
+                    publish(note[1], note[2])
+                    self.log.warning(f"spb_rebirth:{note[1]}", "rebirth requested",
+                                     topic=note[1])
+            elif kind is Note.LOG:
+                self.log.warning(note[1], note[2], **note[3])
+
+
+_SPB_PREFIX = SPARKPLUG_NAMESPACE + "/"
 
 
 def make_client(broker: BrokerConfig, env: dict[str, str] | None = None) -> mqtt.Client:
@@ -212,6 +314,7 @@ class Ingest:
         self._client.on_connect = self._on_connect
         self._client.on_disconnect = self._on_disconnect
         self._client.on_message = self._on_message
+        handler.publish = self._publish
         self._connects = 0
         self.connected = threading.Event()
         # Without metrics (the ingest child) the counts stay plain; the child hands
@@ -238,11 +341,19 @@ class Ingest:
 
     def topics(self) -> set[str]:
         """What the client subscribes to for the current config."""
-        return set(self.cfg.ingest.subscriptions) or set(self.handler.routes)
+        spb = self.handler.sparkplug
+        return set(self.cfg.ingest.subscriptions) or (
+            set(self.handler.routes) | (spb.filters() if spb is not None else set()))
 
     def reconfigure(self, cfg: Config, handler: IngestHandler) -> None:
         """Route with `handler` from now on (reload) and follow the subscriptions."""
         old = self.topics()
+        handler.publish = self._publish
+        if handler.sparkplug is not None and self.handler.sparkplug is not None:
+            # Births seen so far stay good; the paho thread may still be in the old
+            # handler, so a message it reads meanwhile is in the old state only (the
+            # next sequence number then looks like a gap, no worse).
+            handler.sparkplug.adopt(self.handler.sparkplug)
         self.handler = handler  # one attribute store: the paho thread sees old or new
         self.cfg = cfg  # later reconnects subscribe for the new config
         self.resubscribe(old, self.topics())
@@ -260,6 +371,11 @@ class Ingest:
             self._client.subscribe([(t, 0) for t in add])
         if drop:
             self._client.unsubscribe(drop)
+
+    def _publish(self, topic: str, payload: bytes) -> None:
+        """A Sparkplug rebirth request: QoS 0, not retained (spec 3.0, chapter 6,
+        "NCMD": tck-id-payloads-ncmd-qos, tck-id-payloads-ncmd-retain)."""
+        self._client.publish(topic, payload, qos=0, retain=False)
 
     def _on_connect(self, client: mqtt.Client, userdata: Any, flags: Any, reason: Any,
                     props: Any) -> None:

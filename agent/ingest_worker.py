@@ -25,6 +25,8 @@ child -> parent
   ("counts", gen, {key: (messages, samples, gaps)}, {reason: n})  deltas, every
       `COUNTS_EVERY_S` and before a switch or stop
   ("errors", n)                  callback errors counted in the child since the last one
+  ("live", gen, key, death, t)   a Sparkplug death certificate (`death` names it) or a
+      birth after one (None) for one channel, after the samples decoded before it
   ("state", connected, reason)   the local broker connection came up / went down
   ("log", levelno, message)      a log line (the child's logging is rate-limited already)
   ("gen", gen)                   the child now routes with config generation `gen`
@@ -95,7 +97,7 @@ class ProcessIngest:
         self._errors = metrics.callback_errors.labels("ingest")
         self._restarts = metrics.ingest_worker_restarts
         self._gen = 0
-        self._gens: dict[int, tuple[IngestHandler, dict[int, str]]] = {}
+        self._gens: dict[int, tuple[IngestHandler, dict[int, tuple[int, int]]]] = {}
         self._add_gen(0, handler)
         self._connects = 0
         self._stopping = threading.Event()
@@ -106,9 +108,8 @@ class ProcessIngest:
         self.worker_pid: int | None = None
 
     def _add_gen(self, gen: int, handler: IngestHandler) -> None:
-        topics = {channel_key(r.asset_index, r.channel_index): t
-                  for t, r in handler.routes.items()}
-        self._gens[gen] = (handler, topics)
+        keys = {channel_key(r.asset_index, r.channel_index): r.key for r in handler.channels}
+        self._gens[gen] = (handler, keys)
 
     # -- life cycle --------------------------------------------------------------------
 
@@ -213,6 +214,8 @@ class ProcessIngest:
                     self._apply_counts(msg)
                 elif kind == "errors":
                     self._errors.inc(msg[1])
+                elif kind == "live":
+                    self._apply_liveness(msg)
                 elif kind == "state":
                     self._set_connected(msg[1], msg[2])
                 elif kind == "log":
@@ -264,19 +267,25 @@ class ProcessIngest:
         if due and handler.wake is not None:
             handler.wake.set()
 
+    def _apply_liveness(self, msg: tuple[Any, ...]) -> None:
+        _, gen, key, death, t = msg
+        found = self._gens.get(gen)
+        if found is not None:
+            found[0].buffers.by_asset[key >> KEY_SHIFT][key & KEY_MASK].set_liveness(death, t)
+
     def _apply_counts(self, msg: tuple[Any, ...]) -> None:
         _, gen, per_key, rejected = msg
         found = self._gens.get(gen)
         if found is None:
             return
-        handler, topics = found
+        handler, keys = found
         by_asset = handler.buffers.by_asset
         for key, (dm, ds, dg) in per_key.items():
             buf = by_asset[key >> KEY_SHIFT][key & KEY_MASK]
             buf.n_messages += dm
             buf.n_samples += ds
             if dg:
-                handler._gaps[topics[key]].inc(dg)
+                handler._gaps[keys[key]].inc(dg)
         for reason, n in rejected.items():
             handler._rejected[Reason(reason)].inc(n)
 

@@ -53,6 +53,7 @@ from agent.core.escalation import Escalated, leading_channels
 from agent.core.events import EventType, Source, make_event, rfc3339, severity_for, top_contributors
 from agent.core.features import block_features, segment_features, stack_rows
 from agent.core.health import Change, HealthChange
+from agent.core.health import Reason as HealthReason
 from agent.core.limits import ZONES, FeatureLimits, LimitRise, ZoneLimits, zone_of
 from agent.core.lockstep import LockstepCut
 from agent.core.modes import UNKNOWN_MODE
@@ -199,7 +200,8 @@ class Pipeline:
         # arrival forward and adds to `late`, so a stale read here is the same as the
         # sample arriving just after this tick (the next tick, which ingest wakes, takes
         # it); what is closed is decided again under the locks.
-        due = [ai for ai, (asm, ib) in enumerate(self._screen) if ib.late or asm.due(now)]
+        due = [ai for ai, (asm, ib) in enumerate(self._screen)
+               if ib.late or ib.liveness or asm.due(now)]
         if self._stale_at and self.judge_stale:
             due = sorted(set(due).union(self._stale_at))
         self.last_due = due
@@ -213,6 +215,10 @@ class Pipeline:
             elif wants is not None:  # an observed window takes the general path, whole
                 lockstep = [pos for pos, ai in enumerate(due)
                             if runtimes[ai].plain and not wants(runtimes[ai].cfg.name)]
+        for ai in due:
+            if self._inboxes[ai].liveness:  # Sparkplug deaths and births, before windows
+                self._check_liveness(runtimes[ai], self._inboxes[ai].take_liveness(), now,
+                                     out, stats)
         results, lates, cuts = close_inboxes([self._inboxes[ai] for ai in due], now,
                                              lockstep)
         for ai, res, late in zip(due, results, lates, strict=True):
@@ -264,6 +270,16 @@ class Pipeline:
             change = h.check_stale(now - last)
             if change is not None:
                 self._sensor_event(rt, ci, change, now, f"stale|{last:.3f}", None, out, stats)
+
+    def _check_liveness(self, rt: AssetRuntime, notes: list[tuple[int, str | None, float]],
+                        now: float, out: list[OutMessage], stats: TickStats) -> None:
+        """Death certificates fault their channels at once (`sensor.fault`, reason
+        node_death or device_death); a birth after one lets them recover."""
+        for ci, death, t in notes:
+            change = rt.health[ci].set_liveness(
+                HealthReason(death) if death is not None else None, max(0.0, now - t))
+            if change is not None:
+                self._sensor_event(rt, ci, change, t, f"{death}|{t:.3f}", None, out, stats)
 
     def _judge_window(self, rt: AssetRuntime, w: ClosedWindow, out: list[OutMessage],
                       stats: TickStats) -> _Pending:

@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 
 from agent.bundle import Bundle, load_bundle
-from agent.config import AssetConfig
+from agent.config import AssetConfig, Decoder
 from agent.core.detector import Detector, State
 from agent.core.escalation import EscalationTracker
 from agent.core.features import FEATURE_INDEX
@@ -180,7 +180,8 @@ class AssetRuntime:
             rt.mode_index_ch = chan_pos.get(cfg.modes.channel)
         rt.speed_index = chan_pos.get(cfg.speed_channel) if cfg.speed_channel else None
         rt.health = [ChannelHealth(HealthLimits(c.min_value, c.max_value, c.stale_s,
-                                                c.flatline_windows, c.max_rate_per_s))
+                                                c.flatline_windows, c.max_rate_per_s,
+                                                liveness=c.decoder is Decoder.SPARKPLUG_B))
                      for c in cfg.channels]
         rt.spectral = [i for i, c in enumerate(cfg.channels) if c.spectrum is not None]
         rt.stale_channels = [i for i, c in enumerate(cfg.channels) if c.stale_s is not None]

@@ -44,6 +44,9 @@ class Reason(StrEnum):
     UNKNOWN_TOPIC = "unknown_topic"
     CLOCK_SKEW = "clock_skew"
     LATE = "late"
+    # sparkplug-b (agent/core/sparkplug.py)
+    NO_BIRTH = "no_birth"            # data before the birth certificate it needs
+    UNKNOWN_ALIAS = "unknown_alias"  # a metric its birth certificate did not declare
 
 
 class Rejected(Exception):

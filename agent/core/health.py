@@ -9,7 +9,10 @@ Checks, each off unless configured (non-finite is always on):
 * `out_of_range`   a sample below `min` or above `max` (the sensor's physical range);
 * `non_finite`     a NaN or infinite sample (the decoders already reject these on the
                    wire; this catches any other path);
-* `rate_of_change` |dx/dt| between consecutive samples above `max_rate_per_s`.
+* `rate_of_change` |dx/dt| between consecutive samples above `max_rate_per_s`;
+* `node_death`,    a Sparkplug B death certificate (NDEATH of the edge node, DDEATH of
+  `device_death`   the device) for a channel with `liveness`: faulty at once, until a
+                   birth certificate and then clean windows.
 
 A channel becomes faulty on the first window (or tick) with a reason, and recovers
 after `RECOVER_WINDOWS` consecutive clean windows while fresh samples arrive, so a
@@ -33,6 +36,8 @@ class Reason(StrEnum):
     OUT_OF_RANGE = "out_of_range"
     NON_FINITE = "non_finite"
     RATE_OF_CHANGE = "rate_of_change"
+    NODE_DEATH = "node_death"
+    DEVICE_DEATH = "device_death"
 
 
 @dataclass(frozen=True)
@@ -44,13 +49,16 @@ class HealthLimits:
     stale_s: float | None = None
     flatline_windows: int | None = None
     max_rate_per_s: float | None = None
+    # The source announces its own death and birth (Sparkplug B): `set_liveness`.
+    liveness: bool = False
 
     @property
     def passive(self) -> bool:
         """No check is configured: only the non-finite one would run, and samples that
         come through the decoders are finite already."""
         return (self.min_value is None and self.max_value is None and self.stale_s is None
-                and self.flatline_windows is None and self.max_rate_per_s is None)
+                and self.flatline_windows is None and self.max_rate_per_s is None
+                and not self.liveness)
 
 
 class Change(StrEnum):
@@ -111,6 +119,7 @@ class ChannelHealth:
         self.faulty = False
         self.reasons: tuple[Reason, ...] = ()
         self.stale = False
+        self.dead: Reason | None = None  # a death certificate's reason, until a birth
         self._flat_windows = 0
         self._clean = 0
 
@@ -129,7 +138,17 @@ class ChannelHealth:
                     detail["value"] = float(v[-1])
         if self.stale:
             reasons.append(Reason.STALE)
+        if self.dead is not None:
+            reasons.append(self.dead)
         return self._judge(reasons, detail, clean_window=values.size > 0 and not reasons)
+
+    def set_liveness(self, death: Reason | None, age_s: float = 0.0) -> HealthChange | None:
+        """A death certificate (`death`: NODE_DEATH or DEVICE_DEATH) makes the channel
+        faulty now; a birth (None) lets it recover through clean windows."""
+        self.dead = death
+        if death is None:
+            return None
+        return self._judge([death], {"age_s": round(age_s, 3)}, clean_window=False)
 
     def check_stale(self, age_s: float) -> HealthChange | None:
         """Judge the time since the channel's last sample (every tick)."""

@@ -36,7 +36,7 @@ TOP_KEYS = ("site, gateway, topic_prefix, state_dir, local_broker, upstream_brok
             "pipeline, outbox, http, publish, assets, rebaseline")
 CHANNEL_KEYS = "topic, decoder, rate_hz, features, unit, ts_field, value_field, values_field, " \
     "rate_field, seq_field, spectrum, min, max, stale_s, flatline_windows, max_rate_per_s, " \
-    "limits, column"
+    "limits, column, metric"
 
 
 def base_doc() -> dict[str, Any]:
@@ -136,6 +136,26 @@ def _shared_topic(doc: dict[str, Any], _tmp: Path) -> None:
         doc["assets"][0]["channels"]["bearing_temp"]["topic"]
 
 
+SPB_TOPIC = "spBv1.0/fernbrook-dosing/DDATA/dosing-gw/C-301"
+
+
+def _sparkplug_asset(**extra: Any) -> Edit:
+    """A third asset, C-301, with two sparkplug-b channels on one device topic."""
+    def edit(doc: dict[str, Any], _tmp: Path) -> None:
+        flow: dict[str, Any] = {"topic": SPB_TOPIC, "decoder": "sparkplug-b",
+                                "metric": "Pump/Flow", "rate_hz": 1}
+        pressure = dict(flow, metric="Pump/Discharge Pressure")
+        flow.update(extra)
+        doc["assets"].append({"name": "C-301",
+                              "channels": {"flow": flow, "pressure": pressure}})
+    return edit
+
+
+def _sparkplug_topic_taken(doc: dict[str, Any], tmp: Path) -> None:
+    _sparkplug_asset()(doc, tmp)
+    doc["assets"][0]["channels"]["current"]["topic"] = SPB_TOPIC
+
+
 def _duplicate_name(doc: dict[str, Any], _tmp: Path) -> None:
     doc["assets"][1]["name"] = "P-101"
 
@@ -149,7 +169,52 @@ W0 = "assets[0].window"
 D0 = "assets[0].detector"
 CROSS = "a rule across keys (a schema compares no two values)"
 
+S2 = "assets[2].channels.flow"
+SPB_EXPECTED_TOPIC = ("a Sparkplug B data topic: spBv1.0/<group>/NDATA/<edge node> or "
+                      "spBv1.0/<group>/DDATA/<edge node>/<device>")
+
 BROKEN: tuple[Broken, ...] = (
+    Broken("sparkplug channel without a metric", _sparkplug_asset(metric=None),
+           (f"{S2}.metric: expected the metric's name in the edge node's or device's birth "
+            "certificate (required for decoder sparkplug-b)",)),
+    Broken("sparkplug metric empty", _sparkplug_asset(metric=""),
+           (f"{S2}.metric: expected a string, got ''",)),
+    Broken("sparkplug topic not a data topic",
+           _sparkplug_asset(topic="spBv1.0/fernbrook-dosing/DBIRTH/dosing-gw/C-301"),
+           (f"{S2}.topic: expected {SPB_EXPECTED_TOPIC}, "
+            "got 'spBv1.0/fernbrook-dosing/DBIRTH/dosing-gw/C-301'",)),
+    Broken("sparkplug topic outside the namespace",
+           _sparkplug_asset(topic="fernbrook/dosing/C-301"),
+           (f"{S2}.topic: expected {SPB_EXPECTED_TOPIC}, got 'fernbrook/dosing/C-301'",)),
+    Broken("sparkplug device verb on an edge node topic",
+           _sparkplug_asset(topic="spBv1.0/fernbrook-dosing/DDATA/dosing-gw"),
+           (f"{S2}.topic: expected {SPB_EXPECTED_TOPIC}, "
+            "got 'spBv1.0/fernbrook-dosing/DDATA/dosing-gw'",)),
+    Broken("metric on a json channel", _set("assets.0.channels.current.metric", "Pump/Flow"),
+           (f"{P0}.metric: expected no metric (only decoder sparkplug-b names one), "
+            "got 'Pump/Flow'",)),
+    Broken("two sparkplug channels read one metric",
+           _sparkplug_asset(metric="Pump/Discharge Pressure"),
+           ("assets[2].channels.pressure.metric: expected a metric no other channel of this "
+            "topic reads, got 'Pump/Discharge Pressure', also assets[2].channels.flow.metric",),
+           schema_blind="a rule across mapping entries"),
+    Broken("a json channel on a sparkplug topic", _sparkplug_topic_taken,
+           ("assets[2].channels.flow.topic: expected a topic no channel of another decoder "
+            f"uses, got '{SPB_TOPIC}', also assets[0].channels.current.topic",
+            "assets[2].channels.pressure.topic: expected a topic no channel of another decoder "
+            f"uses, got '{SPB_TOPIC}', also assets[0].channels.current.topic"),
+           schema_blind="a rule across list items (uniqueItems compares whole items only)"),
+    Broken("rebirth requests without credentials",
+           _set("ingest", {"sparkplug": {"rebirth_requests": True}}),
+           ("ingest.sparkplug.rebirth_requests: expected false unless local_broker "
+            "authenticates (username with password or password_file, or tls.cert_file): the "
+            "broker's ACL must allow this client to publish on spBv1.0/+/NCMD/+, "
+            "got true (a boolean)",),
+           schema_blind=CROSS),
+    Broken("rebirth interval too short",
+           _set("ingest", {"sparkplug": {"rebirth_min_interval_s": 0.1}}),
+           ("ingest.sparkplug.rebirth_min_interval_s: expected seconds between 1 and 3600, "
+            "got 0.1",)),
     Broken("unknown top-level key", _set("colour", "blue"),
            (f"colour: expected one of the known keys ({TOP_KEYS}), got unknown key 'colour'",)),
     Broken("unknown channel key", _set("assets.0.channels.current.scale", 2),
@@ -228,7 +293,7 @@ BROKEN: tuple[Broken, ...] = (
             "upstream_broker.tls.verify: expected true (set allow_insecure: true as well to "
             "accept an unverified TLS connection), got false (a boolean)")),
     Broken("bad decoder", _set("assets.0.channels.current.decoder", "xml"),
-           (f"{P0}.decoder: expected one of json, json-batch, text, got 'xml'",)),
+           (f"{P0}.decoder: expected one of json, json-batch, text, sparkplug-b, got 'xml'",)),
     Broken("bad feature name", _set("assets.0.channels.current.features", ["mean", "median"]),
            (f"{P0}.features[1]: expected one of {FEATURE_LIST}, got 'median'",)),
     Broken("feature twice", _set("assets.0.channels.current.features", ["rms", "std", "rms"]),
@@ -343,7 +408,8 @@ BROKEN: tuple[Broken, ...] = (
          f"{W0}.hop: expected one of the known keys (length_s, hop_s, lateness_s, timeout_s, "
          "min_coverage), got unknown key 'hop'",
          f"{W0}.length_s: expected a number of seconds > 0, got 0",
-         "assets[1].channels.vib.decoder: expected one of json, json-batch, text, got 'wav'")),
+         "assets[1].channels.vib.decoder: expected one of json, json-batch, text, sparkplug-b, "
+         "got 'wav'")),
 )
 
 # YAML that does not parse: the loader names the line and column (1-based).

@@ -123,7 +123,7 @@ def _fresh_python(code: str, stdin: bytes = b"") -> list[str]:
 def test_child_modules_import_without_numpy() -> None:
     """The ingest child's module, and every module it needs, bring no numpy along."""
     mods = _fresh_python("import agent.ingest_child, agent.core.routing, agent.logs, "
-                         "agent.errors")
+                         "agent.errors, agent.core.sparkplug")
     assert "paho" in mods and "agent" in mods
     assert not set(HEAVY) & set(mods)
 
