@@ -132,7 +132,7 @@ def _outage_report(collector: DurableCollector, connects: _UpstreamConnects,
 
 def _anomalies(daemon: Daemon) -> int:
     total = 0.0
-    for t in ("anomaly.raised", "anomaly.cleared"):
+    for t in ("anomaly.raised", "anomaly.escalated", "anomaly.cleared"):
         total += daemon.registry.get_sample_value("watchkeep_events_total", {"type": t}) or 0
     return int(total)
 

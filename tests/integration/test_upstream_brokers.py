@@ -62,7 +62,7 @@ class SharedConsumer:
 
 def _anomalies(daemon: Daemon) -> int:
     return int(sum(daemon.registry.get_sample_value("watchkeep_events_total", {"type": t}) or 0
-                   for t in ("anomaly.raised", "anomaly.cleared")))
+                   for t in ("anomaly.raised", "anomaly.escalated", "anomaly.cleared")))
 
 
 def _scored(daemon: Daemon) -> float:
