@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: test demo bench lint typecheck clean test-deps
+.PHONY: test demo bench lint typecheck clean test-deps dist
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -37,5 +37,11 @@ lint: $(STAMP)
 typecheck: $(STAMP)
 	$(BIN)/mypy agent simulator
 
+# The wheel and the sdist, into dist/ (the wheel is built from the sdist, so a file
+# missing from the sdist shows up here).
+dist: $(STAMP)
+	rm -rf dist
+	$(BIN)/python -m build --outdir dist .
+
 clean:
-	rm -rf $(VENV) build *.egg-info .pytest_cache .ruff_cache .mypy_cache
+	rm -rf $(VENV) build dist *.egg-info .pytest_cache .ruff_cache .mypy_cache

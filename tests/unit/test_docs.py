@@ -195,7 +195,8 @@ def invocations(doc: str) -> list[Invocation]:
             for words in simple_commands(s.text):
                 pa = prog_of(words)
                 if pa:
-                    out.append(Invocation(s.where, pa[0], tuple(pa[1]), len(pa[1]) <= 1))
+                    mention = not pa[1] or (len(pa[1]) == 1 and not pa[1][0].startswith("-"))
+                    out.append(Invocation(s.where, pa[0], tuple(pa[1]), mention))
     return out
 
 
