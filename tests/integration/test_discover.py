@@ -55,3 +55,29 @@ def test_discover_finds_every_demo_channel(broker: Broker, tmp_path: Path) -> No
                          cwd=ROOT, capture_output=True, text=True, timeout=60)
     assert chk.returncode == 0, chk.stdout + chk.stderr
     assert chk.stdout.count("model: none (windows are not scored)") == len(demo.assets)
+
+
+def test_discover_without_a_broker_is_one_line(tmp_path: Path) -> None:
+    """Nothing listening on the port: one line naming the broker, exit 6, no file."""
+    from tests.brokers import free_port
+
+    port = free_port()
+    out = tmp_path / "x.yaml"
+    res = subprocess.run([sys.executable, "-m", "agent.cli", "discover", "--broker",
+                          f"127.0.0.1:{port}", "--duration", "1", "--out", str(out)],
+                         cwd=ROOT, capture_output=True, text=True, timeout=60)
+    assert res.returncode == 6, res.stderr
+    assert res.stderr.strip().splitlines()[-1].startswith(
+        f"watchkeep: cannot reach the broker 127.0.0.1:{port}")
+    assert "Traceback" not in res.stderr and not out.exists()
+
+
+def test_discover_with_nothing_to_hear_writes_nothing(broker: Broker, tmp_path: Path) -> None:
+    """A quiet broker: the table is empty, no starter config is written, exit 1."""
+    out = tmp_path / "x.yaml"
+    res = subprocess.run([sys.executable, "-m", "agent.cli", "discover", "--broker",
+                          f"127.0.0.1:{broker.port}", "--duration", "1", "--topic",
+                          "nobody/#", "--out", str(out)],
+                         cwd=ROOT, capture_output=True, text=True, timeout=60)
+    assert res.returncode == 1, res.stderr
+    assert "no topic carried numbers" in res.stderr and not out.exists()
