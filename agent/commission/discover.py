@@ -328,6 +328,9 @@ def propose(st: TopicStats) -> Proposal:
             candidates = [k for k in numeric if k != ts and st.fields[k] == st.count]
             if not candidates:
                 candidates = [k for k in numeric if k != ts]
+            if not candidates:
+                return Proposal(st.topic, shape, st.count, msg_rate, None, None, {}, numeric,
+                                None, None, (f"no numeric field besides the timestamp {ts!r}",))
             seq = _seq_field(st, {ts} if ts else set())
             if seq is not None:
                 settings["seq_field"] = seq

@@ -128,6 +128,7 @@ def test_plain_numbers_rate_from_arrival() -> None:
 @pytest.mark.parametrize(("msgs", "note"), [
     ([(T0, b"1.0")], "too few messages (1)"),
     ([(T0 + i, b"running") for i in range(5)], "not numbers watchkeep can decode"),
+    ([(T0 + i, b'{"ts": %f}' % (T0 + i)) for i in range(5)], "besides the timestamp 'ts'"),
 ])
 def test_unusable_topics(msgs: list[tuple[float, bytes]], note: str) -> None:
     """A topic without numbers, or with one message, is not proposed as a channel."""
