@@ -54,13 +54,16 @@ class Snippet:
         return f"{self.doc}:{self.line}"
 
 
-def scan(doc: str) -> tuple[list[Snippet], list[Snippet]]:
-    """(code blocks, code spans) of a Markdown file. Blocks are fenced or indented by
-    four or more spaces after a blank line; spans may run over a line break."""
-    lines = (ROOT / doc).read_text(encoding="utf-8").splitlines()
+def scan(doc: str, text: str | None = None) -> tuple[list[Snippet], list[Snippet]]:
+    """(code blocks, code spans) of a Markdown file. Blocks are fenced (``` or ~~~, also
+    inside list items) or indented by four or more spaces after a blank line; spans may
+    run over a line break."""
+    if text is None:
+        text = (ROOT / doc).read_text(encoding="utf-8")
+    lines = text.splitlines()
     blocks: list[Snippet] = []
     spans: list[Snippet] = []
-    fence: tuple[int, str, list[str]] | None = None
+    fence: tuple[int, str, list[str], str, int] | None = None  # line, lang, text, marker, indent
     indented: tuple[int, list[str]] | None = None
     para: list[tuple[int, str]] = []
 
@@ -82,15 +85,17 @@ def scan(doc: str) -> tuple[list[Snippet], list[Snippet]]:
     for i, raw in enumerate(lines, start=1):
         stripped = raw.lstrip()
         if fence is not None:
-            if stripped.startswith("```"):
+            marker, indent = fence[3], fence[4]
+            if stripped.startswith(marker) and not stripped.lstrip(marker[0]).strip():
                 blocks.append(Snippet(doc, fence[0], "\n".join(fence[2]), f"block:{fence[1]}"))
                 fence = None
-            else:
-                fence[2].append(raw)
+            else:  # a fence inside a list item: its lines lose the fence's indentation
+                fence[2].append(raw[indent:] if not raw[:indent].strip() else raw.lstrip())
             continue
-        if stripped.startswith("```"):
+        m = re.match(r"(\s*)(`{3,}|~{3,})\s*([^`\s]*)", raw)
+        if m:
             flush_para()
-            fence = (i + 1, stripped[3:].strip().lower(), [])
+            fence = (i + 1, m.group(3).lower(), [], m.group(2), len(m.group(1)))
             continue
         is_code = raw.startswith("    ") and (indented is not None or not para)
         if is_code and raw.strip():
@@ -99,7 +104,7 @@ def scan(doc: str) -> tuple[list[Snippet], list[Snippet]]:
             indented[1].append(raw.strip())
             continue
         if indented is not None and raw.strip():
-            blocks.append(Snippet(doc, indented[0], "\n".join(indented[1]), "indented"))
+            blocks.append(Snippet(doc, indented[0], "\n".join(indented[1]).strip("\n"), "indented"))
             indented = None
         if not raw.strip():
             flush_para()
@@ -115,11 +120,47 @@ def scan(doc: str) -> tuple[list[Snippet], list[Snippet]]:
     flush_para()
     assert fence is None, f"{doc}:{fence[0] - 1}: a code fence is never closed"
     if indented is not None:
-        blocks.append(Snippet(doc, indented[0], "\n".join(indented[1]), "indented"))
+        blocks.append(Snippet(doc, indented[0], "\n".join(indented[1]).strip("\n"), "indented"))
     return blocks, spans
 
 
 SCANNED = {d: scan(d) for d in DOCS}
+
+SAMPLE = """Intro with `watchkeep
+status --json` over a line break.
+
+1. A list item:
+
+   ~~~yaml
+   site: a
+   ~~~
+
+       sudo /opt/x/bin/watchkeep run -c /etc/w.yaml   # a comment
+
+| `watchkeep demo` | `--plain` |
+
+```sh
+DURATION=5 make demo && watchkeep check-config \\
+    site.yaml | head
+```
+"""
+
+
+def test_the_scanner_finds_blocks_spans_and_lines() -> None:
+    """Fences of both kinds (indented ones dedented), indented blocks, spans over a line
+    break, table rows, continuation lines, env prefixes, sudo and pipes: each with its line."""
+    blocks, spans = scan("X.md", SAMPLE)
+    assert [(b.line, b.kind, b.text) for b in blocks] == [
+        (7, "block:yaml", "site: a"),
+        (10, "indented", "sudo /opt/x/bin/watchkeep run -c /etc/w.yaml   # a comment"),
+        (15, "block:sh", "DURATION=5 make demo && watchkeep check-config \\\n    site.yaml | head")]
+    assert [(s.line, s.text, bool(s.row)) for s in spans][:3] == [
+        (1, "watchkeep status --json", False), (12, "watchkeep demo", True),
+        (12, "--plain", True)]
+    cmds = [(n, prog_of(w)) for n, ln in shell_lines(blocks[2]) for w in simple_commands(ln)]
+    assert cmds == [(15, None), (15, ("watchkeep", ["check-config", "site.yaml"])), (15, None)]
+    assert [prog_of(w) for w in simple_commands(blocks[1].text)] == \
+        [("watchkeep", ["run", "-c", "/etc/w.yaml"])]
 
 
 def shell_lines(s: Snippet) -> Iterator[tuple[int, str]]:
