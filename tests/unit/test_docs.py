@@ -411,31 +411,73 @@ def bundle_for(bundle_dir: Path, asset: Any, tmp: Path) -> None:
     train_bundle(ds, bundle_dir, asset=asset.name, epochs=15, widths=(4,), min_windows=50)
 
 
+# What a fragment (a snippet showing one section) is completed with: the required keys
+# and one asset without a bundle.
+BASE = {"site": "fernbrook", "gateway": "gw-01",
+        "assets": [{"name": "P-101", "channels": {"flow": {
+            "topic": "fernbrook/raw-water/P-101/flow", "decoder": "json", "rate_hz": 1}}}]}
+FILE_KEYS = ("ca_file", "cert_file", "key_file", "password_file")
+
+
+def provide_paths(node: Any, tmp: Path, bundles: list[Path]) -> Any:
+    """The snippet with the files it names made in `tmp` (absolute paths moved there) and
+    the bundle directories it names listed in `bundles` (created empty, for the loader)."""
+    if isinstance(node, list):
+        return [provide_paths(v, tmp, bundles) for v in node]
+    if not isinstance(node, dict):
+        return node
+    out = {}
+    for k, v in node.items():
+        if k in FILE_KEYS and isinstance(v, str):
+            f = tmp / "files" / Path(v).name
+            f.parent.mkdir(parents=True, exist_ok=True)
+            f.write_text("placeholder\n")
+            out[k] = str(f)
+        elif k == "bundle" and isinstance(v, str):
+            d = tmp / "bundles" / v.lstrip("/") if v.startswith("/") else tmp / v
+            d.mkdir(parents=True, exist_ok=True)
+            bundles.append(d)
+            out[k] = str(d)
+        else:
+            out[k] = provide_paths(v, tmp, bundles)
+    return out
+
+
 @pytest.mark.parametrize("block", yaml_blocks(), ids=lambda b: b.where)
 def test_every_yaml_block_is_a_working_config(block: Snippet, tmp_path: Path,
                                               capsys: pytest.CaptureFixture[str]) -> None:
-    """The README's YAML loads with the config loader and passes `watchkeep check-config`
-    once the bundle directories it names hold bundles trained for its assets."""
+    """The README's YAML loads with the config loader and passes `watchkeep check-config`:
+    a fragment completed with BASE, the files it names made, and the bundle directories
+    it names holding bundles trained for their assets."""
     from agent.config import load_config
     from agent.errors import ConfigError
 
     doc = yaml.safe_load(block.text)
-    bundles = [(i, Path(a["bundle"])) for i, a in enumerate(doc.get("assets", []))
-               if isinstance(a, dict) and a.get("bundle")]
+    assert isinstance(doc, dict), f"{block.where}: a YAML block that is not a mapping"
+    fragment = not {"site", "gateway", "assets"} <= set(doc)
+    if fragment:
+        unknown = sorted(set(doc) - set(schema()["properties"]))
+        assert not unknown, f"{block.where}: unknown top-level keys {unknown}"
+        doc = {**BASE, **doc}
+    bundles: list[Path] = []
+    doc = provide_paths(doc, tmp_path, bundles)
     path = tmp_path / "snippet.yaml"
-    path.write_text(block.text)
-    for _, b in bundles:  # first the directories, so that the loader accepts them
-        (tmp_path / b).mkdir(parents=True, exist_ok=True)
+    path.write_text(yaml.safe_dump(doc, sort_keys=False))
+    what = "the YAML block" + (" (completed with site, gateway and an asset)" if fragment
+                               else "")
     try:
         cfg = load_config(path)
     except ConfigError as exc:
-        pytest.fail(f"{block.where}: the YAML block does not load: {exc}")
-    for i, b in bundles:
-        (tmp_path / b).rmdir()
-        bundle_for(tmp_path / b, cfg.assets[i], tmp_path)
+        pytest.fail(f"{block.where}: {what} does not load: {exc}")
+    for a in cfg.assets:
+        dirs = [a.bundle] + ([m.bundle for m in a.modes.states] if a.modes else [])
+        for d in dirs:
+            if d is not None and d in bundles:
+                d.rmdir()
+                bundle_for(d, a, tmp_path)
     rc = watchkeep_main(["check-config", str(path)])
     out = capsys.readouterr()
-    assert rc == 0, f"{block.where}: check-config exit {rc}:\n{out.out}{out.err}"
+    assert rc == 0, f"{block.where}: {what}: check-config exit {rc}:\n{out.out}{out.err}"
 
 
 # --- names the README uses exist in the code ---------------------------------------------
@@ -554,10 +596,13 @@ def key_path_error(path: str, value: str | None, root: dict[str, Any]) -> str | 
 
 
 def code_words() -> set[str]:
-    """Every name written in agent/ (identifiers, string contents, comments): event data
-    fields, rejection reasons, pragmas and the like that the README may name in spans."""
+    """Every name written in agent/, simulator/ and tests/ but this file (identifiers,
+    string contents, comments): event data fields, rejection reasons, a SQLite pragma,
+    the settings of the brokers the tests run, that the README may name."""
+    files = [f for d in ("agent", "simulator", "tests") for f in (ROOT / d).rglob("*.py")
+             if f.resolve() != Path(__file__).resolve()]
     words: set[str] = set()
-    for f in (ROOT / "agent").rglob("*.py"):
+    for f in files:
         words.update(re.findall(r"[A-Za-z_][A-Za-z0-9_]*", f.read_text(encoding="utf-8")))
     return words
 
@@ -565,8 +610,9 @@ def code_words() -> set[str]:
 def test_config_keys_in_the_readme_exist() -> None:
     """Names the README puts in code spans exist: `a.b.c` paths from a top-level config
     key must be config key paths (with a value the schema enumerates, one of them);
-    `key: value` spans and bare snake_case names must be a config key or a name in agent/
-    (event data fields, rejection reasons); `watchkeep_...` are metrics (tested above)."""
+    `key: value` spans and bare snake_case names must be a config key or a name in the
+    code (`code_words`: event data fields, rejection reasons); `watchkeep_...` are
+    metrics (tested above)."""
     root = schema()
     top = set(root["properties"])
     every = all_keys_and_values(root) | set(FEATURES) | code_words()
@@ -586,7 +632,7 @@ def test_config_keys_in_the_readme_exist() -> None:
                 continue  # metrics: test_metric_names_in_the_readme_exist
             if path not in every:
                 bad.append(f"{s.where}: `{text}`: {path!r} is neither a config key nor a "
-                           "name in agent/")
+                           "name in the code")
     assert not bad, "not in the config or the code:\n" + "\n".join(bad)
 
 
