@@ -447,15 +447,18 @@ def provide_paths(node: Any, tmp: Path, bundles: list[Path]) -> Any:
 def test_every_yaml_block_is_a_working_config(block: Snippet, tmp_path: Path,
                                               capsys: pytest.CaptureFixture[str]) -> None:
     """The README's YAML loads with the config loader and passes `watchkeep check-config`:
-    a fragment completed with BASE, the files it names made, and the bundle directories
-    it names holding bundles trained for their assets."""
+    a fragment (top-level sections, or an asset's channels) completed with BASE, the
+    files it names made, and the bundle directories it names holding bundles trained
+    for their assets."""
     from agent.config import load_config
     from agent.errors import ConfigError
 
     doc = yaml.safe_load(block.text)
     assert isinstance(doc, dict), f"{block.where}: a YAML block that is not a mapping"
     fragment = not {"site", "gateway", "assets"} <= set(doc)
-    if fragment:
+    if fragment and all(isinstance(v, dict) and "topic" in v for v in doc.values()):
+        doc = {**BASE, "assets": [{**BASE["assets"][0], "channels": doc}]}  # channels
+    elif fragment:
         unknown = sorted(set(doc) - set(schema()["properties"]))
         assert not unknown, f"{block.where}: unknown top-level keys {unknown}"
         doc = {**BASE, **doc}
@@ -463,8 +466,7 @@ def test_every_yaml_block_is_a_working_config(block: Snippet, tmp_path: Path,
     doc = provide_paths(doc, tmp_path, bundles)
     path = tmp_path / "snippet.yaml"
     path.write_text(yaml.safe_dump(doc, sort_keys=False))
-    what = "the YAML block" + (" (completed with site, gateway and an asset)" if fragment
-                               else "")
+    what = "the YAML block" + (" (completed into a whole config)" if fragment else "")
     try:
         cfg = load_config(path)
     except ConfigError as exc:
