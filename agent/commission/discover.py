@@ -46,6 +46,7 @@ except ImportError:  # pragma: no cover - orjson is a core dependency
 TS_NAMES = ("ts", "t", "time", "timestamp", "epoch", "unix_time")
 SEQ_NAMES = ("seq", "sequence", "counter", "msg_id", "n")
 RATE_NAMES = ("rate_hz", "rate", "fs", "sample_rate", "sampling_rate_hz", "hz")
+SPARKPLUG_NAMESPACE = "spBv1.0/"  # Sparkplug B 3.0 topic namespace (protobuf payloads)
 MAX_SKEW_S = 300.0  # the decoder's default `ingest.max_clock_skew_s`
 MAX_PAYLOAD_BYTES = 262144  # the decoder's default `ingest.max_payload_bytes`
 SAMPLES_KEPT = 4  # sample payloads kept from the start and from the end of a topic
@@ -281,8 +282,11 @@ def propose(st: TopicStats) -> Proposal:
     first, last = st.first_value, st.last_value
     sample_rate: float | None = None
     if decoder is None:
+        why = ("a Sparkplug B topic: configure it by hand with decoder sparkplug-b, one "
+               "channel per metric of the birth certificate" if st.topic.startswith(
+                   SPARKPLUG_NAMESPACE) else "payloads are not numbers watchkeep can decode")
         return Proposal(st.topic, shape, st.count, msg_rate, None, None, {}, numeric,
-                        first, last, ("payloads are not numbers watchkeep can decode",))
+                        first, last, (why,))
     ts = _ts_field(st) if shape is not Shape.PLAIN_NUMBER else None
     times = st.values[ts] if ts else st.arrivals
     if shape is not Shape.PLAIN_NUMBER:

@@ -136,6 +136,14 @@ def test_unusable_topics(msgs: list[tuple[float, bytes]], note: str) -> None:
     assert not p.usable and any(note in n for n in p.notes)
 
 
+def test_sparkplug_topics_are_pointed_to_their_decoder() -> None:
+    """Protobuf on a Sparkplug B topic is not guessed at: the note names the decoder."""
+    p = feed([(T0 + i, b"\x08\x96\x01\x12\x05") for i in range(5)],
+             topic="spBv1.0/fernbrook-dosing/DDATA/dosing-gw/C-301")
+    note = "a Sparkplug B topic: configure it by hand with decoder sparkplug-b"
+    assert not p.usable and any(note in n for n in p.notes)
+
+
 def test_mixed_payloads_and_rejected_samples_are_noted() -> None:
     """The most common shape wins; payloads the decoder refuses give a WARNING."""
     msgs = json_msgs(10, 1.0, lambda t, i: {"ts": t, "value": i})
