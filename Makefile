@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: test demo bench lint typecheck clean check-mosquitto check-nats
+.PHONY: test demo bench lint typecheck clean test-deps dist
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -15,18 +15,12 @@ $(STAMP): pyproject.toml
 	  -r tests/spb_peer_requirements.txt
 	touch $(STAMP)
 
-check-mosquitto:
-	@command -v mosquitto >/dev/null 2>&1 || [ -x /usr/sbin/mosquitto ] || { \
-	  if [ "$$(id -u)" = 0 ]; then apt-get update -qq && apt-get install -y -qq mosquitto; \
-	  else echo "mosquitto is missing: run 'sudo apt-get install -y mosquitto' and try again" >&2; exit 1; fi; }
+# The Debian packages the tests need (mosquitto, prometheus, systemd, openssl, nats-server): the list
+# is in .ci/test-deps; as root it installs what is missing, otherwise prints the apt-get line.
+test-deps:
+	@bash .ci/test-deps
 
-# The fleet test's clustered upstream broker (tests/integration/test_fleet_nats.py).
-check-nats:
-	@command -v nats-server >/dev/null 2>&1 || [ -x /usr/sbin/nats-server ] || { \
-	  if [ "$$(id -u)" = 0 ]; then apt-get update -qq && apt-get install -y -qq nats-server; \
-	  else echo "nats-server is missing: run 'sudo apt-get install -y nats-server' and try again" >&2; exit 1; fi; }
-
-test: $(STAMP) check-mosquitto check-nats
+test: $(STAMP) test-deps
 	$(BIN)/ruff check agent simulator tests
 	$(BIN)/pytest -q
 
@@ -34,7 +28,7 @@ test: $(STAMP) check-mosquitto check-nats
 demo: $(STAMP)
 	$(BIN)/watchkeep demo --duration $${DURATION:-180} $${DEMO_ARGS:-}
 
-bench: $(STAMP) check-mosquitto
+bench: $(STAMP) test-deps
 	$(BIN)/python -m tests.bench
 
 lint: $(STAMP)
@@ -43,5 +37,11 @@ lint: $(STAMP)
 typecheck: $(STAMP)
 	$(BIN)/mypy agent simulator
 
+# The wheel and the sdist, into dist/ (the wheel is built from the sdist, so a file
+# missing from the sdist shows up here).
+dist: $(STAMP)
+	rm -rf dist
+	$(BIN)/python -m build --outdir dist .
+
 clean:
-	rm -rf $(VENV) build *.egg-info .pytest_cache .ruff_cache .mypy_cache
+	rm -rf $(VENV) build dist *.egg-info .pytest_cache .ruff_cache .mypy_cache

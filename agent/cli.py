@@ -196,6 +196,12 @@ def _add_optional_commands(sub: argparse._SubParsersAction) -> None:
     rec = sub.add_parser("record", help="record an asset's feature windows from live topics")
     record_mod.add_record_arguments(rec)
     rec.set_defaults(func=record_mod.cmd_record)
+    from agent.commission import discover_cmd
+
+    dis = sub.add_parser("discover", help="listen to a broker's topics and write a starter "
+                         "config for them")
+    discover_cmd.add_discover_arguments(dis)
+    dis.set_defaults(func=discover_cmd.cmd_discover)
     rep = sub.add_parser("replay", help="run a raw capture through the daemon pipeline")
     replay_mod.add_replay_arguments(rep)
     rep.set_defaults(func=replay_mod.cmd_replay)
