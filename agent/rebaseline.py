@@ -219,6 +219,32 @@ class FineTune:
     epochs_run: int
 
 
+def is_linear(layers: Sequence[DenseLayer]) -> bool:
+    """A linear (PCA) autoencoder as `train` writes it: two linear layers."""
+    return len(layers) == 2 and all(ly.activation == "linear" for ly in layers)
+
+
+def refit_linear(layers: Sequence[DenseLayer], z_train: np.ndarray,
+                 z_val: np.ndarray) -> FineTune:
+    """Re-learn a linear autoencoder: the principal subspace of the same dimension, refitted
+    to the (standardised, old-scaler) training rows. Gradient steps on a linear model
+    untie its encoder and decoder and, on a few hundred windows, wander off the subspace
+    (the rehearsal score grew 40x in a test); the least-squares subspace of new and
+    rehearsal windows together is the exact answer, with the same capacity."""
+    k = int(layers[0].weight.shape[1])
+    z = np.asarray(z_train, np.float64)
+    c = z.mean(axis=0)
+    _, _, vt = np.linalg.svd(z - c, full_matrices=False)
+    p = vt[:k].T
+    new = [DenseLayer(p.copy(), -(c @ p)), DenseLayer(p.T.copy(), c.copy())]
+
+    def mse(ls: Sequence[DenseLayer], x: np.ndarray) -> float:
+        return float(np.mean((forward_numpy(ls, x) - x) ** 2)) if len(x) else 0.0
+
+    return FineTune(layers=new, train_loss=mse(new, z), val_loss=mse(new, z_val),
+                    val_loss_before=mse(layers, z_val), best_epoch=0, epochs_run=0)
+
+
 def fine_tune(layers: Sequence[DenseLayer], z_train: np.ndarray, z_val: np.ndarray,
               s: Settings) -> FineTune:
     """Adam (Kingma & Ba 2015) from the given weights on standardised rows; the epoch with
@@ -382,7 +408,8 @@ def rebaseline(old: OldModel, x_new: np.ndarray, rehearsal: Rehearsal | None, s:
     use_reh = s.train_on_rehearsal and reh is not None
     z_train = np.concatenate([z_new[n_tr], z_reh[r_tr]]) if use_reh else z_new[n_tr]
     z_val = np.concatenate([z_new[n_va], z_reh[r_va]]) if use_reh else z_new[n_va]
-    ft = fine_tune(old.layers, z_train, z_val, s)
+    ft = refit_linear(old.layers, z_train, z_val) if is_linear(old.layers) else \
+        fine_tune(old.layers, z_train, z_val, s)
     cal_z = np.concatenate([z_new[n_ca], z_reh[r_ca]]) if use_reh else z_new[n_ca]
     c = old.calibration
     cal = calibrate(score(ft.layers, cal_z),

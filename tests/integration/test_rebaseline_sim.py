@@ -113,7 +113,7 @@ def plant(tmp_path_factory: pytest.TempPathFactory) -> dict[str, Any]:
         for r, s in zip(x, st, strict=True):
             w.add(r, names, s, s + 5, "default")
     ds = read_dataset(w.close())
-    train_bundle(ds.path, tmp / "bundle", asset="P-101", seed=0)
+    train_bundle(ds.path, tmp / "bundle", asset="P-101", seed=0, family="dense-autoencoder")
     store = ModelStore(tmp / "models", keep=3)
     b = load_bundle(tmp / "bundle")
     reh = reservoir(ds.columns(b.meta.feature_names), b.meta.feature_names, 512)
