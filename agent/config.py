@@ -307,6 +307,8 @@ class OutboxConfig:
     max_rows: int = 100_000
     max_bytes: int = 64 * 1024 * 1024
     inflight: int = 20
+    # The backlog kept in memory while the file cannot take it (a full disk).
+    max_memory_bytes: int = 16 * 1024 * 1024
 
 
 @dataclass(frozen=True)
@@ -918,7 +920,8 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
     pub = r.mapping(top.get("publish"), "publish", ("scores",))
     scores = r.get(pub, "scores", "publish", "bool", False)
     ob = r.mapping(top.get("outbox"), "outbox",
-                   ("path", "synchronous", "max_rows", "max_bytes", "inflight"))
+                   ("path", "synchronous", "max_rows", "max_bytes", "inflight",
+                    "max_memory_bytes"))
     sync = r.get(ob, "synchronous", "outbox", "str", "FULL", lambda v: v in ("FULL", "NORMAL"),
                  "FULL or NORMAL")
     outbox = OutboxConfig(
@@ -929,7 +932,10 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
         max_bytes=r.get(ob, "max_bytes", "outbox", "int", 64 * 1024 * 1024,
                         lambda v: v >= 4096, "an integer number of bytes >= 4096"),
         inflight=r.get(ob, "inflight", "outbox", "int", 20, lambda v: 1 <= v <= 1000,
-                       "an integer between 1 and 1000"))
+                       "an integer between 1 and 1000"),
+        max_memory_bytes=r.get(ob, "max_memory_bytes", "outbox", "int", 16 * 1024 * 1024,
+                               lambda v: 65536 <= v <= 1 << 34,
+                               "an integer number of bytes from 65536 to 17179869184"))
     h = r.mapping(top.get("http"), "http", ("enabled", "host", "port", "max_connections",
                                             "request_timeout_s"))
     http = HttpConfig(r.get(h, "enabled", "http", "bool", True),

@@ -229,6 +229,15 @@ class Metrics:
         self.outbox_drops = Counter(
             "watchkeep_outbox_dropped_total", "Messages dropped from a full outbox, by kind",
             ["kind"], registry=r)
+        self.outbox_drop_reasons = Counter(
+            "watchkeep_outbox_dropped_by_reason_total",
+            "Messages dropped, by reason: outbox_full (max_rows/max_bytes of the file), "
+            "memory_full (unwritable backlog past outbox.max_memory_bytes), shutdown "
+            "(unwritable backlog at stop)", ["reason"], registry=r)
+        self.outbox_memory_rows = Gauge(
+            "watchkeep_outbox_memory_rows",
+            "Messages waiting in memory because the outbox file could not take them",
+            registry=r)
         self.outbox_errors = Counter(
             "watchkeep_outbox_write_errors_total", "Outbox writes that failed (retried)",
             ["reason"], registry=r)
