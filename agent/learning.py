@@ -316,14 +316,23 @@ class RebaselineManager:
                                           .encode(), m.kind, m.qos, m.retain, m.key))
                 else:
                     ev = json.loads(m.payload)
-                    raised = ev.get("type", "").endswith(EventType.ANOMALY_RAISED.value)
+                    etype = ev.get("type", "")
+                    raised = etype.endswith(EventType.ANOMALY_RAISED.value)
+                    cleared = etype.endswith(EventType.ANOMALY_CLEARED.value)
                     far = self._far(ev.get("data", {}))
                     if raised and far is not None:
                         out.append(m)  # past the guard: never held
                         self._guard(job, far, out)
+                    elif far is not None and not cleared and job.held_raise is not None:
+                        # An escalation of a held raise, past the guard: both go out.
+                        out += [job.held_raise, m]
+                        job.held_raise, job.holding_raise = None, False
+                        self._guard(job, far, out)
                     elif raised or job.holding_raise:
-                        job.holding_raise = raised
-                        job.held_raise = m if raised else None
+                        # A raise, and what follows it (escalations, its clear), held.
+                        job.holding_raise = not cleared
+                        if raised or cleared:
+                            job.held_raise = m if raised else None
                         job.held_events += 1
                         self.metrics.count_held(asset)
                         self.log.info(kv("event held back while learning", asset=asset,
