@@ -46,6 +46,7 @@ from tests.helpers import (
 )
 
 HEAD_BAR = 0.8
+SMALL_HEAD_BAR = 0.2  # a modification that raises but stays under the learning guard
 
 
 def _signal(rng: np.random.Generator, load: float, n: int, head: float,
@@ -231,16 +232,16 @@ def test_an_anomaly_far_past_the_learning_guard_is_published_and_ends_learning(
     wait_for(lambda: _event(collector, "model.rebaseline", phase="requested"),
              what="request event")
     n_before = len(collector.events())
-    _send(pub, daemon, _readings(t, 15, seed=1, head=HEAD_BAR), 15)
+    _send(pub, daemon, _readings(t, 15, seed=1, head=SMALL_HEAD_BAR), 15)
     t += 15
     reg = daemon.registry
-    held = reg.get_sample_value("watchkeep_rebaseline_held_events_total", {"asset": "P-1"})
-    assert held and held >= 1 and "anomaly.raised" not in _types(collector)[n_before:]
     states = wait_for(lambda: [s for s in collector.json("/state") if "learning" in s],
                       what="learning states upstream")
     ratios = [s["score"] / s["threshold"] for s in states]
     print(f"modification while learning: score/threshold {min(ratios):.1f}-{max(ratios):.1f}")
-    _send(pub, daemon, _readings(t, 8, seed=6, head=HEAD_BAR, fault=3.0), 8)
+    held = reg.get_sample_value("watchkeep_rebaseline_held_events_total", {"asset": "P-1"})
+    assert held and held >= 1 and "anomaly.raised" not in _types(collector)[n_before:]
+    _send(pub, daemon, _readings(t, 8, seed=6, head=SMALL_HEAD_BAR, fault=3.0), 8)
     t += 8
     raised = wait_for(lambda: _event(collector, "anomaly.raised"), what="anomaly.raised")
     assert raised["data"]["asset"] == "P-1"
