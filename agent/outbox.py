@@ -114,6 +114,8 @@ BATCH_ROWS = 64
 BATCH_BYTES = 64 * 1024
 RESERVE_BYTES = 512 * 1024
 LOW_SPACE_BYTES = 8 * 1024 * 1024
+# Tight ends with this much more than LOW_SPACE_BYTES free (so it does not flap).
+LEAVE_TIGHT_MARGIN = 4 * 1024 * 1024
 # A batch is tried with twice its bytes free (its WAL frames, then the file's growth at
 # the checkpoint) plus this for the pages around the rows (indexes, pointer maps).
 BATCH_HEADROOM = 64 * 1024
@@ -407,9 +409,10 @@ class Outbox:
                 return False
             if not self._checkpoint() or not self.reserve.exists():
                 return False  # the batch took the reserve: deletes first from here
-        if not self._space_low():
+        free = self._free_bytes()
+        if free is None or free >= LOW_SPACE_BYTES + LEAVE_TIGHT_MARGIN:
             self.tight = False
-            self.log.info(kv("outbox: space is back; writing normally",
+            self.log.info(kv("outbox: space is back; writing normally", free_bytes=free,
                              path=str(self.path)))
         return True
 
