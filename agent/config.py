@@ -307,6 +307,8 @@ class OutboxConfig:
     max_rows: int = 100_000
     max_bytes: int = 64 * 1024 * 1024
     inflight: int = 20
+    # The backlog kept in memory while the file cannot take it (a full disk).
+    max_memory_bytes: int = 16 * 1024 * 1024
 
 
 @dataclass(frozen=True)
@@ -314,6 +316,8 @@ class HttpConfig:
     enabled: bool = True
     host: str = "127.0.0.1"
     port: int = 9310
+    max_connections: int = 32  # agent.metrics.DEFAULT_MAX_CONNECTIONS
+    request_timeout_s: float = 10.0  # agent.metrics.DEFAULT_REQUEST_TIMEOUT_S
 
 
 @dataclass(frozen=True)
@@ -916,7 +920,8 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
     pub = r.mapping(top.get("publish"), "publish", ("scores",))
     scores = r.get(pub, "scores", "publish", "bool", False)
     ob = r.mapping(top.get("outbox"), "outbox",
-                   ("path", "synchronous", "max_rows", "max_bytes", "inflight"))
+                   ("path", "synchronous", "max_rows", "max_bytes", "inflight",
+                    "max_memory_bytes"))
     sync = r.get(ob, "synchronous", "outbox", "str", "FULL", lambda v: v in ("FULL", "NORMAL"),
                  "FULL or NORMAL")
     outbox = OutboxConfig(
@@ -927,12 +932,20 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
         max_bytes=r.get(ob, "max_bytes", "outbox", "int", 64 * 1024 * 1024,
                         lambda v: v >= 4096, "an integer number of bytes >= 4096"),
         inflight=r.get(ob, "inflight", "outbox", "int", 20, lambda v: 1 <= v <= 1000,
-                       "an integer between 1 and 1000"))
-    h = r.mapping(top.get("http"), "http", ("enabled", "host", "port"))
+                       "an integer between 1 and 1000"),
+        max_memory_bytes=r.get(ob, "max_memory_bytes", "outbox", "int", 16 * 1024 * 1024,
+                               lambda v: 65536 <= v <= 1 << 34,
+                               "an integer number of bytes from 65536 to 17179869184"))
+    h = r.mapping(top.get("http"), "http", ("enabled", "host", "port", "max_connections",
+                                            "request_timeout_s"))
     http = HttpConfig(r.get(h, "enabled", "http", "bool", True),
                       r.get(h, "host", "http", "str", "127.0.0.1"),
                       r.get(h, "port", "http", "int", 9310, lambda v: 0 <= v < 65536,
-                            "a TCP port 0-65535 (0 picks a free one)"))
+                            "a TCP port 0-65535 (0 picks a free one)"),
+                      r.get(h, "max_connections", "http", "int", 32,
+                            lambda v: 1 <= v <= 1000, "an integer from 1 to 1000"),
+                      r.get(h, "request_timeout_s", "http", "num", 10.0,
+                            lambda v: 0.1 <= v <= 300, "seconds from 0.1 to 300"))
     rebaseline = parse_rebaseline(r, top.get("rebaseline"), "rebaseline", state_dir)
     check_mqtt_commands(r, rebaseline, upstream)
     indexed: list[tuple[int, AssetConfig]] = []

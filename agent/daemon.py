@@ -240,7 +240,9 @@ class Daemon:
             # before an "online" status could be published.
             self.http = HttpServer(cfg.http.host, cfg.http.port, self.registry,
                                    healthy=self.healthy, ready=self.ready, status=self.status,
-                                   before_scrape=self._before_scrape)
+                                   before_scrape=self._before_scrape,
+                                   max_connections=cfg.http.max_connections,
+                                   request_timeout_s=cfg.http.request_timeout_s)
         if self.commands is not None:
             self.commands.start()
         self.upstream.start()

@@ -19,6 +19,14 @@ Life of a rebaseline for one asset (at most one at a time per asset):
   its per-asset sequence number, so consumers see a gap there, explained by that count.
   Every asset's retained state message carries `"learning": {...}` meanwhile, and
   `/status` shows it. Sensor, limit and other events pass untouched.
+  **The learning guard** (issue 20): a new normal the verdict could accept has its
+  median old-model score under `max_shift` x threshold. An anomaly whose score reaches
+  `FAR_FACTOR` (3) x `max_shift` x threshold (30 x by default) cannot be that: it is not
+  held. A raise that far is published as it is; while a held raise is open, the first
+  window that far publishes the held `anomaly.raised` (its own id, time and sequence).
+  Learning then ends (`model.rebaseline` {phase: aborted}, the reason with the score),
+  unless the request said `accept_shift` (a shift that large was announced): then the
+  anomaly is published and learning goes on. Either way the alarm is never muted.
 - **Training**: in `python -m agent.rebaseline_worker` at nice 10 with one BLAS
   thread (agent/rebaseline_worker.py); this module only waits for it. Windows keep
   being scored with the old model and anomaly events stay held until the verdict.
@@ -65,7 +73,7 @@ from agent.messages import Kind, OutMessage
 from agent.models import ModelStore, read_rehearsal
 from agent.pipeline import Sink
 from agent.rebaseline import MIN_NEW_WINDOWS, RebaselineError
-from agent.rebaseline_config import RebaselineConfig
+from agent.rebaseline_config import FAR_FACTOR, MAX_WINDOWS, RebaselineConfig
 from agent.rebaseline_worker import JOB_JSON, RESULT_JSON, WINDOWS_NPZ, write_json
 from agent.runtime import DEFAULT_MODE, AssetRuntime, check_bundle_fits, feature_layout
 
@@ -103,6 +111,8 @@ class Job:
     starts: list[float] = field(default_factory=list)
     held_events: int = 0
     holding_raise: bool = False
+    held_raise: OutMessage | None = None  # the open raise held back, for the guard
+    aborted: str | None = None  # why the learning guard ended the job
     index: np.ndarray | None = None
     proc: subprocess.Popen[bytes] | None = None
     cancelled: bool = False
@@ -152,7 +162,7 @@ class LearningMetrics:
             held.add_metric([a], float(self.held.get(a, 0)))
         results = CounterMetricFamily("watchkeep_rebaseline_results",
                                       "Rebaseline outcomes: accepted, rejected, refused, failed, "
-                                      "cancelled", labels=["asset", "result"])
+                                      "cancelled, aborted", labels=["asset", "result"])
         for (a, res), n in sorted(self.results.items()):
             if a in assets:
                 results.add_metric([a, res], float(n))
@@ -182,6 +192,9 @@ class HoldingSink:
     def submit(self, msgs: Sequence[OutMessage],
                sequences: Mapping[str, int] | None = None) -> None:
         kept = self.manager.filter(msgs)
+        more = self.manager.take_sequences()  # events the guard added (aborted)
+        if more:
+            sequences = {**(sequences or {}), **more}
         if kept or sequences:
             self.inner.submit(kept, sequences=sequences)
 
@@ -203,6 +216,7 @@ class RebaselineManager:
         self._stopping = threading.Event()
         self.admin: AdminServer | None = None
         self._inner: Sink | None = None
+        self._sequences: dict[str, int] = {}  # set by `filter`, taken by the sink
 
     # -- wiring ---------------------------------------------------------------------------
 
@@ -293,14 +307,32 @@ class RebaselineManager:
                     out.append(m)
                 elif m.kind is Kind.STATE:
                     doc = json.loads(m.payload)
+                    self._state_past_guard(job, doc, out)
+                    if job.aborted is not None:
+                        out.append(m)
+                        continue
                     doc["learning"] = job.summary()
                     out.append(OutMessage(m.topic, json.dumps(doc, separators=(",", ":"))
                                           .encode(), m.kind, m.qos, m.retain, m.key))
                 else:
                     ev = json.loads(m.payload)
-                    raised = ev.get("type", "").endswith(EventType.ANOMALY_RAISED.value)
-                    if raised or job.holding_raise:
-                        job.holding_raise = raised
+                    etype = ev.get("type", "")
+                    raised = etype.endswith(EventType.ANOMALY_RAISED.value)
+                    cleared = etype.endswith(EventType.ANOMALY_CLEARED.value)
+                    far = self._far(ev.get("data", {}))
+                    if raised and far is not None:
+                        out.append(m)  # past the guard: never held
+                        self._guard(job, far, out)
+                    elif far is not None and not cleared and job.held_raise is not None:
+                        # An escalation of a held raise, past the guard: both go out.
+                        out += [job.held_raise, m]
+                        job.held_raise, job.holding_raise = None, False
+                        self._guard(job, far, out)
+                    elif raised or job.holding_raise:
+                        # A raise, and what follows it (escalations, its clear), held.
+                        job.holding_raise = not cleared
+                        if raised or cleared:
+                            job.held_raise = m if raised else None
                         job.held_events += 1
                         self.metrics.count_held(asset)
                         self.log.info(kv("event held back while learning", asset=asset,
@@ -309,6 +341,69 @@ class RebaselineManager:
                     else:
                         out.append(m)  # clears an anomaly raised (and published) before
             return out
+
+    def _far(self, data: Mapping[str, Any]) -> float | None:
+        """score / threshold when it reaches the learning guard's release line, else None."""
+        score, threshold = data.get("score"), data.get("threshold")
+        if not isinstance(score, (int, float)) or not isinstance(threshold, (int, float)) \
+                or threshold <= 0:
+            return None
+        ratio = float(score) / float(threshold)
+        return ratio if ratio >= FAR_FACTOR * self.cfg.max_shift else None
+
+    def _state_past_guard(self, job: Job, doc: Mapping[str, Any], out: list[OutMessage]
+                          ) -> None:
+        """A window of an asset whose raise is held: far past the guard, the held raise
+        goes out (before this state message) and the guard acts."""
+        if not job.holding_raise or job.held_raise is None:
+            return
+        far = self._far(doc)
+        if far is None:
+            return
+        out.append(job.held_raise)
+        job.held_raise = None
+        job.holding_raise = False
+        self._guard(job, far, out)
+
+    def _guard(self, job: Job, ratio: float, out: list[OutMessage]) -> None:
+        """An anomaly `ratio` x threshold during learning was published; end learning
+        unless the request announced a shift (lock held, pipeline thread)."""
+        line = FAR_FACTOR * self.cfg.max_shift
+        self.log.warning(kv("anomaly far past the learning guard published while learning",
+                            asset=job.asset, score_ratio=round(ratio, 1), guard=line,
+                            request=job.request_id, accept_shift=job.accept_shift))
+        if job.accept_shift:
+            return
+        job.aborted = (f"an anomaly at {ratio:.3g} x the threshold while learning (over "
+                       f"{FAR_FACTOR:g} x max_shift = {line:g} x): a fault, not a new normal")
+        job.cancelled = True
+        self._jobs.pop(job.asset, None)
+        if job.proc is not None and job.proc.poll() is None:
+            job.proc.terminate()
+        try:
+            rt = self._runtime(job.asset)
+        except RebaselineError:
+            return
+        data = {**job.request_json(), "held_events": job.held_events, "figures": {},
+                "phase": "aborted", "reasons": [job.aborted],
+                "model_version": job.base_version}
+        msg, seq = self._event_message(rt, EventType.MODEL_REBASELINE, data, "aborted",
+                                       Kind.EVENT)
+        out.append(msg)
+        self._sequences[job.asset] = seq
+        self.metrics.count_result(job.asset, "aborted")
+        self.last[job.asset] = {"request_id": job.request_id, "result": "aborted",
+                                "reasons": [job.aborted], "old_version": job.base_version,
+                                "new_version": None, "held_events": job.held_events,
+                                "pruned": [], "figures": {}}
+        self.log.warning(kv("rebaseline aborted", asset=job.asset, request=job.request_id,
+                            reasons=job.aborted))
+
+    def take_sequences(self) -> dict[str, int]:
+        """Sequence numbers of the events `filter` added (for the sink's submit)."""
+        with self._lock:
+            got, self._sequences = self._sequences, {}
+        return got
 
     # -- requests (admin thread) -------------------------------------------------------
 
@@ -382,8 +477,9 @@ class RebaselineManager:
             n = req.get("windows")
             target = self.cfg.windows if n is None else n
             if isinstance(target, bool) or not isinstance(target, int) or \
-                    target < MIN_NEW_WINDOWS:
-                raise RebaselineError(f"windows must be an integer >= {MIN_NEW_WINDOWS}")
+                    not MIN_NEW_WINDOWS <= target <= MAX_WINDOWS:
+                raise RebaselineError(f"windows must be an integer from {MIN_NEW_WINDOWS} "
+                                      f"to {MAX_WINDOWS}, got {str(target)[:40]}")
             base["windows"] = target
             bundle, slot_mode = self._slot(rt, mode)
             active = self.store.active_version(asset, slot_mode)
@@ -480,6 +576,11 @@ class RebaselineManager:
         if self._stopping.is_set():
             self.log.warning(kv("rebaseline dropped: the daemon is stopping", asset=job.asset))
             return
+        if job.aborted is not None:  # the learning guard ended it (published then)
+            version = result.get("version")
+            if isinstance(version, int):
+                self.store.remove_version(job.asset, job.slot_mode, version)
+            return
         try:
             rt = self._runtime(job.asset)
         except RebaselineError:
@@ -514,7 +615,8 @@ class RebaselineManager:
                 "shift_accepted": bool(job.accept_shift and figures.get("shift_exceeded"))}
         with self.d.loop.paused():
             with self._lock:
-                self._jobs.pop(job.asset, None)
+                if self._jobs.get(job.asset) is job:
+                    self._jobs.pop(job.asset)
             rt = self._runtime(job.asset)  # a reload may have swapped the runtime
             if bundle is not None:
                 self._install(rt, job.mode, bundle, raise_held=job.holding_raise)
@@ -646,6 +748,12 @@ class RebaselineManager:
         sequence number are the pipeline's)."""
         if self._inner is None:
             return
+        msg, seq = self._event_message(rt, etype, data, key, kind)
+        self._inner.submit([msg], sequences={rt.cfg.name: seq})
+
+    def _event_message(self, rt: AssetRuntime, etype: EventType, data: dict[str, Any],
+                       key: str, kind: Kind) -> tuple[OutMessage, int]:
+        """One event of `rt` as a message, with the sequence number it took."""
         rt.sequence += 1
         data = {**data, "sequence": rt.sequence}
         src = Source(self.d.cfg.site, self.d.cfg.gateway).for_asset(rt.cfg.name)
@@ -656,10 +764,9 @@ class RebaselineManager:
         self.log.info(kv("event", type=etype.value, asset=rt.cfg.name, id=ev["id"],
                          phase=data.get("phase") or data.get("action")))
         topic = f"{self.d.cfg.topic_prefix}/assets/{rt.cfg.name}/events"
-        self._inner.submit([OutMessage(topic, json.dumps(ev, separators=(",", ":"),
-                                                         allow_nan=False).encode(),
-                                       kind, qos=1)],
-                           sequences={rt.cfg.name: rt.sequence})
+        return OutMessage(topic, json.dumps(ev, separators=(",", ":"),
+                                            allow_nan=False).encode(), kind, qos=1), \
+            rt.sequence
 
 
 def _serving(rt: AssetRuntime) -> dict[str, Bundle]:

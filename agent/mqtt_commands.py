@@ -1,19 +1,21 @@
 """Rebaseline requests from the upstream broker on `<prefix>/commands/<asset>/rebaseline`.
 
 Off by default (`rebaseline.mqtt_commands`), and the loader refuses it unless the
-upstream connection authenticates (a username or a TLS client certificate). watchkeep
+upstream connection authenticates (a username or a TLS client certificate) and the
+operator states that the broker enforces access (`rebaseline.broker_enforces_acl`). watchkeep
 cannot see who published a message: it relies on the broker's access control to
 restrict who may publish on the commands topic, and records the payload's
 `requested_by` as an unverified name (`"via": "mqtt (unverified name)"`).
 
 Payload: one JSON object, every field optional, no others allowed:
 `{"windows": 360, "mode": "duty", "reason": "...", "requested_by": "...",
-"accept_shift": false}`. A command is turned away (counted by reason in
-`watchkeep_mqtt_commands_rejected_total`, logged rate-limited, never acted on) when it
-is retained, too large, not a JSON object, has a field of the wrong kind, or names an
-asset the running config does not have. A command that passes goes to
-`RebaselineManager.request`, which logs it and publishes the same `model.rebaseline`
-event as the admin socket does (requested or refused, with who and why).
+"accept_shift": false}`; `windows` from 60 to `MAX_WINDOWS` (17,280). A command is
+turned away (counted by reason in `watchkeep_mqtt_commands_rejected_total`, logged
+rate-limited, never acted on) when it is retained, too large, not a JSON object, has a
+field of the wrong kind, or names an asset the running config does not have. A command
+that passes goes to `RebaselineManager.request`, which logs it and publishes the same
+`model.rebaseline` event as the admin socket does (requested or refused, with who and
+why).
 
 Threads: `offer` runs on the upstream paho network thread; it only puts the message in
 a small bounded queue and returns (a full queue counts `queue_full`). The
@@ -41,6 +43,7 @@ from prometheus_client import CollectorRegistry, Counter
 
 from agent.errors import WatchkeepError
 from agent.logs import RateLimited, kv
+from agent.rebaseline_config import MAX_WINDOWS, MIN_NEW_WINDOWS
 
 VERB = "rebaseline"
 VIA = "mqtt (unverified name)"
@@ -129,8 +132,10 @@ def parse_command(prefix: str, topic: str, payload: bytes, retained: bool,
                                           f"{', '.join(known)})")
     try:
         windows = doc.get("windows")
-        if windows is not None and (isinstance(windows, bool) or not isinstance(windows, int)):
-            raise ValueError("windows must be an integer")
+        if windows is not None and (isinstance(windows, bool) or not isinstance(windows, int)
+                                    or not MIN_NEW_WINDOWS <= windows <= MAX_WINDOWS):
+            raise ValueError(f"windows must be an integer from {MIN_NEW_WINDOWS} to "
+                             f"{MAX_WINDOWS}")
         accept = doc.get("accept_shift")
         if accept is not None and not isinstance(accept, bool):
             raise ValueError("accept_shift must be true or false")

@@ -5,7 +5,26 @@ Contract:
   sequence numbers) in ONE `BEGIN IMMEDIATE` transaction, before anything is
   published; it never raises. A write that fails ("database or disk is full",
   "database is locked", ...) is counted, its rows are kept in memory and retried
-  first on the next submit, so order is kept and the daemon stays up.
+  first on the next submit, so order is kept and the daemon stays up. The rows kept
+  in memory are bounded (`outbox.max_memory_bytes`, and `max_rows`) by the drop policy
+  below; every message that cannot be kept is counted by kind
+  (`watchkeep_outbox_dropped_total`) and by reason
+  (`watchkeep_outbox_dropped_by_reason_total`: `outbox_full`, `memory_full`,
+  `shutdown`) and logged with the numbers, including what is still in memory at
+  `close`.
+- A full disk (issue 20): the outbox keeps a reserve file (`<path>.reserve`,
+  `RESERVE_BYTES`) and watches the free space of its file system. Below
+  `LOW_SPACE_BYTES`, or after a "disk full" error, it runs *tight*: the backlog is
+  written in batches of at most `BATCH_ROWS` rows / `BATCH_BYTES` bytes, one
+  transaction each, so freeing a little space lets a little through; every commit
+  and every failed attempt is followed by a `wal_checkpoint(TRUNCATE)`, so the WAL
+  holds no committed frames waiting for the database file to grow, and a failed
+  attempt gives its WAL growth back instead of keeping it; new rows are written only
+  while the reserve exists. When a checkpoint or a delete of acknowledged rows finds
+  the disk full, the reserve is given up for it: deletes (the upstream's
+  acknowledgements) always go first, and the space they free inside the file is
+  returned to the file system (`incremental_vacuum`), so the reserve, and then the
+  backlog, come back as soon as there is room.
 - Rows are delivered in id order (`fetch_after`) and removed only by `delete`,
   which the upstream side calls once the broker has acknowledged them. The rows of
   the last few ticks are also kept in memory (`TAIL_ROWS`), so an upstream that keeps
@@ -26,7 +45,9 @@ Contract:
 from __future__ import annotations
 
 import contextlib
+import errno
 import logging
+import os
 import sqlite3
 import threading
 import time
@@ -39,7 +60,7 @@ from typing import Any, NamedTuple
 
 from agent.config import OutboxConfig, Synchronous
 from agent.errors import OutboxError
-from agent.logs import kv
+from agent.logs import RateLimited, kv
 from agent.messages import Kind, OutMessage
 from agent.metrics import Metrics
 
@@ -84,6 +105,22 @@ DROP_LOG_INTERVAL_S = 10.0
 # messages' own payload objects, no copies, and let go of a row once it is delivered.
 # 1,024 rows are several ticks of a 200-asset gateway and many in-flight windows.
 TAIL_ROWS = 1024
+# Tight mode (a full or nearly full disk; module docstring). Common practice, no source:
+# a batch of 64 rows / 64 KiB makes a few dozen 4 KiB pages of WAL, so a few hundred KiB
+# of free space let a batch through; the reserve covers the database file growing by one
+# batch at a checkpoint plus a delete's WAL frames several times over; tight starts with
+# two WAL auto-checkpoints' worth (SQLite: 1000 pages each) of space left.
+BATCH_ROWS = 64
+BATCH_BYTES = 64 * 1024
+RESERVE_BYTES = 512 * 1024
+LOW_SPACE_BYTES = 8 * 1024 * 1024
+# Tight ends with this much more than LOW_SPACE_BYTES free (so it does not flap).
+LEAVE_TIGHT_MARGIN = 4 * 1024 * 1024
+# A batch is tried with twice its bytes free (its WAL frames, then the file's growth at
+# the checkpoint) plus this for the pages around the rows (indexes, pointer maps).
+BATCH_HEADROOM = 64 * 1024
+# Reasons of `watchkeep_outbox_dropped_by_reason_total`.
+DROP_REASONS = ("outbox_full", "memory_full", "shutdown")
 
 
 class Row(NamedTuple):
@@ -205,10 +242,16 @@ class Outbox:
         self._tail_from = 1
         self._tail_live = 0
         self._pending: list[tuple[OutMessage, float]] = []
+        self._pending_bytes = 0
         self._pending_seqs: dict[str, int] = {}
         self._drops_unlogged: Counter[str] = Counter()
         self._drop_logged_at = -float("inf")
         self._drop_counters = {k.label: metrics.outbox_drops.labels(k.label) for k in Kind}
+        self._reason_counters = {r: metrics.outbox_drop_reasons.labels(r)
+                                 for r in DROP_REASONS}
+        self._rl = RateLimited(logger)
+        self.reserve = Path(f"{self.path}.reserve")
+        self.tight = False  # a full or nearly full disk (module docstring)
         # Called (outside the lock) after rows were committed, so the delivery side can
         # start at once instead of finding them at its next poll.
         self.on_written: list[Callable[[], None]] = []
@@ -227,6 +270,7 @@ class Outbox:
         except sqlite3.Error as exc:
             raise OutboxError(f"outbox {self.path}: cannot open: {exc}") from exc
         self._refresh_counts()
+        self._ensure_reserve()
         return self
 
     def _check_existing(self) -> str | None:
@@ -309,43 +353,183 @@ class Outbox:
         """Store one tick's messages in one transaction (`last_write_ok` says if it was).
 
         Never raises: a failed write is counted and kept in memory (bounded by
-        `max_rows`, with the same drop policy) to be retried first next time.
+        `max_rows` and `max_memory_bytes`, with the same drop policy) to be retried
+        first next time; on a full disk the backlog goes in bounded batches.
         """
         now = self.clock()
         with self._lock:
-            self._pending.extend((m, now) for m in msgs)
+            pending = self._pending
+            for m in msgs:
+                pending.append((m, now))
+                self._pending_bytes += message_size(m)
             self._pending_seqs.update(sequences or {})
             if not self._pending and not self._pending_seqs:
                 return
-            try:
-                self._write_pending()
-            except sqlite3.Error as exc:
-                self._rollback()
-                reason = _error_reason(exc)
-                self.metrics.outbox_errors.labels(reason).inc()
-                self.log.error(kv("outbox write failed; kept in memory and retried next tick",
-                                  reason=reason, error=str(exc), pending=len(self._pending)))
+            ok = self._flush()
+            if not ok:
                 self._bound_pending()
-                self._log_drops(now)
-                self.last_write_ok = False
-                return
-            self.last_write_ok = True
+            self.last_write_ok = ok
             self._log_drops(now)
             self._gauges()
         for fn in self.on_written:
             fn()
 
-    def _write_pending(self) -> None:
+    def _flush(self) -> bool:
+        """Write what waits in memory; True when all of it is in the file."""
+        if not self.tight and self._space_low():
+            self._enter_tight("low_space")
+        if not self.tight:
+            try:
+                self._write_pending(len(self._pending))
+                return True
+            except sqlite3.Error as exc:
+                self._failed(exc)
+                return False
+        # Tight: only while the reserve exists, in bounded batches, each checkpointed.
+        if not self._ensure_reserve():
+            self._rl.warning("reserve", "outbox: disk full and no room for the reserve; "
+                             "delivered rows are deleted first, new rows wait in memory",
+                             pending=len(self._pending), reserve=str(self.reserve))
+            self.metrics.outbox_errors.labels("disk_full").inc()
+            return False
+        while self._pending or self._pending_seqs:
+            n, size = self._batch_len()
+            free = self._free_bytes()
+            if free is not None and free < 2 * size + BATCH_HEADROOM:
+                # Not even a batch's WAL frames and the file's growth at its checkpoint
+                # fit: no attempt (a doomed one costs a rollback and a checkpoint).
+                self._rl.warning("wait-space", "outbox: disk full; new rows wait in memory "
+                                 "for space", pending=len(self._pending), free_bytes=free)
+                self.metrics.outbox_errors.labels("disk_full").inc()
+                return False
+            try:
+                self._write_pending(n)
+            except sqlite3.Error as exc:
+                self._failed(exc)
+                return False
+            if not self._checkpoint() or not self.reserve.exists():
+                return False  # the batch took the reserve: deletes first from here
+        free = self._free_bytes()
+        if free is None or free >= LOW_SPACE_BYTES + LEAVE_TIGHT_MARGIN:
+            self.tight = False
+            self.log.info(kv("outbox: space is back; writing normally", free_bytes=free,
+                             path=str(self.path)))
+        return True
+
+    def _batch_len(self) -> tuple[int, int]:
+        """How many of the oldest waiting rows make one tight batch (at least one), and
+        their bytes."""
+        n = size = 0
+        for m, _ in self._pending:
+            k = message_size(m)
+            if n and (n >= BATCH_ROWS or size + k > BATCH_BYTES):
+                break
+            n += 1
+            size += k
+        return n, size
+
+    def _failed(self, exc: sqlite3.Error) -> None:
+        """After a failed write: roll back, count, log (rate-limited), and on a full disk
+        go tight and give the failed attempt's WAL growth back."""
+        self._rollback()
+        reason = _error_reason(exc)
+        self.metrics.outbox_errors.labels(reason).inc()
+        self._rl.warning(f"write:{reason}", "outbox write failed; kept in memory and "
+                         "retried next tick", reason=reason, error=str(exc),
+                         pending=len(self._pending))
+        if reason == "disk_full":
+            self._enter_tight(reason)
+            self._checkpoint()
+
+    def _enter_tight(self, why: str) -> None:
+        if not self.tight:
+            self.tight = True
+            self.log.warning(kv("outbox: little or no disk space; writing in small batches "
+                                "and deleting delivered rows first", why=why,
+                                free_bytes=self._free_bytes(), path=str(self.path)))
+
+    def _free_bytes(self) -> int | None:
+        try:
+            st = os.statvfs(self.path.parent)
+        except OSError:
+            return None
+        return st.f_bavail * st.f_frsize
+
+    def _space_low(self) -> bool:
+        free = self._free_bytes()
+        return free is not None and free < LOW_SPACE_BYTES
+
+    def _ensure_reserve(self) -> bool:
+        """The reserve file exists (made now if there is room); False only when the disk
+        has no room for it. A file system that cannot hold one for another reason (no
+        permission) is logged once and treated as having it."""
+        try:
+            if self.reserve.stat().st_size >= RESERVE_BYTES:
+                return True
+        except OSError:
+            pass
+        try:
+            fd = os.open(self.reserve, os.O_WRONLY | os.O_CREAT, 0o600)
+            try:
+                try:
+                    os.posix_fallocate(fd, 0, RESERVE_BYTES)
+                except OSError as exc:
+                    if exc.errno not in (errno.EOPNOTSUPP, errno.EINVAL):
+                        raise
+                    os.pwrite(fd, bytes(RESERVE_BYTES), 0)  # no fallocate: real zeros
+            finally:
+                os.close(fd)
+            return True
+        except OSError as exc:
+            with contextlib.suppress(OSError):
+                self.reserve.unlink()
+            if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+                return False
+            self._rl.warning("reserve-other", "outbox: cannot make the reserve file",
+                             path=str(self.reserve), error=str(exc))
+            return True
+
+    def _release_reserve(self) -> bool:
+        """Give the reserve's space to SQLite; True if there was one."""
+        try:
+            self.reserve.unlink()
+        except OSError:
+            return False
+        self.log.warning(kv("outbox: disk full; reserve released for deletes and the "
+                            "checkpoint", path=str(self.reserve)))
+        return True
+
+    def _checkpoint(self) -> bool:
+        """Move the WAL into the database file and truncate it (tight mode): no committed
+        frame then waits for the file to grow, and the WAL's space is free again. On a
+        full disk the reserve is released once for it."""
         db = self._conn()
+        for attempt in (0, 1):
+            try:
+                busy = db.execute("PRAGMA wal_checkpoint(TRUNCATE)").fetchone()[0]
+                if not busy:
+                    return True
+            except sqlite3.Error as exc:
+                self.metrics.outbox_errors.labels(_error_reason(exc)).inc()
+            if attempt == 0 and not self._release_reserve():
+                return False
+        return False
+
+    def _write_pending(self, count: int) -> None:
+        """Write the `count` oldest waiting rows in one transaction (the assets' sequence
+        numbers go with the last of them); they leave memory only after the commit."""
+        db = self._conn()
+        batch = self._pending[:count]
+        last_batch = count == len(self._pending)
         db.execute("BEGIN IMMEDIATE")
         values: list[Any] = []
         added_bytes = 0
-        for m, created in self._pending:
+        for m, created in batch:
             size = message_size(m)
             added_bytes += size
             values += (created, int(m.kind), m.topic, m.payload, m.qos, int(m.retain), m.key,
                        size)
-        added_rows = len(self._pending)
+        added_rows = len(batch)
         last_id = self.max_id
         if added_rows:
             start = 0
@@ -354,7 +538,7 @@ class Outbox:
                 start += 8 * n
             # One writer inside this transaction: the new ids run up to the last one.
             last_id = int(db.execute("SELECT last_insert_rowid()").fetchone()[0])
-        if self._pending_seqs:
+        if self._pending_seqs and last_batch:
             db.executemany(
                 "INSERT INTO sequences (asset, seq) VALUES (?, ?) "
                 "ON CONFLICT (asset) DO UPDATE SET seq = excluded.seq",
@@ -367,11 +551,13 @@ class Outbox:
         db.execute("COMMIT")
         # Only now, after COMMIT, is the state in memory updated.
         self._rows, self._bytes = rows, nbytes
-        self._extend_tail(last_id - added_rows + 1, last_id, dropped_ids)
+        self._extend_tail(last_id - added_rows + 1, last_id, batch, dropped_ids)
         self.max_id = last_id
-        self._pending = []
-        self._pending_seqs = {}
-        self._count_drops(dropped)
+        del self._pending[:count]
+        self._pending_bytes -= added_bytes
+        if last_batch:
+            self._pending_seqs = {}
+        self._count_drops(dropped, "outbox_full")
 
     def _enforce_bounds(self, db: sqlite3.Connection, rows: int, nbytes: int,
                         dropped_ids: list[int]) -> tuple[int, int, Counter[str]]:
@@ -395,16 +581,17 @@ class Outbox:
                 nbytes -= freed
         return rows, nbytes, dropped
 
-    def _extend_tail(self, first: int, last: int, dropped_ids: list[int]) -> None:
-        """After a commit: the rows `first..last` just written (in `_pending` order),
-        less the ones the bounds dropped in the same transaction."""
+    def _extend_tail(self, first: int, last: int, batch: list[tuple[OutMessage, float]],
+                     dropped_ids: list[int]) -> None:
+        """After a commit: the rows `first..last` just written (`batch`, in order), less
+        the ones the bounds dropped in the same transaction."""
         if first <= last and first != self._tail_from + len(self._tail):
             # ids did not follow on: start afresh
             self._tail, self._tail_from, self._tail_live = [], first, 0
         tail = self._tail
         new = tuple.__new__
         tail += [new(Row, (i, m.kind, m.topic, m.payload, m.qos, bool(m.retain)))
-                 for i, (m, _) in zip(range(first, last + 1), self._pending, strict=True)]
+                 for i, (m, _) in zip(range(first, last + 1), batch, strict=True)]
         self._tail_live += last - first + 1 if first <= last else 0
         self._forget(dropped_ids)
         cut = len(tail) - TAIL_ROWS
@@ -423,10 +610,16 @@ class Outbox:
                 tail[k] = None
                 self._tail_live -= 1
 
-    def _count_drops(self, dropped: Counter[str]) -> None:
+    def _count_drops(self, dropped: Counter[str], reason: str) -> None:
         for label, n in dropped.items():
             self._drop_counters[label].inc(n)
-        self._drops_unlogged.update(dropped)
+        total = sum(dropped.values())
+        if total:
+            self._reason_counters[reason].inc(total)
+            # outbox_full keeps the plain kind as its log key (as before); the others
+            # carry their reason: memory_full_anomaly=3.
+            pre = "" if reason == "outbox_full" else f"{reason}_"
+            self._drops_unlogged.update({f"{pre}{k}": n for k, n in dropped.items()})
 
     def _log_drops(self, now: float) -> None:
         """Every drop is logged: at once the first time, then summed at most every 10 s."""
@@ -436,16 +629,19 @@ class Outbox:
         counts = dict(sorted(self._drops_unlogged.items()))
         self._drops_unlogged.clear()
         self.log.warning(kv("outbox full: messages dropped", **counts,
-                            max_rows=self.cfg.max_rows, max_bytes=self.cfg.max_bytes))
+                            max_rows=self.cfg.max_rows, max_bytes=self.cfg.max_bytes,
+                            max_memory_bytes=self.cfg.max_memory_bytes))
 
     def _bound_pending(self) -> None:
-        """Keep the in-memory retry list within `max_rows` by the same drop policy."""
-        excess = len(self._pending) - self.cfg.max_rows
-        if excess <= 0:
+        """Keep the in-memory retry list within `max_rows` and `max_memory_bytes` by the
+        same drop policy (counted with reason `memory_full`)."""
+        pending = self._pending
+        if len(pending) <= self.cfg.max_rows and \
+                self._pending_bytes <= self.cfg.max_memory_bytes:
             return
         order = {c: i for i, c in enumerate(DROP_ORDER)}
         latest: dict[str, int] = {}
-        for i, (m, _) in enumerate(self._pending):
+        for i, (m, _) in enumerate(pending):
             if m.kind is Kind.STATE and m.key is not None:
                 latest[m.key] = i
 
@@ -455,12 +651,15 @@ class Outbox:
                     else "state_superseded"
             return m.kind.label
 
-        ranked = sorted(range(len(self._pending)),
-                        key=lambda i: (order[cls(i, self._pending[i][0])], i))
-        drop = set(ranked[:excess])
-        dropped: Counter[str] = Counter(self._pending[i][0].kind.label for i in drop)
-        self._pending = [p for i, p in enumerate(self._pending) if i not in drop]
-        self._count_drops(dropped)
+        ranked = sorted(range(len(pending)), key=lambda i: (order[cls(i, pending[i][0])], i))
+        ids, freed = plan_drops(((i, message_size(pending[i][0])) for i in ranked),
+                                len(pending), self._pending_bytes, self.cfg.max_rows,
+                                self.cfg.max_memory_bytes)
+        drop = set(ids)
+        dropped: Counter[str] = Counter(pending[i][0].kind.label for i in drop)
+        self._pending = [p for i, p in enumerate(pending) if i not in drop]
+        self._pending_bytes -= freed
+        self._count_drops(dropped, "memory_full")
 
     def _rollback(self) -> None:
         with contextlib.suppress(sqlite3.Error):  # no transaction was open
@@ -500,34 +699,73 @@ class Outbox:
         if not ids:
             return 0
         with self._lock:
-            db = self._conn()
-            # A delete commits without its own fsync (WAL + synchronous NORMAL): losing
-            # it to a power cut only brings acknowledged rows back, sent again with
-            # their stable ids (at least once; consumers de-duplicate), and the next
-            # FULL commit of `submit` syncs the WAL with these frames in it. That
-            # halves the fsyncs and the time this lock is held against the pipeline.
-            relax = self.cfg.synchronous is Synchronous.FULL
             try:
-                if relax:
-                    db.execute("PRAGMA synchronous = NORMAL")
-                db.execute("BEGIN IMMEDIATE")
-                sizes: list[tuple[int]] = []
-                for run in id_runs(ids):
-                    sizes += db.execute(_DELETE_RUN_SQL, run).fetchall()
-                db.execute("COMMIT")
-                n, freed = len(sizes), sum([s for (s,) in sizes])
+                n = self._delete(ids)
             except sqlite3.Error as exc:
-                self._rollback()
-                self.metrics.outbox_errors.labels(_error_reason(exc)).inc()
-                raise
-            finally:
-                if relax:
-                    with contextlib.suppress(sqlite3.Error):
-                        db.execute("PRAGMA synchronous = FULL")
-            self._rows -= n
-            self._bytes -= freed
-            self._forget(ids)
-            return n
+                if _error_reason(exc) != "disk_full":
+                    raise
+                # Deletes go first: the reserve is given up for them (and the checkpoint
+                # that frees the WAL), then they are tried once more.
+                self._enter_tight("disk_full")
+                self._release_reserve()
+                self._checkpoint()
+                n = self._delete(ids)
+            wrote = False
+            if self.tight:
+                self._give_back_space()
+                if self._pending or self._pending_seqs:
+                    # The room the delete freed takes the backlog now, not at the next tick.
+                    wrote = self._flush()
+                    self.last_write_ok = wrote
+                    if not wrote:
+                        self._bound_pending()
+                    self._log_drops(self.clock())
+                    self._gauges()
+        if wrote:
+            for fn in self.on_written:
+                fn()
+        return n
+
+    def _give_back_space(self) -> None:
+        """Tight mode, after a delete: the pages it freed go back to the file system (so
+        the reserve and the backlog find room) and the WAL is truncated."""
+        db = self._conn()
+        try:
+            db.execute("PRAGMA incremental_vacuum").fetchall()
+        except sqlite3.Error as exc:
+            self.metrics.outbox_errors.labels(_error_reason(exc)).inc()
+        self._checkpoint()
+
+    def _delete(self, ids: Sequence[int]) -> int:
+        """One delete transaction (lock held); raises after rolling back."""
+        db = self._conn()
+        # A delete commits without its own fsync (WAL + synchronous NORMAL): losing
+        # it to a power cut only brings acknowledged rows back, sent again with
+        # their stable ids (at least once; consumers de-duplicate), and the next
+        # FULL commit of `submit` syncs the WAL with these frames in it. That
+        # halves the fsyncs and the time this lock is held against the pipeline.
+        relax = self.cfg.synchronous is Synchronous.FULL
+        try:
+            if relax:
+                db.execute("PRAGMA synchronous = NORMAL")
+            db.execute("BEGIN IMMEDIATE")
+            sizes: list[tuple[int]] = []
+            for run in id_runs(ids):
+                sizes += db.execute(_DELETE_RUN_SQL, run).fetchall()
+            db.execute("COMMIT")
+            n, freed = len(sizes), sum([s for (s,) in sizes])
+        except sqlite3.Error as exc:
+            self._rollback()
+            self.metrics.outbox_errors.labels(_error_reason(exc)).inc()
+            raise
+        finally:
+            if relax:
+                with contextlib.suppress(sqlite3.Error):
+                    db.execute("PRAGMA synchronous = FULL")
+        self._rows -= n
+        self._bytes -= freed
+        self._forget(ids)
+        return n
 
     def sequences(self) -> dict[str, int]:
         """The last event sequence number stored per asset."""
@@ -569,24 +807,36 @@ class Outbox:
     def _gauges(self) -> None:
         self.metrics.outbox_rows.set(self._rows)
         self.metrics.outbox_bytes.set(self._bytes)
+        self.metrics.outbox_memory_rows.set(len(self._pending))
 
     def status(self) -> dict[str, Any]:
         """For `/status` and the retained status topic."""
         doc: dict[str, Any] = {"rows": self._rows, "bytes": self._bytes,
-                               "pending_in_memory": len(self._pending)}
+                               "pending_in_memory": len(self._pending),
+                               "pending_in_memory_bytes": self._pending_bytes,
+                               "disk_tight": self.tight}
         if self.corrupt_reset is not None:
             doc["corrupt_reset"] = self.corrupt_reset
         return doc
 
     def close(self) -> None:
+        """Write what waits in memory if the disk lets it (one more try), count and log
+        what it does not as dropped (reason `shutdown`), checkpoint, close."""
         with self._lock:
             if self._db is not None:
-                try:
-                    if self._pending:
-                        self.log.error(kv("outbox closing with unwritten messages",
-                                          pending=len(self._pending)))
+                if self._pending or self._pending_seqs:
+                    self._flush()
+                if self._pending:
+                    dropped = Counter(m.kind.label for m, _ in self._pending)
+                    self._count_drops(dropped, "shutdown")
+                    self.log.error(kv("OUTBOX CLOSING WITH UNWRITTEN MESSAGES: dropped",
+                                      dropped=len(self._pending),
+                                      **{f"kind_{k}": n for k, n in sorted(dropped.items())},
+                                      reason="shutdown", path=str(self.path)))
+                    self._drops_unlogged.clear()
+                    self._pending, self._pending_bytes = [], 0
+                self._log_drops(float("inf"))
+                with contextlib.suppress(sqlite3.Error):
                     self._db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
-                except sqlite3.Error:
-                    pass
                 self._db.close()
                 self._db = None

@@ -32,8 +32,20 @@ MIN_NEW_WINDOWS = 60
 DEFAULT_KEEP = 5
 
 KEYS = ("enabled", "admin_socket", "models_dir", "windows", "false_alarm_budget",
-        "rehearsal_size", "rehearsal_tolerance", "max_shift", "versions_kept", "mqtt_commands")
+        "rehearsal_size", "rehearsal_tolerance", "max_shift", "versions_kept", "mqtt_commands",
+        "broker_enforces_acl")
 DEFAULT_WINDOWS = 360  # 30 minutes of 5 s windows: long enough to see a duty cycle
+# The most windows one rebaseline may collect (config, admin socket, MQTT commands): a
+# day of 5 s windows, a whole daily duty cycle. Anomaly events of a learning asset are
+# held back, so a longer learning keeps an asset's alarms (below the guard) quiet for
+# more than a day; the windows are kept in memory meanwhile (~0.5 KB each). Common
+# practice, no source.
+MAX_WINDOWS = 17_280
+# The learning guard (agent/learning.py): an anomaly at FAR_FACTOR x max_shift x the
+# threshold during learning is published and ends learning. 3: well past where the
+# verdict would refuse the new normal (max_shift on the median), so a bumpy but real
+# new normal does not trip it. Common practice, no source.
+FAR_FACTOR = 3.0
 
 
 @dataclass(frozen=True)
@@ -51,6 +63,9 @@ class RebaselineConfig:
     versions_kept: int = DEFAULT_KEEP
     # `<prefix>/commands/<asset>/rebaseline` on the upstream broker (agent/mqtt_commands.py)
     mqtt_commands: bool = False
+    # The operator's statement that the upstream broker's ACL lets only trusted users
+    # publish on `<prefix>/commands/#` (README); required for `mqtt_commands`.
+    broker_enforces_acl: bool = False
 
     @classmethod
     def defaults(cls, state_dir: Path) -> RebaselineConfig:
@@ -69,7 +84,8 @@ def parse_rebaseline(r: Any, node: Any, path: str, state_dir: Path) -> Rebaselin
         models_dir=r.path(r.get(d, "models_dir", path, "str", None)) or state_dir / "models",
         enabled=r.get(d, "enabled", path, "bool", True),
         windows=r.get(d, "windows", path, "int", DEFAULT_WINDOWS,
-                      lambda v: v >= MIN_NEW_WINDOWS, f"an integer >= {MIN_NEW_WINDOWS}"),
+                      lambda v: MIN_NEW_WINDOWS <= v <= MAX_WINDOWS,
+                      f"an integer from {MIN_NEW_WINDOWS} to {MAX_WINDOWS}"),
         false_alarm_budget=r.get(d, "false_alarm_budget", path, "num",
                                  DEFAULT_FALSE_ALARM_BUDGET, lambda v: 0 <= v < 1,
                                  "a fraction in [0, 1)"),
@@ -83,12 +99,14 @@ def parse_rebaseline(r: Any, node: Any, path: str, state_dir: Path) -> Rebaselin
         versions_kept=r.get(d, "versions_kept", path, "int", DEFAULT_KEEP,
                             lambda v: 2 <= v <= 100, "an integer from 2 to 100"),
         mqtt_commands=r.get(d, "mqtt_commands", path, "bool", False),
+        broker_enforces_acl=r.get(d, "broker_enforces_acl", path, "bool", False),
     )
 
 
 def check_mqtt_commands(r: Any, rb: RebaselineConfig, upstream: BrokerConfig,
                         path: str = "rebaseline") -> None:
-    """MQTT commands only over an authenticated upstream connection.
+    """MQTT commands only over an authenticated upstream connection, and only when the
+    operator states that the broker enforces access (`broker_enforces_acl`).
 
     The daemon cannot see who published a message: it relies on the broker's access
     control, which needs to know the gateway (a username or a TLS client certificate)
@@ -99,3 +117,10 @@ def check_mqtt_commands(r: Any, rb: RebaselineConfig, upstream: BrokerConfig,
         r.bad(f"{path}.mqtt_commands", "false unless upstream_broker authenticates (a "
               "username or tls.cert_file): the broker's ACL must decide who may publish "
               "commands", True)
+    elif rb.mqtt_commands and not rb.broker_enforces_acl:
+        # A username says who the gateway is, not that the broker keeps anyone else
+        # off the commands topic (a broker with allow_anonymous true takes any command).
+        r.bad(f"{path}.mqtt_commands", f"false unless {path}.broker_enforces_acl is true "
+              "(the operator's statement that the upstream broker refuses anonymous "
+              "clients and its ACL lets only trusted users publish on "
+              "<topic_prefix>/commands/#; see README, MQTT commands)", True)

@@ -30,6 +30,7 @@ from agent.commission.dataset import DatasetWriter, read_dataset
 from agent.commission.train import train_bundle
 from agent.config import load_config
 from agent.daemon import Daemon
+from agent.errors import ConfigError
 from agent.models import ModelStore
 from agent.rebaseline import reservoir
 from tests.brokers import Broker, wait_for
@@ -159,15 +160,21 @@ def secured_upstream(tmp_path: Path) -> Iterator[Broker]:
     b.stop()
 
 
-def _daemon(tmp_path: Path, local: Broker, upstream: Broker, models: Path,
-            mqtt_commands: bool) -> Daemon:
+def _config(tmp_path: Path, local: Broker, upstream: Broker, models: Path,
+            rebaseline: dict[str, Any]) -> Path:
     shutil.copytree(models, tmp_path / "state" / "models", symlinks=True)
     link = tmp_path / "state" / "models" / "P-1" / "default" / "active"
-    cfg_path = write_config(
+    return write_config(
         tmp_path / "watchkeep.yaml", local.port, upstream.port, [asset_doc("P-1", link)],
         upstream_broker={"host": "127.0.0.1", "port": upstream.port, "keepalive_s": 15,
                          "username": "gw1", "password": USERS["gw1"]},
-        rebaseline={"windows": 60, "mqtt_commands": mqtt_commands})
+        rebaseline={"windows": 60, **rebaseline})
+
+
+def _daemon(tmp_path: Path, local: Broker, upstream: Broker, models: Path,
+            mqtt_commands: bool) -> Daemon:
+    cfg_path = _config(tmp_path, local, upstream, models,
+                       {"mqtt_commands": mqtt_commands, "broker_enforces_acl": mqtt_commands})
     daemon = Daemon(load_config(cfg_path), logger=logging.getLogger("watchkeep.test"))
     daemon.start()
     wait_for(daemon.upstream.connected.is_set, what="upstream broker")
@@ -271,4 +278,38 @@ def test_commands_off_subscribes_nothing(tmp_path: Path, broker: Broker,
         assert tech.events() == []
     finally:
         tech.close()
+        daemon.stop()
+
+
+def test_an_anonymous_publish_broker_needs_the_operators_statement_and_windows_are_bounded(
+        tmp_path: Path, broker: Broker, upstream_broker: Broker, commissioned: Path) -> None:
+    """Issue 20: against a broker that lets anyone publish, a configured username is not
+    enough; the loader wants rebaseline.broker_enforces_acl. With it stated, the probe's
+    anonymous {"windows": 1000000000000} is turned away (bad_field) and nothing learns."""
+    cfg_path = _config(tmp_path, broker, upstream_broker, commissioned,
+                       {"mqtt_commands": True})
+    with pytest.raises(ConfigError) as info:
+        load_config(cfg_path)
+    (problem,) = info.value.problems
+    assert problem.key_path == "rebaseline.mqtt_commands"
+    assert "rebaseline.broker_enforces_acl is true" in problem.expected
+
+    text = cfg_path.read_text().replace("mqtt_commands: true",
+                                        "mqtt_commands: true\n  broker_enforces_acl: true")
+    cfg_path.write_text(text)
+    daemon = Daemon(load_config(cfg_path), logger=logging.getLogger("watchkeep.test"))
+    daemon.start()
+    anon = mqtt.Client(CallbackAPIVersion.VERSION2, client_id="anonymous-prankster")
+    anon.connect("127.0.0.1", upstream_broker.port)
+    anon.loop_start()
+    try:
+        wait_for(daemon.upstream.commands_subscribed.is_set, what="commands subscribed")
+        info_ = anon.publish(COMMAND, json.dumps({"windows": 1_000_000_000_000}), qos=1)
+        info_.wait_for_publish(10)
+        wait_for(lambda: _rejected(daemon, "bad_field") == 1, what="the command turned away")
+        assert daemon.status()["assets"][0]["learning"] is None
+        assert _count(daemon, "watchkeep_mqtt_commands_total", outcome="accepted") == 0
+    finally:
+        anon.disconnect()
+        anon.loop_stop()
         daemon.stop()

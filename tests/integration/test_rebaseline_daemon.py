@@ -46,6 +46,7 @@ from tests.helpers import (
 )
 
 HEAD_BAR = 0.8
+SMALL_HEAD_BAR = 0.2  # a modification that raises but stays under the learning guard
 
 
 def _signal(rng: np.random.Generator, load: float, n: int, head: float,
@@ -224,3 +225,47 @@ def test_rebaseline_through_the_admin_socket(running) -> None:
     assert store.active_version("P-1", "default") == 1
     seqs = [e["data"]["sequence"] for e in collector.events()]
     assert seqs == sorted(seqs)
+
+
+@pytest.mark.parametrize("accept_shift", [False, True], ids=["plain", "accept-shift"])
+def test_an_anomaly_far_past_the_learning_guard_is_published_and_ends_learning(
+        running, accept_shift: bool) -> None:
+    """While learning, a raise the new normal could explain (the modification, under
+    3 x max_shift x threshold) is held back; a fault far past that (here the current
+    shifted by 24 A) publishes the held anomaly.raised and ends learning with
+    model.rebaseline {phase: aborted}; with --accept-shift the anomaly is published and
+    learning goes on."""
+    daemon, collector, pub, store, sock = running
+    t = float(math.floor(time.time()) - 150)
+    rc, text = _cli("rebaseline", "--asset", "P-1", "--socket", sock, "--windows", "1000",
+                    "--reason", "long learning", *(["--accept-shift"] * accept_shift))
+    assert rc == 0, text
+    wait_for(lambda: _event(collector, "model.rebaseline", phase="requested"),
+             what="request event")
+    n_before = len(collector.events())
+    _send(pub, daemon, _readings(t, 15, seed=1, head=SMALL_HEAD_BAR), 15)
+    t += 15
+    reg = daemon.registry
+    states = wait_for(lambda: [s for s in collector.json("/state") if "learning" in s],
+                      what="learning states upstream")
+    ratios = [s["score"] / s["threshold"] for s in states]
+    print(f"modification while learning: score/threshold {min(ratios):.1f}-{max(ratios):.1f}")
+    held = reg.get_sample_value("watchkeep_rebaseline_held_events_total", {"asset": "P-1"})
+    assert held and held >= 1 and "anomaly.raised" not in _types(collector)[n_before:]
+    _send(pub, daemon, _readings(t, 8, seed=6, head=SMALL_HEAD_BAR, fault=3.0), 8)
+    t += 8
+    raised = wait_for(lambda: _event(collector, "anomaly.raised"), what="anomaly.raised")
+    assert raised["data"]["asset"] == "P-1"
+    reg = daemon.registry
+    if accept_shift:
+        learning = daemon.status()["assets"][0]["learning"]
+        assert learning is not None and learning["phase"] == "collecting"
+        assert _event(collector, "model.rebaseline", phase="aborted") is None
+        return
+    aborted = wait_for(lambda: _event(collector, "model.rebaseline", phase="aborted"),
+                       what="learning aborted")
+    print("aborted:", aborted["data"]["reasons"])
+    assert daemon.status()["assets"][0]["learning"] is None
+    assert reg.get_sample_value("watchkeep_rebaseline_results_total",
+                                {"asset": "P-1", "result": "aborted"}) == 1
+    assert store.active_version("P-1", "default") == 1

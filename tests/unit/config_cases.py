@@ -388,11 +388,20 @@ BROKEN: tuple[Broken, ...] = (
            ("(top level): expected a mapping of settings (site, gateway, assets, ...), "
             "got a list of 2",)),
     Broken("mqtt commands without upstream authentication",
-           _set("rebaseline", {"mqtt_commands": True}),
+           _set("rebaseline", {"mqtt_commands": True, "broker_enforces_acl": True}),
            ("rebaseline.mqtt_commands: expected false unless upstream_broker authenticates "
             "(a username or tls.cert_file): the broker's ACL must decide who may publish "
             "commands, got true (a boolean)",),
            schema_blind="a rule across sections (rebaseline and upstream_broker)"),
+    Broken("mqtt commands without the statement that the broker enforces access",
+           lambda d, t: {**d, "upstream_broker": {"username": "gw1"},
+                         "rebaseline": {"mqtt_commands": True}},
+           ("rebaseline.mqtt_commands: expected false unless rebaseline.broker_enforces_acl "
+            "is true (the operator's statement that the upstream broker refuses anonymous "
+            "clients and its ACL lets only trusted users publish on "
+            "<topic_prefix>/commands/#; see README, MQTT commands), got true (a boolean)",)),
+    Broken("rebaseline windows past the bound", _set("rebaseline", {"windows": 17_281}),
+           ("rebaseline.windows: expected an integer from 60 to 17280, got 17281",)),
     Broken("empty assets", _set("assets", []),
            ("assets: expected a non-empty list of assets, got an empty list",)),
     Broken("assets missing", _delete("assets"),

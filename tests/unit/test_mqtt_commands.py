@@ -68,6 +68,10 @@ def test_empty_object_takes_the_defaults() -> None:
     (TOPIC, b'{"windows": "many"}', False, Reason.BAD_FIELD),
     (TOPIC, b'{"windows": true}', False, Reason.BAD_FIELD),
     (TOPIC, b'{"windows": 60.5}', False, Reason.BAD_FIELD),
+    (TOPIC, b'{"windows": 1000000000000}', False, Reason.BAD_FIELD),  # issue 20's probe
+    (TOPIC, b'{"windows": 17281}', False, Reason.BAD_FIELD),  # MAX_WINDOWS + 1
+    (TOPIC, b'{"windows": 59}', False, Reason.BAD_FIELD),
+    (TOPIC, b'{"windows": -1}', False, Reason.BAD_FIELD),
     (TOPIC, b'{"accept_shift": "yes"}', False, Reason.BAD_FIELD),
     (TOPIC, b'{"mode": 3}', False, Reason.BAD_FIELD),
     (TOPIC, b'{"requested_by": "a\\nb"}', False, Reason.BAD_FIELD),
@@ -149,9 +153,9 @@ def test_offer_never_blocks() -> None:
     assert _count(reg, "watchkeep_mqtt_commands_rejected_total", reason="queue_full") == 3
 
 
-def _doc(upstream: dict[str, Any] | None) -> dict[str, Any]:
+def _doc(upstream: dict[str, Any] | None, acl: bool = True) -> dict[str, Any]:
     doc = base_doc()
-    doc["rebaseline"] = {"mqtt_commands": True}
+    doc["rebaseline"] = {"mqtt_commands": True, "broker_enforces_acl": acl}
     if upstream is not None:
         doc["upstream_broker"] = upstream
     return doc
@@ -177,6 +181,27 @@ def test_config_accepts_commands_with_authentication(tmp_path: Path) -> None:
     tls = {"tls": {"cert_file": str(tmp_path / "gw1.pem"), "key_file": str(tmp_path / "gw1.key")}}
     cfg = parse_config(_doc(tls), tmp_path)
     assert cfg.rebaseline is not None and cfg.rebaseline.mqtt_commands
+
+
+def test_config_refuses_commands_unless_the_broker_is_stated_to_enforce_access(
+        tmp_path: Path) -> None:
+    """A username alone is not enough: broker_enforces_acl must say the broker's ACL
+    keeps others off the commands topic (the error is at rebaseline.mqtt_commands)."""
+    with pytest.raises(ConfigError) as info:
+        parse_config(_doc({"username": "gw1", "password": "s3cret"}, acl=False), tmp_path)
+    (p,) = info.value.problems
+    assert p.key_path == "rebaseline.mqtt_commands"
+    assert "rebaseline.broker_enforces_acl is true" in p.expected
+
+
+def test_the_windows_bound_is_named_at_its_key_path(tmp_path: Path) -> None:
+    """rebaseline.windows past MAX_WINDOWS is a config error at that key."""
+    doc = base_doc()
+    doc["rebaseline"] = {"windows": 17_281}
+    with pytest.raises(ConfigError) as info:
+        parse_config(doc, tmp_path)
+    (p,) = info.value.problems
+    assert p.key_path == "rebaseline.windows" and "from 60 to 17280" in p.expected
 
 
 def test_commands_are_off_by_default(tmp_path: Path) -> None:

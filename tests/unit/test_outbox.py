@@ -241,6 +241,35 @@ def test_disk_full_is_counted_kept_and_retried_in_order(tmp_path: Path) -> None:
     assert ob.status()["pending_in_memory"] == 0
 
 
+def test_the_backlog_in_memory_is_bounded_by_bytes_and_every_drop_counted(
+        tmp_path: Path) -> None:
+    """File full: the backlog kept in memory stays within max_memory_bytes by the drop
+    policy (scores before anomalies), each drop counted by kind and reason memory_full."""
+    ob, reg = make(tmp_path / "o.sqlite", max_memory_bytes=65536)
+    ob.submit([msg("A0", Kind.ANOMALY)])
+    db = ob._conn()
+    db.execute(f"PRAGMA max_page_count = {db.execute('PRAGMA page_count').fetchone()[0]}")
+    ob.submit([msg(f"S{i}", Kind.SCORE, size=1000) for i in range(40)])
+    ob.submit([msg(f"A{i}", Kind.ANOMALY, size=1000) for i in range(1, 41)])
+    status = ob.status()
+    kept = status["pending_in_memory"]
+    sizes = [message_size(msg(f"S{i}", Kind.SCORE, size=1000)) for i in range(40)] + \
+        [message_size(msg(f"A{i}", Kind.ANOMALY, size=1000)) for i in range(1, 41)]
+    k = next(k for k in range(41) if sum(sizes[k:]) <= 65536)  # the oldest scores go
+    assert status["pending_in_memory_bytes"] == sum(sizes[k:]) <= 65536
+    assert kept == 80 - k and k > 0
+    assert drops(reg) == {"score": k, "state": 0, "event": 0, "anomaly": 0}
+    assert reg.get_sample_value("watchkeep_outbox_dropped_by_reason_total",
+                                {"reason": "memory_full"}) == k
+    assert reg.get_sample_value("watchkeep_outbox_memory_rows") == kept
+    db.execute("PRAGMA max_page_count = 1073741823")
+    ob.submit([msg("A41", Kind.ANOMALY)])
+    got = names(ob)
+    assert got == ["A0"] + [f"S{i}" for i in range(k, 40)] + \
+        [f"A{i}" for i in range(1, 42)]
+    assert reg.get_sample_value("watchkeep_outbox_memory_rows") == 0
+
+
 def _garbage(p: Path) -> None:
     p.write_bytes(b"this is not an outbox, just noise " * 200)
 
