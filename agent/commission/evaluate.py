@@ -38,6 +38,7 @@ from typing import Any, TextIO
 import numpy as np
 
 from agent.bundle import Bundle, load_bundle
+from agent.commission.coverage import window_geometry
 from agent.commission.dataset import Dataset, read_dataset
 from agent.commission.inject import FaultKind, InjectSpec, inject
 from agent.commission.inject_raw import (
@@ -512,6 +513,20 @@ def _scenario(name: str, source: str, scores: np.ndarray, ds: Dataset, kinds: np
                           clear, params), alts)
 
 
+def _promise(cal: Mapping[str, Any]) -> str:
+    """What the bundle's calibration promised about false alarms (model.json)."""
+    budget = cal.get("false_alarm_budget_per_week")
+    if budget is None:
+        return (f"the bundle's threshold comes from a {cal.get('method', 'unknown')} "
+                "calibration that states no false-alarm rate per week")
+    if cal.get("budget_promised"):
+        return (f"the bundle promises about {cal.get('expected_false_alarms_per_week')} false "
+                f"alarm(s) per asset-week (budget {budget:g}; forward-validated)")
+    return (f"the bundle does not promise its budget of {budget:g} false alarm(s) per "
+            f"asset-week: its recording was too short or unsteady (see model.json "
+            f"calibration.reasons)")
+
+
 def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | None = None,
              inject_specs: Sequence[InjectSpec] = (),
              params: DetectorParams | None = None,
@@ -527,10 +542,13 @@ def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | N
     left out. Windows inside the span the bundle was trained and calibrated on are
     counted (`dataset.fitted_windows`, a note), or left out with `held_out`.
     """
-    params = params or DetectorParams()
     meta = bundle.meta
     notes: list[str] = []
     ds = dataset
+    # The detector as the daemon applies it to these windows (strided over hopping ones).
+    geo = window_geometry(ds.window, ds.window_start, ds.window_end)
+    params = (params or DetectorParams()).over_windows(geo.length_s, geo.hop_s)
+    notes.append(_promise(meta.raw.get("calibration") or {}))
     modes = ds.modes
     if meta.mode in modes:
         if len(modes) > 1:
