@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: test demo bench lint typecheck clean test-deps dist
+.PHONY: test demo bench lint typecheck clean test-deps dist deb
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -15,10 +15,16 @@ $(STAMP): pyproject.toml
 	  -r tests/spb_peer_requirements.txt
 	touch $(STAMP)
 
-# The Debian packages the tests need (mosquitto, prometheus, systemd, openssl, nats-server): the list
+# The Debian packages the tests need (mosquitto, prometheus, systemd, openssl, nats-server,
+# debootstrap, dpkg-dev): the list
 # is in .ci/test-deps; as root it installs what is missing, otherwise prints the apt-get line.
 test-deps:
 	@bash .ci/test-deps
+
+# watchkeep_<version>-1_<arch>.deb in dist/ (packaging/debian/README.md). Needs
+# python3-venv and dpkg-dev (build-deb names what is missing).
+deb:
+	/usr/bin/python3 packaging/debian/build-deb --out dist
 
 test: $(STAMP) test-deps
 	$(BIN)/ruff check agent simulator tests
