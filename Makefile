@@ -16,8 +16,8 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 # The Debian packages the tests need (mosquitto, prometheus, systemd, openssl, nats-server,
-# debootstrap, dpkg-dev): the list
-# is in .ci/test-deps; as root it installs what is missing, otherwise prints the apt-get line.
+# debootstrap, dpkg-dev): the list is in .ci/test-deps; as root it installs what is
+# missing, otherwise prints the apt-get line.
 test-deps:
 	@bash .ci/test-deps
 

@@ -4,8 +4,8 @@ clean, an upgrade keeps the configuration, and a purge leaves nothing behind.
 One root for the whole module, made with debootstrap (cached as a tarball under
 /var/cache/watchkeep-tests/, keyed by suite and architecture) and used through chroot
 with /proc and a read-only bind of /dev mounted; the tests run in file order on it.
-Needs root, debootstrap and dpkg-dev; skipped otherwise, and failed instead when
-WATCHKEEP_CI=1 (set by .ci/run), so CI never skips it silently.
+Needs root, debootstrap and dpkg-dev (.ci/test-deps); skipped otherwise, and failed
+instead when WATCHKEEP_CI=1 (set by .ci/run; tests/conftest.py fails any skip then too).
 """
 
 from __future__ import annotations
