@@ -47,6 +47,12 @@ class Reason(StrEnum):
     # sparkplug-b (agent/core/sparkplug.py)
     NO_BIRTH = "no_birth"            # data before the birth certificate it needs
     UNKNOWN_ALIAS = "unknown_alias"  # a metric its birth certificate did not declare
+    # A json-batch block whose rate is not a positive finite number within
+    # `RATE_TOLERANCE` of the channel's configured `rate_hz`.
+    BAD_RATE = "bad_rate"
+    # A message whose newest sample is far ahead of the channel's time base (the window
+    # cursor guard, agent/core/timebase.py); counted by the daemon, not by the decoder.
+    AHEAD = "ahead"
 
 
 class Rejected(Exception):
@@ -63,6 +69,15 @@ _TEXT_NUMBER = re.compile(r"[+-]?(?:\d+\.?\d*|\.\d+)(?:[eE][+-]?\d+)?")
 _TEXT_NON_FINITE = re.compile(r"[+-]?(?:nan|inf|infinity)", re.IGNORECASE)
 _NUMBER_TYPES = frozenset({int, float})
 _MISSING = object()
+
+# How far a json-batch block's own `rate_hz` may be from the channel's configured rate,
+# as a fraction of it. Windows count coverage against the configured rate, so a block
+# at another rate would over- or under-fill them anyway; 10 % leaves room for a
+# device that reports its measured rate (crystal tolerances are ~100 ppm) or a
+# rounded one (25.6 kHz reported as 25000), and refuses every absurd rate (0,
+# negative, 5e-324, 1e308) that would put sample times at infinity or all on one
+# instant. Common practice, no source.
+RATE_TOLERANCE = 0.10
 
 
 def _field(doc: Any, dotted: str) -> Any:
@@ -98,6 +113,8 @@ def _loads_relaxed(payload: bytes) -> Any:
         return json.loads(payload)
     except (ValueError, UnicodeDecodeError) as exc:
         raise Rejected(Reason.MALFORMED, str(exc)[:120]) from None
+    except RecursionError:  # nesting deeper than the stdlib parser's recursion limit
+        raise Rejected(Reason.MALFORMED, "JSON nested too deeply") from None
 
 
 def _timestamp(doc: dict[str, Any], ch: ChannelConfig, arrival: float,
@@ -228,8 +245,9 @@ def _decode(payload: bytes, ch: ChannelConfig, arrival: float, max_payload_bytes
     rate_raw = _field(doc, ch.rate_field)
     rate = ch.rate_hz if rate_raw is _MISSING or rate_raw is None \
         else _number(rate_raw, ch.rate_field)
-    if rate <= 0:
-        raise Rejected(Reason.WRONG_TYPE, f"{ch.rate_field} must be > 0")
+    if not abs(rate - ch.rate_hz) <= RATE_TOLERANCE * ch.rate_hz:
+        raise Rejected(Reason.BAD_RATE, f"{ch.rate_field} {rate!r} is not within "
+                       f"{RATE_TOLERANCE:.0%} of the channel's {ch.rate_hz:g} Hz")
     # Only numbers: array('d') refuses strings, null, lists and objects (TypeError), but
     # would take true as 1.0; a single reading that is a bool is a wrong type, so a block
     # element is one too. JSON makes a bool only from a `true` or `false` literal, so the
@@ -251,7 +269,15 @@ def _decode(payload: bytes, ch: ChannelConfig, arrival: float, max_payload_bytes
         bad = sum(1 for v in arr if not math.isfinite(v))
         if bad:
             raise Rejected(Reason.NON_FINITE, f"{bad} samples")
-    return Block(ts, rate, arr), doc
+    block = Block(ts, rate, arr)
+    if len(arr) > 1:
+        # The block's span is bounded like its first time: its last sample must be
+        # within the clock skew of arrival too (so a block spans at most 2 x skew).
+        last = block.time_of(len(arr) - 1)
+        if not abs(last - arrival) <= max_skew_s:
+            raise Rejected(Reason.CLOCK_SKEW, f"the block's last sample is "
+                           f"{last - arrival:+.0f} s from now")
+    return block, doc
 
 
 def _may_hold_bool(payload: bytes) -> bool:

@@ -69,12 +69,13 @@ def test_text_time_is_arrival_time_even_if_it_looks_like_a_timestamp() -> None:
 
 
 def test_batch_timestamps_are_first_plus_i_over_rate() -> None:
-    """json-batch sample i is at ts + i / rate_hz, with the payload's rate."""
-    payload = json.dumps({"ts": ARRIVAL - 1.0, "rate_hz": 250.0,
+    """json-batch sample i is at ts + i / rate_hz, with the payload's rate (within 10 %
+    of the channel's)."""
+    payload = json.dumps({"ts": ARRIVAL - 1.0, "rate_hz": 102.4,
                           "values": [0.5, -0.5, 1, 2, 3]}).encode()
     t, v = run(payload, BATCH)
     np.testing.assert_array_equal(v, [0.5, -0.5, 1.0, 2.0, 3.0])
-    np.testing.assert_allclose(t, ARRIVAL - 1.0 + np.arange(5) / 250.0, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(t, ARRIVAL - 1.0 + np.arange(5) / 102.4, rtol=0, atol=1e-9)
     assert t.dtype == np.float64 and v.dtype == np.float64
 
 
@@ -88,7 +89,7 @@ def test_batch_without_rate_uses_the_channel_rate_and_without_ts_arrival() -> No
 def test_batch_with_renamed_dotted_fields() -> None:
     """values_field, rate_field and ts_field take dotted paths too."""
     ch = channel(Decoder.JSON_BATCH, ts_field="hdr.t0", rate_field="hdr.fs",
-                 values_field="data.accel")
+                 values_field="data.accel", rate_hz=2.0)
     payload = json.dumps({"hdr": {"t0": ARRIVAL, "fs": 2.0}, "data": {"accel": [1.0, 2.0]}})
     t, v = run(payload.encode(), ch)
     assert t.tolist() == [ARRIVAL, ARRIVAL + 0.5] and v.tolist() == [1.0, 2.0]
@@ -96,11 +97,12 @@ def test_batch_with_renamed_dotted_fields() -> None:
 
 @given(st.lists(st.floats(allow_nan=False, allow_infinity=False, width=64), min_size=1,
                 max_size=200),
-       st.floats(min_value=0.1, max_value=1e5),
-       st.floats(min_value=-MAX_SKEW_S, max_value=MAX_SKEW_S))
+       st.floats(min_value=90.0, max_value=110.0),
+       st.floats(min_value=-MAX_SKEW_S, max_value=MAX_SKEW_S - 3.0))
 def test_batch_round_trips_any_finite_block(values: list[float], rate: float,
                                             offset: float) -> None:
-    """Any finite block survives the JSON round trip exactly, evenly spaced."""
+    """Any finite block at a rate within 10 % of the channel's 100 Hz survives the JSON
+    round trip exactly, evenly spaced."""
     payload = json.dumps({"ts": ARRIVAL + offset, "rate_hz": rate, "values": values}).encode()
     t, v = decode(payload, BATCH, ARRIVAL, max_payload_bytes=1 << 20, max_skew_s=MAX_SKEW_S)
     assert v.tolist() == values
@@ -147,9 +149,20 @@ REJECTIONS = [
     (BATCH, b'{"values": [[1, 2], [3, 4]]}', Reason.WRONG_TYPE),
     (BATCH, b'{"values": [[1], [2, 3]]}', Reason.WRONG_TYPE),
     (BATCH, b'{"values": [{"v": 1}]}', Reason.WRONG_TYPE),
-    (BATCH, b'{"values": [1, 2], "rate_hz": 0}', Reason.WRONG_TYPE),
-    (BATCH, b'{"values": [1, 2], "rate_hz": -10}', Reason.WRONG_TYPE),
+    (BATCH, b'{"values": [1, 2], "rate_hz": 0}', Reason.BAD_RATE),
+    (BATCH, b'{"values": [1, 2], "rate_hz": -10}', Reason.BAD_RATE),
     (BATCH, b'{"values": [1, 2], "rate_hz": "fast"}', Reason.WRONG_TYPE),
+    # bad_rate: not within 10 % of the channel's 100 Hz (issue 20, finding 1: 5e-324
+    # put the second sample at +infinity and stopped every asset)
+    (BATCH, b'{"values": [1, 2], "rate_hz": 5e-324}', Reason.BAD_RATE),
+    (BATCH, b'{"values": [1, 2], "rate_hz": 1e-300}', Reason.BAD_RATE),
+    (BATCH, b'{"values": [1, 2], "rate_hz": 1e308}', Reason.BAD_RATE),
+    (BATCH, b'{"values": [1, 2], "rate_hz": 89.9}', Reason.BAD_RATE),
+    (BATCH, b'{"values": [1, 2], "rate_hz": 110.1}', Reason.BAD_RATE),
+    (BATCH, b'{"values": [1, 2], "rate_hz": -0.0}', Reason.BAD_RATE),
+    # malformed: nesting past the parsers' depth (was a RecursionError, issue 20)
+    (JSON, b"[" * 4000, Reason.MALFORMED),
+    (BATCH, b'{"values": ' + b"[" * 4000, Reason.MALFORMED),
     (BATCH, b"[1, 2, 3]", Reason.WRONG_TYPE),
     (BATCH, b"5", Reason.WRONG_TYPE),
     # non_finite: the NaN/Infinity literals some publishers send, and overflow
@@ -170,6 +183,9 @@ REJECTIONS = [
     (TEXT, b"Infinity", Reason.NON_FINITE),
     (TEXT, b"-inf", Reason.NON_FINITE),
     (TEXT, b"1e400", Reason.NON_FINITE),
+    # clock_skew: a timestamp too far from arrival, either way; a block's last sample too
+    (channel(Decoder.JSON_BATCH, rate_hz=1.0),
+     f'{{"ts": {ARRIVAL - 10}, "values": {[0] * 1000}}}'.encode(), Reason.CLOCK_SKEW),
     # clock_skew: a timestamp too far from arrival, either way
     (JSON, f'{{"ts": {ARRIVAL + MAX_SKEW_S + 1}, "value": 1}}'.encode(), Reason.CLOCK_SKEW),
     (JSON, f'{{"ts": {ARRIVAL - MAX_SKEW_S - 1}, "value": 1}}'.encode(), Reason.CLOCK_SKEW),
@@ -188,8 +204,9 @@ def test_rejections_name_their_reason(ch: ChannelConfig, payload: bytes, reason:
 
 def test_every_decoder_reason_is_covered() -> None:
     """The table exercises every reason the decoders themselves can give."""
-    decoder_reasons = set(Reason) - {Reason.UNKNOWN_TOPIC, Reason.LATE,  # routing, windows
-                                     # the sparkplug-b decoder's own (test_sparkplug.py)
+    # routing, windows, the time-base guard, and the sparkplug-b decoder's own
+    # (test_sparkplug.py)
+    decoder_reasons = set(Reason) - {Reason.UNKNOWN_TOPIC, Reason.LATE, Reason.AHEAD,
                                      Reason.NO_BIRTH, Reason.UNKNOWN_ALIAS}
     covered = {r for _, _, r in REJECTIONS} | {Reason.TOO_LARGE}
     assert covered == decoder_reasons
