@@ -1,7 +1,8 @@
 """The local admin interface: a unix socket in the state directory, one JSON request per line.
 
 Not on the network at all: a unix socket is reachable only from this machine, and its
-file mode (0660: the daemon's user and group) decides who may use it. The caller's
+file mode (0600: the daemon's user, and root) decides who may use it; the state
+directory is 0700 under systemd (StateDirectoryMode=) and when watchkeep creates it. The caller's
 uid and pid come from the kernel (SO_PEERCRED), so "who asked" in the log and in the
 event is not something the caller can claim.
 
@@ -28,10 +29,11 @@ from pathlib import Path
 from typing import Any
 
 from agent.errors import WatchkeepError
+from agent.fsutil import private_dir
 from agent.logs import kv
 
 MAX_REQUEST_BYTES = 64 * 1024
-SOCKET_MODE = 0o660
+SOCKET_MODE = 0o600
 
 
 class AdminUnavailable(WatchkeepError):
@@ -106,12 +108,12 @@ class AdminServer:
         self._thread: threading.Thread | None = None
 
     def start(self) -> None:
-        self.path.parent.mkdir(parents=True, exist_ok=True)
+        private_dir(self.path.parent)
         if self.path.exists() or self.path.is_symlink():
             if _answers(self.path):
                 raise WatchkeepError(f"admin socket {self.path} is in use by another process")
             self.path.unlink()  # left behind by a daemon that did not stop cleanly
-        old = os.umask(0o117)  # the socket is born 0660, never briefly wider
+        old = os.umask(0o177)  # the socket is born 0600, never briefly wider
         try:
             srv = _Server(str(self.path), _Request)
         finally:

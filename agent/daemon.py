@@ -26,6 +26,7 @@ from agent import __version__
 from agent.bundle import Bundle, load_bundle
 from agent.config import AssetConfig, Config, IngestWorker
 from agent.errors import BundleError, ConfigError, ConfigProblem
+from agent.fsutil import private_dir
 from agent.ingest import Buffers, Ingest, IngestHandler
 from agent.ingest_worker import ProcessIngest
 from agent.learning import RebaselineManager
@@ -69,6 +70,10 @@ class PipelineLoop:
         self.log = logger
         self.clock = clock
         self.last_tick_mono = time.monotonic()
+        # When a tick last did its work for at least one asset (not raised, and not
+        # failed for every asset that has work): /healthz and the watchdog follow it.
+        self.last_ok_mono = self.last_tick_mono
+        self.tick_ok = True
         self.ticks = 0
         self.wedged = threading.Event()  # a test hook: wedges the loop to test the watchdog
         self.gauges = TickGauges(metrics, started_s=clock())
@@ -103,9 +108,11 @@ class PipelineLoop:
             t0 = time.perf_counter()
             try:
                 self.pipeline.tick(self.clock())
+                ok = not self.pipeline.all_failing
             except Exception:
                 self.log.exception("pipeline tick failed")
                 self.metrics.callback_errors.labels("pipeline").inc()
+                ok = False
             self.metrics.tick_seconds.observe(time.perf_counter() - t0)
             try:
                 self.gauges.update(self.pipeline, self.clock())
@@ -113,6 +120,9 @@ class PipelineLoop:
                 self.log.exception("updating tick gauges failed")
             self.metrics.ticks.inc()
             self.last_tick_mono = time.monotonic()
+            self.tick_ok = ok
+            if ok:
+                self.last_ok_mono = self.last_tick_mono
             self.ticks += 1
             if self.after_tick is not None:
                 try:
@@ -129,7 +139,9 @@ class PipelineLoop:
             now = time.monotonic()
             self.metrics.tick_lag.set(max(0.0, now - next_at))
             self.tick_once()
-            if now - last_wd >= self.watchdog_every_s:
+            # Only a tick that did its work keeps systemd's watchdog fed: a loop that
+            # ticks but fails for every asset is restarted like a wedged one.
+            if self.tick_ok and now - last_wd >= self.watchdog_every_s:
                 self.notifier.watchdog()
                 last_wd = now
             next_at += self.tick_s
@@ -192,7 +204,7 @@ class Daemon:
     def start(self) -> None:
         cfg = self.cfg
         try:
-            cfg.state_dir.mkdir(parents=True, exist_ok=True)
+            private_dir(cfg.state_dir)  # 0700 when made here, whatever the umask
         except OSError as exc:
             raise ConfigError([ConfigProblem(
                 "state_dir", "a directory watchkeep can create and write",
@@ -291,11 +303,24 @@ class Daemon:
         handler.wake = self.loop.wake
 
     def healthy(self) -> tuple[bool, str]:
-        age = time.monotonic() - self.loop.last_tick_mono
+        loop = self.loop
+        age = time.monotonic() - loop.last_tick_mono
         limit = max(5.0, 20 * self.cfg.tick_s)
         if age > limit:
             return False, f"pipeline has not ticked for {age:.1f} s"
+        if not loop.tick_ok:
+            failing = self._failing()
+            return False, ("pipeline tick failed for every asset: " + failing if failing
+                           else "pipeline tick failed")
+        failing = self._failing()
+        if failing:
+            return True, f"ok: last tick {age:.2f} s ago; asset errors: {failing}"
         return True, f"ok: last tick {age:.2f} s ago"
+
+    def _failing(self) -> str:
+        """The assets whose work is failing, with the stage: `P-1 (windows), ...`."""
+        return ", ".join(f"{rt.cfg.name} ({rt.error[0]})" for rt in self.pipeline.runtimes
+                         if rt.error is not None)
 
     def reload(self) -> bool:
         """SIGHUP: apply the config file and bundles now on disk, or keep the running ones
@@ -313,6 +338,9 @@ class Daemon:
                    if rt.cfg.bundle is not None and rt.bundle is None]
         if missing:
             return False, "models not loaded: " + ", ".join(missing)
+        failing = self._failing()
+        if failing:
+            return False, "asset errors: " + failing
         return True, "ready"
 
     def status(self) -> dict[str, Any]:

@@ -12,6 +12,34 @@ from typing import BinaryIO
 FileContent = bytes | Callable[[BinaryIO], None]
 
 
+# Modes of what the daemon keeps private (issue 20): the state directory, and the files
+# and sockets in it, whatever the umask it was started with (systemd's unit sets
+# StateDirectoryMode=0700 and UMask=0077; a shell's umask is often 022).
+PRIVATE_DIR_MODE = 0o700
+PRIVATE_FILE_MODE = 0o600
+
+
+def private_dir(path: Path) -> None:
+    """Create `path` (and parents) when missing; a directory made here is 0700. An
+    existing directory keeps its mode: the operator chose it."""
+    if path.is_dir():
+        return
+    path.mkdir(parents=True, exist_ok=True)
+    os.chmod(path, PRIVATE_DIR_MODE)
+
+
+def private_file(path: Path) -> None:
+    """Make sure `path` exists as a regular file readable by the owner alone (0600),
+    created so and never briefly wider; an existing file is narrowed to 0600."""
+    fd = os.open(path, os.O_RDWR | os.O_CREAT | os.O_CLOEXEC | getattr(os, "O_NOFOLLOW", 0),
+                 PRIVATE_FILE_MODE)
+    try:
+        if os.fstat(fd).st_mode & 0o777 != PRIVATE_FILE_MODE:
+            os.fchmod(fd, PRIVATE_FILE_MODE)
+    finally:
+        os.close(fd)
+
+
 def fsync_dir(path: Path) -> None:
     """Make a rename inside `path` durable (best effort where directories cannot be opened)."""
     try:

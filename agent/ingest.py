@@ -16,6 +16,7 @@ from agent.config import AssetConfig, Config
 from agent.core.decode import Block
 from agent.core.lockstep import LockstepCut, cut_lockstep
 from agent.core.routing import Route
+from agent.core.timebase import DEFAULT_TOLERANCE_S, Step, TimeBase
 from agent.core.windows import AssembleResult, WindowAssembler, close_many
 from agent.ingest_mqtt import Ingest, IngestHandler, PlainCount, make_client
 
@@ -26,15 +27,18 @@ __all__ = ["AssetInbox", "Buffers", "ChannelBuffer", "Ingest", "IngestHandler", 
 class AssetInbox:
     """Where one asset's channel buffers put their samples: the asset's window
     assembler, under one lock that the network thread (adding samples) and the
-    pipeline (closing windows) share. Late samples are counted here until a tick
-    takes the count."""
+    pipeline (closing windows) share. Late samples, messages refused by a channel's
+    time-base guard (`ahead`) and the guard's confirmed clock steps (channel, `Step`)
+    are kept here until a tick takes them."""
 
-    __slots__ = ("assembler", "late", "liveness", "lock")
+    __slots__ = ("ahead", "assembler", "late", "liveness", "lock", "steps")
 
     def __init__(self, assembler: WindowAssembler) -> None:
         self.lock = threading.Lock()
         self.assembler = assembler
         self.late = 0
+        self.ahead = 0
+        self.steps: list[tuple[int, Step]] = []
         # (channel, death reason or None for alive again, time) from Sparkplug death and
         # birth certificates, until a tick takes them (`take_liveness`).
         self.liveness: list[tuple[int, str | None, float]] = []
@@ -46,14 +50,17 @@ class AssetInbox:
 
 
 def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
-                  lockstep: Sequence[int] = ()
+                  lockstep: Sequence[int] = (),
+                  notes: list[tuple[int, list[tuple[int, Step]]]] | None = None
                   ) -> tuple[list[AssembleResult | None], list[int], list[LockstepCut]]:
     """Every asset's windows due at `now` and the late samples counted since the last
     call, under every asset's lock, held for the one cut.
 
     The assets at the positions `lockstep` are first offered to `cut_lockstep`; those it
     cuts come back as None in the results and as rows of the returned cuts. The rest
-    are cut together by `close_many`."""
+    are cut together by `close_many`. An assembler that raises fails alone: its
+    result carries the error (`AssembleResult.error`). `notes`, when given, gets per
+    inbox (ahead messages, clock steps) taken since the last call."""
     held = []
     try:
         for ib in inboxes:
@@ -62,7 +69,10 @@ def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
         assemblers = [ib.assembler for ib in inboxes]
         results: list[AssembleResult | None]
         if lockstep:
-            cuts, _ = cut_lockstep(assemblers, lockstep, now)
+            try:
+                cuts, _ = cut_lockstep(assemblers, lockstep, now)
+            except Exception:  # leave them all to close_many, which contains errors per asset
+                cuts = []
             results = [None] * len(inboxes)
             taken = [False] * len(inboxes)
             for c in cuts:
@@ -78,6 +88,12 @@ def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
         late = [ib.late for ib in inboxes]
         for ib in inboxes:
             ib.late = 0
+        if notes is not None:
+            for ib in inboxes:
+                notes.append((ib.ahead, ib.steps))
+                if ib.ahead or ib.steps:
+                    ib.ahead = 0
+                    ib.steps = []
     finally:
         for lock in held:
             lock.release()
@@ -92,12 +108,16 @@ class ChannelBuffer:
     lock: there is no second copy for the pipeline to take over each tick.
     """
 
-    __slots__ = ("channel", "flushed_messages", "flushed_samples", "inbox", "last_arrival",
-                 "last_seq", "n_messages", "n_samples", "next_block_ts")
+    __slots__ = ("channel", "flushed_messages", "flushed_samples", "guard", "inbox",
+                 "last_arrival", "last_seq", "n_messages", "n_samples", "next_block_ts")
 
-    def __init__(self, inbox: AssetInbox, channel: int) -> None:
+    def __init__(self, inbox: AssetInbox, channel: int,
+                 tolerance_s: float = DEFAULT_TOLERANCE_S) -> None:
         self.inbox = inbox
         self.channel = channel
+        # The channel's time-base guard (agent/core/timebase.py): a message far ahead of
+        # the channel's own recent times is refused before it reaches the windows.
+        self.guard = TimeBase(tolerance_s)
         self.last_arrival = 0.0
         self.next_block_ts: float | None = None
         self.last_seq: int | None = None
@@ -111,18 +131,35 @@ class ChannelBuffer:
 
     def append(self, ts: float, value: float, arrival: float) -> None:
         inbox = self.inbox
+        guard = self.guard
         with inbox.lock:
-            if inbox.assembler.add_one(self.channel, ts, value, arrival):
-                inbox.late += 1
+            shift = guard.check(ts, arrival)
+            if shift is None:
+                inbox.ahead += 1
+            else:
+                if guard.step is not None:
+                    inbox.steps.append((self.channel, guard.step))
+                    guard.step = None
+                if inbox.assembler.add_one(self.channel, ts - shift, value, arrival):
+                    inbox.late += 1
         self.last_arrival = arrival
 
     def append_block(self, ts: np.ndarray, values: np.ndarray, arrival: float) -> None:
         """A block in time order (decoded blocks are, by construction)."""
         inbox = self.inbox
+        guard = self.guard
         with inbox.lock:
-            late = inbox.assembler.add(self.channel, ts, values, arrival, presorted=True)
-            if late:
-                inbox.late += late
+            shift = guard.check(float(ts[-1]), arrival)
+            if shift is None:
+                inbox.ahead += 1
+            else:
+                if guard.step is not None:
+                    inbox.steps.append((self.channel, guard.step))
+                    guard.step = None
+                late = inbox.assembler.add(self.channel, ts - shift if shift else ts, values,
+                                           arrival, presorted=True)
+                if late:
+                    inbox.late += late
         self.last_arrival = arrival
 
     def append_decoded(self, block: Block, arrival: float) -> None:
@@ -147,7 +184,15 @@ def append_run(bufs: Sequence[ChannelBuffer], chans: Sequence[int], ts: Sequence
     with inbox.lock:
         add = inbox.assembler.add_one
         for c, t, v, a in zip(chans, ts, values, arrivals, strict=True):
-            late += add(c, t, v, a)
+            guard = bufs[c].guard
+            shift = guard.check(t, a)
+            if shift is None:
+                inbox.ahead += 1
+                continue
+            if guard.step is not None:
+                inbox.steps.append((c, guard.step))
+                guard.step = None
+            late += add(c, t - shift, v, a)
         if late:
             inbox.late += late
     for c, a in zip(chans, arrivals, strict=True):
@@ -157,7 +202,8 @@ def append_run(bufs: Sequence[ChannelBuffer], chans: Sequence[int], ts: Sequence
 def asset_buffers(asset: AssetConfig) -> list[ChannelBuffer]:
     """The channel buffers of one asset, sharing one inbox and window assembler."""
     inbox = AssetInbox(WindowAssembler(asset.window, tuple(c.rate_hz for c in asset.channels)))
-    return [ChannelBuffer(inbox, i) for i in range(len(asset.channels))]
+    tolerance = max(DEFAULT_TOLERANCE_S, asset.window.lateness_s)
+    return [ChannelBuffer(inbox, i, tolerance) for i in range(len(asset.channels))]
 
 
 class Buffers:

@@ -286,6 +286,27 @@ class Metrics:
             "watchkeep_vibration_zone",
             "ISO 10816-3 zone of the channel's velocity RMS: 1 A, 2 B, 3 C, 4 D",
             ["asset", "channel"], registry=r)
+        # One bad message must never stop detection (issue 20).
+        self.asset_errors = Counter(
+            "watchkeep_asset_errors_total",
+            "Exceptions in one asset's work during a tick, contained to that asset, by stage "
+            "(windows, health, features, inference, detector)", ["asset", "stage"], registry=r)
+        self.asset_failing = Gauge(
+            "watchkeep_asset_failing",
+            "1 while the asset's last work in a tick failed (see watchkeep_asset_errors_total)",
+            ["asset"], registry=r)
+        self.clock_steps = Counter(
+            "watchkeep_clock_steps_total",
+            "Confirmed steps of a channel's sensor clock, followed by shifting its sample times",
+            ["asset", "channel"], registry=r)
+        self.clock_shift = Gauge(
+            "watchkeep_channel_clock_shift_seconds",
+            "Seconds subtracted from the channel's sample times since its clock stepped ahead",
+            ["asset", "channel"], registry=r)
+        self.coverage = PlainFamily(
+            "gauge", "watchkeep_window_coverage_ratio",
+            "Samples in the asset's last closed window over those its rates promise (lowest "
+            "channel); 0 after windows closed empty", ["asset"], r)
         self.limit_level = Gauge(
             "watchkeep_limit_level",
             "Level of a feature's static limit: 0 normal, 1 alert (or zone/ALARM), 2 alarm",
@@ -348,7 +369,8 @@ class TickGauges:
                 keep = {ch.name for ch in now_assets[name].cfg.channels}
                 for ch in rt.cfg.channels:
                     if ch.name not in keep:
-                        for metric in (m.samples, m.sample_age, m.gaps):
+                        for metric in (m.samples, m.sample_age, m.gaps, m.clock_steps,
+                                       m.clock_shift):
                             _forget(metric, asset=name, channel=ch.name)
         for rt in pipeline.runtimes:
             name = rt.cfg.name
@@ -377,7 +399,8 @@ class TickGauges:
         m = self.metrics
         for metric in (m.messages_received, m.samples, m.late_samples, m.windows_closed,
                        m.windows_scored, m.windows_skipped, m.score, m.threshold, m.anomalous,
-                       m.model_loaded, m.model_info, m.sample_age, m.gaps):
+                       m.model_loaded, m.model_info, m.sample_age, m.gaps, m.asset_errors,
+                       m.asset_failing, m.clock_steps, m.clock_shift, m.coverage):
             _forget(metric, asset=name)
 
 

@@ -57,7 +57,10 @@ class Notifier:
         if self._addr is None:
             return False
         try:
-            with socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM | socket.SOCK_CLOEXEC) as s:
+            # Non-blocking: a notify socket whose queue is full (a reader that stopped
+            # reading) must not wedge the pipeline thread that sends WATCHDOG=1.
+            with socket.socket(socket.AF_UNIX, socket.SOCK_DGRAM | socket.SOCK_CLOEXEC
+                               | socket.SOCK_NONBLOCK) as s:
                 s.connect(self._addr)
                 s.sendall("\n".join(lines).encode())
             return True

@@ -60,6 +60,7 @@ from typing import Any, NamedTuple
 
 from agent.config import OutboxConfig, Synchronous
 from agent.errors import OutboxError
+from agent.fsutil import private_dir, private_file
 from agent.logs import RateLimited, kv
 from agent.messages import Kind, OutMessage
 from agent.metrics import Metrics
@@ -260,11 +261,24 @@ class Outbox:
 
     def open(self) -> Outbox:
         """Open (or create) the file; move a corrupt one aside. Raises OutboxError only
-        when no usable outbox can be made at all (e.g. the directory is not writable)."""
-        self.path.parent.mkdir(parents=True, exist_ok=True)
+        when no usable outbox can be made at all (e.g. the directory is not writable).
+
+        The file is made 0600 before SQLite opens it, whatever the umask: SQLite's unix
+        VFS creates the -wal and -shm files with the database file's permissions
+        (os_unix.c, findCreateFileMode; from memory, and tests/unit/test_file_modes.py
+        checks it), so they are 0600 too."""
+        private_dir(self.path.parent)
         problem = self._check_existing()
         if problem is not None:
             self._move_aside(problem)
+        try:
+            private_file(self.path)
+            for suffix in ("-wal", "-shm"):  # left by an older run, perhaps wider
+                side = Path(f"{self.path}{suffix}")
+                if side.exists():
+                    private_file(side)
+        except OSError as exc:
+            raise OutboxError(f"outbox {self.path}: cannot create: {exc}") from exc
         try:
             self._db = self._connect()
         except sqlite3.Error as exc:

@@ -48,6 +48,7 @@ from prometheus_client import Counter, Gauge
 from agent.batched import BatchedModels
 from agent.bundle import Bundle, BundleMeta
 from agent.config import FEATURES, Config
+from agent.core.decode import Reason
 from agent.core.detector import Detector, State, Transition
 from agent.core.escalation import Escalated, leading_channels
 from agent.core.events import EventType, Source, make_event, rfc3339, severity_for, top_contributors
@@ -59,9 +60,10 @@ from agent.core.lockstep import LockstepCut
 from agent.core.modes import UNKNOWN_MODE
 from agent.core.spectral import spectral_features
 from agent.core.suspect import ALONE_SHARE, dominant_channel, drifting_channel
+from agent.core.timebase import Step
 from agent.core.windows import Block, ClosedWindow
 from agent.ingest import AssetInbox, Buffers, close_inboxes
-from agent.logs import kv
+from agent.logs import RateLimited, kv
 from agent.messages import Kind, OutMessage
 from agent.metrics import Metrics, PlainSeries
 from agent.runtime import AssetRuntime
@@ -163,6 +165,15 @@ class Pipeline:
         self._layout_keys: dict[int, tuple[np.ndarray, bytes]] = {}
         self._scaler_cache: dict[int, tuple[tuple[Bundle, ...], np.ndarray, np.ndarray]] = {}
         self._plans: dict[tuple[int, ...], _Plan] = {}
+        # Containment (issue 20): the assets whose work failed in this tick, and whether
+        # every asset that has had work is failing now (the daemon's health and
+        # watchdog follow it).
+        self._failed_now: set[str] = set()
+        self.all_failing = False
+        self._n_worked = sum(1 for rt in runtimes if rt.worked)
+        self._n_failing = sum(1 for rt in runtimes if rt.error is not None)
+        self._errlog = RateLimited(logger)
+        self._ahead = metrics.messages_rejected.labels(Reason.AHEAD.value)
         for rt in runtimes:
             rt.shown_threshold = rt.shown_anomalous = None
             self._publish_model_gauges(rt)
@@ -178,6 +189,38 @@ class Pipeline:
     def _skip(self, rt: AssetRuntime, reason: str, n: int = 1) -> None:
         if n:
             self.metrics.windows_skipped.labels(rt.cfg.name, reason).inc(n)
+
+    def _failed(self, rt: AssetRuntime, stage: str, exc: BaseException) -> None:
+        """One asset's work failed at `stage` in this tick: count it, remember it for
+        health and status, log it (rate-limited per asset and stage); the other
+        assets' work goes on."""
+        name = rt.cfg.name
+        detail = f"{type(exc).__name__}: {exc}"[:200]
+        self.metrics.asset_errors.labels(name, stage).inc()
+        if rt.error is None:
+            self.metrics.asset_failing.labels(name).set(1)
+            self._n_failing += 1
+        rt.error = (stage, detail)
+        rt.errors += 1
+        self._failed_now.add(name)
+        self._errlog.warning(f"asset_error:{name}:{stage}", "asset failed in a tick; the "
+                             "other assets go on", asset=name, stage=stage, error=detail)
+
+    def _clock_steps(self, rt: AssetRuntime, steps: list[tuple[int, Step]]) -> None:
+        """A channel's time-base guard accepted a clock step (agent/core/timebase.py)."""
+        for ci, st in steps:
+            ch = rt.cfg.channels[ci].name
+            self.metrics.clock_steps.labels(rt.cfg.name, ch).inc()
+            self.metrics.clock_shift.labels(rt.cfg.name, ch).set(st.new_s)
+            self.log.warning(kv("sensor clock stepped; its sample times are shifted onto "
+                                "the asset's time base", asset=rt.cfg.name, channel=ch,
+                                shift_s=round(st.new_s, 3), was_s=round(st.old_s, 3)))
+
+    def _set_coverage(self, rt: AssetRuntime, cov: float) -> None:
+        rt.coverage = cov
+        if cov != rt.shown_coverage:
+            self.metrics.coverage.labels(rt.cfg.name).set(cov)
+            rt.shown_coverage = cov
 
     def tick(self, now: float) -> TickStats:
         """Run one tick at wall-clock time `now` (seconds).
@@ -201,11 +244,12 @@ class Pipeline:
         # sample arriving just after this tick (the next tick, which ingest wakes, takes
         # it); what is closed is decided again under the locks.
         due = [ai for ai, (asm, ib) in enumerate(self._screen)
-               if ib.late or ib.liveness or asm.due(now)]
+               if ib.late or ib.liveness or ib.ahead or ib.steps or asm.due(now)]
         if self._stale_at and self.judge_stale:
             due = sorted(set(due).union(self._stale_at))
         self.last_due = due
         runtimes = self.runtimes
+        self._failed_now = set()
         seq_before = [runtimes[ai].sequence for ai in due]
         lockstep: list[int] = []
         if self.lockstep:
@@ -217,29 +261,65 @@ class Pipeline:
                             if runtimes[ai].plain and not wants(runtimes[ai].cfg.name)]
         for ai in due:
             if self._inboxes[ai].liveness:  # Sparkplug deaths and births, before windows
-                self._check_liveness(runtimes[ai], self._inboxes[ai].take_liveness(), now,
-                                     out, stats)
+                try:
+                    self._check_liveness(runtimes[ai], self._inboxes[ai].take_liveness(),
+                                         now, out, stats)
+                except Exception as exc:
+                    self._failed(runtimes[ai], "health", exc)
+        notes: list[tuple[int, list[tuple[int, Step]]]] = []
         results, lates, cuts = close_inboxes([self._inboxes[ai] for ai in due], now,
-                                             lockstep)
-        for ai, res, late in zip(due, results, lates, strict=True):
+                                             lockstep, notes)
+        for ai, res, late, (ahead, steps) in zip(due, results, lates, notes, strict=True):
             if late:
                 self._m_at[ai].late.inc(late)
+            if ahead:
+                self._ahead.inc(ahead)
+            rt = runtimes[ai]
+            if steps:
+                self._clock_steps(rt, steps)
             if res is None:  # cut in lockstep
                 continue
-            rt = runtimes[ai]
-            if rt.stale_channels and self.judge_stale:
-                self._check_stale(rt, ai, now, out, stats)
-            if res.empty_skipped:
-                self._skip(rt, "no_data", res.empty_skipped)
-            for w in res.windows:
-                self._m_at[ai].closed.inc()
-                stats.windows_closed += 1
-                pending.append(self._judge_window(rt, w, out, stats))
+            if res.error is not None:
+                self._failed(rt, "windows", res.error)
+                with self._inboxes[ai].lock:  # start afresh on the next samples
+                    rt.assembler.reset()
+                continue
+            n0 = len(pending)
+            try:
+                if rt.stale_channels and self.judge_stale:
+                    self._check_stale(rt, ai, now, out, stats)
+                if res.empty_skipped:
+                    self._skip(rt, "no_data", res.empty_skipped)
+                    rt.empty_streak += res.empty_skipped
+                    if not res.windows:
+                        self._set_coverage(rt, 0.0)
+                for w in res.windows:
+                    self._m_at[ai].closed.inc()
+                    stats.windows_closed += 1
+                    rt.empty_streak = 0
+                    self._set_coverage(rt, min(w.coverage, default=1.0))
+                    pending.append(self._judge_window(rt, w, out, stats))
+            except Exception as exc:
+                self._failed(rt, "health", exc)
+                del pending[n0:]
         if pending:
             self._score(pending, out, stats)
         for cut in cuts:
-            self._score_lockstep([runtimes[due[pos]] for pos, _, _ in cut.items], cut, out,
-                                 stats)
+            self._score_lockstep(
+                [runtimes[due[pos]] for pos, _, _ in cut.items], cut, out, stats)
+        failed = self._failed_now
+        for ai in due:
+            rt = runtimes[ai]
+            if not rt.worked:
+                rt.worked = True
+                self._n_worked += 1
+            if rt.cfg.name not in failed and rt.error is not None:
+                rt.error = None
+                self._n_failing -= 1
+                self.metrics.asset_failing.labels(rt.cfg.name).set(0)
+                self.log.info(kv("asset works again", asset=rt.cfg.name))
+        # Every asset that has had work is failing: the tick failed for everyone.
+        self.all_failing = 0 < self._n_worked == self._n_failing
         if out:
             seqs = {runtimes[ai].cfg.name: runtimes[ai].sequence
                     for ai, b in zip(due, seq_before, strict=True)
@@ -499,39 +579,90 @@ class Pipeline:
         stats.events += 1
 
     def _score(self, pending: list[_Pending], out: list[OutMessage], stats: TickStats) -> None:
+        """Features, limits, inference and detectors of the general path's windows. Each
+        stage runs for all windows at once; when it raises, it runs again asset by asset
+        and only the asset that raises fails (`_failed`), the others go on."""
+        failed = self._failed_now
         todo = [p for p in pending if p.w.complete]
-        rows = self._features(todo) if todo else []
-        row_of = {id(p): r for p, r in zip(todo, rows, strict=True)}
+        row_of = self._rows(todo) if todo else {}
         items: list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]] = []
         for p in pending:
             rt = p.rt
-            row = row_of.get(id(p))
-            if row is not None and (rt.limits or rt.velocity_at):
-                self._limits(p, row, out, stats)
-            if p.reason is not None:
-                self._skip(rt, p.reason)
+            if rt.cfg.name in failed:
                 continue
-            assert row is not None
-            if self.observer is not None and (self.observes is None
-                                              or self.observes(rt.cfg.name)):
-                self.observer(rt.cfg.name, p.mode, p.w, row[rt.record_index],
-                              rt.record_names)
-            bundle, index = rt.bundle_for(p.mode)
-            if bundle is None:
-                self._skip(rt, "no_model")
-                continue
-            items.append((p, row, bundle, index))
-        results = self._infer(items) if items else {}
+            try:
+                row = row_of.get(id(p))
+                if row is not None and (rt.limits or rt.velocity_at):
+                    self._limits(p, row, out, stats)
+                if p.reason is not None:
+                    self._skip(rt, p.reason)
+                    continue
+                assert row is not None
+                if self.observer is not None and (self.observes is None
+                                                  or self.observes(rt.cfg.name)):
+                    self.observer(rt.cfg.name, p.mode, p.w, row[rt.record_index],
+                                  rt.record_names)
+                bundle, index = rt.bundle_for(p.mode)
+                if bundle is None:
+                    self._skip(rt, "no_model")
+                    continue
+                items.append((p, row, bundle, index))
+            except Exception as exc:
+                self._failed(rt, "features", exc)
+        results = self._scores(items) if items else {}
         # Step detectors in window order, so an asset's windows are judged in time order.
         for p in pending:
             got = results.get(id(p))
-            if got is None:
+            if got is None or p.rt.cfg.name in failed:
                 continue
             score, sq, bundle = got
             if not math.isfinite(score):
                 self._skip(p.rt, "model_error")
                 continue
-            self._step(p.rt, p.w.start, p.w.end, p.mode, bundle, score, sq, out, stats)
+            try:
+                self._step(p.rt, p.w.start, p.w.end, p.mode, bundle, score, sq, out, stats)
+            except Exception as exc:
+                self._failed(p.rt, "detector", exc)
+
+    def _by_asset(self, todo: Sequence[Any], rt_of: Callable[[Any], AssetRuntime]
+                  ) -> dict[int, list[Any]]:
+        groups: dict[int, list[Any]] = {}
+        for it in todo:
+            groups.setdefault(id(rt_of(it)), []).append(it)
+        return groups
+
+    def _rows(self, todo: list[_Pending]) -> dict[int, np.ndarray]:
+        """`_features` of every window, by `id` of its `_Pending`; contained per asset."""
+        try:
+            return {id(p): r for p, r in zip(todo, self._features(todo), strict=True)}
+        except Exception as exc:
+            if len({id(p.rt) for p in todo}) == 1:
+                self._failed(todo[0].rt, "features", exc)
+                return {}
+        rows: dict[int, np.ndarray] = {}
+        for part in self._by_asset(todo, lambda p: p.rt).values():
+            try:
+                rows.update((id(p), r) for p, r in zip(part, self._features(part), strict=True))
+            except Exception as exc:
+                self._failed(part[0].rt, "features", exc)
+        return rows
+
+    def _scores(self, items: list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]]
+                ) -> dict[int, tuple[float, np.ndarray, Bundle]]:
+        """`_infer`, contained per asset."""
+        try:
+            return self._infer(items)
+        except Exception as exc:
+            if len({id(it[0].rt) for it in items}) == 1:
+                self._failed(items[0][0].rt, "inference", exc)
+                return {}
+        results: dict[int, tuple[float, np.ndarray, Bundle]] = {}
+        for part in self._by_asset(items, lambda it: it[0].rt).values():
+            try:
+                results.update(self._infer(part))
+            except Exception as exc:
+                self._failed(part[0][0].rt, "inference", exc)
+        return results
 
     def _infer(self, items: list[tuple[_Pending, np.ndarray, Bundle, np.ndarray]]
                ) -> dict[int, tuple[float, np.ndarray, Bundle]]:
@@ -635,9 +766,9 @@ class Pipeline:
 
     # -- the lockstep path ---------------------------------------------------------------
 
-    def _score_lockstep(self, rts: list[AssetRuntime], cut: LockstepCut,
-                        out: list[OutMessage], stats: TickStats) -> None:
-        """Score the windows of one lockstep cut (`agent/core/lockstep.py`): the plain
+    def _lockstep_scores(self, rts: list[AssetRuntime], cut: LockstepCut
+                        ) -> tuple[list[float], np.ndarray, np.ndarray]:
+        """The scores of one lockstep cut's windows (`agent/core/lockstep.py`): the plain
         assets' complete windows, one per asset, rows of one matrix.
 
         What `_score` would do with these windows, in fewer steps: the feature rows are
@@ -658,6 +789,7 @@ class Pipeline:
             sel = rts
         scores: list[float] = []
         ok = np.ones(len(sel), dtype=bool)
+        err = np.empty((0, 0))
         if sel:
             plan = self._plan(sel)
             x = rows[:, plan.index] if plan.index is not None else \
@@ -679,10 +811,37 @@ class Pipeline:
         self.metrics.inference_seconds.observe(time.perf_counter() - t1)
         if self._batched_stale:
             self._rebuild_batched()
+        return scores, ok, err
+
+    def _score_lockstep(self, rts: list[AssetRuntime], cut: LockstepCut,
+                                  out: list[OutMessage], stats: TickStats) -> None:
+        """Score the windows of one lockstep cut (`_lockstep_scores`) and step the
+        assets' detectors, contained per asset: when the cut's joint work raises, each
+        asset's rows are scored alone and only an asset that raises again fails."""
+        try:
+            scores, ok, err = self._lockstep_scores(rts, cut)
+        except Exception as exc:
+            if len(rts) == 1:
+                self._m[rts[0].cfg.name].closed.inc()
+                stats.windows_closed += 1
+                self._failed(rts[0], "features", exc)
+                return
+            n = cut.n_ch
+            for j, (rt, item) in enumerate(zip(rts, cut.items, strict=True)):
+                one = LockstepCut([item], cut.values[j * n:(j + 1) * n], n, cut.width)
+                self._score_lockstep([rt], one, out, stats)
+            return
         k = 0
         m_at = self._m
+        expected = rts[0].assembler._expected
+        cov = min(1.0, cut.width / expected[0]) if expected and expected[0] else 1.0
         for rt, (_, start, end) in zip(rts, cut.items, strict=True):
             m_at[rt.cfg.name].closed.inc()
+            rt.empty_streak = 0
+            if cov != rt.shown_coverage:
+                self._set_coverage(rt, cov)
+            else:
+                rt.coverage = cov
             bundle = rt.asset_bundle
             if bundle is None:
                 self._skip(rt, "no_model")
@@ -695,8 +854,11 @@ class Pipeline:
             if not math.isfinite(score):
                 self._skip(rt, "model_error")
                 continue
-            self._step(rt, start, end, rt.mode, bundle, score, err[j], out, stats)
-        stats.windows_closed += n
+            try:
+                self._step(rt, start, end, rt.mode, bundle, score, err[j], out, stats)
+            except Exception as exc:
+                self._failed(rt, "detector", exc)
+        stats.windows_closed += len(rts)
 
     def _plan(self, rts: list[AssetRuntime]) -> _Plan:
         """How to score one window of each of `rts` (assets with a model) together,
@@ -920,7 +1082,7 @@ class Pipeline:
     def status(self) -> dict[str, Any]:
         """Per-asset status for `/status` and `watchkeep status`."""
         assets = []
-        for rt in self.runtimes:
+        for ai, rt in enumerate(self.runtimes):
             meta = rt.bundle.meta if rt.bundle else None
             serving, _ = rt.bundle_for(rt.mode)
             if serving is not None:
@@ -947,6 +1109,16 @@ class Pipeline:
                                   if h.faulty},
                 "velocity_rms_mm_s": {k: round(v, 4) for k, v in rt.last_velocity_mm_s.items()},
                 "limits": limits,
+                # Containment (issue 20): the stage and error of the asset's failing work,
+                # None while it works; failures in all.
+                "error": ({"stage": rt.error[0], "detail": rt.error[1]}
+                          if rt.error is not None else None),
+                "errors": rt.errors,
+                "coverage": None if rt.coverage is None else round(rt.coverage, 4),
+                "empty_windows": rt.empty_streak,
+                "clock_shift_s": {c.name: round(b.guard.shift_s, 3) for c, b in zip(
+                    rt.cfg.channels, self.buffers.by_asset[ai], strict=True)
+                    if b.guard.shift_s},
             })
         return {"site": self.cfg.site, "gateway": self.cfg.gateway, "assets": assets}
 

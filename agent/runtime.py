@@ -146,6 +146,17 @@ class AssetRuntime:
     # What the threshold and anomalous gauges were last set to by `_step` (None: unknown).
     shown_threshold: float | None = None
     shown_anomalous: int | None = None
+    # Containment (issue 20): the asset's last failure in a tick, (stage, detail), while
+    # its work keeps failing (None once a tick's work succeeds); how many failures in
+    # all; whether it has had any work yet.
+    error: tuple[str, str] | None = None
+    errors: int = 0
+    worked: bool = False
+    # Samples in the last closed window over those promised (lowest channel; 0 after
+    # empty windows) and how many windows in a row closed empty.
+    coverage: float | None = None
+    shown_coverage: float | None = None
+    empty_streak: int = 0
     # Time-domain features any consumer of the row reads (config, limits; models are
     # checked to need no others): the feature pass computes only these.
     td_needed: frozenset[str] = frozenset()

@@ -96,7 +96,10 @@ def cut_lockstep(assemblers: Sequence[WindowAssembler], candidates: Iterable[int
     unsure: dict[int, list[_Item]] = {}
     for i in candidates:
         a = assemblers[i]
-        got = _candidate(a, now)
+        try:
+            got = _candidate(a, now)
+        except Exception:  # close_many meets it again, and fails that asset alone
+            got = None
         if got is None:
             rest.append(i)
             continue

@@ -249,12 +249,14 @@ class _Group:
 
 
 class AssembleResult:
-    __slots__ = ("empty_skipped", "late_samples", "windows")
+    __slots__ = ("empty_skipped", "error", "late_samples", "windows")
 
-    def __init__(self) -> None:
+    def __init__(self, error: Exception | None = None) -> None:
         self.windows: list[ClosedWindow] = []
         self.empty_skipped = 0
         self.late_samples = 0
+        # `close_many`: the exception this assembler raised (its asset fails alone).
+        self.error = error
 
 
 class WindowAssembler:
@@ -289,6 +291,11 @@ class WindowAssembler:
         # When a window spans a whole number of hops its end is computed as the start of
         # a later window, so a sample on a boundary falls in exactly one tumbling window.
         self._span_k = round(span) if abs(span - round(span)) < 1e-9 else None
+
+    def reset(self) -> None:
+        """Forget every pending sample and the window placement, as a fresh assembler
+        (after an error left this one in a state it cannot close windows from)."""
+        self.__init__(self.cfg, self.rates_hz)  # type: ignore[misc]
 
     def _set_next(self, k: int) -> None:
         """Make window `k` the earliest open one (its samples are not touched)."""
@@ -526,17 +533,40 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     rows in step) is cut for all such assets together: one comparison and one copy
     per segment length over the stacked rows of every asset, instead of a handful of
     numpy calls per asset. Everything else goes through `close_due`.
+
+    An assembler that raises fails alone: its result is an empty one carrying the
+    exception (`AssembleResult.error`); the others' windows are cut as usual.
     """
     results: list[AssembleResult | None] = [None] * len(assemblers)
     fast: list[tuple[int, float, float, list[tuple[int, int]]]] = []
     for i, a in enumerate(assemblers):
-        kind, start, end, spans = _plan(a, now)
-        if kind == _ONE:
-            fast.append((i, start, end, spans))
-        elif kind == _NOT_DUE:
-            results[i] = AssembleResult()
-        else:
-            results[i] = a.close_due(now)
+        try:
+            kind, start, end, spans = _plan(a, now)
+            if kind == _ONE:
+                fast.append((i, start, end, spans))
+            elif kind == _NOT_DUE:
+                results[i] = AssembleResult()
+            else:
+                results[i] = a.close_due(now)
+        except Exception as exc:
+            results[i] = AssembleResult(exc)
+    try:
+        _close_fast(assemblers, fast, results, now)
+    except Exception:
+        # The joint cut failed before it changed any assembler: each alone, contained.
+        for i, *_ in fast:
+            if results[i] is None:
+                try:
+                    results[i] = assemblers[i].close_due(now)
+                except Exception as exc:
+                    results[i] = AssembleResult(exc)
+    return [r if r is not None else AssembleResult() for r in results]
+
+
+def _close_fast(assemblers: Sequence[WindowAssembler],
+                fast: list[tuple[int, float, float, list[tuple[int, int]]]],
+                results: list[AssembleResult | None], now: float) -> None:
+    """`close_many`'s joint cut of the assemblers in `fast`, results into `results`."""
     # Every (item, group) with samples, by how many each of its rows holds:
     # (item, group index, the group, its first pending index, the window's end).
     by_width: dict[int, list[tuple[int, int, _Group, int, float]]] = {}
@@ -580,7 +610,10 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
             if g.expected and low / g.expected < a.cfg.min_coverage:
                 complete = False
         if total == 0:  # an empty window: the gap logic of close_due decides
-            results[i] = a.close_due(now)
+            try:
+                results[i] = a.close_due(now)
+            except Exception as exc:
+                results[i] = AssembleResult(exc)
             continue
         res = AssembleResult()
         res.windows.append(ClosedWindow(start, end, None, None, None, complete,
@@ -594,4 +627,3 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
             else:
                 g.drop(blk.counts)
         results[i] = res
-    return [r if r is not None else AssembleResult() for r in results]
