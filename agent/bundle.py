@@ -48,6 +48,16 @@ FORMAT = "watchkeep-bundle"
 FORMAT_VERSION = 1
 MODEL_JSON = "model.json"
 MODEL_ONNX = "model.onnx"
+# Size caps, checked before a file is read (a bundle is read whole into memory, once per
+# asset and mode). model.json holds feature names, a scaler and calibration notes: a
+# few KB per hundred features, so 16 MiB is thousands of times what a real bundle
+# needs and still nothing a gateway misses. model.onnx: watchkeep's dense autoencoders
+# are kilobytes to a few MB (weights ~ 4 bytes x features x hidden width); 256 MiB
+# admits any model a gateway CPU could score per window and refuses a file that would
+# take the daemon's memory (onnxruntime holds a copy or two while it loads).
+# Common practice, no source.
+MAX_MODEL_JSON_BYTES = 16 * 1024 * 1024
+MAX_MODEL_ONNX_BYTES = 256 * 1024 * 1024
 
 
 @dataclass(frozen=True)
@@ -258,6 +268,17 @@ class Bundle:
         return err.mean(axis=1), err
 
 
+def _check_size(bundle: str, path: Path, name: str, cap: int) -> None:
+    """BundleError when the file is larger than `cap` (looked at before it is read)."""
+    try:
+        size = path.stat().st_size
+    except OSError as exc:
+        raise BundleError(bundle, f"{name} cannot be read ({exc.strerror or exc})") from exc
+    if size > cap:
+        raise BundleError(bundle, f"{name} is {size / 2**20:.1f} MiB, more than the "
+                                  f"{cap // 2**20} MiB a bundle's {name} may be")
+
+
 def load_bundle(path: str | os.PathLike[str]) -> Bundle:
     """Load and check a bundle; raises BundleError with a clear reason on any fault."""
     p = Path(path)
@@ -270,9 +291,11 @@ def load_bundle(path: str | os.PathLike[str]) -> Bundle:
         raise BundleError(sp, f"{MODEL_JSON} is missing")
     if not onnx_path.is_file():
         raise BundleError(sp, f"{MODEL_ONNX} is missing")
+    _check_size(sp, meta_path, MODEL_JSON, MAX_MODEL_JSON_BYTES)
+    _check_size(sp, onnx_path, MODEL_ONNX, MAX_MODEL_ONNX_BYTES)
     try:
         doc = json.loads(meta_path.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError, RecursionError) as exc:
         raise BundleError(sp, f"{MODEL_JSON} is not valid JSON ({exc})") from exc
     if not isinstance(doc, dict):
         raise BundleError(sp, f"{MODEL_JSON} is not a JSON object")

@@ -262,7 +262,15 @@ def worker_main(conn: Connection, cfg: Config, gen: int, level: int) -> None:
             sender.send(e)
 
     def flusher() -> None:
-        """Sends a batch `FLUSH_S` after its first sample; sends the counts now and then."""
+        """Sends a batch `FLUSH_S` after its first sample; sends the counts now and then.
+        A broken pipe (the daemon is gone) ends it quietly: the main thread sees the
+        pipe close too and ends the child."""
+        try:
+            flush_loop()
+        except (OSError, EOFError, ValueError):  # BrokenPipeError; a closed connection
+            stop.set()
+
+    def flush_loop() -> None:
         next_counts = time.monotonic() + COUNTS_EVERY_S
         while not stop.is_set():
             started = wake.wait(COUNTS_EVERY_S)

@@ -129,6 +129,14 @@ class RateLimited:
         self._lock = threading.Lock()
 
     def warning(self, key: str, msg: str, **fields: Any) -> None:
+        self._emit(key, msg, fields, exc_info=False)
+
+    def exception(self, key: str, msg: str, **fields: Any) -> None:
+        """An error with the traceback of the exception being handled: once per interval
+        per key, like `warning` (a traceback per message would flood the log)."""
+        self._emit(key, msg, fields, exc_info=True)
+
+    def _emit(self, key: str, msg: str, fields: dict[str, Any], exc_info: bool) -> None:
         now = self._clock()
         with self._lock:
             last = self._last.get(key)
@@ -139,4 +147,7 @@ class RateLimited:
             n = self._suppressed.pop(key, 0)
         if n:
             fields["suppressed"] = n
-        self._log.warning(kv(msg, **fields))
+        if exc_info:
+            self._log.error(kv(msg, **fields), exc_info=True)
+        else:
+            self._log.warning(kv(msg, **fields))

@@ -350,3 +350,37 @@ def test_reconstruct_row_is_reconstruct_one_row_at_a_time(tmp_path: Path) -> Non
         t.join()
     for o in outs:
         np.testing.assert_array_equal(o, want)
+
+
+# --- size caps (issue 20, finding 6: a 150 MB model.json was read without a cap) ------
+
+
+@pytest.mark.parametrize(("name", "size", "cap_mib"), [
+    (MODEL_JSON, 16 * 2**20 + 1, 16),
+    (MODEL_JSON, 150 * 10**6, 16),
+    (MODEL_ONNX, 256 * 2**20 + 1, 256),
+])
+def test_oversized_files_are_refused_before_they_are_read(tmp_path: Path, name: str,
+                                                           size: int, cap_mib: int) -> None:
+    """A model.json over 16 MiB or a model.onnx over 256 MiB: a clear BundleError (the
+    file is sparse: its size is looked at, never its content)."""
+    p = make(tmp_path, pca_model())
+    with open(p / name, "r+b") as f:
+        f.truncate(size)
+    why = reason(p)
+    assert why == (f"{name} is {size / 2**20:.1f} MiB, more than the {cap_mib} MiB a "
+                   f"bundle's {name} may be"), why
+
+
+def test_the_caps_are_16_and_256_mib() -> None:
+    """The caps themselves: 16 MiB and 256 MiB."""
+    from agent.bundle import MAX_MODEL_JSON_BYTES, MAX_MODEL_ONNX_BYTES
+
+    assert (MAX_MODEL_JSON_BYTES, MAX_MODEL_ONNX_BYTES) == (16 * 2**20, 256 * 2**20)
+
+
+def test_deeply_nested_model_json_is_not_valid_json(tmp_path: Path) -> None:
+    """Nesting past the parser's depth is a BundleError, not a RecursionError."""
+    p = make(tmp_path, pca_model())
+    (p / MODEL_JSON).write_text("[" * 100_000 + "]" * 100_000)
+    assert reason(p).startswith(f"{MODEL_JSON} is not valid JSON")
