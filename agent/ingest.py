@@ -133,14 +133,13 @@ class ChannelBuffer:
         inbox = self.inbox
         guard = self.guard
         with inbox.lock:
-            shift = guard.check(ts, arrival)
-            if shift is None:
+            if not guard.check(ts, arrival):
                 inbox.ahead += 1
             else:
                 if guard.step is not None:
                     inbox.steps.append((self.channel, guard.step))
                     guard.step = None
-                if inbox.assembler.add_one(self.channel, ts - shift, value, arrival):
+                if inbox.assembler.add_one(self.channel, ts, value, arrival):
                     inbox.late += 1
         self.last_arrival = arrival
 
@@ -149,15 +148,14 @@ class ChannelBuffer:
         inbox = self.inbox
         guard = self.guard
         with inbox.lock:
-            shift = guard.check(float(ts[-1]), arrival)
-            if shift is None:
+            if not guard.check(float(ts[-1]), arrival):
                 inbox.ahead += 1
             else:
                 if guard.step is not None:
                     inbox.steps.append((self.channel, guard.step))
                     guard.step = None
-                late = inbox.assembler.add(self.channel, ts - shift if shift else ts, values,
-                                           arrival, presorted=True)
+                late = inbox.assembler.add(self.channel, ts, values, arrival,
+                                           presorted=True)
                 if late:
                     inbox.late += late
         self.last_arrival = arrival
@@ -185,14 +183,13 @@ def append_run(bufs: Sequence[ChannelBuffer], chans: Sequence[int], ts: Sequence
         add = inbox.assembler.add_one
         for c, t, v, a in zip(chans, ts, values, arrivals, strict=True):
             guard = bufs[c].guard
-            shift = guard.check(t, a)
-            if shift is None:
+            if not guard.check(t, a):
                 inbox.ahead += 1
                 continue
             if guard.step is not None:
                 inbox.steps.append((c, guard.step))
                 guard.step = None
-            late += add(c, t - shift, v, a)
+            late += add(c, t, v, a)
         if late:
             inbox.late += late
     for c, a in zip(chans, arrivals, strict=True):

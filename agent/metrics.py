@@ -297,12 +297,9 @@ class Metrics:
             ["asset"], registry=r)
         self.clock_steps = Counter(
             "watchkeep_clock_steps_total",
-            "Confirmed steps of a channel's sensor clock, followed by shifting its sample times",
-            ["asset", "channel"], registry=r)
-        self.clock_shift = Gauge(
-            "watchkeep_channel_clock_shift_seconds",
-            "Seconds subtracted from the channel's sample times since its clock stepped ahead",
-            ["asset", "channel"], registry=r)
+            "Jumps ahead of a channel's time base accepted after they persisted "
+            "(a sensor clock step, data resuming after a gap)", ["asset", "channel"],
+            registry=r)
         self.coverage = PlainFamily(
             "gauge", "watchkeep_window_coverage_ratio",
             "Samples in the asset's last closed window over those its rates promise (lowest "
@@ -369,8 +366,7 @@ class TickGauges:
                 keep = {ch.name for ch in now_assets[name].cfg.channels}
                 for ch in rt.cfg.channels:
                     if ch.name not in keep:
-                        for metric in (m.samples, m.sample_age, m.gaps, m.clock_steps,
-                                       m.clock_shift):
+                        for metric in (m.samples, m.sample_age, m.gaps, m.clock_steps):
                             _forget(metric, asset=name, channel=ch.name)
         for rt in pipeline.runtimes:
             name = rt.cfg.name
@@ -400,7 +396,7 @@ class TickGauges:
         for metric in (m.messages_received, m.samples, m.late_samples, m.windows_closed,
                        m.windows_scored, m.windows_skipped, m.score, m.threshold, m.anomalous,
                        m.model_loaded, m.model_info, m.sample_age, m.gaps, m.asset_errors,
-                       m.asset_failing, m.clock_steps, m.clock_shift, m.coverage):
+                       m.asset_failing, m.clock_steps, m.coverage):
             _forget(metric, asset=name)
 
 

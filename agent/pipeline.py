@@ -207,14 +207,13 @@ class Pipeline:
                              "other assets go on", asset=name, stage=stage, error=detail)
 
     def _clock_steps(self, rt: AssetRuntime, steps: list[tuple[int, Step]]) -> None:
-        """A channel's time-base guard accepted a clock step (agent/core/timebase.py)."""
+        """A channel's time-base guard accepted a jump ahead (agent/core/timebase.py)."""
         for ci, st in steps:
             ch = rt.cfg.channels[ci].name
             self.metrics.clock_steps.labels(rt.cfg.name, ch).inc()
-            self.metrics.clock_shift.labels(rt.cfg.name, ch).set(st.new_s)
-            self.log.warning(kv("sensor clock stepped; its sample times are shifted onto "
-                                "the asset's time base", asset=rt.cfg.name, channel=ch,
-                                shift_s=round(st.new_s, 3), was_s=round(st.old_s, 3)))
+            self.log.warning(kv("channel time base jumped ahead; accepted as its new time "
+                                "base", asset=rt.cfg.name, channel=ch,
+                                jump_s=round(st.jump_s, 3)))
 
     def _set_coverage(self, rt: AssetRuntime, cov: float) -> None:
         rt.coverage = cov
@@ -1082,7 +1081,7 @@ class Pipeline:
     def status(self) -> dict[str, Any]:
         """Per-asset status for `/status` and `watchkeep status`."""
         assets = []
-        for ai, rt in enumerate(self.runtimes):
+        for rt in self.runtimes:
             meta = rt.bundle.meta if rt.bundle else None
             serving, _ = rt.bundle_for(rt.mode)
             if serving is not None:
@@ -1116,9 +1115,6 @@ class Pipeline:
                 "errors": rt.errors,
                 "coverage": None if rt.coverage is None else round(rt.coverage, 4),
                 "empty_windows": rt.empty_streak,
-                "clock_shift_s": {c.name: round(b.guard.shift_s, 3) for c, b in zip(
-                    rt.cfg.channels, self.buffers.by_asset[ai], strict=True)
-                    if b.guard.shift_s},
             })
         return {"site": self.cfg.site, "gateway": self.cfg.gateway, "assets": assets}
 

@@ -19,138 +19,103 @@ forward at most as fast as the wall clock (a live sensor, one silent for hours t
 resumes, a burst of queued old data, a test publishing a recording quickly after a
 first sample at "now"), and refuses a jump ahead. A refused message is counted as
 `ahead` (`watchkeep_messages_rejected_total{reason="ahead"}`) and never reaches the
-windows. What a continuous message can still move the cursor by is `tolerance_s`, which
-costs the other channels at most that much data once.
+windows. What a continuous message can still move the cursor by is `tolerance_s`.
 
-A sensor whose clock stepped forward and stays there sends only "ahead" messages,
-each ahead of continuity by about the same amount. After `CONFIRM_MESSAGES`
-consecutive such messages whose steps agree within the tolerance, spread over at least
-`CONFIRM_S` seconds of arrival time, the step is accepted: from then on the channel's
-sample times are shifted back by it (`shift_s`), onto the time base the asset's windows
-and its other channels are on, and the guard reports a `Step` (the daemon logs it,
-counts `watchkeep_clock_steps_total{asset,channel}` and shows the shift in
-`watchkeep_channel_clock_shift_seconds`). The asset's windows need no reset: the
-corrected samples continue where the channel left off. Any continuous message in
-between breaks the run, so an outlier mixed into a live stream is never confirmed;
-the run's messages before the confirming one are lost (counted as `ahead`).
+A stream that really moved ahead (a sensor whose clock stepped forward and stays
+there, or data that resumes after a gap) sends only "ahead" messages, each continuous
+with the one before it. After `CONFIRM_MESSAGES` such messages in a row (each within
+the tolerance of the previous one advanced by the wall time between them), the jump is
+accepted as the channel's new time base: the guard reports a `Step`, the daemon logs
+`channel time base jumped ahead; accepted` and counts
+`watchkeep_clock_steps_total{asset,channel}`, and the samples go to the windows, whose
+cursor moves on (the empty windows of the jump are skipped as `no_data`, as for any
+gap). The run's messages before the confirming one are lost (counted as `ahead`). A
+single outlier, or outliers that do not continue each other (+280 s, +150 s, ...),
+never make such a run: any message continuous with the old time base breaks it. An
+asset whose sensors have separate clocks and only one steps has its other channels'
+samples late after the jump (as before; a per-channel shift would need the asset's
+channels judged together, left for later).
 
-When the clock steps back again (a shifted channel whose messages are now behind its
-corrected time base by more than the tolerance, consistently, by the same rules), the
-shift is lowered to fit, never below zero: a channel's times are only ever moved back,
-and a sensor that is behind the gateway clock (or data replayed late) is left alone,
-as before (its samples may be late; they are never moved into newer windows).
-
-Constants: `DEFAULT_TOLERANCE_S` 2 s covers NTP-synced clocks (milliseconds) and
-broker latency with room, and stays within a window's usual lateness; the asset's
-`window.lateness_s` is used when larger. 8 messages over 5 s make a confirmed step
-take a few seconds for a 1 Hz or faster sensor, and keep a short burst from an
-outsider from re-basing a channel. Common practice, no source. Pure: times are
-parameters.
+Constants: `DEFAULT_TOLERANCE_S` 10 s covers NTP-synced clocks (milliseconds), broker
+latency and scheduling hiccups with room, also on a time-compressed clock (the demo and
+replays run at up to x15, where 0.2 s of wall time is 3 s); the asset's
+`window.lateness_s` is used when larger. What a message inside it can still do is move
+the cursor up to 10 s ahead once, costing the other channels at most that much data.
+3 messages: one outlier, or two that happen to
+agree, never re-base a channel, and a feed that resumes after a gap loses only two
+messages (a wait of some seconds as well would also refuse a recorded feed replayed
+faster than real time, which the tests and replays send). Common practice, no source.
+Pure: times are parameters.
 """
 
 from __future__ import annotations
 
 import math
 
-DEFAULT_TOLERANCE_S = 2.0
-CONFIRM_MESSAGES = 8
-CONFIRM_S = 5.0
+DEFAULT_TOLERANCE_S = 10.0
+CONFIRM_MESSAGES = 3
 
 
 class Step:
-    """A confirmed change of a channel's shift: `old_s` -> `new_s` (seconds subtracted
-    from its sample times)."""
+    """A confirmed jump of a channel's time base, `jump_s` seconds ahead."""
 
-    __slots__ = ("new_s", "old_s")
+    __slots__ = ("jump_s",)
 
-    def __init__(self, old_s: float, new_s: float) -> None:
-        self.old_s = old_s
-        self.new_s = new_s
+    def __init__(self, jump_s: float) -> None:
+        self.jump_s = jump_s
 
     def __repr__(self) -> str:
-        return f"Step(old_s={self.old_s!r}, new_s={self.new_s!r})"
+        return f"Step(jump_s={self.jump_s!r})"
 
 
 class TimeBase:
-    """One channel's guard. `check(first, newest, arrival)` before a message's samples go
-    into the windows: None rejects the message (ahead), else the shift (seconds) to
-    subtract from its sample times. A confirmed step is left in `step` for the caller
-    to report (and clear)."""
+    """One channel's guard. `check(newest, arrival)` before a message's samples go into
+    the windows: False rejects the message (ahead). A confirmed jump is left in `step`
+    for the caller to report (and clear)."""
 
-    __slots__ = ("_n", "_run_first", "_run_hi", "_run_lo", "_run_up", "arrival", "newest",
-                 "shift_s", "step", "tolerance_s")
+    __slots__ = ("_n", "_run_arrival", "_run_newest", "arrival", "newest", "step",
+                 "tolerance_s")
 
     def __init__(self, tolerance_s: float = DEFAULT_TOLERANCE_S) -> None:
         self.tolerance_s = tolerance_s
-        self.shift_s = 0.0
-        self.newest = -math.inf  # newest accepted sample time, corrected
+        self.newest = -math.inf  # newest accepted sample time
         self.arrival = -math.inf  # arrival of the last accepted message
         self.step: Step | None = None
-        self._n = 0  # messages in the current run (ahead or behind)
-        self._run_up = True  # the run is of ahead (True) or behind (False) messages
-        self._run_first = 0.0  # arrival of the run's first message
-        self._run_lo = self._run_hi = 0.0  # the run's candidate shifts, lowest and highest
+        self._n = 0  # ahead messages in the current run
+        self._run_newest = 0.0  # the run's last message: newest sample, arrival
+        self._run_arrival = 0.0
 
-    def check(self, newest: float, arrival: float) -> float | None:
-        """The shift to apply to a message whose newest (uncorrected) sample time is
-        `newest`, or None when it is ahead and rejected."""
+    def check(self, newest: float, arrival: float) -> bool:
+        """Whether a message whose newest sample time is `newest` may go to the windows."""
         ref = self.newest
-        t = newest - self.shift_s
         if ref == -math.inf:
             expected = arrival  # no history: the gateway clock
         else:
             elapsed = arrival - self.arrival
             expected = ref + elapsed if elapsed > 0.0 else ref
         tol = self.tolerance_s
-        if t <= expected + tol:
-            if self.shift_s and t < expected - tol:
-                return self._behind(newest, expected, arrival)
+        if newest <= expected + tol:
             self._n = 0
-            self._accept(t, arrival)
-            return self.shift_s
-        return self._ahead(newest, expected, arrival)
-
-    def _accept(self, t: float, arrival: float) -> None:
-        if t > self.newest:
-            self.newest = t
-        if arrival > self.arrival:
-            self.arrival = arrival
-
-    def _run(self, up: bool, cand: float, arrival: float) -> bool:
-        """Add a message with candidate shift `cand` to the run; True when confirmed."""
-        tol = self.tolerance_s
-        if self._n and self._run_up is up and cand - self._run_lo <= tol \
-                and self._run_hi - cand <= tol:
-            self._n += 1
-            self._run_lo = min(self._run_lo, cand)
-            self._run_hi = max(self._run_hi, cand)
+            if newest > ref:
+                self.newest = newest
+            if arrival > self.arrival:
+                self.arrival = arrival
+            return True
+        # Ahead. Continuous with the run's previous message?
+        if self._n:
+            gap = arrival - self._run_arrival
+            run_expected = self._run_newest + (gap if gap > 0.0 else 0.0)
+            if abs(newest - run_expected) <= tol:
+                self._n += 1
+            else:
+                self._n = 1
         else:
-            self._n, self._run_up, self._run_first = 1, up, arrival
-            self._run_lo = self._run_hi = cand
-        return self._n >= CONFIRM_MESSAGES and arrival - self._run_first >= CONFIRM_S
-
-    def _confirm(self, newest: float, arrival: float) -> float:
-        old = self.shift_s
-        # The highest candidate: no message of the run is ahead once corrected.
-        self.shift_s = max(0.0, self._run_hi)
-        self.step = Step(old, self.shift_s)
+            self._n = 1
+        self._run_newest, self._run_arrival = newest, arrival
+        if self._n < CONFIRM_MESSAGES:
+            return False
+        self.step = Step(newest - expected)
         self._n = 0
-        t = newest - self.shift_s
-        self.newest = max(self.newest, t) if self.shift_s < old else t
+        self.newest = newest
         self.arrival = max(self.arrival, arrival)
-        return self.shift_s
-
-    def _ahead(self, newest: float, expected: float, arrival: float) -> float | None:
-        # The shift that would make this message continuous.
-        if self._run(True, newest - expected, arrival):
-            return self._confirm(newest, arrival)
-        return None
-
-    def _behind(self, newest: float, expected: float, arrival: float) -> float:
-        """A shifted channel's message well behind its time base: accepted with the
-        current shift; a consistent run of them lowers the shift."""
-        if self._run(False, newest - expected, arrival):
-            return self._confirm(newest, arrival)
-        # Not `_accept`ed: the reference stays the last continuous message, so the
-        # expectation keeps advancing with the wall clock and the run's steps agree.
-        return self.shift_s
+        return True

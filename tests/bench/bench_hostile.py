@@ -172,9 +172,21 @@ def run(duration_s: float, n: int, state_dir: Path) -> dict[str, Any]:
             during = counts()
             skip_during = skipped()
             rss_flood = _vm("VmHWM")
+            # How far P-102's sample-stamped channels trail the simulated clock after the
+            # flood (P-102 gets no bad message; its pressure channel is stamped on arrival,
+            # so a lag beyond lateness_s makes its other samples late).
+            ai = names.index("P-102")
+            lags: list[float] = []
             end = start + scenario.duration_s + 10.0
+            next_probe = time.monotonic()
             while clock() < end and sim.is_alive():
-                time.sleep(0.2)
+                if time.monotonic() >= next_probe and clock() < start + scenario.duration_s:
+                    newest = max(b.guard.newest for b, ch in zip(
+                        daemon.buffers.by_asset[ai], cfg.assets[ai].channels, strict=True)
+                        if str(ch.decoder) != "text")
+                    lags.append(round(clock() - newest, 2))
+                    next_probe += 5.0
+                time.sleep(0.05)
             time.sleep(max(a.window.length_s + a.window.timeout_s
                            for a in cfg.assets) / speed + 0.5)
             after = counts()
@@ -213,6 +225,7 @@ def run(duration_s: float, n: int, state_dir: Path) -> dict[str, Any]:
                                          for r, n in skip_during[a].items()
                                          if n - skip_before[a].get(r, 0)}}
             for a in names},
+        "p102_lag_s_every_5_s_after_flood": lags,
         "bearing_fault_raised": any(e.get("subject") == "P-101" for e in raised),
         "raised": [(e.get("subject"), e.get("time")) for e in raised],
         "max_rss_mib": {"before_flood": round(rss_before / 1024, 1),
