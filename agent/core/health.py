@@ -9,7 +9,9 @@ Checks, each off unless configured (non-finite is always on):
 * `out_of_range`   a sample below `min` or above `max` (the sensor's physical range);
 * `non_finite`     a NaN or infinite sample (the decoders already reject these on the
                    wire; this catches any other path);
-* `rate_of_change` |dx/dt| between consecutive samples above `max_rate_per_s`;
+* `rate_of_change` |dx/dt| between consecutive samples above `max_rate_per_s`
+  (including the last sample of the previous window and the first of this one, so a
+  step on a window boundary is seen);
 * `node_death`,    a Sparkplug B death certificate (NDEATH of the edge node, DDEATH of
   `device_death`   the device) for a channel with `liveness`: faulty at once, until a
                    birth certificate and then clean windows.
@@ -122,10 +124,24 @@ class ChannelHealth:
         self.dead: Reason | None = None  # a death certificate's reason, until a birth
         self._flat_windows = 0
         self._clean = 0
+        # The last finite sample (value, time) of the previous window: a step that falls
+        # exactly on a window boundary has its two samples in different windows.
+        self._last: tuple[float, float] | None = None
 
     def check_window(self, values: np.ndarray, ts: np.ndarray) -> HealthChange | None:
         """Judge one closed window's samples of this channel."""
         reasons, detail = window_reasons(self.limits, values, ts)
+        limit = self.limits.max_rate_per_s
+        if limit is not None and values.size:
+            finite = np.isfinite(values)
+            if finite.any():
+                v, t = values[finite], ts[finite]
+                if self._last is not None and t[0] > self._last[1]:
+                    rate = abs(float(v[0]) - self._last[0]) / (float(t[0]) - self._last[1])
+                    if rate > limit and Reason.RATE_OF_CHANGE not in reasons:
+                        reasons.append(Reason.RATE_OF_CHANGE)
+                        detail["max_rate_per_s"] = rate
+                self._last = (float(v[-1]), float(t[-1]))
         n_fl = self.limits.flatline_windows
         if n_fl is not None:
             v = values[np.isfinite(values)]

@@ -54,3 +54,17 @@ def test_checks_are_off_unless_configured() -> None:
     ch = ChannelHealth(HealthLimits())
     assert ch.check_window(np.full(10, 1e9), TS) is None
     assert ch.check_stale(1e6) is None
+
+
+@pytest.mark.parametrize(("second", "faulty"), [
+    (np.full(10, 45.0), True),    # +25 across the boundary in 0.1 s: 250 per s
+    (np.full(10, 20.4), False),   # +0.4 in 0.1 s: 4 per s, under the limit
+])
+def test_a_step_on_a_window_boundary_is_a_rate_of_change(second: np.ndarray,
+                                                         faulty: bool) -> None:
+    """The first sample of a window is compared with the last of the window before."""
+    h = ChannelHealth(HealthLimits(max_rate_per_s=5.0))
+    t = np.arange(10) / 10.0
+    assert h.check_window(np.full(10, 20.0), t) is None
+    change = h.check_window(second, t + 1.0)
+    assert (change is not None and Reason.RATE_OF_CHANGE in change.reasons) is faulty
