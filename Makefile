@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: test demo bench lint typecheck clean test-deps dist deb
+.PHONY: test demo bench lint typecheck clean test-deps dist deb powercut
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -16,8 +16,8 @@ $(STAMP): pyproject.toml
 	touch $(STAMP)
 
 # The Debian packages the tests need (mosquitto, prometheus, systemd, openssl, nats-server,
-# debootstrap, dpkg-dev): the list is in .ci/test-deps; as root it installs what is
-# missing, otherwise prints the apt-get line.
+# debootstrap, dpkg-dev, QEMU for the power-cut VM): the list is in .ci/test-deps; as root
+# it installs what is missing, otherwise prints the apt-get line.
 test-deps:
 	@bash .ci/test-deps
 
@@ -36,6 +36,11 @@ demo: $(STAMP)
 
 bench: $(STAMP) test-deps
 	$(BIN)/python -m tests.bench
+
+# At least 50 power cuts of a KVM guest (tests/faults/powercut.py); CUTS and SYNC
+# (FULL or NORMAL) are optional. Results in bench-results/powercut-<sync>.json.
+powercut: $(STAMP) test-deps
+	$(BIN)/python -m tests.faults.powercut --cuts $${CUTS:-50} --synchronous $${SYNC:-FULL}
 
 lint: $(STAMP)
 	$(BIN)/ruff check agent simulator tests
