@@ -43,6 +43,7 @@ from typing import Any
 
 import numpy as np
 
+from agent.commission.autoencoder import subspace_layers
 from agent.commission.calibrate import (
     DEFAULT_CLEAR_RATIO,
     DEFAULT_MARGIN,
@@ -231,12 +232,8 @@ def refit_linear(layers: Sequence[DenseLayer], z_train: np.ndarray,
     untie its encoder and decoder and, on a few hundred windows, wander off the subspace
     (the rehearsal score grew 40x in a test); the least-squares subspace of new and
     rehearsal windows together is the exact answer, with the same capacity."""
-    k = int(layers[0].weight.shape[1])
     z = np.asarray(z_train, np.float64)
-    c = z.mean(axis=0)
-    _, _, vt = np.linalg.svd(z - c, full_matrices=False)
-    p = vt[:k].T
-    new = [DenseLayer(p.copy(), -(c @ p)), DenseLayer(p.T.copy(), c.copy())]
+    new = subspace_layers(z, int(layers[0].weight.shape[1]))
 
     def mse(ls: Sequence[DenseLayer], x: np.ndarray) -> float:
         return float(np.mean((forward_numpy(ls, x) - x) ** 2)) if len(x) else 0.0

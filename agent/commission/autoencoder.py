@@ -249,6 +249,17 @@ def reconstruction_scores(layers: Sequence[DenseLayer], scaler: Scaler,
 PCA_VARIANCE = 0.90
 
 
+def subspace_layers(z: np.ndarray, k: int, vt: np.ndarray | None = None) -> list[DenseLayer]:
+    """The k-dimensional principal subspace of rows `z` as two linear layers:
+    recon = (z - c) P P^T + c, i.e. layer 1: z @ P - c @ P; layer 2: h @ P^T + c
+    (`vt`: the right singular vectors of z - c when already computed)."""
+    c = z.mean(axis=0)
+    if vt is None:
+        _, _, vt = np.linalg.svd(z - c, full_matrices=False)
+    p = vt[:k].T
+    return [DenseLayer(p.copy(), -(c @ p)), DenseLayer(p.T.copy(), c.copy())]
+
+
 def fit_pca(x_train: np.ndarray, x_val: np.ndarray, *,
             scale_floor: np.ndarray | None = None,
             variance: float = PCA_VARIANCE) -> FitResult:
@@ -268,13 +279,10 @@ def fit_pca(x_train: np.ndarray, x_val: np.ndarray, *,
     total = float(var.sum())
     k = n_f - 1 if total <= 0 else int(np.searchsorted(np.cumsum(var) / total, variance) + 1)
     k = max(1, min(k, n_f - 1))
-    p = vt[:k].T
-    c = z_tr.mean(axis=0)
-    # recon = (z - c) P P^T + c  ->  layer 1: z @ P - c @ P; layer 2: h @ P^T + c
-    layers = [DenseLayer(p.copy(), -(c @ p)), DenseLayer(p.T.copy(), c.copy())]
+    layers = subspace_layers(z_tr, k, vt)
 
     def lin_mse(z: np.ndarray) -> float:
-        return float(np.mean(((z - c) @ p @ p.T + c - z) ** 2))
+        return float(np.mean((forward_numpy(layers, z) - z) ** 2))
 
     return FitResult(layers=layers, scaler=scaler, widths=(k,), train_loss=lin_mse(z_tr),
                      val_loss=lin_mse(z_va), best_epoch=0, epochs_run=0, stopped_early=False)
