@@ -375,12 +375,8 @@ def whole_asset(bundles: Mapping[str, Bundle], dataset: Dataset, *,
     if spans is not None:
         ds, spans = drop_sensor_spans(ds, spans, asset, notes)
         kinds, events = truth_from_spans(ds.window_start, ds.window_end, spans, asset)
-    elif ds.label is not None:
-        kinds = np.asarray(["" if v == 0 else f"label_{int(v)}" for v in ds.label], object)
-        events = truth_from_runs(ds.window_start, kinds)
     else:
-        kinds = np.full(ds.n_windows, "", dtype=object)
-        events = []
+        kinds, events = truth_from_labels(ds)
     scores = np.full(ds.n_windows, np.nan)
     for mode, b in bundles.items():
         mask = ds.mode == mode
@@ -513,6 +509,15 @@ def _scenario(name: str, source: str, scores: np.ndarray, ds: Dataset, kinds: np
                           clear, params), alts)
 
 
+def truth_from_labels(ds: Dataset) -> tuple[np.ndarray, list[TruthEvent]]:
+    """Per-window kind and fault events from the dataset's own `label` array (none: every
+    window is normal)."""
+    if ds.label is None:
+        return np.full(ds.n_windows, "", dtype=object), []
+    kinds = np.asarray(["" if v == 0 else f"label_{int(v)}" for v in ds.label], object)
+    return kinds, truth_from_runs(ds.window_start, kinds)
+
+
 def _promise(cal: Mapping[str, Any]) -> str:
     """What the bundle's calibration promised about false alarms (model.json)."""
     budget = cal.get("false_alarm_budget_per_week")
@@ -593,12 +598,8 @@ def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | N
                                          ds.asset or meta.asset)
         if not events:
             notes.append("no labelled fault overlaps the dataset's windows of this asset")
-    elif ds.label is not None:
-        kinds = np.asarray(["" if v == 0 else f"label_{int(v)}" for v in ds.label], object)
-        events = truth_from_runs(ds.window_start, kinds)
     else:
-        kinds = np.full(ds.n_windows, "", dtype=object)
-        events = []
+        kinds, events = truth_from_labels(ds)
     x = ds.columns(meta.feature_names)
     scores = _score(bundle, x)
     scenarios = [_scenario("recorded", "recorded", scores, ds, kinds, events, thr, clear,
