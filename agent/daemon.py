@@ -23,22 +23,22 @@ from typing import Any
 from prometheus_client import CollectorRegistry
 
 from agent import __version__
-from agent.bundle import Bundle, load_bundle
-from agent.config import AssetConfig, Config, IngestWorker
+from agent.config.load import AssetConfig, Config, IngestWorker
+from agent.delivery.outbox import Outbox
+from agent.delivery.upstream import Upstream
 from agent.errors import BundleError, ConfigError, ConfigProblem
 from agent.fsutil import private_dir
-from agent.ingest import Buffers, Ingest, IngestHandler
-from agent.ingest_worker import ProcessIngest
-from agent.learning import RebaselineManager
-from agent.logs import kv
-from agent.metrics import HttpServer, Metrics, TickGauges
-from agent.mqtt_commands import CommandReceiver
-from agent.notify import MAX_WATCHDOG_INTERVAL_S, Notifier
-from agent.outbox import Outbox
-from agent.pipeline import Pipeline, Sink
-from agent.reload import Reloader
-from agent.runtime import AssetRuntime
-from agent.upstream import Upstream
+from agent.ingest.buffers import Buffers, Ingest, IngestHandler
+from agent.ingest.parent import ProcessIngest
+from agent.learning.commands import CommandReceiver
+from agent.learning.manager import RebaselineManager
+from agent.models.bundle import Bundle, load_bundle
+from agent.ops.logs import kv
+from agent.ops.metrics import HttpServer, Metrics, TickGauges
+from agent.ops.notify import MAX_WATCHDOG_INTERVAL_S, Notifier
+from agent.ops.reload import Reloader
+from agent.pipeline.runtime import AssetRuntime
+from agent.pipeline.tick import Pipeline, Sink
 
 
 def load_asset_bundle(asset: AssetConfig, logger: logging.Logger
@@ -224,11 +224,11 @@ class Daemon:
             rt.sequence = stored.get(rt.cfg.name, rt.sequence)
         self.upstream = Upstream(cfg, self.outbox, self.metrics, self.log, clock=self.clock)
         sink: Sink = self._sink_factory(self.upstream) if self._sink_factory else self.outbox
-        # Re-learning (agent/learning.py): holds back a learning asset's anomaly events in
+        # Re-learning (agent/learning/manager.py): holds back a learning asset's anomaly events in
         # front of the sink and collects its new-normal windows from the observer.
         self.rebaseline = RebaselineManager(self, worker_env=self.rebaseline_worker_env)
         sink = self.rebaseline.wrap_sink(sink)
-        if self.rebaseline.cfg.mqtt_commands:  # agent/mqtt_commands.py; off by default
+        if self.rebaseline.cfg.mqtt_commands:  # agent/learning/commands.py; off by default
             self.commands = CommandReceiver(
                 cfg.topic_prefix, self.rebaseline.request,
                 assets=lambda: [rt.cfg.name for rt in self.pipeline.runtimes],
@@ -324,7 +324,7 @@ class Daemon:
 
     def reload(self) -> bool:
         """SIGHUP: apply the config file and bundles now on disk, or keep the running ones
-        (the contract is in agent/reload.py). Call from one thread at a time."""
+        (the contract is in agent/ops/reload.py). Call from one thread at a time."""
         if self._reloader is None:
             self._reloader = Reloader(self, clock=self.clock)
         return self._reloader.reload().ok

@@ -16,7 +16,7 @@ from typing import NoReturn
 
 import yaml
 
-from agent.capture import CaptureError, CaptureWriter, write_capture
+from agent.commission.capture import CaptureError, CaptureWriter, write_capture
 from simulator.config import watchkeep_assets
 from simulator.errors import SimulatorError
 from simulator.plant import simulate

@@ -14,9 +14,9 @@ import paho.mqtt.client as mqtt
 import yaml
 from paho.mqtt.enums import CallbackAPIVersion
 
-from agent.bundle import write_bundle
 from agent.commission.export import export_dense, pca_autoencoder
 from agent.core.features import FEATURE_INDEX, segment_features
+from agent.models.bundle import write_bundle
 
 CHANNELS = ("temp", "current", "pressure")
 FEATS = ("mean", "std")

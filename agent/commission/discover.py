@@ -29,7 +29,7 @@ from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import Any
 
-from agent.config import ChannelConfig, Decoder
+from agent.config.load import ChannelConfig, Decoder
 from agent.core.decode import Rejected, decode_message
 
 try:

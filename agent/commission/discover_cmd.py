@@ -22,7 +22,7 @@ from paho.mqtt.enums import CallbackAPIVersion
 
 from agent.commission.discover import Discovery, propose
 from agent.commission.discover_render import render_config, render_table
-from agent.config import _filter_ok
+from agent.config.load import _filter_ok
 from agent.errors import ConfigError, ConfigProblem, WatchkeepError
 from agent.fsutil import write_file_atomic
 

@@ -7,7 +7,7 @@ adds a scenario: the dataset's normal windows with synthetic faults of that kind
 config to rebuild the pipeline — the same faults written into the raw signal and
 replayed through the daemon's pipeline (`agent.commission.inject_raw`); the report's
 `dataset.injection` and a note say which path was used. Every scenario is scored by the bundle
-(`agent.bundle.Bundle.score`) and run through `agent.core.detector.run_detector`
+(`agent.models.bundle.Bundle.score`) and run through `agent.core.detector.run_detector`
 with the bundle's thresholds — the daemon's rule, not a copy of it.
 
 Definitions (window indices are in time order within the scenario):
@@ -37,7 +37,6 @@ from typing import Any, TextIO
 
 import numpy as np
 
-from agent.bundle import Bundle, load_bundle
 from agent.commission.coverage import window_geometry
 from agent.commission.dataset import Dataset, read_dataset
 from agent.commission.inject import FaultKind, InjectSpec, inject
@@ -53,6 +52,7 @@ from agent.commission.inject_raw import (
 )
 from agent.core.detector import DetectorParams, Transition, run_detector
 from agent.errors import DatasetError
+from agent.models.bundle import Bundle, load_bundle
 
 SECONDS_PER_DAY = 86400.0
 DEFAULT_ALTERNATIVES: tuple[tuple[int, int, int], ...] = tuple(
@@ -766,9 +766,9 @@ def _raw_capture(args: argparse.Namespace, ds: Dataset, bundle: Bundle
 
     `--inject-on raw` (or an explicit `--raw`) makes a missing piece an error.
     """
-    from agent.capture import read_capture
+    from agent.commission.capture import read_capture
     from agent.commission.record import RAW_NAME
-    from agent.config import load_config
+    from agent.config.load import load_config
 
     mode = getattr(args, "inject_on", "auto")
     if mode == "features":

@@ -48,7 +48,7 @@ from typing import Any
 import numpy as np
 
 from agent.commission.inject import FaultKind, InjectSpec, event_slots, parse_inject
-from agent.config import FEATURES, ChannelConfig, Config, Decoder, parse_config
+from agent.config.load import FEATURES, ChannelConfig, Config, Decoder, parse_config
 from agent.core.decode import Rejected, decode
 from agent.errors import ConfigError, DatasetError
 

@@ -23,18 +23,18 @@ from typing import Any, TextIO
 import numpy as np
 from prometheus_client import CollectorRegistry
 
-from agent.capture import CaptureWriter
+from agent.commission.capture import CaptureWriter
 from agent.commission.dataset import DatasetWriter
-from agent.config import Config, load_config
+from agent.config.load import Config, load_config
 from agent.core.events import rfc3339
-from agent.core.windows import ClosedWindow
+from agent.core.windows.assembler import ClosedWindow
 from agent.errors import ConfigError, ConfigProblem, DatasetError
-from agent.ingest import Buffers, Ingest, IngestHandler
-from agent.logs import setup_logging
-from agent.messages import OutMessage
-from agent.metrics import Metrics
-from agent.pipeline import Pipeline
-from agent.runtime import AssetRuntime
+from agent.ingest.buffers import Buffers, Ingest, IngestHandler
+from agent.ops.logs import setup_logging
+from agent.ops.metrics import Metrics
+from agent.pipeline.messages import OutMessage
+from agent.pipeline.runtime import AssetRuntime
+from agent.pipeline.tick import Pipeline
 
 RAW_NAME = "raw.jsonl"
 
@@ -322,7 +322,7 @@ def cmd_record(args: argparse.Namespace) -> int:
         print(f"csv read: {reader.rows} rows, {reader.samples} samples"
               + (f" (cells skipped: {skipped})" if skipped else ""))
     elif args.from_capture:
-        from agent.capture import read_capture
+        from agent.commission.capture import read_capture
 
         t_end = _tail_time(Path(args.from_capture))
         first: list[float] = []

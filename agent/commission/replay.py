@@ -22,12 +22,12 @@ from typing import Any, TextIO
 
 from prometheus_client import CollectorRegistry
 
-from agent.config import Config, load_config
-from agent.ingest import Buffers, IngestHandler
-from agent.messages import Kind, OutMessage
-from agent.metrics import Metrics
-from agent.pipeline import Pipeline, WindowObserver
-from agent.runtime import AssetRuntime
+from agent.config.load import Config, load_config
+from agent.ingest.buffers import Buffers, IngestHandler
+from agent.ops.metrics import Metrics
+from agent.pipeline.messages import Kind, OutMessage
+from agent.pipeline.runtime import AssetRuntime
+from agent.pipeline.tick import Pipeline, WindowObserver
 
 
 @dataclass
@@ -201,7 +201,7 @@ def add_replay_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def cmd_replay(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
-    from agent.capture import read_capture
+    from agent.commission.capture import read_capture
 
     out = out or sys.stdout
     cfg = load_config(args.config)

@@ -42,7 +42,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from agent.config import AssetConfig, ChannelConfig, Decoder
+from agent.config.load import AssetConfig, ChannelConfig, Decoder
 from agent.errors import DatasetError
 
 TIME_FORMATS = ("auto", "iso", "unix", "unix_ms")

@@ -5,7 +5,7 @@ random split (blocks of consecutive windows, so near-duplicate neighbours do not
 straddle the parts): `train` fits the weights, `val` decides early stopping, and
 `calib` — never seen by the fit — gives the held-out normal scores the thresholds
 come from. Calibration scores are computed through onnxruntime on the exported model
-with `agent.bundle.Bundle.score`, i.e. exactly as the daemon will score.
+with `agent.models.bundle.Bundle.score`, i.e. exactly as the daemon will score.
 """
 
 from __future__ import annotations
@@ -23,7 +23,6 @@ from typing import Any, TextIO
 import numpy as np
 
 from agent import __version__
-from agent.bundle import MODEL_JSON, Bundle, parse_meta, write_bundle
 from agent.commission.autoencoder import (
     FitResult,
     TrainConfig,
@@ -44,6 +43,7 @@ from agent.commission.tail import (
 )
 from agent.core.detector_params import DetectorParams
 from agent.errors import BundleError, DatasetError
+from agent.models.bundle import MODEL_JSON, Bundle, parse_meta, write_bundle
 
 SPLIT_BLOCK = 10
 DEFAULT_VAL_FRACTION = 0.15
@@ -215,7 +215,7 @@ def _runtime_scores(model_bytes: bytes, doc: dict[str, Any], x: np.ndarray) -> n
     """Scores of raw rows through onnxruntime, by the daemon's own `Bundle.score`."""
     import onnxruntime as ort
 
-    from agent.bundle import _session_options  # the daemon's session settings, on purpose
+    from agent.models.bundle import _session_options  # the daemon's session settings, on purpose
 
     provisional = {"format": "watchkeep-bundle", "format_version": 1, **doc,
                    "threshold": 1.0, "clear_threshold": 1.0}

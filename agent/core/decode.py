@@ -3,7 +3,7 @@
 Pure: the arrival time is a parameter. Decoders follow the input contract in
 DESIGN.md: `json` (one reading), `json-batch` (evenly spaced block) and `text`.
 
-No numpy at import: the ingest child (agent/ingest_child.py) decodes with this module
+No numpy at import: the ingest child (agent/ingest/child.py) decodes with this module
 and stays small. A block comes out of `decode_message` as a `Block` (first time, rate,
 values in an `array('d')`); `Block.arrays` makes the numpy arrays where numpy is loaded
 anyway (the daemon, thread-mode ingest, `decode`).
@@ -19,7 +19,7 @@ from collections.abc import Callable, Sequence
 from enum import StrEnum
 from typing import TYPE_CHECKING, Any
 
-from agent.config import ChannelConfig, Decoder
+from agent.config.load import ChannelConfig, Decoder
 
 if TYPE_CHECKING:
     import numpy as np

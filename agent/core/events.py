@@ -33,7 +33,7 @@ class EventType(StrEnum):
     LIMIT_EXCEEDED = "limit.exceeded"
     MODEL_UPDATED = "model.updated"
     # A rebaseline request and its outcomes other than a new model (requested, refused,
-    # rejected, failed, cancelled); agent/learning.py.
+    # rejected, failed, cancelled); agent/learning/manager.py.
     MODEL_REBASELINE = "model.rebaseline"
 
     @property

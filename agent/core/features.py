@@ -24,7 +24,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from agent.config import FEATURES
+from agent.config.load import FEATURES
 
 FEATURE_INDEX = {name: i for i, name in enumerate(FEATURES)}
 

@@ -29,7 +29,7 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from agent.config import IsoConfig, LimitConfig, Support
+from agent.config.load import IsoConfig, LimitConfig, Support
 
 # (group, support) -> (A/B, B/C, C/D) in mm/s, ISO 10816-3:2009 Tables A.1 and A.2.
 ISO10816_3_BOUNDARIES_MM_S: dict[tuple[int, Support], tuple[float, float, float]] = {

@@ -30,7 +30,7 @@ from collections.abc import Iterable, Sequence
 import numpy as np
 
 from agent.core.features import stack_rows
-from agent.core.windows import WindowAssembler, _Group
+from agent.core.windows.assembler import WindowAssembler, _Group
 
 
 class LockstepCut:

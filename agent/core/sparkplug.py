@@ -22,7 +22,7 @@ Sparkplug data message is only readable against the birth certificate before it:
 One message carries many metrics, so a topic feeds several channels (one per metric
 name). `SparkplugDecoder.decode` returns the samples; anything rarer (a gap, a death, a
 birth, a per-metric rejection, a rebirth request) is queued in `notes` for the caller
-(`agent.ingest_mqtt.IngestHandler`) to count, log and hand on.
+(`agent.ingest.mqtt.IngestHandler`) to count, log and hand on.
 
 The protobuf schema is the specification's (`agent/sparkplug_b`, EPL-2.0); protobuf's
 C parser (upb) reads the payload, and this module only walks the metrics it needs.
@@ -40,7 +40,7 @@ from typing import Any
 
 from google.protobuf.message import DecodeError
 
-from agent.config import SPARKPLUG_NAMESPACE, ChannelConfig, Decoder, sparkplug_topic
+from agent.config.load import SPARKPLUG_NAMESPACE, ChannelConfig, Decoder, sparkplug_topic
 from agent.core.decode import Block, Reason, Rejected
 from agent.core.routing import Route
 from agent.sparkplug_b.sparkplug_b_pb2 import Payload

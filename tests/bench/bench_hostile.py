@@ -2,7 +2,7 @@
 fault scenario. `python -m tests.bench hostile` (about 3 minutes; the demo's models are
 trained on first use into the state dir, default /tmp/watchkeep-hostile-state).
 
-The demo's plant (agent/demo.py: Mosquitto, the simulator, the daemon on the simulated
+The demo's plant (agent/cli/demo.py: Mosquitto, the simulator, the daemon on the simulated
 clock) runs its scenario; when P-101's bearing fault starts, a second process publishes
 bad messages as fast as paho sends them, on the plant's own topics and on unknown ones:
 absurd block rates, timestamps far ahead (within and beyond the clock skew), deeply
@@ -102,9 +102,9 @@ def flood(port: int, n: int, sim_now: float, wall: float, speed: float,
 # -- the run --------------------------------------------------------------------------------
 
 def run(duration_s: float, n: int, state_dir: Path) -> dict[str, Any]:
+    from agent.cli.demo import DEMO_DIR, DemoBroker, EventLog, SimClock, demo_config, ensure_models
     from agent.daemon import Daemon
-    from agent.demo import DEMO_DIR, DemoBroker, EventLog, SimClock, demo_config, ensure_models
-    from agent.logs import setup_logging
+    from agent.ops.logs import setup_logging
     from simulator.plant import simulate
     from simulator.publish import publish
     from simulator.scenario import load_scenario

@@ -10,7 +10,7 @@ publishers:
   block into a numpy array.
 
 The goal's reference is the bare subscriber on plain paho. watchkeep's client reads
-the socket in large chunks (`agent.mqtt_client.ReadAheadClient`), so a second bare
+the socket in large chunks (`agent.ingest.mqtt_client.ReadAheadClient`), so a second bare
 subscriber on that client, decoding with orjson as watchkeep's decoders do, runs in the
 same rounds ("bare+ra"): the ratio against it is what the rest of watchkeep's ingest
 costs. (The goal's bare subscriber decodes with the standard library's `json`, whose
@@ -46,11 +46,11 @@ import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion
 from prometheus_client import CollectorRegistry
 
-from agent.config import parse_config
-from agent.ingest import Buffers, Ingest, IngestHandler, close_inboxes
-from agent.ingest_worker import ProcessIngest
-from agent.metrics import Metrics
-from agent.mqtt_client import ReadAheadClient
+from agent.config.load import parse_config
+from agent.ingest.buffers import Buffers, Ingest, IngestHandler, close_inboxes
+from agent.ingest.mqtt_client import ReadAheadClient
+from agent.ingest.parent import ProcessIngest
+from agent.ops.metrics import Metrics
 from tests.bench.common import median, save, table
 from tests.brokers import Broker
 
@@ -300,7 +300,7 @@ def main() -> int:
                        "CPU us/msg wk/bare/bare+ra", "lost wk/bare", "publishers",
                        "limited by"]))
     print("bare: plain paho and json.loads, as the goal defines it; bare+ra: the same "
-          "subscriber on watchkeep's read-ahead paho client (agent/mqtt_client.py) with "
+          "subscriber on watchkeep's read-ahead paho client (agent/ingest/mqtt_client.py) with "
           "orjson, watchkeep's JSON library, for what the rest of watchkeep's ingest costs")
     save("ingest", doc)
     return 0

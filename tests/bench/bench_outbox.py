@@ -36,11 +36,11 @@ from prometheus_client import CollectorRegistry
 if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
-from agent.config import OutboxConfig, load_config
-from agent.messages import Kind, OutMessage
-from agent.metrics import Metrics
-from agent.outbox import Outbox
-from agent.upstream import Upstream
+from agent.config.load import OutboxConfig, load_config
+from agent.delivery.outbox import Outbox
+from agent.delivery.upstream import Upstream
+from agent.ops.metrics import Metrics
+from agent.pipeline.messages import Kind, OutMessage
 from tests.bench.common import alternate, median, save, table
 from tests.brokers import Broker, wait_for
 from tests.helpers import asset_doc, write_config

@@ -20,13 +20,13 @@ import numpy as np
 import onnxruntime as ort
 from prometheus_client import CollectorRegistry
 
-from agent.bundle import _session_options, load_bundle
-from agent.config import parse_config
+from agent.config.load import parse_config
 from agent.daemon import freeze_heap
-from agent.ingest import Buffers
-from agent.metrics import Metrics
-from agent.pipeline import Pipeline
-from agent.runtime import AssetRuntime
+from agent.ingest.buffers import Buffers
+from agent.models.bundle import _session_options, load_bundle
+from agent.ops.metrics import Metrics
+from agent.pipeline.runtime import AssetRuntime
+from agent.pipeline.tick import Pipeline
 from tests.bench.common import alternate, median, quiet_bundle, save, table
 
 N_ASSETS, N_CHANNELS, N_SAMPLES = 200, 8, 100

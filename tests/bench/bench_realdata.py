@@ -141,7 +141,7 @@ def watchkeep_run(run: Run, work: Path, log: logging.Logger) -> RunResult:
     from agent.commission.dataset import DatasetWriter, read_dataset
     from agent.commission.replay import Replayer
     from agent.commission.train import train_bundle
-    from agent.config import parse_config
+    from agent.config.load import parse_config
 
     asset = "P-" + run.name.zfill(2)
     base = asset_doc(asset)

@@ -4,7 +4,7 @@ The end-to-end latency set-up of `bench_latency` (daemon subprocess between two 
 Mosquitto brokers, 50 assets x 8 channels at 5 Hz, 1 s windows, per-window telemetry
 upstream), run twice in alternation: idle, and with the rebaseline worker training
 throughout the run. The worker is started exactly as the daemon starts it
-(`python -m agent.rebaseline_worker JOB`, which nices itself to 10, with one BLAS
+(`python -m agent.learning.worker JOB`, which nices itself to 10, with one BLAS
 thread) on a heavy job — 10,000 new windows x 40 features and a 512-window rehearsal
 set, 300 epochs at most — and restarted whenever it finishes, so the machine's second
 core is busy training for the whole measurement. Goal (bench_latency's): p99 <= 100 ms
@@ -27,10 +27,10 @@ import numpy as np
 from agent.commission.autoencoder import TrainConfig, fit_autoencoder
 from agent.commission.calibrate import calibrate
 from agent.commission.export import export_dense
-from agent.learning import ONE_THREAD
-from agent.models import ModelStore
-from agent.rebaseline import numpy_scores, reservoir
-from agent.rebaseline_worker import JOB_JSON, WINDOWS_NPZ
+from agent.learning.manager import ONE_THREAD
+from agent.learning.rebaseline import numpy_scores, reservoir
+from agent.learning.worker import JOB_JSON, WINDOWS_NPZ
+from agent.models.store import ModelStore
 from tests.bench import bench_latency as lat
 from tests.bench.common import save, table
 
@@ -83,7 +83,7 @@ class Trainer:
             store = ModelStore(self.job.parent / "models", keep=100)
             for v in store.versions("T", "default")[1:]:
                 store.remove_version("T", "default", v)
-            p = subprocess.Popen([sys.executable, "-m", "agent.rebaseline_worker",
+            p = subprocess.Popen([sys.executable, "-m", "agent.learning.worker",
                                   str(self.job)], env=env, stdout=subprocess.DEVNULL,
                                  stderr=subprocess.DEVNULL)
             while p.poll() is None:

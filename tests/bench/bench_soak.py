@@ -224,7 +224,7 @@ def p(xs: list[float], q: float) -> float:
 
 
 def run(minutes: float, out_dir: Path) -> dict[str, Any]:
-    from agent.demo import ensure_models
+    from agent.cli.demo import ensure_models
 
     t_setup = time.monotonic()
     models = ensure_models(ROOT / ".demo", sys.stdout)

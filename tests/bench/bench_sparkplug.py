@@ -33,10 +33,10 @@ from typing import Any
 if __package__ in (None, ""):
     sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
 
-from agent.config import parse_config
+from agent.config.load import parse_config
 from agent.core.routing import channel_routes
 from agent.core.sparkplug import SparkplugDecoder
-from agent.ingest_child import _Generation
+from agent.ingest.child import _Generation
 from agent.sparkplug_b.sparkplug_b_pb2 import Payload
 from tests.bench.common import alternate, median, save, table
 

@@ -4,7 +4,7 @@ Run: .venv/bin/python tests/bench/bench_train.py [--windows N] [--out bench-resu
 
 Training is `train_bundle` with its defaults (the gateway's path: dataset on disk ->
 fit -> export -> calibrate -> bundle). Inference is the trained bundle's
-`agent.bundle.Bundle.score` (standardise, onnxruntime, squared error) for a batch of
+`agent.models.bundle.Bundle.score` (standardise, onnxruntime, squared error) for a batch of
 1 and of 200 windows, beside a bare onnxruntime session running the same model on
 ready-standardised float32 input with default session options. Pinned to one CPU
 with BLAS limited to one thread. Not run by pytest (the file is named bench_*.py).
@@ -57,9 +57,9 @@ def _per_call_us(fn, reps: int) -> tuple[float, float]:
 def run(n_windows: int) -> dict:
     import onnxruntime as ort
 
-    from agent.bundle import load_bundle
     from agent.commission.dataset import write_dataset
     from agent.commission.train import train_bundle
+    from agent.models.bundle import load_bundle
 
     names = [f"ch{i // 5}.f{i % 5}" for i in range(F)]
     x = _windows(n_windows, 0)

@@ -65,8 +65,8 @@ def timed(fn: Callable[[], int]) -> float:
 def quiet_bundle(dest: Path, names: list[str], z: Any, mean: float) -> tuple[Path, bytes]:
     """A PCA-autoencoder bundle over `names` whose threshold is never reached, so a
     benchmark measures the scoring path without events; returns (directory, ONNX bytes)."""
-    from agent.bundle import write_bundle
     from agent.commission.export import export_dense, pca_autoencoder
+    from agent.models.bundle import write_bundle
 
     meta = {"asset": "A", "mode": "default", "model_id": "A/default", "version": 1,
             "feature_names": names,

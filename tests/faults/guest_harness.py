@@ -80,9 +80,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     journal.write(f"B {boot} fsck={args.fsck_rc} quick_check={qc} files={files or '-'}\n"
                   + "".join(f"S {boot} {a} {s}\n" for a, s in sorted(seqs.items())))
 
-    from agent import cli
-    from agent.messages import Kind
-    from agent.outbox import Outbox
+    from agent.cli import main as cli
+    from agent.delivery.outbox import Outbox
+    from agent.pipeline.messages import Kind
 
     reported = (Kind.EVENT, Kind.ANOMALY)
     submit = Outbox.submit

@@ -11,10 +11,10 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from agent.bundle import MODEL_JSON, write_bundle
 from agent.commission.export import export_dense, pca_autoencoder
-from agent.config import load_config
+from agent.config.load import load_config
 from agent.daemon import Daemon
+from agent.models.bundle import MODEL_JSON, write_bundle
 from tests.brokers import Broker, wait_for
 from tests.helpers import Collector, asset_doc, publisher, readings, train_pca_bundle, write_config
 

@@ -8,9 +8,9 @@ from pathlib import Path
 
 import yaml
 
-from agent.config import load_config
+from agent.config.load import load_config
 from tests.helpers import CHANNELS, asset_doc, train_pca_bundle
-from tests.unit.config_cases import BAD_YAML, BAD_YAML_WHERE, BROKEN, CONFIG_DIR
+from tests.unit.config.config_cases import BAD_YAML, BAD_YAML_WHERE, BROKEN, CONFIG_DIR
 
 # The console script installed beside the interpreter running the tests (.venv/bin).
 WATCHKEEP = Path(sys.executable).with_name("watchkeep")

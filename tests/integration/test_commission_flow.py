@@ -8,12 +8,12 @@ import threading
 import time
 from pathlib import Path
 
-from agent.capture import read_capture
+from agent.commission.capture import read_capture
 from agent.commission.dataset import read_dataset
 from agent.commission.record import Recorder
 from agent.commission.replay import replay
 from agent.commission.train import train_bundle
-from agent.config import load_config
+from agent.config.load import load_config
 from agent.daemon import Daemon
 from tests.brokers import Broker, wait_for
 from tests.helpers import Collector, asset_doc, publisher, readings, write_config

@@ -16,14 +16,14 @@ import numpy as np
 import pytest
 import yaml
 
-from agent.bundle import load_bundle
+from agent.cli.demo import DEMO_DIR
 from agent.commission.dataset import DatasetWriter, read_dataset
 from agent.commission.evaluate import roc_auc
 from agent.commission.replay import Replayer
 from agent.commission.train import train_bundle
-from agent.config import parse_config
+from agent.config.load import parse_config
 from agent.core.detector import DetectorParams, Transition, run_detector
-from agent.demo import DEMO_DIR
+from agent.models.bundle import load_bundle
 from simulator.plant import simulate
 from simulator.scenario import labels, parse_scenario
 

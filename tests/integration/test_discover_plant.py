@@ -8,7 +8,7 @@ from pathlib import Path
 
 import yaml
 
-from agent.config import load_config
+from agent.config.load import load_config
 from tests.brokers import Broker
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -27,7 +27,7 @@ def test_discover_finds_every_demo_channel(broker: Broker, tmp_path: Path) -> No
         cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
     try:
         res = subprocess.run(
-            [sys.executable, "-m", "agent.cli", "discover", "--broker",
+            [sys.executable, "-m", "agent.cli.main", "discover", "--broker",
              f"127.0.0.1:{broker.port}", "--duration", str(LISTEN_S), "--topic",
              "fernbrook/#", "--out", str(out)],
             cwd=ROOT, capture_output=True, text=True, timeout=LISTEN_S + 60)
@@ -51,7 +51,7 @@ def test_discover_finds_every_demo_channel(broker: Broker, tmp_path: Path) -> No
             assert abs(measured - msg_hz) <= 0.05 * msg_hz, (ch.topic, table[ch.topic])
     names = {a["name"]: set(a["channels"]) for a in written["assets"]}
     assert names == {a.name: {c.name for c in a.channels} for a in demo.assets}
-    chk = subprocess.run([sys.executable, "-m", "agent.cli", "check-config", str(out)],
+    chk = subprocess.run([sys.executable, "-m", "agent.cli.main", "check-config", str(out)],
                          cwd=ROOT, capture_output=True, text=True, timeout=60)
     assert chk.returncode == 0, chk.stdout + chk.stderr
     assert chk.stdout.count("model: none (windows are not scored)") == len(demo.assets)
@@ -63,7 +63,7 @@ def test_discover_without_a_broker_is_one_line(tmp_path: Path) -> None:
 
     port = free_port()
     out = tmp_path / "x.yaml"
-    res = subprocess.run([sys.executable, "-m", "agent.cli", "discover", "--broker",
+    res = subprocess.run([sys.executable, "-m", "agent.cli.main", "discover", "--broker",
                           f"127.0.0.1:{port}", "--duration", "1", "--out", str(out)],
                          cwd=ROOT, capture_output=True, text=True, timeout=60)
     assert res.returncode == 6, res.stderr
@@ -75,7 +75,7 @@ def test_discover_without_a_broker_is_one_line(tmp_path: Path) -> None:
 def test_discover_with_nothing_to_hear_writes_nothing(broker: Broker, tmp_path: Path) -> None:
     """A quiet broker: the table is empty, no starter config is written, exit 1."""
     out = tmp_path / "x.yaml"
-    res = subprocess.run([sys.executable, "-m", "agent.cli", "discover", "--broker",
+    res = subprocess.run([sys.executable, "-m", "agent.cli.main", "discover", "--broker",
                           f"127.0.0.1:{broker.port}", "--duration", "1", "--topic",
                           "nobody/#", "--out", str(out)],
                          cwd=ROOT, capture_output=True, text=True, timeout=60)

@@ -28,7 +28,7 @@ def test_wheel_installs_into_a_fresh_venv_and_runs(tmp_path: Path) -> None:
     assert sdist.is_file() and wheel.is_file(), sorted(p.name for p in dist.iterdir())
     with tarfile.open(sdist) as tf:
         names = {n.split("/", 1)[1] for n in tf.getnames() if "/" in n}
-    for needed in ("Makefile", "pyproject.toml", "agent/cli.py", "simulator/cli.py",
+    for needed in ("Makefile", "pyproject.toml", "agent/cli/main.py", "simulator/cli.py",
                    "config/demo/watchkeep.yaml", "systemd/watchkeep.service",
                    "tests/unit/test_docs.py", ".ci/test-deps"):
         assert needed in names, needed

@@ -24,7 +24,7 @@ import yaml
 from agent.commission.dataset import DatasetWriter
 from agent.commission.replay import Replayer
 from agent.commission.train import train_bundle
-from agent.config import parse_config
+from agent.config.load import parse_config
 from simulator.plant import simulate
 from simulator.scenario import parse_scenario
 

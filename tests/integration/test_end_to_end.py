@@ -10,7 +10,7 @@ from typing import Any
 
 import pytest
 
-from agent.config import load_config
+from agent.config.load import load_config
 from agent.daemon import Daemon
 from tests.brokers import Broker, wait_for
 from tests.helpers import Collector, asset_doc, publisher, readings, train_pca_bundle, write_config

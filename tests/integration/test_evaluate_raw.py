@@ -15,14 +15,14 @@ import numpy as np
 import pytest
 import yaml
 
-from agent.capture import write_capture
+from agent.commission.capture import write_capture
 from agent.commission.dataset import DatasetWriter
 from agent.commission.evaluate import add_evaluate_arguments, cmd_evaluate
 from agent.commission.record import RAW_NAME
 from agent.commission.replay import Replayer
 from agent.commission.report import REPORT_JSON
 from agent.commission.train import train_bundle
-from agent.config import parse_config
+from agent.config.load import parse_config
 from agent.errors import DatasetError
 from tests.helpers import asset_doc, readings
 

@@ -10,7 +10,7 @@ from pathlib import Path
 
 import pytest
 
-from agent.config import load_config
+from agent.config.load import load_config
 from agent.daemon import Daemon
 from tests.brokers import Broker, wait_for
 from tests.helpers import asset_doc, write_config

@@ -16,7 +16,7 @@ from typing import Any
 
 import pytest
 
-from agent.config import load_config
+from agent.config.load import load_config
 from agent.core.detector import Detector
 from agent.daemon import Daemon
 from tests.brokers import Broker, wait_for

@@ -17,10 +17,10 @@ from pathlib import Path
 
 import numpy as np
 
-from agent.config import load_config
+from agent.config.load import load_config
 from agent.core.decode import Block, Reason, blocks_timestamps
 from agent.daemon import Daemon
-from agent.ingest_child import MAX_BATCH, _Batch, _Generation, _Sender, channel_key
+from agent.ingest.child import MAX_BATCH, _Batch, _Generation, _Sender, channel_key
 from tests.brokers import Broker, wait_for
 from tests.helpers import asset_doc, publisher, readings, train_pca_bundle, write_config
 

@@ -13,7 +13,7 @@ from pathlib import Path
 
 import pytest
 
-from agent.config import load_config
+from agent.config.load import load_config
 from agent.daemon import Daemon
 from tests.brokers import Broker, wait_for
 from tests.helpers import asset_doc, publisher, readings, write_config

@@ -18,12 +18,12 @@ from typing import Any
 
 import pytest
 
+from agent.cli.demo import SimClock
 from agent.commission.dataset import DatasetWriter
 from agent.commission.replay import Replayer
 from agent.commission.train import train_bundle
-from agent.config import Config, parse_config
+from agent.config.load import Config, parse_config
 from agent.daemon import Daemon
-from agent.demo import SimClock
 from simulator.config import watchkeep_assets
 from simulator.plant import simulate
 from simulator.publish import publish

@@ -16,8 +16,8 @@ import pytest
 from prometheus_client.parser import text_string_to_metric_families
 
 from agent import __version__
-from agent.cli import main as cli_main
-from agent.config import load_config
+from agent.cli.main import main as cli_main
+from agent.config.load import load_config
 from agent.daemon import Daemon
 from tests.brokers import Broker, wait_for
 from tests.helpers import CHANNELS, asset_doc, publisher, readings, train_pca_bundle, write_config

@@ -25,14 +25,14 @@ import paho.mqtt.client as mqtt
 import pytest
 from paho.mqtt.enums import CallbackAPIVersion
 
-from agent.bundle import load_bundle
 from agent.commission.dataset import DatasetWriter, read_dataset
 from agent.commission.train import train_bundle
-from agent.config import load_config
+from agent.config.load import load_config
 from agent.daemon import Daemon
 from agent.errors import ConfigError
-from agent.models import ModelStore
-from agent.rebaseline import reservoir
+from agent.learning.rebaseline import reservoir
+from agent.models.bundle import load_bundle
+from agent.models.store import ModelStore
 from tests.brokers import Broker, wait_for
 from tests.helpers import (
     RATE_HZ,

@@ -70,7 +70,7 @@ def start(tmp_path: Path, broker: Broker, upstream: Broker, notify: NotifySocket
     env = {**os.environ, "NOTIFY_SOCKET": notify.env_value,
            "WATCHDOG_USEC": "400000", **extra_env}  # 0.4 s: WATCHDOG=1 every 0.2 s
     env.pop("WATCHDOG_PID", None)
-    proc = subprocess.Popen([sys.executable, "-m", "agent.cli", "run", "-c", str(cfg)],
+    proc = subprocess.Popen([sys.executable, "-m", "agent.cli.main", "run", "-c", str(cfg)],
                             cwd=ROOT, env=env, stdout=subprocess.DEVNULL,
                             stderr=subprocess.DEVNULL)
     return proc, port

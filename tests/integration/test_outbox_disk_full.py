@@ -18,11 +18,11 @@ from pathlib import Path
 import pytest
 from prometheus_client import CollectorRegistry
 
-from agent.config import Config, load_config
-from agent.messages import Kind, OutMessage
-from agent.metrics import Metrics
-from agent.outbox import Outbox
-from agent.upstream import Upstream
+from agent.config.load import Config, load_config
+from agent.delivery.outbox import Outbox
+from agent.delivery.upstream import Upstream
+from agent.ops.metrics import Metrics
+from agent.pipeline.messages import Kind, OutMessage
 from tests.brokers import Broker, free_port, wait_for
 from tests.helpers import Collector, asset_doc, write_config
 

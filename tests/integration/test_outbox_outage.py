@@ -19,7 +19,7 @@ from typing import Any
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion
 
-from agent.config import load_config
+from agent.config.load import load_config
 from agent.daemon import Daemon
 from tests.brokers import Broker, free_port, wait_for
 from tests.helpers import Collector, asset_doc, publisher, readings, train_pca_bundle, write_config

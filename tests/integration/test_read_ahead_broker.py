@@ -13,9 +13,9 @@ import paho.mqtt.client as mqtt
 import pytest
 from paho.mqtt.enums import CallbackAPIVersion
 
-from agent.config import BrokerConfig, MqttProtocol
-from agent.ingest_mqtt import make_client
-from agent.mqtt_client import READ_AHEAD, ReadAheadClient
+from agent.config.load import BrokerConfig, MqttProtocol
+from agent.ingest.mqtt import make_client
+from agent.ingest.mqtt_client import READ_AHEAD, ReadAheadClient
 from tests.brokers import Broker, wait_for
 
 

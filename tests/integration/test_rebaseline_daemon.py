@@ -23,15 +23,15 @@ from typing import Any
 import numpy as np
 import pytest
 
-from agent.bundle import load_bundle
-from agent.cli import main
+from agent.cli.main import main
 from agent.commission.dataset import DatasetWriter, read_dataset
 from agent.commission.train import train_bundle
-from agent.config import load_config
+from agent.config.load import load_config
 from agent.daemon import Daemon
-from agent.models import ModelStore
-from agent.rebaseline import reservoir
-from agent.rebaseline_worker import TEST_DELAY_ENV
+from agent.learning.rebaseline import reservoir
+from agent.learning.worker import TEST_DELAY_ENV
+from agent.models.bundle import load_bundle
+from agent.models.store import ModelStore
 from tests.brokers import Broker, wait_for
 from tests.helpers import (
     CHANNELS,

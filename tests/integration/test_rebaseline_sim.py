@@ -23,14 +23,12 @@ from typing import Any
 import numpy as np
 import pytest
 
-from agent.bundle import load_bundle
 from agent.commission.dataset import DatasetWriter, read_dataset
 from agent.commission.replay import Replayer
 from agent.commission.train import train_bundle
-from agent.config import parse_config
+from agent.config.load import parse_config
 from agent.core.detector import DetectorParams
-from agent.models import ModelStore, read_rehearsal
-from agent.rebaseline import (
+from agent.learning.rebaseline import (
     OldModel,
     Settings,
     layers_from_onnx,
@@ -38,7 +36,9 @@ from agent.rebaseline import (
     rebaseline,
     reservoir,
 )
-from agent.rebaseline_worker import JOB_JSON, RESULT_JSON, WINDOWS_NPZ, run_job
+from agent.learning.worker import JOB_JSON, RESULT_JSON, WINDOWS_NPZ, run_job
+from agent.models.bundle import load_bundle
+from agent.models.store import ModelStore, read_rehearsal
 from simulator.plant import simulate
 from simulator.scenario import parse_scenario
 

@@ -15,12 +15,12 @@ import numpy as np
 import pytest
 import yaml
 
-from agent.capture import write_capture
-from agent.cli import main
+from agent.cli.main import main
+from agent.commission.capture import write_capture
 from agent.commission.dataset import Dataset, read_dataset
 from agent.commission.record import Recorder
 from agent.commission.tabular import CsvReader, csv_messages
-from agent.config import load_config
+from agent.config.load import load_config
 from tests.brokers import Broker
 from tests.helpers import CHANNELS, asset_doc, publisher, readings, write_config
 
@@ -134,7 +134,7 @@ def test_text_channels_are_stamped_from_the_capture(tmp_path: Path) -> None:
     cap = tmp_path / "old.raw.jsonl"
     write_capture(cap, msgs)
     rec = Recorder(cfg, "P-1", tmp_path / "ds", logger=LOG)
-    from agent.capture import read_capture
+    from agent.commission.capture import read_capture
 
     ds = read_dataset(rec.run_offline(read_capture(cap)), min_windows=1)
     assert ds.n_windows >= 29 and ds.window_start[0] == OLD_T0

@@ -16,9 +16,9 @@ from pathlib import Path
 import pytest
 import yaml
 
-from agent.bundle import MODEL_JSON, MODEL_ONNX, write_bundle
-from agent.config import load_config
+from agent.config.load import load_config
 from agent.daemon import Daemon
+from agent.models.bundle import MODEL_JSON, MODEL_ONNX, write_bundle
 from tests.brokers import Broker, free_port, wait_for
 from tests.helpers import Collector, asset_doc, publisher, readings, train_pca_bundle, write_config
 
@@ -191,7 +191,7 @@ def test_sighup_and_sigterm_on_the_real_process(tmp_path: Path, broker: Broker,
     cfg_path = write_config(tmp_path / "watchkeep.yaml", broker.port, upstream_broker.port,
                             [asset_doc("P-1", b1)], http={"port": http_port})
     env = {k: v for k, v in os.environ.items() if k != "NOTIFY_SOCKET"}
-    proc = subprocess.Popen([sys.executable, "-m", "agent.cli", "run", "-c", str(cfg_path)],
+    proc = subprocess.Popen([sys.executable, "-m", "agent.cli.main", "run", "-c", str(cfg_path)],
                             cwd=ROOT, env=env, stdout=subprocess.DEVNULL,
                             stderr=subprocess.PIPE)
     collector = Collector(upstream_broker.port, "watchkeep/testworks/gw1/status", "st-sub")

@@ -19,7 +19,7 @@ import paho.mqtt.client as mqtt
 import pytest
 from paho.mqtt.enums import CallbackAPIVersion
 
-from agent.capture import read_capture
+from agent.commission.capture import read_capture
 from simulator.plant import simulate
 from simulator.publish import publish
 from simulator.scenario import load_scenario, parse_scenario

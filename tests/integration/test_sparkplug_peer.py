@@ -25,10 +25,10 @@ import numpy as np
 import pytest
 from prometheus_client import CollectorRegistry
 
-from agent.config import parse_config
-from agent.ingest import Buffers, IngestHandler, close_inboxes
-from agent.ingest_worker import ProcessIngest
-from agent.metrics import Metrics
+from agent.config.load import parse_config
+from agent.ingest.buffers import Buffers, IngestHandler, close_inboxes
+from agent.ingest.parent import ProcessIngest
+from agent.ops.metrics import Metrics
 from tests.brokers import Broker, wait_for
 from tests.helpers import Collector, write_config
 from tests.integration.test_daemon_process import WATCHKEEP

@@ -90,7 +90,7 @@ libc = ctypes.CDLL(None, use_errno=True)
 if libc.prctl(65, 1, 0, 0, 0) != 0:
     sys.exit(77)
 import numpy as np
-from agent.bundle import load_bundle
+from agent.models.bundle import load_bundle
 from tests.helpers import train_pca_bundle
 d = pathlib.Path(tempfile.mkdtemp())
 b = load_bundle(train_pca_bundle(d / "m", "P-1"))

@@ -7,11 +7,11 @@ from pathlib import Path
 
 from prometheus_client import CollectorRegistry
 
-from agent.config import load_config
-from agent.messages import Kind, OutMessage
-from agent.metrics import Metrics
-from agent.outbox import INSERT_CHUNKS, Outbox
-from agent.upstream import PREFETCH_ROWS, Upstream
+from agent.config.load import load_config
+from agent.delivery.outbox import INSERT_CHUNKS, Outbox
+from agent.delivery.upstream import PREFETCH_ROWS, Upstream
+from agent.ops.metrics import Metrics
+from agent.pipeline.messages import Kind, OutMessage
 from tests.brokers import Broker, free_port, wait_for
 from tests.helpers import Collector, asset_doc, write_config
 

@@ -13,13 +13,13 @@ from onnx.reference import ReferenceEvaluator
 from scipy.stats import rankdata
 from sklearn.metrics import roc_auc_score
 
-from agent.bundle import load_bundle
 from agent.commission.autoencoder import TrainConfig, fit_autoencoder
 from agent.commission.calibrate import calibrate
 from agent.commission.dataset import write_dataset
 from agent.commission.evaluate import rank_average, roc_auc
 from agent.commission.export import export_dense, forward_numpy
 from agent.commission.train import train_bundle
+from agent.models.bundle import load_bundle
 
 F = 40
 NAMES = [f"ch{i // 5}.f{i % 5}" for i in range(F)]
@@ -78,7 +78,7 @@ def test_threshold_is_numpy_quantile_times_margin(q: float, margin: float,
 
 def test_trained_bundle_threshold_from_its_held_out_scores(tmp_path: Path) -> None:
     """The threshold is recomputed from the held-out windows' scores through
-    agent.bundle.load_bundle (the daemon's scoring): those windows are the last in time
+    agent.models.bundle.load_bundle (the daemon's scoring): those windows are the last in time
     (forward validation), and calibrate_tail on their scores with the settings in
     model.json gives the bundle's threshold; a pot-gpd tail's level is checked against
     scipy.stats.genpareto (source: its ppf)."""

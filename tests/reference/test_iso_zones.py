@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import pytest
 
-from agent.config import Support
+from agent.config.load import Support
 from agent.core.limits import ISO10816_3_BOUNDARIES_MM_S, operational_limits, zone_of
 
 # (group, support): (A/B, B/C, C/D) mm/s, ISO 10816-3:2009 Tables A.1 and A.2.

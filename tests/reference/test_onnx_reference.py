@@ -9,7 +9,6 @@ import onnx
 import pytest
 from onnx.reference import ReferenceEvaluator
 
-from agent.bundle import load_bundle, write_bundle
 from agent.commission.export import (
     INPUT_NAME,
     IR_VERSION,
@@ -20,6 +19,7 @@ from agent.commission.export import (
     forward_numpy,
     pca_autoencoder,
 )
+from agent.models.bundle import load_bundle, write_bundle
 
 F = 6
 

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 from scipy.signal import welch
 
-from agent.config import SpectrumConfig
+from agent.config.load import SpectrumConfig
 from agent.core.spectral import band_mask, psd, spectral_features
 
 FS = 2560.0

@@ -26,11 +26,11 @@ import pytest
 import yaml
 from prometheus_client import CollectorRegistry, generate_latest
 
-from agent.cli import build_parser
-from agent.cli import main as watchkeep_main
+from agent.cli.main import build_parser
+from agent.cli.main import main as watchkeep_main
 from agent.core.events import TYPE_PREFIX, EventType
 from agent.core.features import FEATURES
-from agent.metrics import Metrics
+from agent.ops.metrics import Metrics
 from simulator.cli import _parser as sim_parser
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -399,7 +399,7 @@ def bundle_for(bundle_dir: Path, asset: Any, tmp: Path) -> None:
     """Train a small bundle for `asset` with the project's own train code."""
     from agent.commission.dataset import write_dataset
     from agent.commission.train import train_bundle
-    from agent.runtime import asset_feature_names
+    from agent.pipeline.runtime import asset_feature_names
 
     names = asset_feature_names(asset)
     rng = np.random.default_rng(7)
@@ -450,7 +450,7 @@ def test_every_yaml_block_is_a_working_config(block: Snippet, tmp_path: Path,
     a fragment (top-level sections, or an asset's channels) completed with BASE, the
     files it names made, and the bundle directories it names holding bundles trained
     for their assets."""
-    from agent.config import load_config
+    from agent.config.load import load_config
     from agent.errors import ConfigError
 
     doc = yaml.safe_load(block.text)
@@ -499,7 +499,7 @@ def exported_metric_names() -> set[str]:
     families."""
     import logging
 
-    from agent.mqtt_commands import CommandReceiver
+    from agent.learning.commands import CommandReceiver
 
     reg = CollectorRegistry()
     Metrics(reg)
@@ -510,7 +510,7 @@ def exported_metric_names() -> set[str]:
     names |= set(re.findall(r"^([a-zA-Z_:][a-zA-Z0-9_:]*)", text, re.M))
     # The rebaseline manager's custom collector needs a running daemon: its families are
     # read from their declarations (`...MetricFamily("watchkeep_...")`) in the source.
-    src = (ROOT / "agent" / "learning.py").read_text(encoding="utf-8")
+    src = (ROOT / "agent" / "learning" / "manager.py").read_text(encoding="utf-8")
     names |= set(re.findall(r'MetricFamily\(\s*"(watchkeep_[a-z0-9_]+)"', src))
     for n in list(names):  # a counter family `x` is scraped as `x_total`, `x_created`
         names |= {n + "_total", n + "_info"}
@@ -544,7 +544,7 @@ def test_event_types_in_the_readme_exist() -> None:
 
 
 def schema() -> dict[str, Any]:
-    # The schema is held to the loader's keys by tests/unit/test_schema.py.
+    # The schema is held to the loader's keys by tests/unit/config/test_schema.py.
     doc: dict[str, Any] = json.loads((ROOT / "config" / "watchkeep.schema.json").read_text())
     return doc
 

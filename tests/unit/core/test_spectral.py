@@ -1,0 +1,41 @@
+"""Spectral features: names, grouping invariance, short segments, mixed lengths."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from agent.config.load import SpectrumConfig
+from agent.core.spectral import spectral_features
+
+SPEC = SpectrumConfig(bands_hz=((10.0, 200.0), (200.0, 1280.0)), velocity_rms=True,
+                      orders=(1.0, 2.0), envelope_hz=(600.0, 1100.0))
+
+
+def test_feature_names() -> None:
+    """Names follow the config: bands, dominant line, orders, envelope, velocity."""
+    assert SPEC.feature_names() == (
+        "band_10_200_hz", "band_200_1280_hz", "dominant_hz", "dominant_amp", "order_1x_amp",
+        "order_2x_amp", "envelope_rms", "velocity_rms_mm_s")
+    assert SpectrumConfig(bands_hz=((2.5, 7.5),), orders=(0.5,)).feature_names()[:1] == (
+        "band_2p5_7p5_hz",)
+
+
+def test_batched_equals_one_by_one() -> None:
+    """Segments of different lengths in one call give what each gives alone."""
+    rng = np.random.default_rng(1)
+    segs = [rng.normal(size=n) for n in (2560, 2304, 2560, 12800, 2304)]
+    speeds = [49.5, 40.0, np.nan, 49.5, 0.0]
+    together = spectral_features(segs, [2560.0] * 5, [SPEC] * 5, speeds)
+    for seg, sp, row in zip(segs, speeds, together, strict=True):
+        (alone,) = spectral_features([seg], [2560.0], [SPEC], [sp])
+        np.testing.assert_allclose(row, alone, rtol=1e-12)
+
+
+def test_short_segment_is_nan_and_unknown_speed_is_zero_orders() -> None:
+    """Too few samples -> NaN row (never scored); unknown speed -> orders 0."""
+    rows = spectral_features([np.ones(3), np.random.default_rng(2).normal(size=512)],
+                             [2560.0, 2560.0], [SPEC, SPEC], [49.5, np.nan])
+    assert np.isnan(rows[0]).all()
+    names = SPEC.feature_names()
+    assert rows[1][names.index("order_1x_amp")] == 0.0
+    assert np.isfinite(rows[1]).all()
