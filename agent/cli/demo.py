@@ -35,7 +35,7 @@ from agent.config.load import Config, parse_config, yaml_load
 from agent.core.events import rfc3339
 from agent.ops.logs import setup_logging
 
-DEMO_DIR = Path(__file__).resolve().parent.parent / "config" / "demo"
+DEMO_DIR = Path(__file__).resolve().parents[2] / "config" / "demo"
 TRAIN_NORMAL_S = 3600.0
 
 

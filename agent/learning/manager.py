@@ -557,7 +557,7 @@ class RebaselineManager:
                 proc = subprocess.Popen([self.python, "-m", "agent.learning.worker",
                                          str(job_dir)], stdin=subprocess.DEVNULL,
                                         stdout=errf, stderr=errf, env=env,
-                                        cwd=str(Path(__file__).resolve().parent.parent))
+                                        cwd=str(Path(__file__).resolve().parents[2]))
                 with self._lock:
                     job.proc = proc
                 self.log.info(kv("rebaseline worker started", asset=job.asset, pid=proc.pid,
