@@ -54,8 +54,8 @@ def asset_doc(i: int, bundle: Path | None) -> dict[str, Any]:
         "window": {"length_s": 1.0, "lateness_s": 0.0, "timeout_s": 0.5},
         "channels": {
             "vib": {"topic": f"f/{name}/vib", "decoder": "json-batch", "rate_hz": VIB_HZ,
-                    "unit": "m/s2", "features": VIB_FEATS, "min": -500, "max": 500, "flatline_windows": 3,
-                    "stale_s": 10,
+                    "unit": "m/s2", "features": VIB_FEATS, "min": -500, "max": 500,
+                    "flatline_windows": 3, "stale_s": 10,
                     "spectrum": {"bands_hz": BANDS, "velocity_rms": True},
                     "limits": {"kurtosis": {"alert": 60, "alarm": 100}}},
             "temp": {"topic": f"f/{name}/temp", "decoder": "json-batch", "rate_hz": SLOW_HZ,
