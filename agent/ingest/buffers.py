@@ -14,7 +14,6 @@ import numpy as np
 
 from agent.config.load import AssetConfig, Config
 from agent.core.decode import Block
-from agent.core.lockstep import LockstepCut, cut_lockstep
 from agent.core.routing import Route
 from agent.core.timebase import DEFAULT_TOLERANCE_S, Step, TimeBase
 from agent.core.windows.assembler import AssembleResult, WindowAssembler, close_many
@@ -50,41 +49,21 @@ class AssetInbox:
 
 
 def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
-                  lockstep: Sequence[int] = (),
                   notes: list[tuple[int, list[tuple[int, Step]]]] | None = None
-                  ) -> tuple[list[AssembleResult | None], list[int], list[LockstepCut]]:
+                  ) -> tuple[list[AssembleResult], list[int]]:
     """Every asset's windows due at `now` and the late samples counted since the last
-    call, under every asset's lock, held for the one cut.
+    call, under every asset's lock, held for the one cut (`close_many`: the assets
+    whose next tumbling window is due with rows in step are cut together).
 
-    The assets at the positions `lockstep` are first offered to `cut_lockstep`; those it
-    cuts come back as None in the results and as rows of the returned cuts. The rest
-    are cut together by `close_many`. An assembler that raises fails alone: its
-    result carries the error (`AssembleResult.error`). `notes`, when given, gets per
-    inbox (ahead messages, clock steps) taken since the last call."""
+    An assembler that raises fails alone: its result carries the error
+    (`AssembleResult.error`). `notes`, when given, gets per inbox (ahead messages,
+    clock steps) taken since the last call."""
     held = []
     try:
         for ib in inboxes:
             ib.lock.acquire()
             held.append(ib.lock)
-        assemblers = [ib.assembler for ib in inboxes]
-        results: list[AssembleResult | None]
-        if lockstep:
-            try:
-                cuts, _ = cut_lockstep(assemblers, lockstep, now)
-            except Exception:  # leave them all to close_many, which contains errors per asset
-                cuts = []
-            results = [None] * len(inboxes)
-            taken = [False] * len(inboxes)
-            for c in cuts:
-                for i, _, _ in c.items:
-                    taken[i] = True
-            general = [i for i, t in enumerate(taken) if not t]
-            for i, r in zip(general, close_many([assemblers[i] for i in general], now),
-                            strict=True):
-                results[i] = r
-        else:
-            cuts = []
-            results = list(close_many(assemblers, now))
+        results = close_many([ib.assembler for ib in inboxes], now)
         late = [ib.late for ib in inboxes]
         for ib in inboxes:
             ib.late = 0
@@ -97,7 +76,7 @@ def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
     finally:
         for lock in held:
             lock.release()
-    return results, late, cuts
+    return results, late
 
 
 class ChannelBuffer:

@@ -160,10 +160,6 @@ class AssetRuntime:
     # Time-domain features any consumer of the row reads (config, limits; models are
     # checked to need no others): the feature pass computes only these.
     td_needed: frozenset[str] = frozenset()
-    # Nothing to judge per window but its score: no health checks or staleness, modes,
-    # spectral features or limits (from the config; `Pipeline` takes such assets'
-    # windows through its lockstep path when their channels allow).
-    plain: bool = False
 
     @classmethod
     def build(cls, cfg: AssetConfig, bundle: Bundle | None, bundle_error: str | None,
@@ -212,8 +208,6 @@ class AssetRuntime:
             for cname in cfg.iso10816.channels:
                 feat = f"{cname}.velocity_rms_mm_s"
                 rt.limits.append((chan_pos[cname], layout[feat], ZoneLimits(feat, cfg.iso10816)))
-        rt.plain = not (rt.checked or rt.stale_channels or rt.modes is not None
-                        or rt.mode_bundles or rt.spectral or rt.limits or rt.velocity_at)
         rt.set_bundle(bundle, bundle_error)
         return rt
 

@@ -201,7 +201,7 @@ def test_pysparkplug_edge_node_through_the_ingest_child(auth_broker: Broker) -> 
             p.kill()
         ingest.stop()
     # What reached the windows: the values the edge node sent, on their own timestamps.
-    results, _, _ = close_inboxes([inbox], t0 / 1000 + 30)
+    results, _ = close_inboxes([inbox], t0 / 1000 + 30)
     res = results[0]
     assert res is not None
     got: dict[int, list[tuple[float, float]]] = {}

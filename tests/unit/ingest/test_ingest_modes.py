@@ -59,10 +59,10 @@ def _messages() -> list[tuple[str, bytes, float]]:
 
 
 def _windows(buffers: Buffers) -> list[tuple[float, list[list[int]], list[list[int]]]]:
-    results, _, _ = close_inboxes([chans[0].inbox for chans in buffers.by_asset], T0 + 1e4)
+    results, _ = close_inboxes([chans[0].inbox for chans in buffers.by_asset], T0 + 1e4)
     return [(w.start, [np.asarray(t).view(np.int64).tolist() for t in w.timestamps],
              [np.asarray(v).view(np.int64).tolist() for v in w.values])
-            for r in results if r is not None for w in r.windows]
+            for r in results for w in r.windows]
 
 
 def _counts(m: Metrics) -> list[tuple[str, str, float]]:

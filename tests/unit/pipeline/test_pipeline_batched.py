@@ -84,7 +84,7 @@ def _check_scores(runtimes: list[AssetRuntime], rows: dict[str, np.ndarray]) -> 
 
 def test_batched_scores_equal_each_models_own_score(tmp_path: Path) -> None:
     pipe, buffers, runtimes, rows = _setup(tmp_path)
-    assert pipe._batched.n_models == N_ASSETS and len(pipe._batched.groups) == 1
+    assert pipe.scorer.batched.n_models == N_ASSETS and len(pipe.scorer.batched.groups) == 1
     rng = np.random.default_rng(0)
     for k in range(4):
         rows.clear()
@@ -101,11 +101,11 @@ def test_a_swapped_model_scores_at_once_and_joins_the_batch(tmp_path: Path) -> N
         _tick(pipe, buffers, k, rng)
     new = _bundle(tmp_path, "A2", 99)
     runtimes[2].set_bundle(new, None)
-    assert not pipe._batched.considered(new)
+    assert not pipe.scorer.batched.considered(new)
     rows.clear()
     _tick(pipe, buffers, 2, rng)
     _check_scores(runtimes, rows)  # scored by its own run this tick
-    assert pipe._batched.slot_of(new) is not None  # rebuilt after the tick
+    assert pipe.scorer.batched.slot_of(new) is not None  # rebuilt after the tick
     rows.clear()
     _tick(pipe, buffers, 3, rng)
     _check_scores(runtimes, rows)
@@ -121,7 +121,7 @@ def test_a_failing_batched_run_falls_back_to_each_model(
     def broken(z: np.ndarray, slots: np.ndarray) -> np.ndarray:
         raise RuntimeError("injected")
 
-    monkeypatch.setattr(pipe._batched.groups[0], "run", broken)
+    monkeypatch.setattr(pipe.scorer.batched.groups[0], "run", broken)
     scored = pipe.metrics.windows_scored
     before = sum(scored.labels(rt.cfg.name)._value.get() for rt in runtimes)
     with caplog.at_level(logging.ERROR):

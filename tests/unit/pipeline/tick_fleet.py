@@ -9,11 +9,12 @@ without a model. The feed knocks them about: bursts that raise and clear anomali
 spikes out of range, a flat-lined channel, a channel that goes silent (stale) and
 comes back, samples short, late or missing for a tick, and a model swapped mid-run.
 
-`trace(tmp, seed)` returns, per tick, a digest of the tick's messages, sequences and
-stats, and at the end a digest of the metrics (all but timing), the runtimes' state
-and `status()`. The expected digests were written by the pipeline before the one-tick
-rewrite of issue 22 (`python -m tests.unit.pipeline.tick_fleet --write`, run at commit
-9dbfb6e's pipeline), so the test holds the new tick to the old one's exact output.
+`trace(tmp, seed)` returns, per tick, a digest of the tick's messages (per asset, in
+order), sequences and stats, and at the end a digest of the metrics (all but timing),
+the runtimes' state and `status()`. The expected digests were written by the pipeline
+before the one-tick rewrite of issue 22 (`python -m tests.unit.pipeline.tick_fleet
+--write`, run on commit c25b27a's two-path pipeline), so the test holds the new tick to
+the old one's exact output.
 """
 
 from __future__ import annotations
@@ -144,8 +145,14 @@ class _Sink:
         self.ticks: list[Any] = []
 
     def submit(self, msgs: Any, sequences: Any = None) -> None:
-        self.ticks.append(([(m.topic, m.payload.decode(), m.kind.value, m.qos, m.retain,
-                             m.key) for m in msgs], sequences))
+        # Per asset, in order: the order of different assets' messages within one
+        # tick's batch is not part of the contract (the outbox keeps the batch whole).
+        per_asset: dict[str, list[Any]] = {}
+        for m in msgs:
+            asset = m.topic.split("/assets/")[1].split("/")[0]
+            per_asset.setdefault(asset, []).append(
+                (m.topic, m.payload.decode(), m.kind.value, m.qos, m.retain, m.key))
+        self.ticks.append((dict(sorted(per_asset.items())), sequences))
 
 
 def build(tmp: Path) -> tuple[Pipeline, Buffers, _Sink, dict[str, Any]]:
@@ -248,8 +255,8 @@ def trace(tmp: Path, seed: int, ticks: int = TICKS) -> dict[str, Any]:
         n_before = len(sink.ticks)
         st = pipe.tick(now)
         got = sink.ticks[n_before:]
-        for msgs, _ in got:
-            for _, payload, *_ in msgs:
+        for per_asset, _ in got:
+            for _, payload, *_ in (m for msgs in per_asset.values() for m in msgs):
                 if '"specversion"' in payload:
                     etype = json.loads(payload)["type"]
                     events[etype] = events.get(etype, 0) + 1

@@ -1,0 +1,153 @@
+"""What a tick judges about each asset before and beside its model: sensor health,
+staleness and liveness, the operating mode and its settling, static limits and zones.
+
+Each check runs only for the assets and channels that have it (`AssetRuntime.checked`,
+`stale_channels`, `modes`, `limits`, `velocity_at`); an asset with none of them costs
+one attribute test per window here. A window's verdict is a `Pending`: the mode it was
+in, the channels faulty at it, and why it is not scored (`reason`, None when it is).
+Skip reasons, first match wins: `sensor_fault`, `incomplete`, `unknown_mode`,
+`not_scored` (a mode marked `scored: false`), `settling`.
+"""
+
+from __future__ import annotations
+
+import logging
+from dataclasses import dataclass
+
+import numpy as np
+
+from agent.core.health import Reason as HealthReason
+from agent.core.limits import ZONES, ZoneLimits, zone_of
+from agent.core.modes import UNKNOWN_MODE
+from agent.core.windows.assembler import ClosedWindow
+from agent.ingest.buffers import Buffers
+from agent.ops.logs import kv
+from agent.ops.metrics import Metrics
+from agent.pipeline.emit import Emitter, reset_detector
+from agent.pipeline.runtime import AssetRuntime
+
+_LEVEL_VALUE = {"normal": 0, "alert": 1, "alarm": 2, "alert_low": 1, "alarm_low": 2}
+
+
+@dataclass(eq=False, slots=True)
+class Pending:
+    """One closed window on its way through the tick, with what was judged about it."""
+
+    rt: AssetRuntime
+    w: ClosedWindow
+    mode: str
+    faulty: tuple[int, ...]  # channels with a sensor fault at this window
+    reason: str | None  # why it is not scored, if it is not
+
+
+class Judge:
+    """Sensor health, modes and limits of the tick's windows; events through `emit`."""
+
+    def __init__(self, metrics: Metrics, logger: logging.Logger, buffers: Buffers,
+                 emit: Emitter, startup_grace_s: float) -> None:
+        self.metrics = metrics
+        self.log = logger
+        self.buffers = buffers
+        self.emit = emit
+        self.grace_s = startup_grace_s
+
+    def stale(self, rt: AssetRuntime, ai: int, now: float) -> None:
+        """Staleness of the asset's channels with `stale_s`, judged every tick."""
+        for ci in rt.stale_channels:
+            h = rt.health[ci]
+            buf = self.buffers.by_asset[ai][ci]
+            if not buf.last_arrival:
+                # Never published since start: *waiting*, not stale, for the startup
+                # grace (or the channel's own stale_s, if longer); then stale.
+                since = now - (rt.started_s if rt.started_s is not None else now)
+                if since <= max(self.grace_s, h.limits.stale_s or 0.0):
+                    continue
+                last = rt.started_s if rt.started_s is not None else now
+            else:
+                last = buf.last_arrival
+            change = h.check_stale(now - last)
+            if change is not None:
+                self.emit.sensor_event(rt, ci, change, now, f"stale|{last:.3f}", None)
+
+    def liveness(self, rt: AssetRuntime, notes: list[tuple[int, str | None, float]],
+                 now: float) -> None:
+        """Death certificates fault their channels at once (`sensor.fault`, reason
+        node_death or device_death); a birth after one lets them recover."""
+        for ci, death, t in notes:
+            change = rt.health[ci].set_liveness(
+                HealthReason(death) if death is not None else None, max(0.0, now - t))
+            if change is not None:
+                self.emit.sensor_event(rt, ci, change, t, f"{death}|{t:.3f}", None)
+
+    def window(self, rt: AssetRuntime, w: ClosedWindow) -> Pending:
+        """Sensor health of the window's checked channels, then its mode."""
+        if not rt.checked and rt.modes is None:  # nothing to judge but completeness
+            return Pending(rt, w, rt.mode, (), None if w.complete else "incomplete")
+        health = rt.health
+        for ci in rt.checked:  # passive channels: nothing to judge (decoders let no
+            # non-finite sample through), and they can never be faulty
+            change = health[ci].check_window(w.values[ci], w.timestamps[ci])
+            if change is not None:
+                self.emit.sensor_event(rt, ci, change, w.end, f"{w.start:.3f}", w)
+        faulty = tuple(i for i in rt.checked if health[i].faulty)
+        settling = False
+        scored = True
+        if rt.modes is not None and rt.mode_index_ch is not None:
+            d = rt.modes.step(w.values[rt.mode_index_ch], w.start)
+            if d.mode != rt.mode:
+                self.set_mode(rt, d.mode)
+            settling, scored = d.settling, d.scored
+        rt.settling = settling
+        reason = None
+        if faulty:
+            reason = "sensor_fault"
+        elif not w.complete:
+            reason = "incomplete"
+        elif rt.mode == UNKNOWN_MODE:
+            reason = "unknown_mode"
+        elif not scored:
+            reason = "not_scored"
+        elif settling:
+            reason = "settling"
+        return Pending(rt, w, rt.mode, faulty, reason)
+
+    def set_mode(self, rt: AssetRuntime, mode: str) -> None:
+        gauge = self.metrics.mode
+        gauge.labels(rt.cfg.name, rt.mode).set(0)
+        gauge.labels(rt.cfg.name, mode).set(1)
+        self.log.info(kv("mode changed", asset=rt.cfg.name, mode=mode, was=rt.mode))
+        rt.mode = mode
+        reset_detector(rt)
+
+    def limits(self, p: Pending, row: np.ndarray) -> None:
+        """Velocity RMS gauges, static limits and ISO 10816-3 zones of one window, on
+        channels without a sensor fault (a faulty sensor's value says nothing about the
+        machine)."""
+        rt, w = p.rt, p.w
+        name = rt.cfg.name
+        for ci, at in rt.velocity_at:
+            v = float(row[at])
+            if ci not in p.faulty and np.isfinite(v):
+                cname = rt.cfg.channels[ci].name
+                rt.last_velocity_mm_s[cname] = v
+                # Prometheus wants base units: m/s (PITFALLS.md, promtool).
+                self.metrics.velocity_rms.labels(name, cname).set(v / 1000.0)
+        for ci, at, mon in rt.limits:
+            if ci in p.faulty:
+                continue
+            value = float(row[at])
+            if not np.isfinite(value):
+                continue
+            rises = mon.step(value)
+            ch = rt.cfg.channels[ci]
+            if isinstance(mon, ZoneLimits):
+                zone = zone_of(value, mon.boundaries)
+                self.metrics.vibration_zone.labels(name, ch.name).set(ZONES.index(mon.zone) + 1)
+                self.metrics.limit_level.labels(name, mon.feature, "operational").set(
+                    ("normal", "alarm", "trip").index(mon.operational))
+            else:
+                zone = None
+                self.metrics.limit_level.labels(name, f"{ch.name}.{mon.cfg.feature}",
+                                                "limit").set(_LEVEL_VALUE[mon.level])
+            for rise in rises:
+                self.emit.limit_event(rt, ch.name, rise, zone, mon, w)
