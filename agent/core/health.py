@@ -26,6 +26,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass, field
 from enum import StrEnum
+from typing import NamedTuple
 
 import numpy as np
 
@@ -113,6 +114,49 @@ def window_reasons(limits: HealthLimits, values: np.ndarray, ts: np.ndarray
     return reasons, detail
 
 
+class WindowStats(NamedTuple):
+    """What `ChannelHealth.check_stats` needs of one channel's window of n >= 1 finite
+    samples: lowest and highest value, the largest |dx/dt| between consecutive samples
+    with time moving forward (None when not asked for or there is no such pair), the
+    first and last sample."""
+
+    n: int
+    lo: float
+    hi: float
+    rate: float | None
+    first_v: float
+    first_t: float
+    last_v: float
+    last_t: float
+
+
+def window_stats(values: np.ndarray, ts: np.ndarray, rate_rows: np.ndarray
+                 ) -> list[WindowStats | None]:
+    """`WindowStats` of every row of `values` / `ts` [rows, n] (n >= 1, every row full),
+    the rate only for rows where `rate_rows`; None for a row holding a non-finite
+    sample (`check_window` judges those). The numbers are `check_window`'s own: the same
+    operations, row by row."""
+    rows, n = values.shape
+    finite = np.isfinite(values).all(axis=1).tolist()
+    lo = values.min(axis=1).tolist()
+    hi = values.max(axis=1).tolist()
+    fv, lv = values[:, 0].tolist(), values[:, -1].tolist()
+    ft, lt = ts[:, 0].tolist(), ts[:, -1].tolist()
+    rate: list[float | None] = [None] * rows
+    sel = np.flatnonzero(rate_rows) if n > 1 else np.empty(0, np.int64)
+    if sel.size:
+        dv = np.diff(values[sel], axis=1)
+        dt = np.diff(ts[sel], axis=1)
+        ok = dt > 0
+        r = np.abs(np.divide(dv, dt, out=np.zeros_like(dv), where=ok)).max(axis=1)
+        any_ok = [bool(x) for x in ok.any(axis=1)]
+        for i, has, ri in zip(sel.tolist(), any_ok, r.tolist(), strict=True):
+            if has:
+                rate[i] = ri
+    return [WindowStats(n, lo[i], hi[i], rate[i], fv[i], ft[i], lv[i], lt[i])
+            if finite[i] else None for i in range(rows)]
+
+
 class ChannelHealth:
     """The health state machine of one channel."""
 
@@ -157,6 +201,43 @@ class ChannelHealth:
         if self.dead is not None:
             reasons.append(self.dead)
         return self._judge(reasons, detail, clean_window=values.size > 0 and not reasons)
+
+    def check_stats(self, st: WindowStats) -> HealthChange | None:
+        """`check_window` of a window of finite samples given as its `WindowStats`
+        (computed for many windows at once by `window_stats`): the same verdict, the
+        same state after."""
+        lim = self.limits
+        limit = lim.max_rate_per_s
+        reasons: list[Reason] = []
+        detail: dict[str, float] = {}
+        if (lim.min_value is not None and st.lo < lim.min_value) or (
+                lim.max_value is not None and st.hi > lim.max_value):
+            reasons.append(Reason.OUT_OF_RANGE)
+            detail["min"], detail["max"] = st.lo, st.hi
+        if limit is not None:
+            if st.rate is not None and st.rate > limit:
+                reasons.append(Reason.RATE_OF_CHANGE)
+                detail["max_rate_per_s"] = st.rate
+            last = self._last
+            if last is not None and st.first_t > last[1]:
+                rate = abs(st.first_v - last[0]) / (st.first_t - last[1])
+                if rate > limit and Reason.RATE_OF_CHANGE not in reasons:
+                    reasons.append(Reason.RATE_OF_CHANGE)
+                    detail["max_rate_per_s"] = rate
+            self._last = (st.last_v, st.last_t)
+        n_fl = lim.flatline_windows
+        if n_fl is not None:
+            if st.n >= 2:
+                self._flat_windows = self._flat_windows + 1 if st.hi == st.lo else 0
+            if self._flat_windows >= n_fl:
+                reasons.append(Reason.FLATLINE)
+                detail["flat_windows"] = float(self._flat_windows)
+                detail["value"] = st.last_v
+        if self.stale:
+            reasons.append(Reason.STALE)
+        if self.dead is not None:
+            reasons.append(self.dead)
+        return self._judge(reasons, detail, clean_window=not reasons)
 
     def set_liveness(self, death: Reason | None, age_s: float = 0.0) -> HealthChange | None:
         """A death certificate (`death`: NODE_DEATH or DEVICE_DEATH) makes the channel

@@ -12,11 +12,13 @@ Skip reasons, first match wins: `sensor_fault`, `incomplete`, `unknown_mode`,
 from __future__ import annotations
 
 import logging
+from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
 
 from agent.core.health import Reason as HealthReason
+from agent.core.health import WindowStats, window_stats
 from agent.core.limits import ZONES, ZoneLimits, zone_of
 from agent.core.modes import UNKNOWN_MODE
 from agent.core.windows.assembler import ClosedWindow
@@ -79,14 +81,20 @@ class Judge:
             if change is not None:
                 self.emit.sensor_event(rt, ci, change, t, f"{death}|{t:.3f}", None)
 
-    def window(self, rt: AssetRuntime, w: ClosedWindow) -> Pending:
-        """Sensor health of the window's checked channels, then its mode."""
+    def window(self, rt: AssetRuntime, w: ClosedWindow,
+               stats: dict[int, WindowStats] | None = None) -> Pending:
+        """Sensor health of the window's checked channels (from `stats` where
+        `health_stats` had them), then its mode."""
         if not rt.checked and rt.modes is None:  # nothing to judge but completeness
             return Pending(rt, w, rt.mode, (), None if w.complete else "incomplete")
         health = rt.health
         for ci in rt.checked:  # passive channels: nothing to judge (decoders let no
             # non-finite sample through), and they can never be faulty
-            change = health[ci].check_window(w.values[ci], w.timestamps[ci])
+            st = stats.get(ci) if stats is not None else None
+            if st is not None:
+                change = health[ci].check_stats(st)
+            else:
+                change = health[ci].check_window(w.values[ci], w.timestamps[ci])
             if change is not None:
                 self.emit.sensor_event(rt, ci, change, w.end, f"{w.start:.3f}", w)
         faulty = tuple(i for i in rt.checked if health[i].faulty)
@@ -110,6 +118,47 @@ class Judge:
         elif settling:
             reason = "settling"
         return Pending(rt, w, rt.mode, faulty, reason)
+
+    @staticmethod
+    def health_stats(wins: Sequence[tuple[AssetRuntime, ClosedWindow]]
+                     ) -> list[dict[int, WindowStats] | None]:
+        """The statistics sensor health needs of every checked channel of every window,
+        computed together: one gather and a handful of row-wise reductions per matrix
+        the cut made (blocks of full rows cut for many assets at once). Channels outside
+        such blocks, or holding a non-finite sample, are left to `check_window`."""
+        out: list[dict[int, WindowStats] | None] = [None] * len(wins)
+        # Per cut matrix (by id): (values, timestamps, rows, (window, channel), rate?)
+        mats: dict[int, tuple[np.ndarray, np.ndarray, list[int], list[tuple[int, int]],
+                              list[bool]]] = {}
+        for wi, (rt, w) in enumerate(wins):
+            if not rt.checked:
+                continue
+            is_checked, wants_rate = rt.is_checked, rt.wants_rate
+            for blk in w.blocks:
+                base, tbase = blk.base, blk.tbase
+                if base is None or tbase is None or not blk.uniform:
+                    continue
+                got = mats.get(id(base))
+                if got is None:
+                    got = mats[id(base)] = (base, tbase, [], [], [])
+                _, _, rows, where, rate = got
+                for r, c in enumerate(blk.chans):
+                    if is_checked[c]:
+                        rows.append(blk.row0 + r)
+                        where.append((wi, c))
+                        rate.append(wants_rate[c])
+        for base, tbase, rows, where, rate in mats.values():
+            if not rows or base.shape[1] == 0:
+                continue
+            idx = np.asarray(rows, dtype=np.int64)
+            stats = window_stats(base[idx], tbase[idx], np.asarray(rate, dtype=bool))
+            for (wi, c), st in zip(where, stats, strict=True):
+                if st is not None:
+                    d = out[wi]
+                    if d is None:
+                        d = out[wi] = {}
+                    d[c] = st
+        return out
 
     def set_mode(self, rt: AssetRuntime, mode: str) -> None:
         gauge = self.metrics.mode

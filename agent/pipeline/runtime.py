@@ -143,6 +143,10 @@ class AssetRuntime:
     velocity_at: list[tuple[int, int]] = field(default_factory=list)  # (channel, row position)
     stale_channels: list[int] = field(default_factory=list)  # channels with `stale_s`
     checked: list[int] = field(default_factory=list)  # channels with any health check
+    # Per channel: whether it is in `checked`, and whether its check wants the rate of
+    # change (the judge's batch statistics).
+    is_checked: tuple[bool, ...] = ()
+    wants_rate: tuple[bool, ...] = ()
     # What the threshold and anomalous gauges were last set to by `_step` (None: unknown).
     shown_threshold: float | None = None
     shown_anomalous: int | None = None
@@ -193,6 +197,8 @@ class AssetRuntime:
         rt.spectral = [i for i, c in enumerate(cfg.channels) if c.spectrum is not None]
         rt.stale_channels = [i for i, c in enumerate(cfg.channels) if c.stale_s is not None]
         rt.checked = [i for i, h in enumerate(rt.health) if not h.limits.passive]
+        rt.is_checked = tuple(not h.limits.passive for h in rt.health)
+        rt.wants_rate = tuple(h.limits.max_rate_per_s is not None for h in rt.health)
         td = {f for c in cfg.channels for f in c.all_features if f in FEATURE_INDEX}
         td |= {lim.feature for c in cfg.channels for lim in c.limits
                if lim.feature in FEATURE_INDEX}

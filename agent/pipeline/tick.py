@@ -232,6 +232,7 @@ class Pipeline:
         notes: list[tuple[int, list[tuple[int, Step]]]] = []
         results, lates = close_inboxes([self._inboxes[ai] for ai in due], now, notes)
         judge = self.judge
+        wins: list[tuple[AssetRuntime, ClosedWindow]] = []
         for ai, res, late, (ahead, steps) in zip(due, results, lates, notes, strict=True):
             if late:
                 self._m_at[ai].late.inc(late)
@@ -245,7 +246,6 @@ class Pipeline:
                 with self._inboxes[ai].lock:  # start afresh on the next samples
                     rt.assembler.reset()
                 continue
-            n0 = len(pending)
             try:
                 if rt.stale_channels and self.judge_stale:
                     judge.stale(rt, ai, now)
@@ -254,16 +254,30 @@ class Pipeline:
                     rt.empty_streak += res.empty_skipped
                     if not res.windows:
                         self._set_coverage(rt, 0.0)
-                closed = self._m_at[ai].closed
-                for w in res.windows:
-                    closed.inc()
-                    stats.windows_closed += 1
-                    rt.empty_streak = 0
-                    self._set_coverage(rt, min(w.coverage, default=1.0))
-                    pending.append(judge.window(rt, w))
             except Exception as exc:
                 self._failed(rt, "health", exc)
-                del pending[n0:]
+                continue
+            closed = self._m_at[ai].closed
+            for w in res.windows:
+                closed.inc()
+                wins.append((rt, w))
+        stats.windows_closed += len(wins)
+        try:
+            health = judge.health_stats(wins)
+        except Exception:  # each window's own check_window decides which asset fails
+            health = [None] * len(wins)
+        failed = self._failed_now
+        for (rt, w), hs in zip(wins, health, strict=True):
+            if rt.cfg.name in failed:
+                continue
+            try:
+                rt.empty_streak = 0
+                self._set_coverage(rt, w.min_coverage)
+                pending.append(judge.window(rt, w, hs))
+            except Exception as exc:
+                self._failed(rt, "health", exc)
+        if failed:  # an asset failing at its second window drops its first too
+            pending = [p for p in pending if p.rt.cfg.name not in failed]
         return pending
 
     def _account(self, due: list[int]) -> None:

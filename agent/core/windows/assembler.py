@@ -52,11 +52,12 @@ class Block:
     """The samples of one rate group of channels in one window: row r holds channel
     `chans[r]`, its first `counts[r]` entries valid (the rest is padding)."""
 
-    __slots__ = ("base", "chans", "counts", "row0", "timestamps", "uniform", "values")
+    __slots__ = ("base", "chans", "counts", "row0", "tbase", "timestamps", "uniform", "values")
 
     def __init__(self, chans: tuple[int, ...], timestamps: np.ndarray, values: np.ndarray,
                  counts: list[int], uniform: bool | None = None,
-                 base: np.ndarray | None = None, row0: int = 0) -> None:
+                 base: np.ndarray | None = None, row0: int = 0,
+                 tbase: np.ndarray | None = None) -> None:
         self.chans = chans
         self.timestamps = timestamps
         self.values = values
@@ -64,6 +65,7 @@ class Block:
         # When `values` is rows row0.. of a matrix cut for many assets at once: that
         # matrix (the feature pass takes it whole instead of stacking the blocks again).
         self.base = base
+        self.tbase = tbase  # the same for `timestamps`
         self.row0 = row0
         # Every row full: the block is a plain [rows, samples] matrix.
         self.uniform = (not counts or min(counts) == values.shape[1]) if uniform is None \
@@ -77,12 +79,14 @@ class ClosedWindow:
     `timestamps` and `coverage` are per-channel tuples in channel order either way.
     """
 
-    __slots__ = ("_cov", "_ts", "_vals", "blocks", "complete", "end", "expected", "start")
+    __slots__ = ("_cov", "_min_cov", "_ts", "_vals", "blocks", "complete", "end", "expected",
+                 "start")
 
     def __init__(self, start: float, end: float, values: Sequence[np.ndarray] | None,
                  timestamps: Sequence[np.ndarray] | None, coverage: Sequence[float] | None,
                  complete: bool, *, blocks: tuple[Block, ...] = (),
-                 expected: tuple[float, ...] = ()) -> None:
+                 expected: tuple[float, ...] = (), min_coverage: float | None = None
+                 ) -> None:
         self.start = start
         self.end = end
         self.complete = complete
@@ -91,6 +95,7 @@ class ClosedWindow:
         self._vals = tuple(values) if values is not None else None
         self._ts = tuple(timestamps) if timestamps is not None else None
         self._cov = tuple(coverage) if coverage is not None else None
+        self._min_cov = min_coverage
 
     def _split(self) -> None:
         n = len(self.expected)
@@ -126,6 +131,13 @@ class ClosedWindow:
                     cov[c] = k / e if e else 1.0
             self._cov = tuple(cov)
         return self._cov
+
+    @property
+    def min_coverage(self) -> float:
+        """The lowest channel's coverage (1.0 without channels)."""
+        if self._min_cov is None:
+            self._min_cov = min(self.coverage, default=1.0)
+        return self._min_cov
 
     def __repr__(self) -> str:
         return f"ClosedWindow(start={self.start!r}, end={self.end!r}, complete={self.complete})"
@@ -588,7 +600,7 @@ def _close_fast(assemblers: Sequence[WindowAssembler],
         for (fi, gi, g, _, _), n in zip(members, sizes, strict=True):
             if counts_all is None:
                 blocks[fi][gi] = Block(g.chans, t[off:off + n], v[off:off + n], [m] * n, True,
-                                       v, off)
+                                       v, off, t)
             else:
                 counts = counts_all[off:off + n]
                 mc = max(counts)
@@ -599,6 +611,7 @@ def _close_fast(assemblers: Sequence[WindowAssembler],
         a = assemblers[i]
         complete = True
         total = 0
+        cov = 1.0
         for gi, g in enumerate(a._groups):
             blk = bl[gi]
             if blk is None:
@@ -607,7 +620,9 @@ def _close_fast(assemblers: Sequence[WindowAssembler],
             counts = blk.counts
             low = min(counts)
             total += low * len(counts) if blk.uniform else sum(counts)
-            if g.expected and low / g.expected < a.cfg.min_coverage:
+            c = low / g.expected if g.expected else 1.0
+            cov = min(cov, c) if gi else c
+            if g.expected and c < a.cfg.min_coverage:
                 complete = False
         if total == 0:  # an empty window: the gap logic of close_due decides
             try:
@@ -617,7 +632,8 @@ def _close_fast(assemblers: Sequence[WindowAssembler],
             continue
         res = AssembleResult()
         res.windows.append(ClosedWindow(start, end, None, None, None, complete,
-                                        blocks=tuple(bl), expected=a._expected))  # type: ignore[arg-type]
+                                        blocks=tuple(bl), expected=a._expected,  # type: ignore[arg-type]
+                                        min_coverage=cov))
         assert a._next_k is not None
         a._set_next(a._next_k + 1)
         for g, blk in zip(a._groups, bl, strict=True):
