@@ -149,7 +149,7 @@ def window_stats(values: np.ndarray, ts: np.ndarray, rate_rows: np.ndarray
         dt = np.diff(ts[sel], axis=1)
         ok = dt > 0
         r = np.abs(np.divide(dv, dt, out=np.zeros_like(dv), where=ok)).max(axis=1)
-        any_ok = [bool(x) for x in ok.any(axis=1)]
+        any_ok: list[bool] = np.asarray(ok.any(axis=1)).tolist()
         for i, has, ri in zip(sel.tolist(), any_ok, r.tolist(), strict=True):
             if has:
                 rate[i] = ri
