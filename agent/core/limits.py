@@ -26,6 +26,7 @@ velocity boundaries (from memory). Rotodynamic pumps are covered by ISO 10816-7
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -67,19 +68,26 @@ class LevelMonitor:
         self.on_delay = on_delay
         self.level = 0
         self._beyond = [0] * len(self.thresholds)  # consecutive windows beyond each
+        # At rest (level 0, no threshold passed in the last window) and a value at or
+        # below the lowest threshold: a step changes nothing (the usual window).
+        self._rest = True
+        self._lowest = min(self.thresholds, default=math.inf)
 
     def step(self, value: float) -> int | None:
         """Feed one window's value; return the new level when it rises, else None."""
+        if self._rest and value <= self._lowest:
+            return None
         for i, t in enumerate(self.thresholds):
             self._beyond[i] = self._beyond[i] + 1 if value > t else 0
         # Fall: only below a level's threshold by the deadband.
         while self.level > 0 and value <= self.thresholds[self.level - 1] - self.deadband:
             self.level -= 1
         held = sum(1 for n in self._beyond if n >= self.on_delay)
-        if held > self.level:
+        rose = held > self.level
+        if rose:
             self.level = held
-            return held
-        return None
+        self._rest = self.level == 0 and not any(self._beyond)
+        return held if rose else None
 
 
 @dataclass(frozen=True)

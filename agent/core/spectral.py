@@ -129,15 +129,17 @@ def spectral_features(segments: Sequence[np.ndarray], rates_hz: Sequence[float],
     unknown. Segments are grouped by (length, rate, config) and each group is one FFT
     call; a segment shorter than MIN_SAMPLES gives NaN (its window is never scored).
     """
-    out: list[np.ndarray] = [np.full(len(s.feature_names()), np.nan) for s in specs]
+    out: list[np.ndarray | None] = [None] * len(segments)
     groups: dict[tuple[int, float, SpectrumConfig], list[int]] = {}
     for i, (seg, fs, spec) in enumerate(zip(segments, rates_hz, specs, strict=True)):
         if seg.size >= MIN_SAMPLES:
             groups.setdefault((int(seg.size), float(fs), spec), []).append(i)
+        else:
+            out[i] = np.full(len(spec.feature_names()), np.nan)
     for (_, fs, spec), idx in groups.items():
         x = np.stack([np.asarray(segments[i], dtype=np.float64) for i in idx])
         sp = np.asarray([speeds_hz[i] for i in idx], dtype=np.float64)
         block = _group_features(x, fs, spec, sp)
         for j, i in enumerate(idx):
             out[i] = block[j]
-    return out
+    return out  # type: ignore[return-value]  # every entry is set above

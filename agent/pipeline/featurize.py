@@ -15,10 +15,13 @@ from typing import Protocol
 
 import numpy as np
 
+from agent.config.load import SpectrumConfig
 from agent.core.features import block_features, segment_features, stack_rows
 from agent.core.spectral import spectral_features
 from agent.core.windows.assembler import Block, ClosedWindow
 from agent.pipeline.runtime import AssetRuntime
+
+_EMPTY = np.empty(0)
 
 
 class Pending(Protocol):
@@ -58,47 +61,70 @@ def feature_rows(todo: Sequence[Pending]) -> list[np.ndarray]:
         feats[n] = block_features(x, needed)
     if ragged:
         feats[-1] = segment_features(ragged)
-    spec_segs, spec_rates, spec_cfgs, spec_speeds, spec_at = [], [], [], [], []
-    for wi, p in enumerate(todo):
-        rt = p.rt
-        if not rt.spectral:
-            continue
-        speed_hz = np.nan
-        if rt.speed_index is not None:
-            sv = p.w.values[rt.speed_index]
-            speed_hz = float(sv.mean()) / 60.0 if sv.size else np.nan
-        for ci in rt.spectral:
-            ch = rt.cfg.channels[ci]
-            assert ch.spectrum is not None
-            spec_segs.append(p.w.values[ci])
-            spec_rates.append(ch.rate_hz)
-            spec_cfgs.append(ch.spectrum)
-            spec_speeds.append(speed_hz)
-            spec_at.append((wi, ci))
-    spec = spectral_features(spec_segs, spec_rates, spec_cfgs, spec_speeds) \
-        if spec_segs else []
-    by_window: dict[tuple[int, int], np.ndarray] = dict(zip(spec_at, spec, strict=True))
+    spec = _spectral(todo)
     rows: list[np.ndarray] = []
-    for wi, (p, (a, b)) in enumerate(zip(todo, spans, strict=True)):
-        n_ch = len(p.rt.cfg.channels)
-        if b - a == 1 and not p.rt.spectral:
+    for p, (a, b), k in zip(todo, spans, spec[1], strict=True):
+        rt = p.rt
+        n_ch = len(rt.cfg.channels)
+        if b - a == 1 and not rt.spectral:
             chans, n, off = places[a]
             if len(chans) == n_ch:  # one block of every channel in order: a view
                 rows.append(feats[n][off:off + n_ch].reshape(-1))
                 continue
-        per_ch: list[np.ndarray] = [np.empty(0)] * n_ch
+        per_ch: list[np.ndarray] = [_EMPTY] * n_ch
         for chans, n, off in places[a:b]:
             f = feats[n]
             for r, c in enumerate(chans):
                 per_ch[c] = f[off + r]
+        if k < 0:
+            rows.append(np.concatenate(per_ch))
+            continue
+        extra = dict(zip(rt.spectral, spec[0][k:k + len(rt.spectral)], strict=True))
         parts = []
         for ci in range(n_ch):
             parts.append(per_ch[ci])
-            extra = by_window.get((wi, ci))
-            if extra is not None:
-                parts.append(extra)
+            got = extra.get(ci)
+            if got is not None:
+                parts.append(got)
         rows.append(np.concatenate(parts))
     return rows
+
+
+def _samples(w: ClosedWindow, rt: AssetRuntime, ci: int) -> np.ndarray:
+    """Channel `ci`'s samples in `w` (`w.values[ci]`, without splitting every channel)."""
+    if not w.blocks:
+        return w.values[ci]
+    gi, r = rt.chan_at[ci]
+    blk = w.blocks[gi]
+    return blk.values[r, :blk.counts[r]]
+
+
+def _spectral(todo: Sequence[Pending]) -> tuple[list[np.ndarray], list[int]]:
+    """The spectral features of every spectral channel of every window, in window and
+    channel order, and per window where its first one is (-1: none)."""
+    segs: list[np.ndarray] = []
+    rates: list[float] = []
+    cfgs: list[SpectrumConfig] = []
+    speeds: list[float] = []
+    first: list[int] = []
+    for p in todo:
+        rt = p.rt
+        if not rt.spectral:
+            first.append(-1)
+            continue
+        first.append(len(segs))
+        speed_hz = np.nan
+        if rt.speed_index is not None:
+            sv = _samples(p.w, rt, rt.speed_index)
+            speed_hz = float(sv.mean()) / 60.0 if sv.size else np.nan
+        for ci in rt.spectral:
+            ch = rt.cfg.channels[ci]
+            assert ch.spectrum is not None
+            segs.append(_samples(p.w, rt, ci))
+            rates.append(ch.rate_hz)
+            cfgs.append(ch.spectrum)
+            speeds.append(speed_hz)
+    return (spectral_features(segs, rates, cfgs, speeds) if segs else []), first
 
 
 def _place(blk: Block, by_len: dict[int, list[np.ndarray]], n_by_len: dict[int, int],

@@ -14,8 +14,10 @@ from __future__ import annotations
 import logging
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
+from prometheus_client import Gauge
 
 from agent.core.health import Reason as HealthReason
 from agent.core.health import WindowStats, window_stats
@@ -52,6 +54,8 @@ class Judge:
         self.buffers = buffers
         self.emit = emit
         self.grace_s = startup_grace_s
+        # Gauge children of limits and zones, with the value last set.
+        self._gauges: dict[tuple[int, tuple[str, ...]], list[Any]] = {}
 
     def stale(self, rt: AssetRuntime, ai: int, now: float) -> None:
         """Staleness of the asset's channels with `stale_s`, judged every tick."""
@@ -171,16 +175,15 @@ class Judge:
     def limits(self, p: Pending, row: np.ndarray) -> None:
         """Velocity RMS gauges, static limits and ISO 10816-3 zones of one window, on
         channels without a sensor fault (a faulty sensor's value says nothing about the
-        machine)."""
+        machine). Gauges are set when their value changes (children looked up once)."""
         rt, w = p.rt, p.w
-        name = rt.cfg.name
         for ci, at in rt.velocity_at:
             v = float(row[at])
             if ci not in p.faulty and np.isfinite(v):
                 cname = rt.cfg.channels[ci].name
                 rt.last_velocity_mm_s[cname] = v
                 # Prometheus wants base units: m/s (PITFALLS.md, promtool).
-                self.metrics.velocity_rms.labels(name, cname).set(v / 1000.0)
+                self._gauge(self.metrics.velocity_rms, (rt.cfg.name, cname), v / 1000.0)
         for ci, at, mon in rt.limits:
             if ci in p.faulty:
                 continue
@@ -188,15 +191,28 @@ class Judge:
             if not np.isfinite(value):
                 continue
             rises = mon.step(value)
-            ch = rt.cfg.channels[ci]
             if isinstance(mon, ZoneLimits):
-                zone = zone_of(value, mon.boundaries)
-                self.metrics.vibration_zone.labels(name, ch.name).set(ZONES.index(mon.zone) + 1)
-                self.metrics.limit_level.labels(name, mon.feature, "operational").set(
-                    ("normal", "alarm", "trip").index(mon.operational))
+                self._zone_gauges(rt, ci, mon)
             else:
-                zone = None
-                self.metrics.limit_level.labels(name, f"{ch.name}.{mon.cfg.feature}",
-                                                "limit").set(_LEVEL_VALUE[mon.level])
+                self._gauge(self.metrics.limit_level,
+                            (rt.cfg.name, f"{rt.cfg.channels[ci].name}.{mon.cfg.feature}",
+                             "limit"), _LEVEL_VALUE[mon.level])
             for rise in rises:
-                self.emit.limit_event(rt, ch.name, rise, zone, mon, w)
+                zone = zone_of(value, mon.boundaries) if isinstance(mon, ZoneLimits) else None
+                self.emit.limit_event(rt, rt.cfg.channels[ci].name, rise, zone, mon, w)
+
+    def _zone_gauges(self, rt: AssetRuntime, ci: int, mon: ZoneLimits) -> None:
+        name = rt.cfg.name
+        self._gauge(self.metrics.vibration_zone, (name, rt.cfg.channels[ci].name),
+                    ZONES.index(mon.zone) + 1)
+        self._gauge(self.metrics.limit_level, (name, mon.feature, "operational"),
+                    ("normal", "alarm", "trip").index(mon.operational))
+
+    def _gauge(self, family: Gauge, labels: tuple[str, ...], value: float) -> None:
+        """Set a gauge child to `value` unless it holds it already."""
+        got = self._gauges.get((id(family), labels))
+        if got is None:
+            got = self._gauges[(id(family), labels)] = [family.labels(*labels), None]
+        if got[1] != value:
+            got[0].set(value)
+            got[1] = value

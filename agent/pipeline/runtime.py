@@ -138,6 +138,8 @@ class AssetRuntime:
     last_velocity_mm_s: dict[str, float] = field(default_factory=dict)
     started_s: float | None = None
     spectral: list[int] = field(default_factory=list)  # channels with spectral features
+    # Per channel: (block, row) of its samples in a closed window's `blocks`.
+    chan_at: tuple[tuple[int, int], ...] = ()
     speed_index: int | None = None
     mode_index_ch: int | None = None
     velocity_at: list[tuple[int, int]] = field(default_factory=list)  # (channel, row position)
@@ -195,6 +197,7 @@ class AssetRuntime:
                                                 liveness=c.decoder is Decoder.SPARKPLUG_B))
                      for c in cfg.channels]
         rt.spectral = [i for i, c in enumerate(cfg.channels) if c.spectrum is not None]
+        rt.chan_at = rt.assembler.channel_rows()
         rt.stale_channels = [i for i, c in enumerate(cfg.channels) if c.stale_s is not None]
         rt.checked = [i for i, h in enumerate(rt.health) if not h.limits.passive]
         rt.is_checked = tuple(not h.limits.passive for h in rt.health)

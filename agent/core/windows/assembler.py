@@ -304,6 +304,14 @@ class WindowAssembler:
         # a later window, so a sample on a boundary falls in exactly one tumbling window.
         self._span_k = round(span) if abs(span - round(span)) < 1e-9 else None
 
+    def channel_rows(self) -> tuple[tuple[int, int], ...]:
+        """Per channel: (its block's index in a closed window's `blocks`, its row there)."""
+        where: dict[int, tuple[int, int]] = {}
+        for gi, g in enumerate(self._groups):
+            for r, c in enumerate(g.chans):
+                where[c] = (gi, r)
+        return tuple(where[c] for c in range(len(where)))
+
     def reset(self) -> None:
         """Forget every pending sample and the window placement, as a fresh assembler
         (after an error left this one in a state it cannot close windows from)."""
