@@ -59,6 +59,7 @@ class ModeTracker:
 
     def __init__(self, cfg: ModesConfig) -> None:
         self.cfg = cfg
+        self._specs = {m.name: m for m in cfg.states}  # `cfg.spec`, looked up per window
         self.mode: str | None = None
         self.since: float | None = None  # start of the first window in this mode
         self.settle_until = -math.inf
@@ -75,12 +76,12 @@ class ModeTracker:
             mode = mode_for_value(self.cfg, float(v.mean()), self.mode)
         changed = self.mode is not None and mode != self.mode
         if changed:
-            spec = self.cfg.spec(mode)
+            spec = self._specs.get(mode)
             settle = spec.settling_s if spec is not None else 0.0
             self.settle_until = window_start + settle
         if mode != self.mode:
             self.since = window_start
         self.mode = mode
-        spec = self.cfg.spec(mode)
+        spec = self._specs.get(mode)
         return ModeDecision(mode, changed, window_start < self.settle_until,
                             spec is not None and spec.scored)

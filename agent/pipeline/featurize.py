@@ -90,15 +90,6 @@ def feature_rows(todo: Sequence[Pending]) -> list[np.ndarray]:
     return rows
 
 
-def _samples(w: ClosedWindow, rt: AssetRuntime, ci: int) -> np.ndarray:
-    """Channel `ci`'s samples in `w` (`w.values[ci]`, without splitting every channel)."""
-    if not w.blocks:
-        return w.values[ci]
-    gi, r = rt.chan_at[ci]
-    blk = w.blocks[gi]
-    return blk.values[r, :blk.counts[r]]
-
-
 def _spectral(todo: Sequence[Pending]) -> tuple[list[np.ndarray], list[int]]:
     """The spectral features of every spectral channel of every window, in window and
     channel order, and per window where its first one is (-1: none)."""
@@ -115,12 +106,12 @@ def _spectral(todo: Sequence[Pending]) -> tuple[list[np.ndarray], list[int]]:
         first.append(len(segs))
         speed_hz = np.nan
         if rt.speed_index is not None:
-            sv = _samples(p.w, rt, rt.speed_index)
+            sv = p.w.channel(rt.speed_index, rt.chan_at[rt.speed_index])
             speed_hz = float(sv.mean()) / 60.0 if sv.size else np.nan
         for ci in rt.spectral:
             ch = rt.cfg.channels[ci]
             assert ch.spectrum is not None
-            segs.append(_samples(p.w, rt, ci))
+            segs.append(p.w.channel(ci, rt.chan_at[ci]))
             rates.append(ch.rate_hz)
             cfgs.append(ch.spectrum)
             speeds.append(speed_hz)

@@ -105,7 +105,8 @@ class Judge:
         settling = False
         scored = True
         if rt.modes is not None and rt.mode_index_ch is not None:
-            d = rt.modes.step(w.values[rt.mode_index_ch], w.start)
+            ch = rt.mode_index_ch
+            d = rt.modes.step(w.channel(ch, rt.chan_at[ch]), w.start)
             if d.mode != rt.mode:
                 self.set_mode(rt, d.mode)
             settling, scored = d.settling, d.scored

@@ -132,6 +132,14 @@ class ClosedWindow:
             self._cov = tuple(cov)
         return self._cov
 
+    def channel(self, ci: int, at: tuple[int, int]) -> np.ndarray:
+        """Channel `ci`'s samples (`values[ci]` without splitting every channel); `at`
+        is its (block, row) in `blocks` (`WindowAssembler.channel_rows`)."""
+        if not self.blocks:
+            return self.values[ci]
+        blk = self.blocks[at[0]]
+        return blk.values[at[1], :blk.counts[at[1]]]
+
     @property
     def min_coverage(self) -> float:
         """The lowest channel's coverage (1.0 without channels)."""
