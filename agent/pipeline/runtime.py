@@ -201,6 +201,7 @@ class AssetRuntime:
         rt.stale_channels = [i for i, c in enumerate(cfg.channels) if c.stale_s is not None]
         rt.checked = [i for i, h in enumerate(rt.health) if not h.limits.passive]
         rt.is_checked = tuple(not h.limits.passive for h in rt.health)
+        rt.assembler.keep_times = bool(rt.checked)  # only sensor health reads them
         rt.wants_rate = tuple(h.limits.max_rate_per_s is not None for h in rt.health)
         td = {f for c in cfg.channels for f in c.all_features if f in FEATURE_INDEX}
         td |= {lim.feature for c in cfg.channels for lim in c.limits

@@ -257,10 +257,10 @@ class Pipeline:
             except Exception as exc:
                 self._failed(rt, "health", exc)
                 continue
-            closed = self._m_at[ai].closed
-            for w in res.windows:
-                closed.inc()
-                wins.append((rt, w))
+            windows = res.windows
+            if windows:
+                self._m_at[ai].closed.inc(len(windows))
+                wins.extend((rt, w) for w in windows)
         stats.windows_closed += len(wins)
         try:
             health = judge.health_stats(wins)
@@ -268,11 +268,19 @@ class Pipeline:
             health = [None] * len(wins)
         failed = self._failed_now
         for (rt, w), hs in zip(wins, health, strict=True):
-            if rt.cfg.name in failed:
+            if failed and rt.cfg.name in failed:
+                continue
+            rt.empty_streak = 0
+            cov = w.min_coverage
+            if cov != rt.shown_coverage:
+                self._set_coverage(rt, cov)
+            else:
+                rt.coverage = cov
+            if not rt.checked and rt.modes is None:  # nothing to judge but completeness
+                pending.append(Pending(rt, w, rt.mode, (), None if w.complete
+                                       else "incomplete"))
                 continue
             try:
-                rt.empty_streak = 0
-                self._set_coverage(rt, w.min_coverage)
                 pending.append(judge.window(rt, w, hs))
             except Exception as exc:
                 self._failed(rt, "health", exc)
@@ -307,38 +315,47 @@ class Pipeline:
         row_of = self._rows(todo) if todo else {}
         items: list[Item] = []
         observer, observes = self.observer, self.observes
+        skip = self._skip
         for p in pending:
             rt = p.rt
-            if rt.cfg.name in failed:
+            if failed and rt.cfg.name in failed:
                 continue
             try:
                 row = row_of.get(id(p))
                 if row is not None and (rt.limits or rt.velocity_at):
                     self.judge.limits(p, row)
                 if p.reason is not None:
-                    self._skip(rt, p.reason)
+                    skip(rt, p.reason)
                     continue
                 assert row is not None
                 if observer is not None and (observes is None or observes(rt.cfg.name)):
                     observer(rt.cfg.name, p.mode, p.w, row[rt.record_index], rt.record_names)
-                bundle, index = rt.bundle_for(p.mode)
+                if rt.mode_bundles:
+                    bundle, index = rt.bundle_for(p.mode)
+                else:
+                    bundle, index = rt.asset_bundle, rt.model_index
                 if bundle is None:
-                    self._skip(rt, "no_model")
+                    skip(rt, "no_model")
                     continue
                 items.append((id(p), row, bundle, index))
             except Exception as exc:
                 self._failed(rt, "features", exc)
+        if not items:
+            return
         by_key = {id(p): p for p in pending}
-        results = self._scores(items, by_key) if items else {}
+        results = self._scores(items, by_key)
         # Step detectors in window order, so an asset's windows are judged in time order.
         step = self.emit.step
-        for p in pending:
-            got = results.get(id(p))
-            if got is None or p.rt.cfg.name in failed:
+        for key, *_ in items:
+            got = results.get(key)
+            if got is None:
+                continue
+            p = by_key[key]
+            if failed and p.rt.cfg.name in failed:
                 continue
             score, sq, bundle = got
             if not math.isfinite(score):
-                self._skip(p.rt, "model_error")
+                skip(p.rt, "model_error")
                 continue
             try:
                 step(p.rt, p.w.start, p.w.end, p.mode, bundle, score, sq)

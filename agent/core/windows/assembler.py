@@ -285,6 +285,10 @@ class WindowAssembler:
     def __init__(self, window: WindowConfig, rates_hz: tuple[float, ...]) -> None:
         self.cfg = window
         self.rates_hz = rates_hz
+        # Whether windows cut together with others (`close_many`) carry their samples'
+        # timestamps; the pipeline turns it off for assets that never read them (no
+        # sensor-health check), whose windows then show NaN times.
+        self.keep_times = True
         self._next_k: int | None = None  # index of the earliest open window (`_set_next`)
         # What `due` compares with: the newest sample time that makes the earliest open
         # window due, and the `_reach` that does (its end plus lateness / timeout). Before
@@ -591,38 +595,56 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     return [r if r is not None else AssembleResult() for r in results]
 
 
+_NO_TIMES: dict[tuple[int, int], np.ndarray] = {}
+
+
+def _no_times(n: int, m: int) -> np.ndarray:
+    """The timestamps of a block whose assembler does not keep them: NaN (read-only)."""
+    got = _NO_TIMES.get((n, m))
+    if got is None:
+        if len(_NO_TIMES) > 64:
+            _NO_TIMES.clear()
+        got = _NO_TIMES[(n, m)] = np.broadcast_to(np.nan, (n, m))
+    return got
+
+
 def _close_fast(assemblers: Sequence[WindowAssembler],
                 fast: list[tuple[int, float, float, list[tuple[int, int]]]],
                 results: list[AssembleResult | None], now: float) -> None:
     """`close_many`'s joint cut of the assemblers in `fast`, results into `results`."""
-    # Every (item, group) with samples, by how many each of its rows holds:
-    # (item, group index, the group, its first pending index, the window's end).
-    by_width: dict[int, list[tuple[int, int, _Group, int, float]]] = {}
+    # Every (item, group) with samples, by how many each of its rows holds: (item,
+    # group index, the group, its first pending index, the window's end, whether all its
+    # pending samples are before the end, whether its timestamps are wanted).
+    by_width: dict[int, list[tuple[int, int, _Group, int, float, bool, bool]]] = {}
     blocks: list[list[Block | None]] = []
     for fi, (i, _, end, spans) in enumerate(fast):
         blocks.append([None] * len(spans))
-        groups = assemblers[i]._groups
+        a = assemblers[i]
+        groups = a._groups
+        # The newest sample of any channel before the end: every pending one is in.
+        full = a._max_ts < end
+        keep = a.keep_times or not full
         for gi, (lo0, m) in enumerate(spans):
             if m:
-                by_width.setdefault(m, []).append((fi, gi, groups[gi], lo0, end))
+                by_width.setdefault(m, []).append((fi, gi, groups[gi], lo0, end, full, keep))
     for m, members in by_width.items():
-        t = np.concatenate([g.ts[:, lo0:lo0 + m] for _, _, g, lo0, _ in members])
-        v = np.concatenate([g.vals[:, lo0:lo0 + m] for _, _, g, lo0, _ in members])
-        sizes = [len(g.chans) for _, _, g, _, _ in members]
-        ends = np.repeat(np.array([e for *_, e in members]), sizes)
-        full = bool((t[:, -1] < ends).all())  # every pending sample is in its window
-        counts_all = None if full else (t < ends[:, None]).sum(axis=1).tolist()
-        off = 0
-        for (fi, gi, g, _, _), n in zip(members, sizes, strict=True):
-            if counts_all is None:
-                blocks[fi][gi] = Block(g.chans, t[off:off + n], v[off:off + n], [m] * n, True,
-                                       v, off, t)
+        v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
+        kept = [mb for mb in members if mb[6]]
+        t = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in kept]) if kept else None
+        off = t_off = 0
+        for fi, gi, g, _, end, full, keep in members:
+            n = len(g.chans)
+            ts = t[t_off:t_off + n] if keep and t is not None else _no_times(n, m)
+            if full:
+                blocks[fi][gi] = Block(g.chans, ts, v[off:off + n], [m] * n, True, v, off,
+                                       t if keep else None)
             else:
-                counts = counts_all[off:off + n]
+                counts = (ts < end).sum(axis=1).tolist()
                 mc = max(counts)
-                blocks[fi][gi] = Block(g.chans, t[off:off + n, :mc], v[off:off + n, :mc],
-                                       counts)
+                blocks[fi][gi] = Block(g.chans, ts[:, :mc], v[off:off + n, :mc], counts)
             off += n
+            if keep:
+                t_off += n
     for (i, start, end, _), bl in zip(fast, blocks, strict=True):
         a = assemblers[i]
         complete = True
