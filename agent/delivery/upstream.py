@@ -52,7 +52,8 @@ import paho.mqtt.client as mqtt
 
 from agent import __version__
 from agent.config.load import BrokerConfig, Config, Endpoint
-from agent.delivery.outbox import Outbox, Row
+from agent.delivery.outbox import Outbox
+from agent.delivery.outbox_file import Row
 from agent.errors import ConfigError, ConfigProblem
 from agent.ingest.buffers import make_client
 from agent.ops.logs import RateLimited, kv
