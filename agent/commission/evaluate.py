@@ -110,12 +110,8 @@ def evaluate(bundle: Bundle, dataset: Dataset, *, spans: Sequence[FaultSpan] | N
         alt_params.append(params)
     ds, fitted = _hold_out(bundle, ds, held_out, notes)
     if spans is not None:
-        ds, spans = drop_sensor_spans(ds, spans, ds.asset or meta.asset, notes)
+        ds, kinds, events = _labelled_truth(bundle, ds, spans, notes)
         fitted = fitted_mask(meta.training, ds) if not held_out else np.zeros(ds.n_windows, bool)
-        kinds, events = truth_from_spans(ds.window_start, ds.window_end, spans,
-                                         ds.asset or meta.asset)
-        if not events:
-            notes.append("no labelled fault overlaps the dataset's windows of this asset")
     else:
         kinds, events = truth_from_labels(ds)
     x = ds.columns(meta.feature_names)
@@ -188,6 +184,18 @@ def _hold_out(bundle: Bundle, ds: Dataset, held_out: bool, notes: list[str]
                      "was trained and calibrated on: false alarms per day on them understate "
                      "what to expect on new data (evaluate a later recording, or --held-out)")
     return ds, fitted
+
+
+def _labelled_truth(bundle: Bundle, ds: Dataset, spans: Sequence[FaultSpan],
+                    notes: list[str]) -> tuple[Dataset, np.ndarray, list[TruthEvent]]:
+    """The truth from labelled spans, the windows of sensor-class spans left out."""
+    asset = ds.asset or bundle.meta.asset
+    ds, spans = drop_sensor_spans(ds, spans, asset, notes)
+    kinds, events = truth_from_spans(ds.window_start, ds.window_end, spans,
+                                     ds.asset or bundle.meta.asset)
+    if not events:
+        notes.append("no labelled fault overlaps the dataset's windows of this asset")
+    return ds, kinds, events
 
 
 def _feature_scenarios(bundle: Bundle, ds: Dataset, x: np.ndarray, kinds: np.ndarray,
