@@ -324,8 +324,9 @@ class Outbox:
     def fetch_after(self, after_id: int, limit: int) -> list[Row]:
         """Up to `limit` rows with id > `after_id`, in id order."""
         with self._lock:
-            if self._tail.holds_after(after_id, self._rows):
-                return self._tail.after(after_id, limit)
+            held = self._tail.after(after_id, limit, self._rows)
+            if held is not None:
+                return held
             found = self._conn().execute(
                 "SELECT id, kind, topic, payload, qos, retain FROM outbox WHERE id > ? "
                 "ORDER BY id LIMIT ?", (after_id, limit)).fetchall()

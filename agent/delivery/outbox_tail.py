@@ -57,13 +57,12 @@ class Tail:
                 tail[k] = None
                 self.live -= 1
 
-    def holds_after(self, after_id: int, stored_rows: int) -> bool:
-        """Whether every stored row with id > `after_id` is here: their ids are in the
-        tail's span, or it holds every stored row."""
-        return after_id + 1 >= self.first or self.live == stored_rows
-
-    def after(self, after_id: int, limit: int) -> list[Row]:
-        """Up to `limit` rows here with id > `after_id`, in id order."""
+    def after(self, after_id: int, limit: int, stored_rows: int) -> list[Row] | None:
+        """Up to `limit` rows with id > `after_id`, in id order, when every stored row
+        with such an id is here (their ids are in the tail's span, or it holds all
+        `stored_rows`); None when the file must be read."""
+        if after_id + 1 < self.first and self.live != stored_rows:
+            return None
         out: list[Row] = []
         if limit > 0:
             skip = max(0, after_id + 1 - self.first)
