@@ -29,11 +29,14 @@ import threading
 import time
 from collections.abc import Callable
 from pathlib import Path
-from typing import Any, TextIO
+from typing import TYPE_CHECKING, Any, TextIO
 
 from agent.config.load import Config, parse_config, yaml_load
 from agent.core.events import rfc3339
 from agent.ops.logs import setup_logging
+
+if TYPE_CHECKING:
+    from simulator.scenario import Scenario
 
 DEMO_DIR = Path(__file__).resolve().parents[2] / "config" / "demo"
 TRAIN_NORMAL_S = 3600.0
@@ -355,8 +358,6 @@ def run_demo(duration_s: float, state_dir: Path, out: TextIO, *,
              interactive: bool | None = None, summary_json: Path | None = None,
              train_s: float = TRAIN_NORMAL_S, broker_kind: str = "auto") -> int:
     from agent.daemon import Daemon
-    from simulator.plant import simulate
-    from simulator.publish import publish
     from simulator.scenario import labels, load_scenario
 
     # The demo config resolves relative paths against config/demo/, not the working
@@ -383,18 +384,8 @@ def run_demo(duration_s: float, state_dir: Path, out: TextIO, *,
             daemon = Daemon(cfg, logger=log, clock=clock)
             events = EventLog(broker.port, f"{cfg.topic_prefix}/assets/+/events")
             daemon.start()
-            sim_err: list[BaseException] = []
-
-            def _sim() -> None:
-                try:
-                    publish(simulate(scenario, start_unix=start), host="127.0.0.1",
-                            port=broker.port, speed=speed, stop=stop, sim_origin=start,
-                            on_sent=lambda msg: clock.anchor(msg[0]))
-                except BaseException as exc:  # reported after the run
-                    sim_err.append(exc)
-
-            sim_thread = threading.Thread(target=_sim, name="demo-simulator", daemon=True)
-            sim_thread.start()
+            sim_thread, sim_err = _start_simulator(scenario, start, broker.port, speed, stop,
+                                                   clock)
             print(f"demo: {len(cfg.assets)} assets, scenario {scenario.duration_s:.0f} s "
                   f"of plant time in {duration_s:.0f} s (x{speed:.1f}), broker {broker.kind} "
                   f"on 127.0.0.1:{broker.port}", file=out, flush=True)
@@ -418,6 +409,29 @@ def run_demo(duration_s: float, state_dir: Path, out: TextIO, *,
     if summary_json is not None:
         summary_json.write_text(json.dumps(summary, indent=2))
     return 0
+
+
+def _start_simulator(scenario: Scenario, start: float, port: int, speed: float,
+                     stop: threading.Event, clock: SimClock
+                     ) -> tuple[threading.Thread, list[BaseException]]:
+    """The plant simulator publishing `scenario` to the demo broker on a thread of its
+    own; the list receives what stopped it, if anything (reported after the run)."""
+    from simulator.plant import simulate
+    from simulator.publish import publish
+
+    sim_err: list[BaseException] = []
+
+    def _sim() -> None:
+        try:
+            publish(simulate(scenario, start_unix=start), host="127.0.0.1",
+                    port=port, speed=speed, stop=stop, sim_origin=start,
+                    on_sent=lambda msg: clock.anchor(msg[0]))
+        except BaseException as exc:  # reported after the run
+            sim_err.append(exc)
+
+    thread = threading.Thread(target=_sim, name="demo-simulator", daemon=True)
+    thread.start()
+    return thread, sim_err
 
 
 def _watch(daemon: Any, events: EventLog, clock: Callable[[], float], duration_s: float,

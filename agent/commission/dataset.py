@@ -234,18 +234,8 @@ def read_dataset(path: str | os.PathLike[str], *,
     for f in (mpath, npath):
         if not f.is_file():
             raise DatasetError(f"{where}: {f.name} is missing")
-    try:
-        manifest = json.loads(mpath.read_text(encoding="utf-8"))
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise DatasetError(f"{where}: {MANIFEST_JSON} is not valid JSON ({exc})") from exc
-    if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
-        raise DatasetError(f"{where}: {MANIFEST_JSON} is not a {FORMAT} manifest")
-    if manifest.get("format_version") != FORMAT_VERSION:
-        raise DatasetError(f"{where}: format_version {manifest.get('format_version')!r} is not "
-                           f"supported (this watchkeep reads {FORMAT_VERSION})")
-    names = manifest.get("feature_names")
-    if not isinstance(names, list):
-        raise DatasetError(f"{where}: {MANIFEST_JSON} has no feature_names list")
+    manifest = _read_manifest(mpath, where)
+    names = manifest["feature_names"]
     try:
         with np.load(npath, allow_pickle=False) as npz:
             arrays = {k: npz[k] for k in npz.files}
@@ -280,6 +270,22 @@ def read_dataset(path: str | os.PathLike[str], *,
                    window=dict(manifest.get("window") or {}),
                    units=dict(manifest.get("units") or {}), content_sha256=digest,
                    manifest=manifest)
+
+
+def _read_manifest(mpath: Path, where: str) -> dict[str, Any]:
+    """The manifest, checked: this format and version, with a feature_names list."""
+    try:
+        manifest = json.loads(mpath.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise DatasetError(f"{where}: {MANIFEST_JSON} is not valid JSON ({exc})") from exc
+    if not isinstance(manifest, dict) or manifest.get("format") != FORMAT:
+        raise DatasetError(f"{where}: {MANIFEST_JSON} is not a {FORMAT} manifest")
+    if manifest.get("format_version") != FORMAT_VERSION:
+        raise DatasetError(f"{where}: format_version {manifest.get('format_version')!r} is not "
+                           f"supported (this watchkeep reads {FORMAT_VERSION})")
+    if not isinstance(manifest.get("feature_names"), list):
+        raise DatasetError(f"{where}: {MANIFEST_JSON} has no feature_names list")
+    return manifest
 
 
 class DatasetWriter:

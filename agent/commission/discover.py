@@ -287,72 +287,112 @@ def propose(st: TopicStats) -> Proposal:
                    SPARKPLUG_NAMESPACE) else "payloads are not numbers watchkeep can decode")
         return Proposal(st.topic, shape, st.count, msg_rate, None, None, {}, numeric,
                         first, last, (why,))
-    ts = _ts_field(st) if shape is not Shape.PLAIN_NUMBER else None
+    ts = _timestamp(st, settings, notes)
     times = st.values[ts] if ts else st.arrivals
-    if shape is not Shape.PLAIN_NUMBER:
-        if ts is None:
-            notes.append("no timestamp field within 300 s of arrival: arrival time is used")
-            if "ts" in st.fields:  # the decoder would read it: name a field never sent
-                settings["ts_field"] = "arrival_time"
-        else:
-            if ts.rsplit(".", 1)[-1] not in TS_NAMES:
-                notes.append(f"guessed {ts!r} as the timestamp (unix seconds near arrival)")
-            settings["ts_field"] = ts
     if shape is Shape.JSON_BLOCK:
-        values_field = max(st.list_fields, key=lambda k: (st.list_fields[k],
-                                                          max(st.list_lengths[k])))
-        if len(st.list_fields) > 1:
-            notes.append(f"several number lists ({', '.join(sorted(st.list_fields))}); "
-                         f"took the longest, {values_field!r}")
-        settings["values_field"] = values_field
-        lengths = st.list_lengths[values_field]
-        rate_keys = [k for k in st.fields if k != ts
-                     and k.rsplit(".", 1)[-1] in RATE_NAMES and st.fields[k] == st.count]
-        msg_rate_t = per_second(times)
-        if rate_keys:
-            rk = rate_keys[0]
-            rates = Counter(st.values[rk])
-            sample_rate = rates.most_common(1)[0][0]
-            settings["rate_field"] = rk
-            if len(rates) > 1:
-                notes.append(f"{rk!r} varies ({', '.join(fmt(r) for r in sorted(rates))}); "
-                             "took the most common")
-        elif msg_rate_t is not None and len(lengths) >= 2:
-            # Samples of every block but the last, over the time from the first block's
-            # start to the last block's start.
-            span = max(times) - min(times)
-            sample_rate = nice_rate(sum(lengths[:-1]) / span) if span > 0 else None
-            notes.append("no sample-rate field in the blocks")
-        if msg_rate_t is not None:
-            msg_rate = msg_rate_t
-        if len(set(lengths)) > 1:
-            notes.append(f"block lengths vary ({min(lengths)}-{max(lengths)} samples)")
+        sample_rate, block_rate = _block_settings(st, ts, times, settings, notes)
+        if block_rate is not None:
+            msg_rate = block_rate
     else:
         if shape is Shape.JSON_SCALAR:
-            candidates = [k for k in numeric if k != ts and st.fields[k] == st.count]
-            if not candidates:
-                candidates = [k for k in numeric if k != ts]
-            if not candidates:
+            picked = _value_field(st, ts, numeric, settings, notes)
+            if picked is None:
                 return Proposal(st.topic, shape, st.count, msg_rate, None, None, {}, numeric,
                                 None, None, (f"no numeric field besides the timestamp {ts!r}",))
-            seq = _seq_field(st, {ts} if ts else set())
-            if seq is not None:
-                settings["seq_field"] = seq
-                candidates = [k for k in candidates if k != seq] or candidates
-            value_field = "value" if "value" in candidates else (
-                candidates[0] if candidates else "value")
-            if value_field != "value" or len(candidates) > 1:
-                others = [k for k in candidates if k != value_field]
-                notes.append(f"guessed {value_field!r} as the value"
-                             + (f"; other numeric fields: {', '.join(others)}"
-                                if others else ""))
-            settings["value_field"] = value_field
-            vals = st.values.get(value_field, [])
-            first, last = (vals[0], vals[-1]) if vals else (None, None)
+            first, last = picked
         r = per_second(times)
         if r is not None:
             msg_rate = r
             sample_rate = nice_rate(r)
+    notes.extend(_rate_notes(st, ts, times, msg_rate, sample_rate, settings))
+    notes.extend(_check_decoding(st, decoder, sample_rate, settings))
+    return Proposal(st.topic, shape, st.count, msg_rate, sample_rate, decoder, settings,
+                    numeric, first, last, tuple(notes))
+
+
+def _timestamp(st: TopicStats, settings: dict[str, Any], notes: list[str]) -> str | None:
+    """The payload field the timestamps come from (None: arrival time); its setting."""
+    if st.shape is Shape.PLAIN_NUMBER:
+        return None
+    ts = _ts_field(st)
+    if ts is None:
+        notes.append("no timestamp field within 300 s of arrival: arrival time is used")
+        if "ts" in st.fields:  # the decoder would read it: name a field never sent
+            settings["ts_field"] = "arrival_time"
+    else:
+        if ts.rsplit(".", 1)[-1] not in TS_NAMES:
+            notes.append(f"guessed {ts!r} as the timestamp (unix seconds near arrival)")
+        settings["ts_field"] = ts
+    return ts
+
+
+def _block_settings(st: TopicStats, ts: str | None, times: Sequence[float],
+                    settings: dict[str, Any], notes: list[str]
+                    ) -> tuple[float | None, float | None]:
+    """A block topic's values field and sample rate (a rate field, else samples over
+    time); returns the sample rate and the block rate (None when not measurable)."""
+    values_field = max(st.list_fields, key=lambda k: (st.list_fields[k],
+                                                      max(st.list_lengths[k])))
+    if len(st.list_fields) > 1:
+        notes.append(f"several number lists ({', '.join(sorted(st.list_fields))}); "
+                     f"took the longest, {values_field!r}")
+    settings["values_field"] = values_field
+    lengths = st.list_lengths[values_field]
+    rate_keys = [k for k in st.fields if k != ts
+                 and k.rsplit(".", 1)[-1] in RATE_NAMES and st.fields[k] == st.count]
+    msg_rate_t = per_second(times)
+    sample_rate: float | None = None
+    if rate_keys:
+        rk = rate_keys[0]
+        rates = Counter(st.values[rk])
+        sample_rate = rates.most_common(1)[0][0]
+        settings["rate_field"] = rk
+        if len(rates) > 1:
+            notes.append(f"{rk!r} varies ({', '.join(fmt(r) for r in sorted(rates))}); "
+                         "took the most common")
+    elif msg_rate_t is not None and len(lengths) >= 2:
+        # Samples of every block but the last, over the time from the first block's
+        # start to the last block's start.
+        span = max(times) - min(times)
+        sample_rate = nice_rate(sum(lengths[:-1]) / span) if span > 0 else None
+        notes.append("no sample-rate field in the blocks")
+    if len(set(lengths)) > 1:
+        notes.append(f"block lengths vary ({min(lengths)}-{max(lengths)} samples)")
+    return sample_rate, msg_rate_t
+
+
+def _value_field(st: TopicStats, ts: str | None, numeric: tuple[str, ...],
+                 settings: dict[str, Any], notes: list[str]
+                 ) -> tuple[float | None, float | None] | None:
+    """A scalar topic's value field (and sequence field, if any); returns the first and
+    last values seen, or None when no numeric field is left besides the timestamp."""
+    candidates = [k for k in numeric if k != ts and st.fields[k] == st.count]
+    if not candidates:
+        candidates = [k for k in numeric if k != ts]
+    if not candidates:
+        return None
+    seq = _seq_field(st, {ts} if ts else set())
+    if seq is not None:
+        settings["seq_field"] = seq
+        candidates = [k for k in candidates if k != seq] or candidates
+    value_field = "value" if "value" in candidates else (
+        candidates[0] if candidates else "value")
+    if value_field != "value" or len(candidates) > 1:
+        others = [k for k in candidates if k != value_field]
+        notes.append(f"guessed {value_field!r} as the value"
+                     + (f"; other numeric fields: {', '.join(others)}"
+                        if others else ""))
+    settings["value_field"] = value_field
+    vals = st.values.get(value_field, [])
+    return (vals[0], vals[-1]) if vals else (None, None)
+
+
+def _rate_notes(st: TopicStats, ts: str | None, times: Sequence[float],
+                msg_rate: float | None, sample_rate: float | None,
+                settings: dict[str, Any]) -> list[str]:
+    """How the rate was found, or that it was not; irregular arrivals."""
+    notes: list[str] = []
+    shape = st.shape
     if sample_rate is None:
         notes.append(f"too few messages ({st.count}) to estimate a rate: listen longer")
     elif not (shape is Shape.JSON_BLOCK and settings.get("rate_field") in st.fields):
@@ -365,9 +405,7 @@ def propose(st: TopicStats) -> Proposal:
     if med is not None and msg_rate is not None and abs(med - msg_rate) > 0.1 * med:
         notes.append(f"irregular: the median interval gives {fmt(med)} messages/s, the "
                      f"span {fmt(msg_rate)}; messages lost or sent in bursts?")
-    notes.extend(_check_decoding(st, decoder, sample_rate, settings))
-    return Proposal(st.topic, shape, st.count, msg_rate, sample_rate, decoder, settings,
-                    numeric, first, last, tuple(notes))
+    return notes
 
 
 def channel_config(name: str, topic: str, decoder: Decoder, rate_hz: float,

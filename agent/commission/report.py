@@ -16,7 +16,8 @@ from typing import Any
 
 import numpy as np
 
-from agent.commission.evaluate import Detection, Evaluation, Scenario
+from agent.commission.judging import Detection
+from agent.commission.views import Evaluation, Scenario
 from agent.fsutil import write_file_atomic
 
 REPORT_JSON = "report.json"

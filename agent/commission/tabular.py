@@ -40,7 +40,7 @@ from collections import Counter
 from collections.abc import Iterator, Mapping
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import Any
+from typing import Any, NamedTuple
 
 from agent.config.load import AssetConfig, ChannelConfig, Decoder
 from agent.errors import DatasetError
@@ -185,36 +185,12 @@ class CsvReader:
         self._size = os.fstat(raw.fileno()).st_size
         self._raw = raw
         with raw, io.TextIOWrapper(raw, encoding=self.encoding, newline="") as text:
-            try:
-                header_line = text.readline()
-            except UnicodeDecodeError:
-                raise TabularError(p, f"not {self.encoding} text", 1) from None
-            if not header_line.strip():
-                raise TabularError(p, "no header line (the first line names the columns)", 1)
-            delim = self.delimiter or sniff_delimiter(header_line)
-            header = [h.strip() for h in next(csv.reader([header_line], delimiter=delim))]
-            index = {h: i for i, h in enumerate(header)}
-            tcol = self.time_column or header[0]
-            if tcol not in index:
-                raise TabularError(p, f"no time column {tcol!r} (columns: {_few(header)})", 1)
-            ti = index[tcol]
-            chans: list[tuple[int, ChannelConfig]] = []
-            missing = []
-            for ch in self.asset.channels:
-                col = self.column_of(ch)
-                if col not in index:
-                    missing.append(f"{ch.name} (column {col!r})")
-                else:
-                    chans.append((index[col], ch))
-            if missing:
-                raise TabularError(p, f"no column for channel(s) {', '.join(missing)} of asset "
-                                   f"{self.asset.name} (columns: {_few(header)}; map them with "
-                                   "the channel's `column:` or --column CHANNEL=HEADER)", 1)
-            decimal_comma = delim == ";"
+            cols = self._columns(text, p)
+            decimal_comma = cols.delimiter == ";"
             fmt = self.time_format
             last = -math.inf
             lineno = 1
-            reader = csv.reader(text, delimiter=delim)
+            reader = csv.reader(text, delimiter=cols.delimiter)
             while True:
                 try:
                     row = next(reader)
@@ -225,39 +201,89 @@ class CsvReader:
                 lineno = reader.line_num + 1  # + the header line read apart
                 if not row or all(not c.strip() for c in row):
                     continue
-                if ti >= len(row) or not row[ti].strip():
-                    raise TabularError(p, f"no time in column {tcol!r}", lineno)
-                try:
-                    t = parse_time(row[ti], fmt)
-                except ValueError as exc:
-                    raise TabularError(p, f"time column {tcol!r}: {exc}", lineno) from None
+                t = _row_time(row, cols, fmt, last, p, lineno)
                 if fmt == "auto":  # the first row decides for the whole file
-                    fmt = "unix" if _is_number(row[ti]) else "iso"
-                if t < last:
-                    raise TabularError(p, f"time {row[ti].strip()!r} is earlier than the row "
-                                       "before (sort the export by time)", lineno)
+                    fmt = "unix" if _is_number(row[cols.time_index]) else "iso"
                 last = t
                 if self.first_time is None:
                     self.first_time = t
                 self.last_time = t
                 self.rows += 1
-                for ci, ch in chans:
-                    cell = row[ci].strip() if ci < len(row) else ""
-                    if not cell:
-                        self.skipped["empty"] += 1
-                        continue
-                    if decimal_comma and _DECIMAL_COMMA.match(cell):
-                        cell = cell.replace(",", ".")
-                    try:
-                        v = float(cell)
-                    except ValueError:
-                        self.skipped["not_a_number"] += 1
-                        continue
-                    if not math.isfinite(v):
-                        self.skipped["non_finite"] += 1
-                        continue
-                    self.samples += 1
-                    yield t, ch.topic, payload_for(ch, t, v)
+                yield from self._row_messages(row, cols.channels, t, decimal_comma)
+
+    def _columns(self, text: io.TextIOWrapper, p: str) -> _Columns:
+        """Read the header line: the delimiter, the time column, each channel's column."""
+        try:
+            header_line = text.readline()
+        except UnicodeDecodeError:
+            raise TabularError(p, f"not {self.encoding} text", 1) from None
+        if not header_line.strip():
+            raise TabularError(p, "no header line (the first line names the columns)", 1)
+        delim = self.delimiter or sniff_delimiter(header_line)
+        header = [h.strip() for h in next(csv.reader([header_line], delimiter=delim))]
+        index = {h: i for i, h in enumerate(header)}
+        tcol = self.time_column or header[0]
+        if tcol not in index:
+            raise TabularError(p, f"no time column {tcol!r} (columns: {_few(header)})", 1)
+        chans: list[tuple[int, ChannelConfig]] = []
+        missing = []
+        for ch in self.asset.channels:
+            col = self.column_of(ch)
+            if col not in index:
+                missing.append(f"{ch.name} (column {col!r})")
+            else:
+                chans.append((index[col], ch))
+        if missing:
+            raise TabularError(p, f"no column for channel(s) {', '.join(missing)} of asset "
+                               f"{self.asset.name} (columns: {_few(header)}; map them with "
+                               "the channel's `column:` or --column CHANNEL=HEADER)", 1)
+        return _Columns(delim, tcol, index[tcol], chans)
+
+    def _row_messages(self, row: list[str], chans: list[tuple[int, ChannelConfig]], t: float,
+                      decimal_comma: bool) -> Iterator[tuple[float, str, bytes]]:
+        """One row's messages, channel by channel; what is skipped is counted."""
+        for ci, ch in chans:
+            cell = row[ci].strip() if ci < len(row) else ""
+            if not cell:
+                self.skipped["empty"] += 1
+                continue
+            if decimal_comma and _DECIMAL_COMMA.match(cell):
+                cell = cell.replace(",", ".")
+            try:
+                v = float(cell)
+            except ValueError:
+                self.skipped["not_a_number"] += 1
+                continue
+            if not math.isfinite(v):
+                self.skipped["non_finite"] += 1
+                continue
+            self.samples += 1
+            yield t, ch.topic, payload_for(ch, t, v)
+
+
+class _Columns(NamedTuple):
+    """Where a table's values are: its delimiter, time column and channel columns."""
+
+    delimiter: str
+    time_column: str
+    time_index: int
+    channels: list[tuple[int, ChannelConfig]]
+
+
+def _row_time(row: list[str], cols: _Columns, fmt: str, last: float, p: str,
+              lineno: int) -> float:
+    """The row's time; TabularError when it is missing, unreadable or out of order."""
+    ti, tcol = cols.time_index, cols.time_column
+    if ti >= len(row) or not row[ti].strip():
+        raise TabularError(p, f"no time in column {tcol!r}", lineno)
+    try:
+        t = parse_time(row[ti], fmt)
+    except ValueError as exc:
+        raise TabularError(p, f"time column {tcol!r}: {exc}", lineno) from None
+    if t < last:
+        raise TabularError(p, f"time {row[ti].strip()!r} is earlier than the row "
+                           "before (sort the export by time)", lineno)
+    return t
 
 
 def _is_number(s: str) -> bool:

@@ -207,36 +207,13 @@ def calibrate_tail(scores: np.ndarray, *, length_s: float, hop_s: float, raise_k
         raise ValueError("clear_ratio must be in (0, 1]")
     s = np.asarray(scores, dtype=np.float64).reshape(-1)
     w = max(1, math.ceil(length_s / hop_s - 1e-9))
-    if s.size < MIN_FORWARD_WINDOWS * w:
-        raise DatasetError(
-            f"only {s.size} later-normal window(s) to calibrate on ({s.size // w} independent "
-            f"of {length_s:g} s); at least {MIN_FORWARD_WINDOWS} independent windows "
-            f"({MIN_FORWARD_WINDOWS * w} windows at this hop) are needed: a threshold from "
-            "fewer says nothing about the next hours. Record for longer, or give a larger "
-            "--calib-fraction")
-    if not np.all(np.isfinite(s)):
-        raise DatasetError("later-normal scores contain non-finite values")
-    if not float(s.max()) > 0.0:
-        raise DatasetError("later-normal scores are all zero: the data has nothing the "
-                           "model cannot reproduce, so no threshold can be set")
+    _check_scores(s, w, length_s)
     maxima = decluster(s, w)
     n_ind = int(maxima.size)
     p_star = target_exceedance(budget_per_week, length_s, raise_k, raise_n)
     need = needed_independent(p_star)
     reasons: list[str] = []
-    fit: GpdFit | None = None
-    n_exc = int(np.sum(maxima > np.quantile(maxima, TAIL_QUANTILE)))
-    if n_exc >= MIN_EXCESSES:
-        u = float(np.quantile(maxima, TAIL_QUANTILE))
-        exc = maxima[maxima > u] - u
-        try:
-            xi, sigma = fit_gpd_pwm(exc)
-            fit = GpdFit(u=u, xi=xi, sigma=sigma, zeta=exc.size / n_ind, n_excess=int(exc.size))
-        except ValueError as e:
-            reasons.append(f"no tail fit: {e}")
-    else:
-        reasons.append(f"{n_ind} independent later-normal windows give {n_exc} tail "
-                       f"excesses; a tail fit needs {MIN_EXCESSES}")
+    fit = _tail_fit(maxima, reasons)
     promised = fit is not None and p_star * MAX_EXTRAPOLATION * n_ind >= 1.0
     if fit is not None and not promised:
         reasons.append(f"the budget needs a per-window rate of {p_star:.2g}, more than "
@@ -264,3 +241,39 @@ def calibrate_tail(scores: np.ndarray, *, length_s: float, hop_s: float, raise_k
         n_windows=int(s.size), n_independent=n_ind, margin=float(margin),
         clear_ratio=float(clear_ratio), median_score=median, max_score=float(s.max()),
         fit=fit, needed_independent=need, reasons=tuple(reasons))
+
+
+def _check_scores(s: np.ndarray, w: int, length_s: float) -> None:
+    """DatasetError when the scores cannot support a threshold: too few independent
+    windows (`w` windows per window length), non-finite values, all zero."""
+    if s.size < MIN_FORWARD_WINDOWS * w:
+        raise DatasetError(
+            f"only {s.size} later-normal window(s) to calibrate on ({s.size // w} independent "
+            f"of {length_s:g} s); at least {MIN_FORWARD_WINDOWS} independent windows "
+            f"({MIN_FORWARD_WINDOWS * w} windows at this hop) are needed: a threshold from "
+            "fewer says nothing about the next hours. Record for longer, or give a larger "
+            "--calib-fraction")
+    if not np.all(np.isfinite(s)):
+        raise DatasetError("later-normal scores contain non-finite values")
+    if not float(s.max()) > 0.0:
+        raise DatasetError("later-normal scores are all zero: the data has nothing the "
+                           "model cannot reproduce, so no threshold can be set")
+
+
+def _tail_fit(maxima: np.ndarray, reasons: list[str]) -> GpdFit | None:
+    """A GPD fit to the excesses of the declustered maxima over their `TAIL_QUANTILE`,
+    or None (with the reason) when there are too few or the fit fails."""
+    n_ind = int(maxima.size)
+    n_exc = int(np.sum(maxima > np.quantile(maxima, TAIL_QUANTILE)))
+    if n_exc < MIN_EXCESSES:
+        reasons.append(f"{n_ind} independent later-normal windows give {n_exc} tail "
+                       f"excesses; a tail fit needs {MIN_EXCESSES}")
+        return None
+    u = float(np.quantile(maxima, TAIL_QUANTILE))
+    exc = maxima[maxima > u] - u
+    try:
+        xi, sigma = fit_gpd_pwm(exc)
+    except ValueError as e:
+        reasons.append(f"no tail fit: {e}")
+        return None
+    return GpdFit(u=u, xi=xi, sigma=sigma, zeta=exc.size / n_ind, n_excess=int(exc.size))

@@ -15,6 +15,7 @@ import json
 import os
 import sys
 import time
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -33,11 +34,11 @@ from agent.commission.autoencoder import (
 from agent.commission.coverage import Coverage, WindowGeometry, assess, window_geometry
 from agent.commission.dataset import DEFAULT_MIN_WINDOWS, Dataset, read_dataset
 from agent.commission.export import INPUT_NAME, IR_VERSION, OPSET, OUTPUT_NAME, export_dense
+from agent.commission.splits import SPLIT_BLOCK, forward_windows, select_windows, split_early
 from agent.commission.tail import (
     DEFAULT_BUDGET_PER_WEEK,
     DEFAULT_CLEAR_RATIO,
     DEFAULT_MARGIN,
-    MIN_FORWARD_WINDOWS,
     TailCalibration,
     calibrate_tail,
 )
@@ -45,7 +46,6 @@ from agent.core.detector_params import DetectorParams
 from agent.errors import BundleError, DatasetError
 from agent.models.bundle import MODEL_JSON, Bundle, parse_meta, write_bundle
 
-SPLIT_BLOCK = 10
 DEFAULT_VAL_FRACTION = 0.15
 FAMILIES = ("auto", "dense-autoencoder", "pca")
 # The later part of the recording that the threshold comes from. It must be long enough
@@ -131,73 +131,6 @@ def _budget_text(c: TailCalibration) -> str:
             f"about {c.needed_independent} needed)")
 
 
-def forward_windows(n: int, calib_fraction: float, geometry: WindowGeometry) -> int:
-    """How many of the last windows calibrate (forward validation); DatasetError when the
-    recording cannot give the minimum (see tail.MIN_FORWARD_WINDOWS)."""
-    if not 0 < calib_fraction < 1:
-        raise ValueError("calib_fraction must be in (0, 1)")
-    need = MIN_FORWARD_WINDOWS * geometry.per_length
-    n_cal = max(round(calib_fraction * n), need)
-    if n - n_cal < need:
-        raise DatasetError(
-            f"{n} window(s) cannot give both a fit and a forward calibration: the threshold "
-            f"needs the last {need} windows ({MIN_FORWARD_WINDOWS} independent windows of "
-            f"{geometry.length_s:g} s at a hop of {geometry.hop_s:g} s) and the fit at least "
-            f"as many before them; record for at least "
-            f"{2 * MIN_FORWARD_WINDOWS * geometry.length_s:g} s")
-    return int(n_cal)
-
-
-def split_early(n: int, val_fraction: float, *, seed: int) -> tuple[np.ndarray, np.ndarray]:
-    """(train, val) indices of the first `n` windows, a seeded split of whole blocks
-    (validation only decides early stopping, so it may interleave with the fit)."""
-    if not 0 < val_fraction < 1:
-        raise ValueError("val_fraction must be in (0, 1)")
-    n_blocks = max(2, -(-n // SPLIT_BLOCK))
-    blocks = np.minimum(np.arange(n) * n_blocks // max(n, 1), n_blocks - 1)
-    order = np.random.default_rng([seed, 0x5A17]).permutation(n_blocks)
-    val_b = order[: max(1, round(val_fraction * n_blocks))]
-    is_val = np.isin(blocks, val_b)
-    idx = np.arange(n)
-    return idx[~is_val], idx[is_val]
-
-
-def split_blocks(n: int, val_fraction: float, calib_fraction: float, *, seed: int,
-                 block: int = SPLIT_BLOCK) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Indices (train, val, calib), each sorted, from a seeded split of whole blocks."""
-    if not (0 < val_fraction < 1 and 0 < calib_fraction < 1 and val_fraction + calib_fraction < 1):
-        raise ValueError("val_fraction and calib_fraction must be in (0, 1) and sum below 1")
-    n_blocks = max(3, -(-n // block))
-    block = -(-n // n_blocks)
-    blocks = np.arange(n) // block
-    n_blocks = int(blocks.max()) + 1
-    order = np.random.default_rng([seed, 0x5A17]).permutation(n_blocks)
-    n_cal = max(1, round(calib_fraction * n_blocks))
-    n_val = max(1, round(val_fraction * n_blocks))
-    cal_b, val_b = order[:n_cal], order[n_cal:n_cal + n_val]
-    idx = np.arange(n)
-    calib = idx[np.isin(blocks, cal_b)]
-    val = idx[np.isin(blocks, val_b)]
-    train = idx[~np.isin(blocks, np.concatenate([cal_b, val_b]))]
-    return train, val, calib
-
-
-def select_windows(ds: Dataset, *, asset: str | None, mode: str | None) -> tuple[Dataset, str]:
-    """The dataset's windows for `asset` / `mode`, and the mode chosen."""
-    if asset is not None and ds.asset and asset != ds.asset:
-        raise DatasetError(f"dataset {ds.path} is for asset {ds.asset!r}, not {asset!r}")
-    modes = ds.modes
-    if mode is None:
-        if len(modes) != 1:
-            raise DatasetError(f"dataset {ds.path} has modes {list(modes)}: choose one "
-                               "(--mode); each mode gets its own bundle")
-        return ds, modes[0]
-    if mode not in modes:
-        raise DatasetError(f"dataset {ds.path} has no windows in mode {mode!r} "
-                           f"(its modes: {list(modes)})")
-    return ds.select(ds.mode == mode), mode
-
-
 def next_version(out_dir: Path) -> int:
     """One more than the bundle already at `out_dir`, else 1."""
     meta = out_dir / MODEL_JSON
@@ -225,6 +158,165 @@ def _runtime_scores(model_bytes: bytes, doc: dict[str, Any], x: np.ndarray) -> n
     return Bundle(Path("."), meta, session).score(x)[0]
 
 
+@dataclass(frozen=True)
+class _Prepared:
+    """The windows one bundle is fitted and calibrated on: the columns used (`x`), the
+    fit's train and validation rows and the later calibration rows (indices into `x`)."""
+
+    ds: Dataset
+    asset: str
+    mode: str
+    geometry: WindowGeometry
+    coverage: Coverage
+    names: list[str]
+    x: np.ndarray
+    tr: np.ndarray
+    va: np.ndarray
+    ca: np.ndarray
+
+    @property
+    def early(self) -> int:
+        """Windows before the calibration part (the fit's part)."""
+        return len(self.x) - len(self.ca)
+
+
+@dataclass(frozen=True)
+class _Calibrator:
+    """Exports a fitted model, scores the calibration windows through onnxruntime, and
+    calibrates its thresholds to the false-alarm budget."""
+
+    base_doc: dict[str, Any]
+    label: str  # "<asset>/<mode> v<version>", for the ONNX doc string
+    x_calib: np.ndarray
+    geometry: WindowGeometry
+    detector: DetectorParams
+    budget: float
+    margin: float
+    clear_ratio: float
+
+    def candidate(self, family: str, fit: FitResult) -> _Candidate:
+        model_bytes = export_dense(fit.layers, doc=f"watchkeep {family} {self.label}")
+        doc = {**self.base_doc, "scaler": {"mean": fit.scaler.mean.tolist(),
+                                           "scale": fit.scaler.scale.tolist()}}
+        scores = _runtime_scores(model_bytes, doc, self.x_calib)
+        det, geo = self.detector, self.geometry
+        cal = calibrate_tail(scores, length_s=geo.length_s, hop_s=geo.hop_s,
+                             raise_k=det.raise_k, raise_n=det.raise_n,
+                             budget_per_week=self.budget, margin=self.margin,
+                             clear_ratio=self.clear_ratio)
+        return _Candidate(family, fit, model_bytes, doc, scores, cal)
+
+
+def _training_windows(dataset_dir: str | os.PathLike[str], *, asset: str | None,
+                      mode: str | None, min_windows: int) -> tuple[Dataset, str, str]:
+    """The dataset's normal windows of one asset and mode; the asset and mode."""
+    ds_all = read_dataset(dataset_dir, min_windows=1)
+    ds, chosen_mode = select_windows(ds_all, asset=asset, mode=mode)
+    if ds.n_windows < min_windows:
+        raise DatasetError(f"dataset {ds.path}: only {ds.n_windows} window(s) in mode "
+                           f"{chosen_mode!r}; at least {min_windows} are needed to train "
+                           "(record for longer)")
+    if ds.label is not None and np.any(ds.label != 0):
+        ds = ds.select(ds.label == 0)  # train on normal windows only
+    asset_name = asset or ds.asset
+    if not asset_name:
+        raise DatasetError(f"dataset {ds.path} names no asset; give one (--asset)")
+    return ds, asset_name, chosen_mode
+
+
+def _split(ds: Dataset, asset_name: str, chosen_mode: str, *, val_fraction: float,
+           calib_fraction: float, seed: int) -> _Prepared:
+    """Split the windows (fit: train and validation; the last windows in time:
+    calibration) and leave out the slow channels the fit's part does not cover."""
+    geometry = window_geometry(ds.window, ds.window_start, ds.window_end)
+    n_cal = forward_windows(ds.n_windows, calib_fraction, geometry)
+    early = ds.n_windows - n_cal
+    coverage = assess(ds.feature_names, ds.features[:early], geometry)
+    names = [n for n in ds.feature_names if n not in set(coverage.excluded)]
+    if len(names) < 2:
+        raise DatasetError(f"dataset {ds.path}: after leaving out the slow channels the recording "
+                           f"does not cover ({', '.join(coverage.excluded)}), fewer than 2 "
+                           "features remain; record until their wander repeats, or add "
+                           "channels")
+    tr, va = split_early(early, val_fraction, seed=seed)
+    return _Prepared(ds, asset_name, chosen_mode, geometry, coverage, names,
+                     ds.columns(names), tr, va, np.arange(early, ds.n_windows))
+
+
+def _base_doc(p: _Prepared, version: int, now: datetime | None) -> dict[str, Any]:
+    """model.json's fields every candidate shares."""
+    stamp = (now or datetime.now(UTC)).astimezone(UTC)
+    return {
+        "asset": p.asset,
+        "mode": p.mode,
+        "model_id": f"{p.asset}/{p.mode}",
+        "version": version,
+        "feature_names": p.names,
+        "score": {"function": "mse"},
+        "onnx": {"input": INPUT_NAME, "output": OUTPUT_NAME, "opset": OPSET,
+                 "ir_version": IR_VERSION},
+        "created": stamp.isoformat(timespec="seconds").replace("+00:00", "Z"),
+        "watchkeep_version": __version__,
+    }
+
+
+def _fit_candidates(p: _Prepared, family: str, widths: Sequence[int] | None,
+                    config: TrainConfig, calibrator: _Calibrator) -> list[_Candidate]:
+    """Fit the model family (or both, `auto`), each exported and calibrated."""
+    # Two model families, chosen by forward validation: both are calibrated to the same
+    # false-alarm budget on the same later windows, in the same units (mean squared
+    # error of the same standardised features), so the lower threshold is the model
+    # that sees a smaller departure from normal at the same promised false-alarm rate.
+    if family not in FAMILIES:
+        raise ValueError(f"family must be one of {', '.join(FAMILIES)}")
+    if widths and family == "auto":
+        family = "dense-autoencoder"  # widths describe the dense network only
+    x, tr, va = p.x, p.tr, p.va
+    floor = block_spread(x[:p.early])
+    cands = []
+    if family in ("auto", "dense-autoencoder"):
+        cands.append(calibrator.candidate(
+            "dense-autoencoder", fit_autoencoder(x[tr], x[va], config, scale_floor=floor)))
+    if family in ("auto", "pca"):
+        cands.append(calibrator.candidate("pca", fit_pca(x[tr], x[va], scale_floor=floor)))
+    return cands
+
+
+def _training_doc(p: _Prepared, best: _Candidate, cands: Sequence[_Candidate],
+                  config: TrainConfig, seed: int, train_time: float) -> dict[str, Any]:
+    """model.json's `training` section: what the bundle was fitted on, and how."""
+    ds, fit = p.ds, best.fit
+    return {
+        "n_windows": ds.n_windows,
+        "features_recorded": list(ds.feature_names),
+        "coverage": p.coverage.as_json(),
+        "data_sha256": ds.content_sha256,
+        "dataset": str(ds.path) if ds.path else "",
+        "split": {"method": "forward: calibration on the last windows in time, validation "
+                            "blocked-random within the earlier ones",
+                  "block_windows": SPLIT_BLOCK, "seed": seed,
+                  "train": len(p.tr), "val": len(p.va), "calib": len(p.ca)},
+        "feature_mean": fit.scaler.mean.tolist(),
+        "feature_std": fit.scaler.std.tolist(),
+        "time_span": {"start": float(ds.window_start.min()), "end": float(ds.window_end.max())},
+        "window": dict(ds.window),
+        "units": dict(ds.units),
+        "model_selection": {c.family: {"threshold": c.cal.threshold,
+                                       "budget_promised": c.cal.promised} for c in cands},
+        "architecture": {"family": best.family, "widths": list(fit.widths),
+                         "hidden_activation": "tanh" if best.family != "pca" else "linear",
+                         "output_activation": "linear", "n_params": fit.n_params},
+        "optimiser": {"method": "adam", "learning_rate": config.learning_rate,
+                      "batch_size": config.batch_size, "weight_decay": config.weight_decay,
+                      "epochs_max": config.epochs, "patience": config.patience},
+        "epochs_run": fit.epochs_run,
+        "best_epoch": fit.best_epoch,
+        "train_loss": fit.train_loss,
+        "val_loss": fit.val_loss,
+        "train_time_s": round(train_time, 3),
+    }
+
+
 def train_bundle(dataset_dir: str | os.PathLike[str], out_dir: str | os.PathLike[str], *,
                  asset: str | None = None, mode: str | None = None,
                  widths: tuple[int, ...] | list[int] | None = None, seed: int = 0,
@@ -244,122 +336,36 @@ def train_bundle(dataset_dir: str | os.PathLike[str], out_dir: str | os.PathLike
     mode) and BundleError if an existing bundle at `out_dir` cannot be versioned.
     """
     out = Path(out_dir)
-    ds_all = read_dataset(dataset_dir, min_windows=1)
-    ds, chosen_mode = select_windows(ds_all, asset=asset, mode=mode)
-    if ds.n_windows < min_windows:
-        raise DatasetError(f"dataset {ds.path}: only {ds.n_windows} window(s) in mode "
-                           f"{chosen_mode!r}; at least {min_windows} are needed to train "
-                           "(record for longer)")
-    if ds.label is not None and np.any(ds.label != 0):
-        ds = ds.select(ds.label == 0)  # train on normal windows only
-    asset_name = asset or ds.asset
-    if not asset_name:
-        raise DatasetError(f"dataset {ds.path} names no asset; give one (--asset)")
+    ds, asset_name, chosen_mode = _training_windows(dataset_dir, asset=asset, mode=mode,
+                                                    min_windows=min_windows)
     version = next_version(out)
     config = TrainConfig(widths=tuple(widths) if widths else None, epochs=epochs,
                          batch_size=batch_size, learning_rate=learning_rate,
                          weight_decay=weight_decay, patience=patience, seed=seed)
-    geometry = window_geometry(ds.window, ds.window_start, ds.window_end)
-    n_cal = forward_windows(ds.n_windows, calib_fraction, geometry)
-    early = ds.n_windows - n_cal
-    coverage = assess(ds.feature_names, ds.features[:early], geometry)
-    names = [n for n in ds.feature_names if n not in set(coverage.excluded)]
-    if len(names) < 2:
-        raise DatasetError(f"dataset {ds.path}: after leaving out the slow channels the recording "
-                           f"does not cover ({', '.join(coverage.excluded)}), fewer than 2 "
-                           "features remain; record until their wander repeats, or add "
-                           "channels")
-    x = ds.columns(names)
-    tr, va = split_early(early, val_fraction, seed=seed)
-    ca = np.arange(early, ds.n_windows)
-    floor = block_spread(x[:early])
+    p = _split(ds, asset_name, chosen_mode, val_fraction=val_fraction,
+               calib_fraction=calib_fraction, seed=seed)
     det = detector or DetectorParams()
-    stamp = (now or datetime.now(UTC)).astimezone(UTC)
-    base_doc: dict[str, Any] = {
-        "asset": asset_name,
-        "mode": chosen_mode,
-        "model_id": f"{asset_name}/{chosen_mode}",
-        "version": version,
-        "feature_names": names,
-        "score": {"function": "mse"},
-        "onnx": {"input": INPUT_NAME, "output": OUTPUT_NAME, "opset": OPSET,
-                 "ir_version": IR_VERSION},
-        "created": stamp.isoformat(timespec="seconds").replace("+00:00", "Z"),
-        "watchkeep_version": __version__,
-    }
-
-    def candidate(family: str, fit: FitResult) -> _Candidate:
-        model_bytes = export_dense(fit.layers, doc=f"watchkeep {family} {asset_name}/"
-                                                    f"{chosen_mode} v{version}")
-        doc = {**base_doc, "scaler": {"mean": fit.scaler.mean.tolist(),
-                                      "scale": fit.scaler.scale.tolist()}}
-        scores = _runtime_scores(model_bytes, doc, x[ca])
-        cal = calibrate_tail(scores, length_s=geometry.length_s, hop_s=geometry.hop_s,
-                             raise_k=det.raise_k, raise_n=det.raise_n,
-                             budget_per_week=budget, margin=margin, clear_ratio=clear_ratio)
-        return _Candidate(family, fit, model_bytes, doc, scores, cal)
-
+    calibrator = _Calibrator(_base_doc(p, version, now), f"{p.asset}/{p.mode} v{version}",
+                             p.x[p.ca], p.geometry, det, budget, margin, clear_ratio)
     t0 = time.perf_counter()
-    # Two model families, chosen by forward validation: both are calibrated to the same
-    # false-alarm budget on the same later windows, in the same units (mean squared
-    # error of the same standardised features), so the lower threshold is the model
-    # that sees a smaller departure from normal at the same promised false-alarm rate.
-    if family not in FAMILIES:
-        raise ValueError(f"family must be one of {', '.join(FAMILIES)}")
-    if widths and family == "auto":
-        family = "dense-autoencoder"  # widths describe the dense network only
-    cands = []
-    if family in ("auto", "dense-autoencoder"):
-        cands.append(candidate("dense-autoencoder", fit_autoencoder(x[tr], x[va], config,
-                                                                    scale_floor=floor)))
-    if family in ("auto", "pca"):
-        cands.append(candidate("pca", fit_pca(x[tr], x[va], scale_floor=floor)))
+    cands = _fit_candidates(p, family, widths, config, calibrator)
     train_time = time.perf_counter() - t0
     best = min(cands, key=lambda c: (not c.cal.promised, c.cal.threshold))
-    fit, model_bytes, doc, scores, cal = best.fit, best.model_bytes, best.doc, best.scores, \
-        best.cal
+    fit, model_bytes, doc, cal = best.fit, best.model_bytes, best.doc, best.cal
     doc["threshold"] = cal.threshold
     doc["clear_threshold"] = cal.clear_threshold
     doc["calibration"] = {**cal.as_json(),
                           "detector": {"raise_k": det.raise_k, "raise_n": det.raise_n}}
-    doc["training"] = {
-        "n_windows": ds.n_windows,
-        "features_recorded": list(ds.feature_names),
-        "coverage": coverage.as_json(),
-        "data_sha256": ds.content_sha256,
-        "dataset": str(ds.path) if ds.path else "",
-        "split": {"method": "forward: calibration on the last windows in time, validation "
-                            "blocked-random within the earlier ones",
-                  "block_windows": SPLIT_BLOCK, "seed": seed,
-                  "train": len(tr), "val": len(va), "calib": len(ca)},
-        "feature_mean": fit.scaler.mean.tolist(),
-        "feature_std": fit.scaler.std.tolist(),
-        "time_span": {"start": float(ds.window_start.min()), "end": float(ds.window_end.max())},
-        "window": dict(ds.window),
-        "units": dict(ds.units),
-        "model_selection": {c.family: {"threshold": c.cal.threshold,
-                                       "budget_promised": c.cal.promised} for c in cands},
-        "architecture": {"family": best.family, "widths": list(fit.widths),
-                         "hidden_activation": "tanh" if best.family != "pca" else "linear",
-                         "output_activation": "linear", "n_params": fit.n_params},
-        "optimiser": {"method": "adam", "learning_rate": learning_rate,
-                      "batch_size": batch_size, "weight_decay": weight_decay,
-                      "epochs_max": epochs, "patience": patience},
-        "epochs_run": fit.epochs_run,
-        "best_epoch": fit.best_epoch,
-        "train_loss": fit.train_loss,
-        "val_loss": fit.val_loss,
-        "train_time_s": round(train_time, 3),
-    }
+    doc["training"] = _training_doc(p, best, cands, config, seed, train_time)
     path = write_bundle(out, model_bytes, doc)
     return TrainReport(
-        bundle_path=path, asset=asset_name, mode=chosen_mode, version=version,
-        n_windows=ds.n_windows, n_train=len(tr), n_val=len(va), n_calib=len(ca),
+        bundle_path=path, asset=p.asset, mode=p.mode, version=version,
+        n_windows=p.ds.n_windows, n_train=len(p.tr), n_val=len(p.va), n_calib=len(p.ca),
         widths=fit.widths, train_loss=fit.train_loss, val_loss=fit.val_loss,
         best_epoch=fit.best_epoch, epochs_run=fit.epochs_run, calibration=cal,
-        coverage=coverage,
+        coverage=p.coverage,
         n_params=fit.n_params, onnx_bytes=len(model_bytes), train_time_s=train_time,
-        calib_scores=scores, calib_index=ca)
+        calib_scores=best.scores, calib_index=p.ca)
 
 
 def parse_widths(text: str) -> tuple[int, ...]:

@@ -239,6 +239,13 @@ def _decode(payload: bytes, ch: ChannelConfig, arrival: float, max_payload_bytes
         if raw is _MISSING:
             raise Rejected(Reason.MALFORMED, f"no {ch.value_field!r} field")
         return (ts, _number(raw, ch.value_field)), doc
+    return _block(payload, doc, ch, ts, arrival, max_skew_s), doc
+
+
+def _block(payload: bytes, doc: dict[str, Any], ch: ChannelConfig, ts: float, arrival: float,
+           max_skew_s: float) -> Block:
+    """A `json-batch` document's block: a flat list of finite numbers at the channel's
+    rate (within `RATE_TOLERANCE`), its span within the clock skew of arrival."""
     values = _field(doc, ch.values_field)
     if not isinstance(values, list) or not values:
         raise Rejected(Reason.WRONG_TYPE, f"{ch.values_field!r} is not a non-empty list")
@@ -277,7 +284,7 @@ def _decode(payload: bytes, ch: ChannelConfig, arrival: float, max_payload_bytes
         if not abs(last - arrival) <= max_skew_s:
             raise Rejected(Reason.CLOCK_SKEW, f"the block's last sample is "
                            f"{last - arrival:+.0f} s from now")
-    return block, doc
+    return block
 
 
 def _may_hold_bool(payload: bytes) -> bool:

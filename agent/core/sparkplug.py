@@ -31,9 +31,7 @@ C parser (upb) reads the payload, and this module only walks the metrics it need
 from __future__ import annotations
 
 import math
-import sys
-from array import array
-from collections.abc import Iterable
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from enum import IntEnum
 from typing import Any
@@ -43,78 +41,19 @@ from google.protobuf.message import DecodeError
 from agent.config.load import SPARKPLUG_NAMESPACE, ChannelConfig, Decoder, sparkplug_topic
 from agent.core.decode import Block, Reason, Rejected
 from agent.core.routing import Route
+from agent.core.sparkplug_payload import (
+    BDSEQ_METRIC,
+    READ,
+    array_values,
+    converter,
+    int_of,
+    rebirth_request,
+)
 from agent.sparkplug_b.sparkplug_b_pb2 import Payload
 
+__all__ = ["Note", "SparkplugDecoder", "is_sparkplug", "rebirth_request"]
+
 SEQ_MODULUS = 256  # seq counts 0..255 and wraps (tck-id-payloads-sequence-num-incrementing)
-REBIRTH_METRIC = "Node Control/Rebirth"  # "NCMD" / "NBIRTH" (tck-id-payloads-nbirth-rebirth-req)
-BDSEQ_METRIC = "bdSeq"  # tck-id-payloads-nbirth-bdseq, tck-id-payloads-ndeath-bdseq
-
-
-class DataType(IntEnum):
-    """The Sparkplug B datatypes watchkeep reads (spec 3.0, "Data Types")."""
-
-    INT8 = 1
-    INT16 = 2
-    INT32 = 3
-    INT64 = 4
-    UINT8 = 5
-    UINT16 = 6
-    UINT32 = 7
-    UINT64 = 8
-    FLOAT = 9
-    DOUBLE = 10
-    BOOLEAN = 11
-    INT8_ARRAY = 22
-    INT16_ARRAY = 23
-    INT32_ARRAY = 24
-    INT64_ARRAY = 25
-    UINT8_ARRAY = 26
-    UINT16_ARRAY = 27
-    UINT32_ARRAY = 28
-    UINT64_ARRAY = 29
-    FLOAT_ARRAY = 30
-    DOUBLE_ARRAY = 31
-    BOOLEAN_ARRAY = 32
-
-
-# How a datatype's value is read: (protobuf field of the `value` oneof, kind, bits).
-# "Datatype Details": Int8..Int32 and UInt8..UInt32 travel as uint32, Int64/UInt64 as
-# uint64, Float as float, Double as double, Boolean as bool, the arrays as bytes.
-_SCALAR, _SIGNED, _BOOL, _ARRAY, _BOOL_ARRAY = range(5)
-_READ: dict[int, tuple[str, int, int]] = {
-    DataType.INT8: ("int_value", _SIGNED, 8),
-    DataType.INT16: ("int_value", _SIGNED, 16),
-    DataType.INT32: ("int_value", _SIGNED, 32),
-    DataType.INT64: ("long_value", _SIGNED, 64),
-    DataType.UINT8: ("int_value", _SCALAR, 8),
-    DataType.UINT16: ("int_value", _SCALAR, 16),
-    DataType.UINT32: ("int_value", _SCALAR, 32),
-    DataType.UINT64: ("long_value", _SCALAR, 64),
-    DataType.FLOAT: ("float_value", _SCALAR, 32),
-    DataType.DOUBLE: ("double_value", _SCALAR, 64),
-    DataType.BOOLEAN: ("boolean_value", _BOOL, 1),
-    DataType.INT8_ARRAY: ("bytes_value", _ARRAY, 8),
-    DataType.INT16_ARRAY: ("bytes_value", _ARRAY, 16),
-    DataType.INT32_ARRAY: ("bytes_value", _ARRAY, 32),
-    DataType.INT64_ARRAY: ("bytes_value", _ARRAY, 64),
-    DataType.UINT8_ARRAY: ("bytes_value", _ARRAY, 8),
-    DataType.UINT16_ARRAY: ("bytes_value", _ARRAY, 16),
-    DataType.UINT32_ARRAY: ("bytes_value", _ARRAY, 32),
-    DataType.UINT64_ARRAY: ("bytes_value", _ARRAY, 64),
-    DataType.FLOAT_ARRAY: ("bytes_value", _ARRAY, 32),
-    DataType.DOUBLE_ARRAY: ("bytes_value", _ARRAY, 64),
-    DataType.BOOLEAN_ARRAY: ("bytes_value", _BOOL_ARRAY, 1),
-}
-# "Array types ... packed little endian" values: the array typecode of each element type.
-_ARRAY_CODE: dict[int, str] = {
-    DataType.INT8_ARRAY: "b", DataType.INT16_ARRAY: "h", DataType.INT32_ARRAY: "i",
-    DataType.INT64_ARRAY: "q", DataType.UINT8_ARRAY: "B", DataType.UINT16_ARRAY: "H",
-    DataType.UINT32_ARRAY: "I", DataType.UINT64_ARRAY: "Q", DataType.FLOAT_ARRAY: "f",
-    DataType.DOUBLE_ARRAY: "d",
-}
-_BIG_ENDIAN = sys.byteorder == "big"
-for _code in _ARRAY_CODE.values():  # the sizes the wire format assumes
-    assert array(_code).itemsize in (1, 2, 4, 8)
 
 
 class Note(IntEnum):
@@ -130,8 +69,9 @@ class Note(IntEnum):
 
 @dataclass
 class _Device:
-    """One birth's metric table: name/alias -> (routes, field, kind, bits, datatype, the
-    route when there is one only) or None for a metric no channel reads."""
+    """One birth's metric table: name/alias -> (routes, field, kind, converter (None for
+    an array), datatype, the route when there is one only) or None for a metric no
+    channel reads."""
 
     by_alias: dict[int, Any]
     by_name: dict[str, Any]
@@ -345,13 +285,14 @@ class SparkplugDecoder:
             routes = wanted.get(name)
             entry: Any = None
             if routes is not None:
-                read = _READ.get(dtype)
+                read = READ.get(dtype)
                 if read is None:
                     self.notes.append((Note.REJECTED, Reason.WRONG_TYPE,
                                        f"{where} {name!r}: datatype {dtype} is not a "
                                        "number, a boolean or an array of them"))
                 else:
-                    entry = (routes, read[0], read[1], read[2], dtype,
+                    field, kind, bits = read
+                    entry = (routes, field, kind, converter(kind, bits), dtype,
                              routes[0] if len(routes) == 1 else None)
             by_name[name] = entry
             if alias is not None:
@@ -370,7 +311,7 @@ class SparkplugDecoder:
         node.bd_seq = None
         for m in msg.metrics:
             if m.name == BDSEQ_METRIC:
-                node.bd_seq = _int_of(m)
+                node.bd_seq = int_of(m)
         declared = self._declared(msg)
         table = self._table(declared, wanted.get(None, {}), f"{group}/{node_id}")
         node.node_metrics = table
@@ -404,7 +345,7 @@ class SparkplugDecoder:
 
     def _ndeath(self, node: _Node, msg: Any, group: str, node_id: str, arrival: float
                 ) -> None:
-        bd = next((_int_of(m) for m in msg.metrics if m.name == BDSEQ_METRIC), None)
+        bd = next((int_of(m) for m in msg.metrics if m.name == BDSEQ_METRIC), None)
         if node.born and node.bd_seq is not None and bd is not None and bd != node.bd_seq:
             # The will of an earlier session, delivered late: the edge node is alive in
             # a newer one (tck-id-payloads-ndeath-bdseq pairs a death with its birth).
@@ -442,22 +383,18 @@ class SparkplugDecoder:
 
     def _samples(self, msg: Any, table: _Device, arrival: float, group: str, node_id: str
                  ) -> list[tuple[Route, float, float | Block]]:
+        """The samples of a message's metrics, read against its birth's `table`. Each field
+        read from a parsed message costs a dict look-up or more (upb makes a Python object
+        per access): as few are read as possible. By alias first where the birth declared
+        aliases (then data carries only them: tck-id-payloads-alias-data-cmd-requirement);
+        an unset alias reads as 0, so a birth that gave alias 0 is looked up by name."""
         out: list[tuple[Route, float, float | Block]] = []
-        by_alias, by_name = table.by_alias, table.by_name
-        # Each field read from a parsed message costs about as much as a dict look-up
-        # or more (upb makes a Python object per access): read as few as possible. By
-        # alias first, where the birth declared aliases (then data carries only them:
-        # tck-id-payloads-alias-data-cmd-requirement); an unset alias reads as 0, so a
-        # birth that gave some metric alias 0 is looked up by name first.
-        alias_first = table.alias_first
+        by_alias, by_name, alias_first = table.by_alias, table.by_name, table.alias_first
         msg_ts = -1  # the payload's timestamp, read when a metric has none
         unknown = 0
-        skew = self.max_skew_s
-        append = out.append
-        isfinite = math.isfinite
+        skew, append, isfinite = self.max_skew_s, out.append, math.isfinite
         last_ms = -1  # metrics of one message mostly share a timestamp: convert it once
-        ts = arrival
-        skewed = False
+        ts, skewed = arrival, False
         for m in msg.metrics:
             if alias_first:
                 entry = by_alias.get(m.alias, _MISSING)
@@ -473,25 +410,13 @@ class SparkplugDecoder:
             if entry is _MISSING:
                 unknown += 1
                 continue
-            routes, field, kind, bits, dtype, route = entry
-            # An unset member of the `value` oneof reads as 0 / false / empty, so a value
-            # that is none of those is the one the datatype prescribes; only then is
-            # the oneof asked which member it holds (a third of the cost of a metric).
+            routes, field, kind, convert, dtype, route = entry
             raw = getattr(m, field)
-            if not raw:
-                which = m.WhichOneof("value")
-                if which != field:
-                    if which is None and m.is_null:
-                        continue  # "is_null": no value this time (not a fault)
-                    self.notes.append((Note.REJECTED, Reason.WRONG_TYPE,
-                                       f"{group}/{node_id} {m.name or m.alias}: {which} "
-                                       f"for datatype {dtype}"))
-                    continue
+            if not raw and self._unset(m, field, dtype, group, node_id):
+                continue
             ms = m.timestamp
             if not ms:
-                if msg_ts < 0:
-                    msg_ts = msg.timestamp
-                ms = msg_ts
+                ms = msg_ts = msg.timestamp if msg_ts < 0 else msg_ts
             if ms != last_ms:
                 last_ms = ms
                 ts = ms / 1000.0 if ms else arrival
@@ -500,31 +425,12 @@ class SparkplugDecoder:
                 self.notes.append((Note.REJECTED, Reason.CLOCK_SKEW,
                                    f"ts {ts:.3f} is {ts - arrival:+.0f} s from now"))
                 continue
-            value: float | Block
-            if kind == _SCALAR:
-                value = float(raw)
-                if not isfinite(value):
-                    self.notes.append((Note.REJECTED, Reason.NON_FINITE, f"{value}"))
-                    continue
-            elif kind == _SIGNED:
-                v = raw & ((1 << bits) - 1)  # also reads a sign-extended uint32 for Int8/16
-                value = float(v - (1 << bits) if v >> (bits - 1) else v)
-            elif kind == _BOOL:
-                value = 1.0 if raw else 0.0
-            else:
-                try:
-                    values = _array_values(raw, dtype, kind)
-                except ValueError as exc:
-                    self.notes.append((Note.REJECTED, Reason.MALFORMED, str(exc)))
-                    continue
-                if not values:
-                    continue
-                if not math.isfinite(math.fsum(values)) \
-                        and not all(map(math.isfinite, values)):
-                    self.notes.append((Note.REJECTED, Reason.NON_FINITE, "array sample"))
-                    continue
-                for r in routes:
-                    append((r, ts, Block(ts, r.channel.rate_hz, values)))
+            if convert is None:
+                self._array(routes, ts, raw, dtype, kind, append)
+                continue
+            value = convert(raw)
+            if not isfinite(value):  # a Float or Double only
+                self.notes.append((Note.REJECTED, Reason.NON_FINITE, f"{value}"))
                 continue
             if route is not None:  # the usual case: one channel reads the metric
                 append((route, ts, value))
@@ -532,55 +438,48 @@ class SparkplugDecoder:
                 for r in routes:
                     append((r, ts, value))
         if unknown:
-            self.notes.append((Note.REJECTED, Reason.UNKNOWN_ALIAS,
-                               f"{group}/{node_id}: {unknown} metrics not in the birth"))
-            node = self._nodes[(group, node_id)]
-            self._ask_rebirth(node, group, node_id, arrival)
+            self._unknown(unknown, group, node_id, arrival)
         return out
 
+    def _unset(self, m: Any, field: str, dtype: int, group: str, node_id: str) -> bool:
+        """For a metric whose field reads as 0 / false / empty: True (skip it) when that
+        field is not the member of the `value` oneof it holds. An unset member reads so
+        too, so only then is the oneof asked which member it holds (a third of the cost
+        of a metric): none with `is_null` is no value this time (not a fault); another
+        member is the wrong type for the datatype."""
+        which = m.WhichOneof("value")
+        if which == field:
+            return False
+        if which is None and m.is_null:
+            return True
+        self.notes.append((Note.REJECTED, Reason.WRONG_TYPE,
+                           f"{group}/{node_id} {m.name or m.alias}: {which} "
+                           f"for datatype {dtype}"))
+        return True
 
-def _int_of(m: Any) -> int | None:
-    which = m.WhichOneof("value")
-    if which in ("int_value", "long_value"):
-        return int(getattr(m, which))
-    return None
+    def _array(self, routes: list[Route], ts: float, raw: bytes, dtype: int, kind: int,
+               append: Callable[[tuple[Route, float, float | Block]], None]) -> None:
+        """An array metric: one block of its values for each route (none, with a note,
+        when the array is malformed or holds a non-finite value)."""
+        try:
+            values = array_values(raw, dtype, kind)
+        except ValueError as exc:
+            self.notes.append((Note.REJECTED, Reason.MALFORMED, str(exc)))
+            return
+        if not values:
+            return
+        if not math.isfinite(math.fsum(values)) and not all(map(math.isfinite, values)):
+            self.notes.append((Note.REJECTED, Reason.NON_FINITE, "array sample"))
+            return
+        for r in routes:
+            append((r, ts, Block(ts, r.channel.rate_hz, values)))
 
-
-def _array_values(raw: bytes, dtype: int, kind: int) -> array[float]:
-    """The elements of an array metric as float64 ('Datatype Details', array types)."""
-    if kind == _BOOL_ARRAY:
-        # A 4-byte little-endian count, then the bits, the first element in the most
-        # significant bit of the first byte: Eclipse Tahu's and pysparkplug's encoding;
-        # the spec text only says "packed little endian boolean/bit bytes".
-        if len(raw) < 4:
-            raise ValueError("BooleanArray shorter than its 4-byte count")
-        n = int.from_bytes(raw[:4], "little")
-        if (n + 7) // 8 > len(raw) - 4:
-            raise ValueError(f"BooleanArray of {n} values in {len(raw) - 4} bytes")
-        bits = raw[4:]
-        return array("d", [float((bits[i >> 3] >> (7 - (i & 7))) & 1) for i in range(n)])
-    elems: array[Any] = array(_ARRAY_CODE[dtype])
-    if len(raw) % elems.itemsize:
-        raise ValueError(f"{len(raw)} bytes is not a whole number of "
-                         f"{elems.itemsize}-byte elements")
-    elems.frombytes(raw)
-    if _BIG_ENDIAN:
-        elems.byteswap()
-    return elems if elems.typecode == "d" else array("d", elems)
-
-
-def rebirth_request(now: float) -> bytes:
-    """The NCMD payload that asks an edge node for its birth certificates again: one
-    Boolean metric `Node Control/Rebirth` = true, a payload timestamp, no seq (spec 3.0,
-    chapter 6, "NCMD": tck-id-payloads-ncmd-timestamp, tck-id-payloads-ncmd-seq)."""
-    ms = int(now * 1000)
-    p = Payload(timestamp=ms)
-    m = p.metrics.add()
-    m.name = REBIRTH_METRIC
-    m.timestamp = ms
-    m.datatype = DataType.BOOLEAN
-    m.boolean_value = True
-    return p.SerializeToString()
+    def _unknown(self, unknown: int, group: str, node_id: str, arrival: float) -> None:
+        """Metrics not in the birth: counted, and the edge node asked for a rebirth."""
+        self.notes.append((Note.REJECTED, Reason.UNKNOWN_ALIAS,
+                           f"{group}/{node_id}: {unknown} metrics not in the birth"))
+        node = self._nodes[(group, node_id)]
+        self._ask_rebirth(node, group, node_id, arrival)
 
 
 def is_sparkplug(ch: ChannelConfig) -> bool:

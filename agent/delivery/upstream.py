@@ -9,11 +9,11 @@ Two threads, so no SQLite work ever runs on the MQTT network thread:
   passes it publishes rows from an in-memory hand-over queue while fewer than
   `outbox.inflight` are unacknowledged. paho callbacks only append the
   acknowledged message ids to a list; they never block.
-- the **store** thread fetches the next rows from the outbox into the hand-over
-  queue (at most max(PREFETCH_ROWS, 2 x inflight) ahead; at once when rows are
-  waiting, so a backlog starts going out without a wait), and deletes acknowledged
-  rows in batches, one transaction per batch. A row is deleted only after its
-  PUBACK (`on_publish` for its mid with a reason code that is not `.is_failure`).
+- the **store** thread (`upstream_feed.OutboxFeed`) fetches the next rows from the
+  outbox into the hand-over queue (at most max(PREFETCH_ROWS, 2 x inflight) ahead; at
+  once when rows are waiting, so a backlog starts going out without a wait), and
+  deletes acknowledged rows in batches, one transaction per batch. A row is deleted
+  only after its PUBACK (`on_publish` for its mid with a reason code that is not `.is_failure`).
 
 After a reconnect paho itself resends the messages that were in flight, with
 the DUP flag and their old message ids, before anything newer: delivery resumes
@@ -38,13 +38,10 @@ from __future__ import annotations
 import contextlib
 import json
 import logging
-import queue
 import random
-import sqlite3
 import ssl
 import threading
 import time
-from collections import deque
 from collections.abc import Callable
 from typing import Any
 
@@ -52,12 +49,13 @@ import paho.mqtt.client as mqtt
 
 from agent import __version__
 from agent.config.load import BrokerConfig, Config, Endpoint
-from agent.delivery.outbox import Outbox, Row
+from agent.delivery.outbox import Outbox
+from agent.delivery.outbox_file import Row
+from agent.delivery.upstream_feed import OutboxFeed
 from agent.errors import ConfigError, ConfigProblem
 from agent.ingest.buffers import make_client
 from agent.ops.logs import RateLimited, kv
 from agent.ops.metrics import Metrics
-from agent.pipeline.messages import Kind
 
 RECONNECT_MIN_S = 0.5
 # Capped low: a gateway talks to one broker on a plant network, and after an outage
@@ -65,13 +63,7 @@ RECONNECT_MIN_S = 0.5
 RECONNECT_MAX_S = 10.0
 LOOP_TIMEOUT_S = 0.05
 BUSY_LOOP_TIMEOUT_S = 0.002
-# Rows read ahead of the in-flight window: fewer, larger reads while draining a backlog.
-PREFETCH_ROWS = 200
 STOP_DRAIN_S = 3.0
-FETCH_RETRY_S = 0.1
-REFUSED_RETRY_S = 5.0
-GAUGE_EVERY_S = 0.5
-MAINTAIN_EVERY_S = 60.0
 
 
 def backoff_delay(attempt: int, u: float, min_s: float = RECONNECT_MIN_S,
@@ -134,23 +126,7 @@ class Upstream:
         self.window = cfg.outbox.inflight
         self.started = clock()
         self.status_topic = f"{cfg.topic_prefix}/status"
-        try:
-            self._client = client_factory(self.broker)
-        except (ssl.SSLError, OSError) as exc:
-            raise ConfigError([ConfigProblem(
-                "upstream_broker.tls", "a readable CA file, and a certificate and key that "
-                "belong together", str(exc))]) from exc
-        # Room for the status messages beside the window of rows.
-        self._client.max_inflight_messages_set(self.window + 4)
-        self._client.will_set(self.status_topic,
-                              status_payload(cfg, "offline", self.started, reason="lost"),
-                              qos=1, retain=True)
-        self._client.on_connect = self._on_connect
-        self._client.on_disconnect = self._on_disconnect
-        self._client.on_publish = self._on_publish
-        self._client.on_log = self._on_log
-        self._client.on_message = self._on_message
-        self._client.on_subscribe = self._on_subscribe
+        self._client = self._make_client(client_factory)
         # Inbound commands (agent/learning/commands.py): off unless `accept_commands` is called.
         self._command_filter: str | None = None
         self._on_command: Callable[[str, bytes, bool], None] | None = None
@@ -163,24 +139,41 @@ class Upstream:
         # Every endpoint's series exists from the start, at 0; 1 on the one in use.
         self._ep_gauges = {e: metrics.upstream_endpoint.labels(str(e)) for e in self.endpoints}
         self._errors = metrics.callback_errors.labels("upstream")
-        self._published = {k: metrics.published.labels(k.label) for k in Kind}
         self._rl = RateLimited(logger)
         self._connects = 0
         self._last_ack_mono = time.monotonic()
         # Network thread only:
         self._inflight: dict[int, Row] = {}
         self._acked: list[tuple[int, bool, str]] = []
-        # Hand-over between the threads (deque and SimpleQueue are thread-safe):
-        self._ready: deque[Row] = deque()
-        # Acknowledged rows for the store thread; `None` only wakes it (new rows written).
-        self._acks: queue.SimpleQueue[tuple[Row, bool] | None] = queue.SimpleQueue()
-        outbox.on_written.append(lambda: self._acks.put(None))
+        # The store thread, and the hand-over queues between it and the network thread.
+        self._feed = OutboxFeed(outbox, metrics, self.window, self._rl,
+                                wake_network=self._wake_network,
+                                seconds_since_ack=self.seconds_since_ack)
         self._stop_net = threading.Event()
-        self._stop_store = threading.Event()
         self._net = threading.Thread(target=self._net_run, name="watchkeep-upstream",
                                      daemon=True)
-        self._store = threading.Thread(target=self._store_run,
-                                       name="watchkeep-upstream-store", daemon=True)
+
+    def _make_client(self, client_factory: Callable[[BrokerConfig], mqtt.Client]
+                     ) -> mqtt.Client:
+        """The paho client, with its will (status offline, reason lost) and callbacks."""
+        try:
+            client = client_factory(self.broker)
+        except (ssl.SSLError, OSError) as exc:
+            raise ConfigError([ConfigProblem(
+                "upstream_broker.tls", "a readable CA file, and a certificate and key that "
+                "belong together", str(exc))]) from exc
+        # Room for the status messages beside the window of rows.
+        client.max_inflight_messages_set(self.window + 4)
+        client.will_set(self.status_topic,
+                        status_payload(self.cfg, "offline", self.started, reason="lost"),
+                        qos=1, retain=True)
+        client.on_connect = self._on_connect
+        client.on_disconnect = self._on_disconnect
+        client.on_publish = self._on_publish
+        client.on_log = self._on_log
+        client.on_message = self._on_message
+        client.on_subscribe = self._on_subscribe
+        return client
 
     # -- life cycle ----------------------------------------------------------------
 
@@ -196,7 +189,7 @@ class Upstream:
                                 keepalive_s=b.keepalive_s))
         self._client.connect_async(self.endpoint.host, self.endpoint.port,
                                    keepalive=b.keepalive_s)
-        self._store.start()
+        self._feed.start()
         self._net.start()
 
     def accept_commands(self, topic_filter: str,
@@ -215,8 +208,7 @@ class Upstream:
             time.sleep(0.02)
         self._stop_net.set()
         self._net.join(timeout_s)
-        self._stop_store.set()
-        self._store.join(timeout_s)
+        self._feed.stop(timeout_s)
 
     def seconds_since_ack(self) -> float:
         return time.monotonic() - self._last_ack_mono
@@ -282,7 +274,7 @@ class Upstream:
     def _loop_timeout(self) -> float:
         """Short while rows wait in the outbox: the store thread's hand-over cannot wake
         paho's select(), so poll briskly while draining and slowly when idle."""
-        if self._ready or self._inflight or self.outbox.counts()[0] > 0:
+        if self._feed.ready or self._inflight or self.outbox.counts()[0] > 0:
             return BUSY_LOOP_TIMEOUT_S
         return LOOP_TIMEOUT_S
 
@@ -298,12 +290,13 @@ class Upstream:
                                  "it stays in the outbox and is retried", reason=reason)
             else:
                 self._last_ack_mono = time.monotonic()
-            self._acks.put((row, not failed))
-        while self.connected.is_set() and len(self._inflight) < self.window and self._ready:
-            row = self._ready.popleft()
+            self._feed.acks.put((row, not failed))
+        ready = self._feed.ready
+        while self.connected.is_set() and len(self._inflight) < self.window and ready:
+            row = ready.popleft()
             info = self._client.publish(row.topic, row.payload, qos=row.qos, retain=row.retain)
             if info.rc not in (mqtt.MQTT_ERR_SUCCESS, mqtt.MQTT_ERR_NO_CONN):
-                self._ready.appendleft(row)  # paho did not take it; try again next pass
+                ready.appendleft(row)  # paho did not take it; try again next pass
                 break
             # paho keeps a QoS 1 message it took, even when the link just dropped, and
             # sends it after the reconnect: track its mid either way.
@@ -433,62 +426,7 @@ class Upstream:
         if level == mqtt.MQTT_LOG_ERR and self._paho_error is None:
             self._paho_error = buf
 
-    # -- the store thread ----------------------------------------------------------
-
-    def _store_run(self) -> None:
-        cursor = 0
-        handed: set[int] = set()
-        to_delete: list[Row] = []
-        rescan_at: float | None = None
-        next_gauges = next_maintain = 0.0
-        while True:
-            stopping = self._stop_store.is_set()
-            # Block for acknowledgements only when there is nothing to read ahead: with a
-            # backlog at start-up the first rows are handed over at once, not after a wait.
-            block = not stopping and not self._can_refill(cursor, handed)
-            refused = self._take_acks(to_delete, handed, block=block)
-            if refused:
-                rescan_at = rescan_at or time.monotonic() + REFUSED_RETRY_S
-            if to_delete:
-                try:
-                    self.outbox.delete([r.id for r in to_delete])
-                    for r in to_delete:
-                        self._published[r.kind].inc()
-                    to_delete = []
-                except sqlite3.Error as exc:  # counted by the outbox; kept and retried
-                    self._rl.warning("delete", "outbox delete failed; retrying",
-                                     error=str(exc))
-            if stopping:
-                break
-            if rescan_at is not None and time.monotonic() >= rescan_at:
-                cursor, rescan_at = 0, None  # refused rows are still there: offer them again
-            cursor = self._refill(cursor, handed)
-            now = time.monotonic()
-            if now >= next_gauges:
-                next_gauges = now + GAUGE_EVERY_S
-                self.metrics.since_ack.set(self.seconds_since_ack())
-                with contextlib.suppress(sqlite3.Error):
-                    self.outbox.update_gauges()
-            if now >= next_maintain:
-                next_maintain = now + MAINTAIN_EVERY_S
-                self.outbox.maintain()
-
-    def _take_acks(self, to_delete: list[Row], handed: set[int], block: bool) -> bool:
-        refused = False
-        try:
-            item = self._acks.get(timeout=0.1) if block else self._acks.get_nowait()
-            while True:
-                if item is not None:
-                    row, ok = item
-                    handed.discard(row.id)
-                    if ok:
-                        to_delete.append(row)
-                    else:
-                        refused = True
-                item = self._acks.get_nowait()
-        except queue.Empty:
-            pass
-        return refused
+    # -- for the store thread ---------------------------------------------------
 
     def _wake_network(self) -> None:
         """Break the network thread out of paho's select() so handed rows go out now.
@@ -501,33 +439,3 @@ class Upstream:
         if sock is not None:
             with contextlib.suppress(OSError):
                 sock.send(b"\0")
-
-    def _room(self, handed: set[int]) -> int:
-        return max(PREFETCH_ROWS, 2 * self.window) - len(handed)
-
-    def _can_refill(self, cursor: int, handed: set[int]) -> bool:
-        return self._room(handed) > 0 and self.outbox.max_id > cursor
-
-    def _refill(self, cursor: int, handed: set[int]) -> int:
-        room = self._room(handed)
-        top = self.outbox.max_id
-        if room <= 0 or top <= cursor:
-            return cursor
-        try:
-            rows = self.outbox.fetch_after(cursor, room)
-        except sqlite3.Error as exc:
-            self._rl.warning("fetch", "outbox read failed; retrying", error=str(exc))
-            # The loop does not block while rows wait to be read: pause here instead of
-            # retrying a failing read in a tight loop.
-            self._stop_store.wait(FETCH_RETRY_S)
-            return cursor
-        for r in rows:
-            if r.id not in handed:
-                handed.add(r.id)
-                self._ready.append(r)
-            cursor = max(cursor, r.id)
-        if rows:
-            self._wake_network()
-        if len(rows) < room:
-            cursor = max(cursor, top)  # everything up to `top` has been seen
-        return cursor

@@ -234,93 +234,120 @@ class _WorkerIngest(Ingest):
             self.sender.send(("state", False, str(reason)))
 
 
-def worker_main(conn: Connection, cfg: Config, gen: int, level: int) -> None:
-    """The child process: run ingest until told to stop or the parent goes away."""
-    for sig in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP):
-        signal.signal(sig, signal.SIG_IGN)
-    sender = _Sender(conn)
-    log = logging.getLogger(LOGGER_NAME + ".ingest-worker")
-    log.handlers[:] = [_PipeLogHandler(sender)]
-    log.setLevel(level)
-    log.propagate = False
-    wake = threading.Event()
-    current = _Generation(gen, cfg, sender, wake, log)
-    previous: _Generation | None = None
-    gens_lock = threading.Lock()
-    stop = threading.Event()
-    ingest = _WorkerIngest(cfg, current.handler, None, log)
-    ingest.sender = sender
-    errors: PlainCount = ingest._errors
+class _Worker:
+    """The child's state: the ingest, the current generation of config (and the one
+    before it, until its last batch and counts are sent), and the flusher thread."""
 
-    def send_counts(gens: list[_Generation]) -> None:
+    def __init__(self, conn: Connection, cfg: Config, gen: int, level: int) -> None:
+        self.conn = conn
+        self.sender = _Sender(conn)
+        log = logging.getLogger(LOGGER_NAME + ".ingest-worker")
+        log.handlers[:] = [_PipeLogHandler(self.sender)]
+        log.setLevel(level)
+        log.propagate = False
+        self.log = log
+        self.wake = threading.Event()
+        self.current = _Generation(gen, cfg, self.sender, self.wake, log)
+        self.previous: _Generation | None = None
+        self.gens_lock = threading.Lock()
+        self.stop = threading.Event()
+        self.ingest = _WorkerIngest(cfg, self.current.handler, None, log)
+        self.ingest.sender = self.sender
+        self.errors: PlainCount = self.ingest._errors
+        self.flush_thread = threading.Thread(target=self._flusher,
+                                             name="watchkeep-ingest-flush", daemon=True)
+
+    def _live(self) -> list[_Generation]:
+        return [g for g in (self.previous, self.current) if g is not None]
+
+    def send_counts(self, gens: list[_Generation]) -> None:
         for g in gens:
             c = g.counts()
             if c is not None:
-                sender.send(c)
-        e = errors_delta(errors)
+                self.sender.send(c)
+        e = errors_delta(self.errors)
         if e is not None:
-            sender.send(e)
+            self.sender.send(e)
 
-    def flusher() -> None:
+    def _flusher(self) -> None:
         """Sends a batch `FLUSH_S` after its first sample; sends the counts now and then.
         A broken pipe (the daemon is gone) ends it quietly: the main thread sees the
         pipe close too and ends the child."""
         try:
-            flush_loop()
+            self._flush_loop()
         except (OSError, EOFError, ValueError):  # BrokenPipeError; a closed connection
-            stop.set()
+            self.stop.set()
 
-    def flush_loop() -> None:
+    def _flush_loop(self) -> None:
         next_counts = time.monotonic() + COUNTS_EVERY_S
-        while not stop.is_set():
-            started = wake.wait(COUNTS_EVERY_S)
+        while not self.stop.is_set():
+            started = self.wake.wait(COUNTS_EVERY_S)
             if started:
                 time.sleep(FLUSH_S)
-                wake.clear()
-            with gens_lock:
-                live = [g for g in (previous, current) if g is not None]
+                self.wake.clear()
+            with self.gens_lock:
+                live = self._live()
             for g in live:
                 g.batch.flush()
             if time.monotonic() >= next_counts:
                 next_counts = time.monotonic() + COUNTS_EVERY_S
-                send_counts(live)
+                self.send_counts(live)
 
-    t = threading.Thread(target=flusher, name="watchkeep-ingest-flush", daemon=True)
-    t.start()
-    ingest.start()
-    try:
+    def serve(self) -> None:
+        """Apply the daemon's messages until "stop" or the pipe closes."""
         while True:
             try:
-                msg = conn.recv()
+                msg = self.conn.recv()
             except (EOFError, OSError):
                 return  # the daemon is gone: so is its ingest
             if msg[0] == "stop":
                 break
             if msg[0] == "config":
-                new = _Generation(msg[1], msg[2], sender, wake, log)
-                with gens_lock:
-                    previous, current = current, new
-                ingest.reconfigure(new.cfg, new.handler)
-                previous.batch.flush()
-                c = previous.counts()
-                if c is not None:
-                    sender.send(c)
-                sender.send(("gen", new.gen))
-    finally:
-        stop.set()
+                self._switch(msg[1], msg[2])
+
+    def _switch(self, gen: int, cfg: Config) -> None:
+        """A new config generation: ingest moves to it; the old one's last batch and
+        counts go out, then the generation number."""
+        new = _Generation(gen, cfg, self.sender, self.wake, self.log)
+        with self.gens_lock:
+            self.previous, self.current = self.current, new
+        previous = self.previous
+        self.ingest.reconfigure(new.cfg, new.handler)
+        previous.batch.flush()
+        c = previous.counts()
+        if c is not None:
+            self.sender.send(c)
+        self.sender.send(("gen", new.gen))
+
+    def close(self) -> None:
+        """Stop ingest and the flusher, send what is left and "bye", close the pipe."""
+        self.stop.set()
         with contextlib.suppress(Exception):
-            ingest.stop()
-        t.join(1.0)
+            self.ingest.stop()
+        self.flush_thread.join(1.0)
         with contextlib.suppress(Exception):
-            live = [g for g in (previous, current) if g is not None]
+            live = self._live()
             for g in live:
                 g.batch.flush()
-            send_counts(live)
-            if log.isEnabledFor(logging.DEBUG):  # what the child's memory is made of
-                log.debug(kv("ingest worker modules", packages=",".join(sorted(
+            self.send_counts(live)
+            if self.log.isEnabledFor(logging.DEBUG):  # what the child's memory is made of
+                self.log.debug(kv("ingest worker modules", packages=",".join(sorted(
                     {m.partition(".")[0] for m in sys.modules}))))
-            sender.send(("bye",))
-        conn.close()
+            self.sender.send(("bye",))
+        self.conn.close()
+
+
+def worker_main(conn: Connection, cfg: Config, gen: int, level: int) -> None:
+    """The child process: run ingest until told to stop or the parent goes away."""
+    for sig in (signal.SIGINT, signal.SIGTERM, signal.SIGHUP):
+        signal.signal(sig, signal.SIG_IGN)
+    worker = _Worker(conn, cfg, gen, level)
+    worker.flush_thread.start()
+    worker.ingest.start()
+    try:
+        worker.serve()
+    finally:
+        worker.close()
 
 
 def main(argv: list[str]) -> int:

@@ -300,7 +300,22 @@ def load_bundle(path: str | os.PathLike[str]) -> Bundle:
     if not isinstance(doc, dict):
         raise BundleError(sp, f"{MODEL_JSON} is not a JSON object")
     meta = parse_meta(doc, sp)
+    model_bytes, session = _open_session(sp, onnx_path)
+    meta = _check_io(sp, meta, session)
+    n = len(meta.feature_names)
+    bundle = Bundle(p, meta, session)
+    _probe(sp, bundle, n)
+    dense = dense_layers(model_bytes)
+    if dense is not None and dense[0].weight.shape[0] == n and dense[-1].weight.shape[1] == n:
+        bundle.dense = dense
+    h = hashlib.sha256(model_bytes)
+    h.update(meta_path.read_bytes())
+    bundle.digest = h.hexdigest()
+    return bundle
 
+
+def _open_session(sp: str, onnx_path: Path) -> tuple[bytes, Any]:
+    """The model's bytes and an onnxruntime session on them (the daemon's settings)."""
     import onnxruntime as ort
 
     try:
@@ -313,6 +328,12 @@ def load_bundle(path: str | os.PathLike[str]) -> Bundle:
     except Exception as exc:  # onnxruntime raises several unrelated types
         raise BundleError(sp, f"{MODEL_ONNX} is not a loadable ONNX model "
                               f"({type(exc).__name__}: {str(exc).splitlines()[0][:200]})") from exc
+    return model_bytes, session
+
+
+def _check_io(sp: str, meta: BundleMeta, session: Any) -> BundleMeta:
+    """The model takes one float [N, F] input with a dynamic batch, named as model.json
+    says; returns `meta` with the input and output names filled in."""
     inputs = session.get_inputs()
     outputs = session.get_outputs()
     if len(inputs) != 1:
@@ -335,10 +356,12 @@ def load_bundle(path: str | os.PathLike[str]) -> Bundle:
     out_name = meta.onnx_output or out_names[0]
     if out_name not in out_names:
         raise BundleError(sp, f"model.json names output {out_name!r}, the model has {out_names}")
-    meta = BundleMeta(**{**meta.__dict__, "onnx_input": inp.name, "onnx_output": out_name})
-    bundle = Bundle(p, meta, session)
-    # Probe: a batch of zeros (the training mean) and a batch of ones must give finite
-    # [N, F] reconstructions; this also warms the session up before READY.
+    return BundleMeta(**{**meta.__dict__, "onnx_input": inp.name, "onnx_output": out_name})
+
+
+def _probe(sp: str, bundle: Bundle, n: int) -> None:
+    """A batch of zeros (the training mean) and a batch of ones must give finite [N, F]
+    reconstructions; this also warms the session up before READY."""
     for probe in (np.zeros((2, n), np.float32), np.ones((3, n), np.float32)):
         try:
             out = bundle.reconstruct(probe)
@@ -351,13 +374,6 @@ def load_bundle(path: str | os.PathLike[str]) -> Bundle:
                                   f"{list(probe.shape)}, expected the same shape")
         if not np.all(np.isfinite(out)):
             raise BundleError(sp, "the model gives non-finite output on a probe batch")
-    dense = dense_layers(model_bytes)
-    if dense is not None and dense[0].weight.shape[0] == n and dense[-1].weight.shape[1] == n:
-        bundle.dense = dense
-    h = hashlib.sha256(model_bytes)
-    h.update(meta_path.read_bytes())
-    bundle.digest = h.hexdigest()
-    return bundle
 
 
 def write_bundle(dest: str | os.PathLike[str], model_bytes: bytes, meta: Mapping[str, Any]) -> Path:

@@ -18,7 +18,7 @@ import yaml
 
 from agent.cli.demo import DEMO_DIR
 from agent.commission.dataset import DatasetWriter, read_dataset
-from agent.commission.evaluate import roc_auc
+from agent.commission.judging import roc_auc
 from agent.commission.replay import Replayer
 from agent.commission.train import train_bundle
 from agent.config.load import parse_config

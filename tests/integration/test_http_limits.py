@@ -15,7 +15,8 @@ from pathlib import Path
 import pytest
 from prometheus_client import CollectorRegistry
 
-from agent.ops.metrics import HttpServer, Metrics
+from agent.ops.http_server import HttpServer
+from agent.ops.metrics import Metrics
 from tests.brokers import Broker, free_port, wait_for
 from tests.helpers import Collector, asset_doc, train_pca_bundle, write_config
 

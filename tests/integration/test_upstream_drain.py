@@ -8,8 +8,10 @@ from pathlib import Path
 from prometheus_client import CollectorRegistry
 
 from agent.config.load import load_config
-from agent.delivery.outbox import INSERT_CHUNKS, Outbox
-from agent.delivery.upstream import PREFETCH_ROWS, Upstream
+from agent.delivery.outbox import Outbox
+from agent.delivery.outbox_file import INSERT_CHUNKS
+from agent.delivery.upstream import Upstream
+from agent.delivery.upstream_feed import PREFETCH_ROWS
 from agent.ops.metrics import Metrics
 from agent.pipeline.messages import Kind, OutMessage
 from tests.brokers import Broker, free_port, wait_for

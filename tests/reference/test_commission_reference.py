@@ -16,8 +16,8 @@ from sklearn.metrics import roc_auc_score
 from agent.commission.autoencoder import TrainConfig, fit_autoencoder
 from agent.commission.calibrate import calibrate
 from agent.commission.dataset import write_dataset
-from agent.commission.evaluate import rank_average, roc_auc
 from agent.commission.export import export_dense, forward_numpy
+from agent.commission.judging import rank_average, roc_auc
 from agent.commission.train import train_bundle
 from agent.models.bundle import load_bundle
 

@@ -12,22 +12,18 @@ import numpy as np
 import pytest
 
 from agent.commission.dataset import read_dataset, write_dataset
-from agent.commission.evaluate import (
-    FaultSpan,
-    TruthEvent,
-    add_evaluate_arguments,
-    cmd_evaluate,
-    evaluate,
-    judge,
-    load_labels,
-    roc_auc,
-    truth_from_runs,
-    truth_from_spans,
-    union_duration_s,
-)
+from agent.commission.evaluate import add_evaluate_arguments, cmd_evaluate, evaluate
 from agent.commission.inject import FaultKind, InjectSpec, inject, parse_inject
+from agent.commission.judging import judge, roc_auc, union_duration_s
 from agent.commission.report import REPORT_JSON, REPORT_PNG, write_report
 from agent.commission.train import train_bundle
+from agent.commission.truth import (
+    FaultSpan,
+    TruthEvent,
+    load_labels,
+    truth_from_runs,
+    truth_from_spans,
+)
 from agent.core.detector import DetectorParams
 from agent.errors import DatasetError
 from agent.models.bundle import load_bundle

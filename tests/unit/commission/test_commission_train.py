@@ -14,12 +14,8 @@ import pytest
 
 from agent import __version__
 from agent.commission.dataset import write_dataset
-from agent.commission.train import (
-    add_train_arguments,
-    cmd_train,
-    split_blocks,
-    train_bundle,
-)
+from agent.commission.splits import split_blocks
+from agent.commission.train import add_train_arguments, cmd_train, train_bundle
 from agent.errors import BundleError, DatasetError
 from agent.models.bundle import load_bundle
 

@@ -12,16 +12,16 @@ from hypothesis import strategies as st
 from prometheus_client import CollectorRegistry
 
 from agent.config.load import OutboxConfig, Synchronous
-from agent.delivery.outbox import (
+from agent.delivery.outbox import Outbox
+from agent.delivery.outbox_drops import plan_drops
+from agent.delivery.outbox_file import (
     INSERT_CHUNKS,
     SCHEMA_VERSION,
-    Outbox,
     Row,
     chunk_sizes,
     corrupt_name,
     id_runs,
     message_size,
-    plan_drops,
 )
 from agent.delivery.upstream import RECONNECT_MAX_S, RECONNECT_MIN_S, backoff_delay
 from agent.errors import OutboxError
@@ -357,7 +357,7 @@ def test_fetch_after_from_the_memory_tail_is_what_the_file_holds(
     """Whatever mix of submits, deletes, bound drops and reopens: every `fetch_after`
     answers exactly what a query of the file answers, whether the rows come from the
     in-memory tail (kept short here, so rows fall out of it) or from the file."""
-    monkeypatch.setattr("agent.delivery.outbox.TAIL_ROWS", 7)
+    monkeypatch.setattr("agent.delivery.outbox_tail.TAIL_ROWS", 7)
     path = tmp_path_factory.mktemp("tail") / "o.sqlite"
     ob, _ = make(path, max_rows=20)  # small: submits drop rows by the policy
     n = 0
