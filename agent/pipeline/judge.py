@@ -42,6 +42,7 @@ class Pending:
     mode: str
     faulty: tuple[int, ...]  # channels with a sensor fault at this window
     reason: str | None  # why it is not scored, if it is not
+    row: np.ndarray | None = None  # its full feature row, once computed
 
 
 class Judge:

@@ -312,7 +312,8 @@ class Pipeline:
         only the asset that raises fails (`_failed`), the others go on."""
         failed = self._failed_now
         todo = [p for p in pending if p.w.complete]
-        row_of = self._rows(todo) if todo else {}
+        if todo:
+            self._rows(todo)
         items: list[Item] = []
         observer, observes = self.observer, self.observes
         skip = self._skip
@@ -321,7 +322,7 @@ class Pipeline:
             if failed and rt.cfg.name in failed:
                 continue
             try:
-                row = row_of.get(id(p))
+                row = p.row
                 if row is not None and (rt.limits or rt.velocity_at):
                     self.judge.limits(p, row)
                 if p.reason is not None:
@@ -375,21 +376,22 @@ class Pipeline:
         self.metrics.feature_seconds.observe(time.perf_counter() - t0)
         return rows
 
-    def _rows(self, todo: list[Pending]) -> dict[int, np.ndarray]:
-        """`_features` of every window, by `id` of its `Pending`; contained per asset."""
+    def _rows(self, todo: list[Pending]) -> None:
+        """`_features` of every window into its `row`; contained per asset."""
         try:
-            return {id(p): r for p, r in zip(todo, self._features(todo), strict=True)}
+            for p, r in zip(todo, self._features(todo), strict=True):
+                p.row = r
+            return
         except Exception as exc:
             if len({id(p.rt) for p in todo}) == 1:
                 self._failed(todo[0].rt, "features", exc)
-                return {}
-        rows: dict[int, np.ndarray] = {}
+                return
         for part in self._by_asset(todo, lambda p: p.rt).values():
             try:
-                rows.update((id(p), r) for p, r in zip(part, self._features(part), strict=True))
+                for p, r in zip(part, self._features(part), strict=True):
+                    p.row = r
             except Exception as exc:
                 self._failed(part[0].rt, "features", exc)
-        return rows
 
     def _scores(self, items: list[Item], by_key: dict[int, Pending]) -> dict[int, Result]:
         """The scorer's results, contained per asset."""
