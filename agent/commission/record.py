@@ -27,7 +27,7 @@ from agent.commission.capture import CaptureWriter
 from agent.commission.dataset import DatasetWriter
 from agent.config.load import Config, load_config
 from agent.core.events import rfc3339
-from agent.core.windows.assembler import ClosedWindow
+from agent.core.windows.closed import ClosedWindow
 from agent.errors import ConfigError, ConfigProblem, DatasetError
 from agent.ingest.buffers import Buffers, Ingest, IngestHandler
 from agent.ops.logs import setup_logging

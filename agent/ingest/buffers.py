@@ -16,7 +16,8 @@ from agent.config.load import AssetConfig, Config
 from agent.core.decode import Block
 from agent.core.routing import Route
 from agent.core.timebase import DEFAULT_TOLERANCE_S, Step, TimeBase
-from agent.core.windows.assembler import AssembleResult, WindowAssembler, close_many
+from agent.core.windows.assembler import AssembleResult, WindowAssembler
+from agent.core.windows.batch import close_many
 from agent.ingest.mqtt import Ingest, IngestHandler, PlainCount, make_client
 
 __all__ = ["AssetInbox", "Buffers", "ChannelBuffer", "Ingest", "IngestHandler", "PlainCount",

@@ -65,7 +65,7 @@ from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily
 from agent.config.rebaseline import FAR_FACTOR, MAX_WINDOWS, RebaselineConfig
 from agent.core.detector import State
 from agent.core.events import EventType, Source, make_event, rfc3339
-from agent.core.windows.assembler import ClosedWindow
+from agent.core.windows.closed import ClosedWindow
 from agent.errors import WatchkeepError
 from agent.learning.rebaseline import MIN_NEW_WINDOWS, RebaselineError
 from agent.learning.worker import JOB_JSON, RESULT_JSON, WINDOWS_NPZ, write_json

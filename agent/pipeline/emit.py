@@ -23,7 +23,7 @@ from agent.core.events import EventType, Source, make_event, rfc3339, severity_f
 from agent.core.health import Change, HealthChange
 from agent.core.limits import FeatureLimits, LimitRise, ZoneLimits
 from agent.core.suspect import ALONE_SHARE, dominant_channel, drifting_channel
-from agent.core.windows.assembler import ClosedWindow
+from agent.core.windows.closed import ClosedWindow
 from agent.models.bundle import Bundle, BundleMeta
 from agent.ops.logs import kv
 from agent.ops.metrics import Metrics, PlainSeries

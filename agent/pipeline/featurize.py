@@ -18,7 +18,7 @@ import numpy as np
 from agent.config.load import SpectrumConfig
 from agent.core.features import block_features, segment_features, stack_rows
 from agent.core.spectral import spectral_features
-from agent.core.windows.assembler import Block, ClosedWindow
+from agent.core.windows.closed import Block, ClosedWindow
 from agent.pipeline.runtime import AssetRuntime
 
 _EMPTY = np.empty(0)
@@ -37,37 +37,7 @@ class Pending(Protocol):
 def feature_rows(todo: Sequence[Pending]) -> list[np.ndarray]:
     """The full feature row of each window (module docstring)."""
     needed = frozenset().union(*{p.rt.td_needed for p in todo})
-    by_len: dict[int, list[np.ndarray]] = {}
-    n_by_len: dict[int, int] = {}
-    ragged: list[np.ndarray] = []
-    whole: dict[int, np.ndarray | None] = {}
-    # Per block: (its channels, segment length or -1 for ragged, first row there).
-    places: list[tuple[tuple[int, ...], int, int]] = []
-    spans: list[tuple[int, int]] = []
-    for p in todo:
-        first = len(places)
-        w = p.w
-        blocks = w.blocks
-        if len(blocks) == 1 and blocks[0].uniform and blocks[0].base is not None:
-            # The usual case, `_place` spelt out: one full block, rows of a cut matrix.
-            blk = blocks[0]
-            n = blk.values.shape[1]
-            off = n_by_len.get(n, 0)
-            parts = by_len.get(n)
-            if parts is None:
-                parts = by_len[n] = []
-            parts.append(blk.values)
-            n_by_len[n] = off + len(blk.chans)
-            places.append((blk.chans, n, off))
-            base = whole.get(n, blk.base) if off else blk.base
-            whole[n] = base if base is blk.base and blk.row0 == off else None
-        elif blocks:
-            for blk in blocks:
-                _place(blk, by_len, n_by_len, ragged, places, whole)
-        else:  # a window built from per-channel arrays
-            places.append((tuple(range(len(w.values))), -1, len(ragged)))
-            ragged.extend(w.values)
-        spans.append((first, len(places)))
+    by_len, n_by_len, ragged, whole, places, spans = _place_all(todo)
     feats = {}
     for n, parts in by_len.items():
         base = whole.get(n)
@@ -102,6 +72,48 @@ def feature_rows(todo: Sequence[Pending]) -> list[np.ndarray]:
                 parts.append(got)
         rows.append(np.concatenate(parts))
     return rows
+
+
+def _place_all(todo: Sequence[Pending]) -> tuple[
+        dict[int, list[np.ndarray]], dict[int, int], list[np.ndarray],
+        dict[int, np.ndarray | None], list[tuple[tuple[int, ...], int, int]],
+        list[tuple[int, int]]]:
+    """Where every window's blocks go in the feature pass: the full-length rows by
+    segment length (and whether they are one cut matrix whole), the ragged segments,
+    per block (its channels, segment length or -1 for ragged, first row there) and
+    per window its span of blocks."""
+    by_len: dict[int, list[np.ndarray]] = {}
+    n_by_len: dict[int, int] = {}
+    ragged: list[np.ndarray] = []
+    whole: dict[int, np.ndarray | None] = {}
+    # Per block: (its channels, segment length or -1 for ragged, first row there).
+    places: list[tuple[tuple[int, ...], int, int]] = []
+    spans: list[tuple[int, int]] = []
+    for p in todo:
+        first = len(places)
+        w = p.w
+        blocks = w.blocks
+        if len(blocks) == 1 and blocks[0].uniform and blocks[0].base is not None:
+            # The usual case, `_place` spelt out: one full block, rows of a cut matrix.
+            blk = blocks[0]
+            n = blk.values.shape[1]
+            off = n_by_len.get(n, 0)
+            parts = by_len.get(n)
+            if parts is None:
+                parts = by_len[n] = []
+            parts.append(blk.values)
+            n_by_len[n] = off + len(blk.chans)
+            places.append((blk.chans, n, off))
+            base = whole.get(n, blk.base) if off else blk.base
+            whole[n] = base if base is blk.base and blk.row0 == off else None
+        elif blocks:
+            for blk in blocks:
+                _place(blk, by_len, n_by_len, ragged, places, whole)
+        else:  # a window built from per-channel arrays
+            places.append((tuple(range(len(w.values))), -1, len(ragged)))
+            ragged.extend(w.values)
+        spans.append((first, len(places)))
+    return by_len, n_by_len, ragged, whole, places, spans
 
 
 def _spectral(todo: Sequence[Pending]) -> tuple[list[np.ndarray], list[int]]:

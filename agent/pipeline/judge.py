@@ -23,7 +23,7 @@ from agent.core.health import Reason as HealthReason
 from agent.core.health import WindowStats, window_stats
 from agent.core.limits import ZONES, ZoneLimits, zone_of
 from agent.core.modes import UNKNOWN_MODE
-from agent.core.windows.assembler import ClosedWindow
+from agent.core.windows.closed import ClosedWindow
 from agent.ingest.buffers import Buffers
 from agent.ops.logs import kv
 from agent.ops.metrics import Metrics

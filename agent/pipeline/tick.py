@@ -44,7 +44,7 @@ from agent.core.decode import Reason
 from agent.core.events import rfc3339
 from agent.core.limits import ZoneLimits
 from agent.core.timebase import Step
-from agent.core.windows.assembler import ClosedWindow
+from agent.core.windows.closed import ClosedWindow
 from agent.ingest.buffers import AssetInbox, Buffers, close_inboxes
 from agent.models.bundle import Bundle
 from agent.ops.logs import RateLimited, kv
@@ -228,7 +228,6 @@ class Pipeline:
         """Cut every due window (one call for all assets), count what the cut found, and
         judge each window's health and mode."""
         runtimes = self.runtimes
-        pending: list[Pending] = []
         notes: list[tuple[int, list[tuple[int, Step]]]] = []
         results, lates = close_inboxes([self._inboxes[ai] for ai in due], now, notes)
         judge = self.judge
@@ -262,6 +261,12 @@ class Pipeline:
                 self._m_at[ai].closed.inc(len(windows))
                 wins.extend((rt, w) for w in windows)
         stats.windows_closed += len(wins)
+        return self._judge_windows(wins)
+
+    def _judge_windows(self, wins: list[tuple[AssetRuntime, ClosedWindow]]) -> list[Pending]:
+        """Sensor health (batch statistics first) and modes of every closed window."""
+        judge = self.judge
+        pending: list[Pending] = []
         try:
             health = judge.health_stats(wins)
         except Exception:  # each window's own check_window decides which asset fails

@@ -30,9 +30,6 @@ DECLARATIVE: dict[str, str] = {}
 
 # path: who is reworking it (issue 22).
 IN_PROGRESS: dict[str, str] = {
-    "agent/pipeline/tick.py": "the lead's one-tick rework",
-    "agent/pipeline/runtime.py": "the lead's one-tick rework (AssetRuntime split)",
-    "agent/core/windows/assembler.py": "the lead's one-tick rework (one cut)",
     "agent/config/load.py": "the config/learning/reload helper",
     "agent/learning/manager.py": "the config/learning/reload helper",
     "agent/learning/rebaseline.py": "the config/learning/reload helper",

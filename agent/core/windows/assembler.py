@@ -35,8 +35,8 @@ from collections.abc import Sequence
 import numpy as np
 
 from agent.config.load import WindowConfig
+from agent.core.windows.closed import Block, ClosedWindow
 
-_EMPTY = np.empty(0, dtype=np.float64)
 _AR = np.arange(1024, dtype=np.int64)
 
 
@@ -46,109 +46,6 @@ def _arange(n: int) -> np.ndarray:
     if n > _AR.size:
         _AR = np.arange(max(n, 2 * _AR.size), dtype=np.int64)
     return _AR[:n]
-
-
-class Block:
-    """The samples of one rate group of channels in one window: row r holds channel
-    `chans[r]`, its first `counts[r]` entries valid (the rest is padding)."""
-
-    __slots__ = ("base", "chans", "counts", "row0", "tbase", "timestamps", "uniform", "values")
-
-    def __init__(self, chans: tuple[int, ...], timestamps: np.ndarray, values: np.ndarray,
-                 counts: list[int], uniform: bool | None = None,
-                 base: np.ndarray | None = None, row0: int = 0,
-                 tbase: np.ndarray | None = None) -> None:
-        self.chans = chans
-        self.timestamps = timestamps
-        self.values = values
-        self.counts = counts
-        # When `values` is rows row0.. of a matrix cut for many assets at once: that
-        # matrix (the feature pass takes it whole instead of stacking the blocks again).
-        self.base = base
-        self.tbase = tbase  # the same for `timestamps`
-        self.row0 = row0
-        # Every row full: the block is a plain [rows, samples] matrix.
-        self.uniform = (not counts or min(counts) == values.shape[1]) if uniform is None \
-            else uniform
-
-
-class ClosedWindow:
-    """One closed window of one asset: per channel the samples inside it.
-
-    Built either from per-channel arrays or from rate-group `blocks`; `values`,
-    `timestamps` and `coverage` are per-channel tuples in channel order either way.
-    """
-
-    __slots__ = ("_cov", "_min_cov", "_ts", "_vals", "blocks", "complete", "end", "expected",
-                 "start")
-
-    def __init__(self, start: float, end: float, values: Sequence[np.ndarray] | None,
-                 timestamps: Sequence[np.ndarray] | None, coverage: Sequence[float] | None,
-                 complete: bool, *, blocks: tuple[Block, ...] = (),
-                 expected: tuple[float, ...] = (), min_coverage: float | None = None
-                 ) -> None:
-        self.start = start
-        self.end = end
-        self.complete = complete
-        self.blocks = blocks
-        self.expected = expected
-        self._vals = tuple(values) if values is not None else None
-        self._ts = tuple(timestamps) if timestamps is not None else None
-        self._cov = tuple(coverage) if coverage is not None else None
-        self._min_cov = min_coverage
-
-    def _split(self) -> None:
-        n = len(self.expected)
-        vals: list[np.ndarray] = [_EMPTY] * n
-        tss: list[np.ndarray] = [_EMPTY] * n
-        for b in self.blocks:
-            for r, (c, k) in enumerate(zip(b.chans, b.counts, strict=True)):
-                vals[c] = b.values[r, :k]
-                tss[c] = b.timestamps[r, :k]
-        self._vals, self._ts = tuple(vals), tuple(tss)
-
-    @property
-    def values(self) -> tuple[np.ndarray, ...]:
-        if self._vals is None:
-            self._split()
-        assert self._vals is not None
-        return self._vals
-
-    @property
-    def timestamps(self) -> tuple[np.ndarray, ...]:
-        if self._ts is None:
-            self._split()
-        assert self._ts is not None
-        return self._ts
-
-    @property
-    def coverage(self) -> tuple[float, ...]:
-        if self._cov is None:
-            cov = [1.0] * len(self.expected)
-            for b in self.blocks:
-                for c, k in zip(b.chans, b.counts, strict=True):
-                    e = self.expected[c]
-                    cov[c] = k / e if e else 1.0
-            self._cov = tuple(cov)
-        return self._cov
-
-    def channel(self, ci: int, at: tuple[int, int]) -> np.ndarray:
-        """Channel `ci`'s samples (`values[ci]` without splitting every channel); `at`
-        is its (block, row) in `blocks` (`WindowAssembler.channel_rows`)."""
-        if not self.blocks:
-            return self.values[ci]
-        blk = self.blocks[at[0]]
-        return blk.values[at[1], :blk.counts[at[1]]]
-
-    @property
-    def min_coverage(self) -> float:
-        """The lowest channel's coverage (1.0 without channels)."""
-        if self._min_cov is None:
-            self._min_cov = min(self.coverage, default=1.0)
-        return self._min_cov
-
-    def __repr__(self) -> str:
-        return f"ClosedWindow(start={self.start!r}, end={self.end!r}, complete={self.complete})"
 
 
 class _Group:
@@ -441,7 +338,7 @@ class WindowAssembler:
     def close_due(self, now: float) -> AssembleResult:
         """Close every window that is due at wall-clock time `now`."""
         out = AssembleResult()
-        length, hop = self.cfg.length_s, self.cfg.hop_s
+        hop = self.cfg.hop_s
         if self._next_k is None:
             self._sort()
             first = self._earliest_pending()
@@ -476,20 +373,7 @@ class WindowAssembler:
                 if g.expected and min(counts) / g.expected < self.cfg.min_coverage:
                     complete = False
             if total == 0:
-                # Nothing in this window: skip straight to the window holding the next
-                # sample without materialising every empty window of a long gap (a clock
-                # step or an outage must not loop window by window), but no further than
-                # the last window due now: one not yet due may still get late samples.
-                first = self._earliest_pending()
-                limit = self._max_ts - self.cfg.lateness_s
-                if self._last_arrival != -math.inf:
-                    limit = max(limit, self._max_ts + max(0.0, now - self._last_arrival)
-                                - self.cfg.timeout_s)
-                target = max(k + 1, math.floor((limit - length) / hop + 1e-9) + 1)
-                if first is not None:
-                    # The first window holding `first`: smallest j with j*hop+length > first.
-                    target = max(k + 1, min(target,
-                                            math.floor((first - length) / hop + 1e-9) + 1))
+                target = self._past_gap(k, now)
                 out.empty_skipped += target - k
                 self._advance(target)
                 continue
@@ -499,6 +383,23 @@ class WindowAssembler:
             for g, c in zip(self._groups, cuts, strict=True):
                 g.drop(c)
         return out
+
+    def _past_gap(self, k: int, now: float) -> int:
+        """Window k is empty: the window to skip straight to, the one holding the next
+        sample, without materialising every empty window of a long gap (a clock step
+        or an outage must not loop window by window), but no further than the last
+        window due now: one not yet due may still get late samples."""
+        length, hop = self.cfg.length_s, self.cfg.hop_s
+        first = self._earliest_pending()
+        limit = self._max_ts - self.cfg.lateness_s
+        if self._last_arrival != -math.inf:
+            limit = max(limit, self._max_ts + max(0.0, now - self._last_arrival)
+                        - self.cfg.timeout_s)
+        target = max(k + 1, math.floor((limit - length) / hop + 1e-9) + 1)
+        if first is not None:
+            # The first window holding `first`: smallest j with j*hop+length > first.
+            target = max(k + 1, min(target, math.floor((first - length) / hop + 1e-9) + 1))
+        return target
 
     def _bounds(self, k: int) -> tuple[float, float]:
         hop = self.cfg.hop_s
@@ -526,158 +427,3 @@ class WindowAssembler:
         new_start = new_k * self.cfg.hop_s
         for g in self._groups:
             g.drop(g.count_below(new_start))
-
-
-_NOT_DUE = 0
-_ONE = 1
-_OTHER = 2
-
-
-def _plan(asm: WindowAssembler, now: float
-          ) -> tuple[int, float, float, list[tuple[int, int]]]:
-    """Whether `asm` has nothing due at `now` (_NOT_DUE), exactly its next tumbling
-    window with every rate group's rows in step (_ONE: start, end and per group the
-    first pending index and how many are pending), or anything else (_OTHER)."""
-    k = asm._next_k
-    if k is None or asm._span_k != 1 or asm._any_unsorted:
-        return _OTHER, 0.0, 0.0, []
-    hop = asm.cfg.hop_s
-    end = (k + 1) * hop
-    reach = asm._reach(now)
-    if not asm._due(end, reach):
-        return _NOT_DUE, 0.0, 0.0, []
-    if asm._due((k + 2) * hop, reach):
-        return _OTHER, 0.0, 0.0, []
-    spans = []
-    for g in asm._groups:
-        lo, hi = g.lo, g.hi
-        lo0, hi0 = lo[0], hi[0]
-        if lo.count(lo0) != len(lo) or hi.count(hi0) != len(hi) or hi0 - lo0 > g.bound:
-            return _OTHER, 0.0, 0.0, []
-        spans.append((lo0, hi0 - lo0))
-    return _ONE, k * hop, end, spans
-
-
-def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[AssembleResult]:
-    """`close_due(now)` of every assembler, the same windows in the same state after.
-
-    The usual case of a tick (exactly the next tumbling window of an asset due, its
-    rows in step) is cut for all such assets together: one comparison and one copy
-    per segment length over the stacked rows of every asset, instead of a handful of
-    numpy calls per asset. Everything else goes through `close_due`.
-
-    An assembler that raises fails alone: its result is an empty one carrying the
-    exception (`AssembleResult.error`); the others' windows are cut as usual.
-    """
-    results: list[AssembleResult | None] = [None] * len(assemblers)
-    fast: list[tuple[int, float, float, list[tuple[int, int]]]] = []
-    for i, a in enumerate(assemblers):
-        try:
-            kind, start, end, spans = _plan(a, now)
-            if kind == _ONE:
-                fast.append((i, start, end, spans))
-            elif kind == _NOT_DUE:
-                results[i] = AssembleResult()
-            else:
-                results[i] = a.close_due(now)
-        except Exception as exc:
-            results[i] = AssembleResult(exc)
-    try:
-        _close_fast(assemblers, fast, results, now)
-    except Exception:
-        # The joint cut failed before it changed any assembler: each alone, contained.
-        for i, *_ in fast:
-            if results[i] is None:
-                try:
-                    results[i] = assemblers[i].close_due(now)
-                except Exception as exc:
-                    results[i] = AssembleResult(exc)
-    return [r if r is not None else AssembleResult() for r in results]
-
-
-_NO_TIMES: dict[tuple[int, int], np.ndarray] = {}
-
-
-def _no_times(n: int, m: int) -> np.ndarray:
-    """The timestamps of a block whose assembler does not keep them: NaN (read-only)."""
-    got = _NO_TIMES.get((n, m))
-    if got is None:
-        if len(_NO_TIMES) > 64:
-            _NO_TIMES.clear()
-        got = _NO_TIMES[(n, m)] = np.broadcast_to(np.nan, (n, m))
-    return got
-
-
-def _close_fast(assemblers: Sequence[WindowAssembler],
-                fast: list[tuple[int, float, float, list[tuple[int, int]]]],
-                results: list[AssembleResult | None], now: float) -> None:
-    """`close_many`'s joint cut of the assemblers in `fast`, results into `results`."""
-    # Every (item, group) with samples, by how many each of its rows holds: (item,
-    # group index, the group, its first pending index, the window's end, whether all its
-    # pending samples are before the end, whether its timestamps are wanted).
-    by_width: dict[int, list[tuple[int, int, _Group, int, float, bool, bool]]] = {}
-    blocks: list[list[Block | None]] = []
-    for fi, (i, _, end, spans) in enumerate(fast):
-        blocks.append([None] * len(spans))
-        a = assemblers[i]
-        groups = a._groups
-        # The newest sample of any channel before the end: every pending one is in.
-        full = a._max_ts < end
-        keep = a.keep_times or not full
-        for gi, (lo0, m) in enumerate(spans):
-            if m:
-                by_width.setdefault(m, []).append((fi, gi, groups[gi], lo0, end, full, keep))
-    for m, members in by_width.items():
-        v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
-        kept = [mb for mb in members if mb[6]]
-        t = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in kept]) if kept else None
-        off = t_off = 0
-        for fi, gi, g, _, end, full, keep in members:
-            n = len(g.chans)
-            ts = t[t_off:t_off + n] if keep and t is not None else _no_times(n, m)
-            if full:
-                blocks[fi][gi] = Block(g.chans, ts, v[off:off + n], [m] * n, True, v, off,
-                                       t if keep else None)
-            else:
-                counts = (ts < end).sum(axis=1).tolist()
-                mc = max(counts)
-                blocks[fi][gi] = Block(g.chans, ts[:, :mc], v[off:off + n, :mc], counts)
-            off += n
-            if keep:
-                t_off += n
-    for (i, start, end, _), bl in zip(fast, blocks, strict=True):
-        a = assemblers[i]
-        complete = True
-        total = 0
-        cov = 1.0
-        for gi, g in enumerate(a._groups):
-            blk = bl[gi]
-            if blk is None:
-                empty = np.empty((len(g.chans), 0))
-                blk = bl[gi] = Block(g.chans, empty, empty, [0] * len(g.chans))
-            counts = blk.counts
-            low = min(counts)
-            total += low * len(counts) if blk.uniform else sum(counts)
-            c = low / g.expected if g.expected else 1.0
-            cov = min(cov, c) if gi else c
-            if g.expected and c < a.cfg.min_coverage:
-                complete = False
-        if total == 0:  # an empty window: the gap logic of close_due decides
-            try:
-                results[i] = a.close_due(now)
-            except Exception as exc:
-                results[i] = AssembleResult(exc)
-            continue
-        res = AssembleResult()
-        res.windows.append(ClosedWindow(start, end, None, None, None, complete,
-                                        blocks=tuple(bl), expected=a._expected,  # type: ignore[arg-type]
-                                        min_coverage=cov))
-        assert a._next_k is not None
-        a._set_next(a._next_k + 1)
-        for g, blk in zip(a._groups, bl, strict=True):
-            assert blk is not None
-            if blk.uniform:  # rows in step stay in step
-                g.lo = [g.lo[0] + blk.values.shape[1]] * len(g.lo)
-            else:
-                g.drop(blk.counts)
-        results[i] = res

@@ -10,7 +10,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from agent.config.load import WindowConfig
-from agent.core.windows.assembler import ClosedWindow, WindowAssembler
+from agent.core.windows.assembler import WindowAssembler
+from agent.core.windows.closed import ClosedWindow
 
 T0 = 1_796_119_200.0  # 2026-12-01T10:00:00Z, a whole second
 RATE_HZ = 10.0

@@ -12,7 +12,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from agent.config.load import WindowConfig
-from agent.core.windows.assembler import WindowAssembler, close_many
+from agent.core.windows.assembler import WindowAssembler
+from agent.core.windows.batch import close_many
 
 T0 = 1_796_119_200.0
 RATES = (10.0, 10.0, 4.0)

@@ -13,7 +13,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from agent.config.load import WindowConfig
-from agent.core.windows.assembler import ClosedWindow, WindowAssembler
+from agent.core.windows.assembler import WindowAssembler
+from agent.core.windows.closed import ClosedWindow
 
 T0 = 1_796_119_200.0
 RATES = (10.0, 10.0, 4.0)  # two channels share a store, the third has its own
@@ -104,7 +105,7 @@ def fleets(draw):
 @settings(max_examples=150, deadline=None)
 @given(fleets())
 def test_close_many_cuts_what_close_due_cuts(fleet) -> None:
-    from agent.core.windows.assembler import close_many
+    from agent.core.windows.batch import close_many
 
     hop, span, assets, ticks = fleet
     cfg = WindowConfig(hop * span, hop, 0.0, 1.0, 0.5)
@@ -159,7 +160,7 @@ def test_close_many_with_a_silent_rate_group_and_an_empty_window() -> None:
     """A group with no samples in the window (its channel silent) comes out empty and
     the window incomplete; a due window with no samples at all is left to close_due's
     gap logic. Both as close_due cuts them."""
-    from agent.core.windows.assembler import close_many
+    from agent.core.windows.batch import close_many
 
     one, many = _twins()
     for t0 in (0.0, 1.0, 2.0):

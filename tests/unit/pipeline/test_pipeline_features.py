@@ -16,7 +16,7 @@ from prometheus_client import CollectorRegistry
 
 from agent.config.load import parse_config
 from agent.core.features import FEATURE_INDEX, segment_features
-from agent.core.windows.assembler import ClosedWindow
+from agent.core.windows.closed import ClosedWindow
 from agent.ingest.buffers import Buffers
 from agent.ops.metrics import Metrics
 from agent.pipeline.runtime import AssetRuntime

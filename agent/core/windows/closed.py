@@ -1,0 +1,116 @@
+"""A closed window: per rate group a block of [channels, samples], per channel views.
+
+`WindowAssembler.close_due` and the joint cut (`batch.close_many`) make them; the
+pipeline reads them. Pure.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+
+import numpy as np
+
+_EMPTY = np.empty(0, dtype=np.float64)
+
+
+class Block:
+    """The samples of one rate group of channels in one window: row r holds channel
+    `chans[r]`, its first `counts[r]` entries valid (the rest is padding)."""
+
+    __slots__ = ("base", "chans", "counts", "row0", "tbase", "timestamps", "uniform", "values")
+
+    def __init__(self, chans: tuple[int, ...], timestamps: np.ndarray, values: np.ndarray,
+                 counts: list[int], uniform: bool | None = None,
+                 base: np.ndarray | None = None, row0: int = 0,
+                 tbase: np.ndarray | None = None) -> None:
+        self.chans = chans
+        self.timestamps = timestamps
+        self.values = values
+        self.counts = counts
+        # When `values` is rows row0.. of a matrix cut for many assets at once: that
+        # matrix (the feature pass takes it whole instead of stacking the blocks again).
+        self.base = base
+        self.tbase = tbase  # the same for `timestamps`
+        self.row0 = row0
+        # Every row full: the block is a plain [rows, samples] matrix.
+        self.uniform = (not counts or min(counts) == values.shape[1]) if uniform is None \
+            else uniform
+
+
+class ClosedWindow:
+    """One closed window of one asset: per channel the samples inside it.
+
+    Built either from per-channel arrays or from rate-group `blocks`; `values`,
+    `timestamps` and `coverage` are per-channel tuples in channel order either way.
+    """
+
+    __slots__ = ("_cov", "_min_cov", "_ts", "_vals", "blocks", "complete", "end", "expected",
+                 "start")
+
+    def __init__(self, start: float, end: float, values: Sequence[np.ndarray] | None,
+                 timestamps: Sequence[np.ndarray] | None, coverage: Sequence[float] | None,
+                 complete: bool, *, blocks: tuple[Block, ...] = (),
+                 expected: tuple[float, ...] = (), min_coverage: float | None = None
+                 ) -> None:
+        self.start = start
+        self.end = end
+        self.complete = complete
+        self.blocks = blocks
+        self.expected = expected
+        self._vals = tuple(values) if values is not None else None
+        self._ts = tuple(timestamps) if timestamps is not None else None
+        self._cov = tuple(coverage) if coverage is not None else None
+        self._min_cov = min_coverage
+
+    def _split(self) -> None:
+        n = len(self.expected)
+        vals: list[np.ndarray] = [_EMPTY] * n
+        tss: list[np.ndarray] = [_EMPTY] * n
+        for b in self.blocks:
+            for r, (c, k) in enumerate(zip(b.chans, b.counts, strict=True)):
+                vals[c] = b.values[r, :k]
+                tss[c] = b.timestamps[r, :k]
+        self._vals, self._ts = tuple(vals), tuple(tss)
+
+    @property
+    def values(self) -> tuple[np.ndarray, ...]:
+        if self._vals is None:
+            self._split()
+        assert self._vals is not None
+        return self._vals
+
+    @property
+    def timestamps(self) -> tuple[np.ndarray, ...]:
+        if self._ts is None:
+            self._split()
+        assert self._ts is not None
+        return self._ts
+
+    @property
+    def coverage(self) -> tuple[float, ...]:
+        if self._cov is None:
+            cov = [1.0] * len(self.expected)
+            for b in self.blocks:
+                for c, k in zip(b.chans, b.counts, strict=True):
+                    e = self.expected[c]
+                    cov[c] = k / e if e else 1.0
+            self._cov = tuple(cov)
+        return self._cov
+
+    def channel(self, ci: int, at: tuple[int, int]) -> np.ndarray:
+        """Channel `ci`'s samples (`values[ci]` without splitting every channel); `at`
+        is its (block, row) in `blocks` (`WindowAssembler.channel_rows`)."""
+        if not self.blocks:
+            return self.values[ci]
+        blk = self.blocks[at[0]]
+        return blk.values[at[1], :blk.counts[at[1]]]
+
+    @property
+    def min_coverage(self) -> float:
+        """The lowest channel's coverage (1.0 without channels)."""
+        if self._min_cov is None:
+            self._min_cov = min(self.coverage, default=1.0)
+        return self._min_cov
+
+    def __repr__(self) -> str:
+        return f"ClosedWindow(start={self.start!r}, end={self.end!r}, complete={self.complete})"
