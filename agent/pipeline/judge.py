@@ -156,8 +156,13 @@ class Judge:
         for base, tbase, rows, where, rate in mats.values():
             if not rows or base.shape[1] == 0:
                 continue
-            idx = np.asarray(rows, dtype=np.int64)
-            stats = window_stats(base[idx], tbase[idx], np.asarray(rate, dtype=bool))
+            if len(rows) == base.shape[0] and rows[0] == 0 and rows[-1] == len(rows) - 1 \
+                    and all(b - a == 1 for a, b in zip(rows, rows[1:])):
+                vals, times = base, tbase  # every row, in order: no gather
+            else:
+                idx = np.asarray(rows, dtype=np.int64)
+                vals, times = base[idx], tbase[idx]
+            stats = window_stats(vals, times, np.asarray(rate, dtype=bool))
             for (wi, c), st in zip(where, stats, strict=True):
                 if st is not None:
                     d = out[wi]
