@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Sequence
+from itertools import pairwise
 from dataclasses import dataclass
 from typing import Any
 
@@ -157,7 +158,7 @@ class Judge:
             if not rows or base.shape[1] == 0:
                 continue
             if len(rows) == base.shape[0] and rows[0] == 0 and rows[-1] == len(rows) - 1 \
-                    and all(b - a == 1 for a, b in zip(rows, rows[1:])):
+                    and all(b - a == 1 for a, b in pairwise(rows)):
                 vals, times = base, tbase  # every row, in order: no gather
             else:
                 idx = np.asarray(rows, dtype=np.int64)
