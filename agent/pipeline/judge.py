@@ -13,8 +13,8 @@ from __future__ import annotations
 
 import logging
 from collections.abc import Sequence
-from itertools import pairwise
 from dataclasses import dataclass
+from itertools import pairwise
 from typing import Any
 
 import numpy as np
