@@ -19,7 +19,7 @@ from collections.abc import Callable, Sequence
 from enum import StrEnum
 from typing import TYPE_CHECKING, Any
 
-from agent.config.load import ChannelConfig, Decoder
+from agent.config.schema import ChannelConfig, Decoder
 
 if TYPE_CHECKING:
     import numpy as np

@@ -24,7 +24,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from agent.config.load import FEATURES
+from agent.config.schema import FEATURES
 
 FEATURE_INDEX = {name: i for i, name in enumerate(FEATURES)}
 

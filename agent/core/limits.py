@@ -30,7 +30,7 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from agent.config.load import IsoConfig, LimitConfig, Support
+from agent.config.schema import IsoConfig, LimitConfig, Support
 
 # (group, support) -> (A/B, B/C, C/D) in mm/s, ISO 10816-3:2009 Tables A.1 and A.2.
 ISO10816_3_BOUNDARIES_MM_S: dict[tuple[int, Support], tuple[float, float, float]] = {

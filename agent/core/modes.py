@@ -23,7 +23,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from agent.config.load import ModesConfig, ModeSpec
+from agent.config.schema import ModesConfig, ModeSpec
 
 UNKNOWN_MODE = "unknown"
 

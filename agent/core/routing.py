@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from agent.config.load import AssetConfig, ChannelConfig, Decoder
+from agent.config.schema import AssetConfig, ChannelConfig, Decoder
 
 
 @dataclass(frozen=True)

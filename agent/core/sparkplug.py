@@ -38,7 +38,7 @@ from typing import Any
 
 from google.protobuf.message import DecodeError
 
-from agent.config.load import SPARKPLUG_NAMESPACE, ChannelConfig, Decoder, sparkplug_topic
+from agent.config.schema import SPARKPLUG_NAMESPACE, ChannelConfig, Decoder, sparkplug_topic
 from agent.core.decode import Block, Reason, Rejected
 from agent.core.routing import Route
 from agent.core.sparkplug_payload import (

@@ -36,7 +36,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from agent.config.load import SpectrumConfig
+from agent.config.schema import SpectrumConfig
 
 VELOCITY_BAND_HZ = (10.0, 1000.0)  # ISO 10816-3:2009 clause 4 measurement band
 MIN_SAMPLES = 8

@@ -34,7 +34,7 @@ from collections.abc import Sequence
 
 import numpy as np
 
-from agent.config.load import WindowConfig
+from agent.config.schema import WindowConfig
 from agent.core.windows.closed import Block, ClosedWindow
 
 _AR = np.arange(1024, dtype=np.int64)
