@@ -148,7 +148,7 @@ def reservoir(x: np.ndarray, names: Sequence[str], size: int, *, seed: int = 0,
 def layers_from_onnx(model_bytes: bytes) -> list[DenseLayer]:
     """The dense layers of an ONNX model written by `export_dense` (Gemm + activation
     chain), read back from its initializers; RebaselineError for any other graph."""
-    from agent.pipeline.batched import dense_layers
+    from agent.models.dense import dense_layers
 
     layers = dense_layers(model_bytes)
     if layers is None:

@@ -42,7 +42,7 @@ import numpy as np
 from agent.commission.export import DenseLayer
 from agent.errors import BundleError
 from agent.fsutil import fsync_dir, replace_dir
-from agent.pipeline.batched import dense_layers
+from agent.models.dense import dense_layers
 
 FORMAT = "watchkeep-bundle"
 FORMAT_VERSION = 1

@@ -21,7 +21,8 @@ from onnx.reference import ReferenceEvaluator
 
 from agent.commission.export import ACTIVATIONS, DenseLayer, export_dense, forward_numpy
 from agent.models.bundle import Bundle, load_bundle, write_bundle
-from agent.pipeline.batched import MAX_PARAMS, BatchedModels, batched_model, dense_layers, n_params
+from agent.models.dense import dense_layers
+from agent.pipeline.batched import MAX_PARAMS, BatchedModels, batched_model, n_params
 
 F = 6
 
