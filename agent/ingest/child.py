@@ -157,7 +157,7 @@ class _Generation:
         self.batch = _Batch(gen, sender, wake)
         self.taps = _TapBuffers(cfg, self.batch)
         # No Metrics: the handler counts rejections and gaps in PlainCounts.
-        self.handler = IngestHandler(cfg, self.taps, None, log)  # type: ignore[arg-type]
+        self.handler = IngestHandler(cfg, self.taps, None, log)
         self.rejected: dict[Reason, PlainCount] = self.handler._rejected
         self.gaps: dict[tuple[int, int], PlainCount] = self.handler._gaps
         self.key_of = {t: channel_key(r.asset_index, r.channel_index)

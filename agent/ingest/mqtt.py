@@ -18,7 +18,7 @@ import math
 import threading
 import time
 from collections.abc import Callable
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Generic, Protocol, TypeVar
 
 import paho.mqtt.client as mqtt
 from paho.mqtt.enums import CallbackAPIVersion
@@ -38,10 +38,35 @@ from agent.ops.logs import RateLimited, kv
 
 if TYPE_CHECKING:
     from agent.core.sparkplug import SparkplugDecoder
-    from agent.ingest.buffers import Buffers
     from agent.ops.metrics import Metrics
 
 Clock = Callable[[], float]
+
+
+class ChannelSink(Protocol):
+    """Where `IngestHandler` puts one channel's samples, with the channel's arrival
+    bookkeeping: `agent.ingest.buffers.ChannelBuffer` in the daemon, the child's tap in
+    the ingest child."""
+
+    n_messages: int
+    n_samples: int
+    last_seq: int | None
+    next_block_ts: float | None
+
+    def append(self, ts: float, value: float, arrival: float) -> None: ...
+
+    def append_decoded(self, block: Block, arrival: float) -> None: ...
+
+    def set_liveness(self, death: str | None, t: float) -> None: ...
+
+
+class SampleSinks(Protocol):
+    """Every configured channel's `ChannelSink`, by route."""
+
+    def get(self, route: Route) -> ChannelSink: ...
+
+
+SinksT = TypeVar("SinksT", bound=SampleSinks)
 
 # paho's own reconnect back-off for the local broker: 1 s doubling up to this cap, the
 # same cap as the upstream side's (agent/delivery/upstream.py RECONNECT_MAX_S): after a local
@@ -75,7 +100,7 @@ class PlainGauge:
         self.value = value
 
 
-class IngestHandler:
+class IngestHandler(Generic[SinksT]):
     """Decode-and-append for one message; free of MQTT so it can be driven directly
     (by `replay`, and by tests).
 
@@ -87,7 +112,7 @@ class IngestHandler:
     nothing: the daemon's own handler publishes them.
     """
 
-    def __init__(self, cfg: Config, buffers: Buffers, metrics: Metrics | None,
+    def __init__(self, cfg: Config, buffers: SinksT, metrics: Metrics | None,
                  logger: logging.Logger) -> None:
         self.cfg = cfg
         # Topic -> channel for the decoders with a topic each; sparkplug-b channels
@@ -308,7 +333,7 @@ def make_client(broker: BrokerConfig, env: dict[str, str] | None = None) -> mqtt
 class Ingest:
     """The local-broker side: connects, (re)subscribes on every connect, feeds the handler."""
 
-    def __init__(self, cfg: Config, handler: IngestHandler, metrics: Metrics | None,
+    def __init__(self, cfg: Config, handler: IngestHandler[Any], metrics: Metrics | None,
                  logger: logging.Logger, *, clock: Clock = time.time,
                  client_factory: Callable[[BrokerConfig], mqtt.Client] = make_client) -> None:
         self.cfg = cfg
@@ -352,7 +377,7 @@ class Ingest:
         return set(self.cfg.ingest.subscriptions) or (
             set(self.handler.routes) | (spb.filters() if spb is not None else set()))
 
-    def reconfigure(self, cfg: Config, handler: IngestHandler) -> None:
+    def reconfigure(self, cfg: Config, handler: IngestHandler[Any]) -> None:
         """Route with `handler` from now on (reload) and follow the subscriptions."""
         old = self.topics()
         handler.publish = self._publish

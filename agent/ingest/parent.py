@@ -65,7 +65,7 @@ import numpy as np
 
 from agent.config.load import Config
 from agent.core.decode import Reason, blocks_timestamps
-from agent.ingest.buffers import IngestHandler, append_run
+from agent.ingest.buffers import Buffers, IngestHandler, append_run
 from agent.ingest.child import KEY_MASK, KEY_SHIFT, channel_key
 from agent.ops.logs import kv
 from agent.ops.metrics import Metrics
@@ -84,7 +84,7 @@ class ProcessIngest:
     buffers, counters, `close_at` and `wake` are where the child's samples land.
     """
 
-    def __init__(self, cfg: Config, handler: IngestHandler, metrics: Metrics,
+    def __init__(self, cfg: Config, handler: IngestHandler[Buffers], metrics: Metrics,
                  logger: logging.Logger, *, clock: Clock = time.time) -> None:
         self.cfg = cfg
         self.handler = handler
@@ -97,7 +97,7 @@ class ProcessIngest:
         self._errors = metrics.callback_errors.labels("ingest")
         self._restarts = metrics.ingest_worker_restarts
         self._gen = 0
-        self._gens: dict[int, tuple[IngestHandler, dict[int, tuple[int, int]]]] = {}
+        self._gens: dict[int, tuple[IngestHandler[Buffers], dict[int, tuple[int, int]]]] = {}
         self._add_gen(0, handler)
         self._connects = 0
         self._stopping = threading.Event()
@@ -107,7 +107,7 @@ class ProcessIngest:
         self._reader: threading.Thread | None = None
         self.worker_pid: int | None = None
 
-    def _add_gen(self, gen: int, handler: IngestHandler) -> None:
+    def _add_gen(self, gen: int, handler: IngestHandler[Buffers]) -> None:
         keys = {channel_key(r.asset_index, r.channel_index): r.key for r in handler.channels}
         self._gens[gen] = (handler, keys)
 
@@ -149,7 +149,7 @@ class ProcessIngest:
                 proc.wait(STOP_TIMEOUT_S)
         self._set_connected(False, "stopped")
 
-    def reconfigure(self, cfg: Config, handler: IngestHandler) -> None:
+    def reconfigure(self, cfg: Config, handler: IngestHandler[Buffers]) -> None:
         """Route with `cfg` from now on (reload); subscriptions follow in the child."""
         self._gen += 1
         self._add_gen(self._gen, handler)

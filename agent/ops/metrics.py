@@ -14,9 +14,9 @@ import math
 import os
 import threading
 import time
-from collections.abc import Iterable, Mapping
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, Protocol
 
 from prometheus_client import (
     CollectorRegistry,
@@ -35,7 +35,32 @@ from prometheus_client.registry import Collector
 from agent.ops.http_server import HttpServer
 
 if TYPE_CHECKING:
-    from agent.pipeline.tick import Pipeline
+    from agent.config.schema import Config
+    from agent.pipeline.runtime import AssetRuntime
+
+
+class _Arrivals(Protocol):
+    @property
+    def last_arrival(self) -> float: ...
+
+
+class _ChannelsByAsset(Protocol):
+    @property
+    def by_asset(self) -> Sequence[Sequence[_Arrivals]]: ...
+
+
+class PipelineView(Protocol):
+    """What `TickGauges` reads of the pipeline (agent.pipeline.tick.Pipeline), without
+    importing it (the pipeline imports this module)."""
+
+    @property
+    def cfg(self) -> Config: ...
+
+    @property
+    def runtimes(self) -> Sequence[AssetRuntime]: ...
+
+    @property
+    def buffers(self) -> _ChannelsByAsset: ...
 
 __all__ = ["FAMILIES", "WORK_BUCKETS", "Family", "HttpServer", "Kind", "Metrics",
            "PlainFamily", "PlainSeries", "TickGauges"]
@@ -381,10 +406,10 @@ class TickGauges:
         self.started_s = started_s
         metrics.start_time.set(started_s)
         metrics.reload_time.set(started_s)
-        self._pipeline: Pipeline | None = None
+        self._pipeline: PipelineView | None = None
         self._ages: list[tuple[Any, Any]] = []  # (ChannelBuffer, its age gauge child)
 
-    def update(self, pipeline: Pipeline, now: float) -> None:
+    def update(self, pipeline: PipelineView, now: float) -> None:
         """After a tick: follow a new pipeline (start, reload). The ages are set by
         `refresh_ages` before each scrape: setting one gauge per channel every tick
         was milliseconds of GIL per tick, and ticks come in quick succession when
@@ -399,7 +424,7 @@ class TickGauges:
             last = buf.last_arrival or self.started_s
             gauge.set(max(0.0, now - last))
 
-    def _rebind(self, pipeline: Pipeline) -> None:
+    def _rebind(self, pipeline: PipelineView) -> None:
         m = self.metrics
         old = self._pipeline
         now_assets = {rt.cfg.name: rt for rt in pipeline.runtimes}
