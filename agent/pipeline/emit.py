@@ -116,8 +116,19 @@ class Emitter:
 
     def event(self, rt: AssetRuntime, etype: EventType, time_s: float, data: dict[str, Any],
               kind: Kind, *, id_key: str) -> None:
-        """Emit one event: the one place an asset's sequence number moves (`data` keeps
-        a `sequence` key where the payload shows it). Its id is a UUIDv5 of source, type
+        """Emit one event of the tick (`message`), logged."""
+        msg = self.message(rt, etype, time_s, data, kind, id_key=id_key)
+        self.log.info(kv("event", type=etype.value, asset=rt.cfg.name, id=msg.event_id,
+                         score=data.get("score"), threshold=data.get("threshold"),
+                         channel=data.get("channel"), level=data.get("level")))
+        self.out.append(msg)
+        self.stats.events += 1
+
+    def message(self, rt: AssetRuntime, etype: EventType, time_s: float, data: dict[str, Any],
+                kind: Kind, *, id_key: str) -> OutMessage:
+        """One event as a message: the one place an asset's sequence number moves (`data`
+        keeps a `sequence` key where the payload shows it; re-learning's events come
+        through here too, agent/pipeline/control.py). Its id is a UUIDv5 of source, type
         and `id_key` (events.py)."""
         rt.sequence += 1
         data["sequence"] = rt.sequence
@@ -125,11 +136,11 @@ class Emitter:
         ev = make_event(etype, self.source.for_asset(name), name, time_s, data, id_key=id_key)
         rt.last_event = {"type": ev["type"], "id": ev["id"], "time": ev["time"]}
         self.metrics.events.labels(etype.value).inc()
-        self.log.info(kv("event", type=etype.value, asset=name, id=ev["id"],
-                         score=data.get("score"), threshold=data.get("threshold"),
-                         channel=data.get("channel"), level=data.get("level")))
-        self.out.append(OutMessage(self.topics(name)[2], to_json(ev), kind, qos=1))
-        self.stats.events += 1
+        anomaly = kind is Kind.ANOMALY
+        return OutMessage(self.topics(name)[2], to_json(ev), kind, qos=1, asset=name,
+                          event=etype, event_id=ev["id"],
+                          score=data.get("score") if anomaly else None,
+                          threshold=data.get("threshold") if anomaly else None)
 
     # -- sensor health and limits ------------------------------------------------------
 
@@ -220,7 +231,8 @@ class Emitter:
                "score_ratio": ratio(score, meta.threshold),
                "threshold": meta.threshold, "window_end": end_s, "model": bundle.model_ref,
                "last_event": rt.last_event}
-        self.out.append(OutMessage(state_topic, to_json(doc), Kind.STATE, 1, True, state_topic))
+        self.out.append(OutMessage(state_topic, to_json(doc), Kind.STATE, 1, True, state_topic,
+                                   name, None, None, rounded, meta.threshold))
         if self.publish_scores:
             tel = {"asset": name, "mode": mode, "window_end": end_s, "score": rounded,
                    "threshold": meta.threshold}

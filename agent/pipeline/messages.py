@@ -5,6 +5,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from enum import IntEnum
 
+from agent.core.events import EventType
+
 
 class Kind(IntEnum):
     """Message kinds, in the order they are dropped when the outbox is full (lowest first)."""
@@ -27,6 +29,12 @@ class OutMessage:
 
     `key` names what a newer message of the same key supersedes (the state topic);
     `None` for messages that must each be delivered.
+
+    What the payload says, typed, for the stages in front of the outbox (re-learning's
+    `HoldingSink` holds and marks messages by them, never by parsing topic or JSON):
+    `asset` the asset it is about (None: none); for events `event` and `event_id`; for
+    state messages and anomaly events the window's `score` and the `threshold` it was
+    judged against, as in the payload. Not stored: the outbox keeps topic and payload.
     """
 
     topic: str
@@ -35,3 +43,8 @@ class OutMessage:
     qos: int = 1
     retain: bool = False
     key: str | None = None
+    asset: str | None = None
+    event: EventType | None = None
+    event_id: str | None = None
+    score: float | None = None
+    threshold: float | None = None
