@@ -32,9 +32,8 @@ from agent.errors import ConfigError, ConfigProblem, DatasetError
 from agent.ingest.buffers import Buffers, Ingest, IngestHandler
 from agent.ops.logs import setup_logging
 from agent.ops.metrics import Metrics
+from agent.pipeline.builder import HandlerFactory, build_pipeline, load_runtimes
 from agent.pipeline.messages import OutMessage
-from agent.pipeline.runtime import AssetRuntime
-from agent.pipeline.tick import Pipeline
 
 RAW_NAME = "raw.jsonl"
 
@@ -45,7 +44,7 @@ class _NullSink:
         return
 
 
-class _RawTap(IngestHandler):
+class _RawTap(IngestHandler[Buffers]):
     """The daemon's ingest handler, also copying each message to a capture file."""
 
     def __init__(self, *args: Any, capture: CaptureWriter, **kw: Any) -> None:
@@ -96,20 +95,23 @@ class Recorder:
             extra={"channels": {ch.name: {"topic": ch.topic, "decoder": ch.decoder.value,
                                           "rate_hz": ch.rate_hz} for ch in a.channels}})
         self.metrics = Metrics(CollectorRegistry())
-        self.buffers = Buffers(self.cfg)
         self.capture: CaptureWriter | None = None
+        make_handler: HandlerFactory = IngestHandler
         if raw:
             out.parent.mkdir(parents=True, exist_ok=True)
             self.raw_path = out.parent / f"{out.name}.{RAW_NAME}"
-            self.capture = CaptureWriter(self.raw_path, append=False)
-            self.handler: IngestHandler = _RawTap(self.cfg, self.buffers, self.metrics,
-                                                  self.log, capture=self.capture)
-        else:
-            self.handler = IngestHandler(self.cfg, self.buffers, self.metrics, self.log)
+            capture = self.capture = CaptureWriter(self.raw_path, append=False)
+
+            def make_handler(cfg: Config, buffers: Buffers, metrics: Metrics,
+                             log: logging.Logger) -> IngestHandler[Buffers]:
+                return _RawTap(cfg, buffers, metrics, log, capture=capture)
         # No model: record never scores (its bundles may not exist yet).
-        runtime = AssetRuntime.build(a, None, None, mode_bundles=({}, {}))
-        self.pipeline = Pipeline(self.cfg, self.buffers, _NullSink(), self.metrics, self.log,
-                                 [runtime], observer=self._observe)
+        running = build_pipeline(self.cfg, load_runtimes(self.cfg, self.log, models=False),
+                                 _NullSink(), self.metrics, self.log, observer=self._observe,
+                                 handler=make_handler)
+        self.buffers = running.buffers
+        self.handler: IngestHandler[Buffers] = running.handler
+        self.pipeline = running.pipeline
         self.coverage: list[float] = []
         self.skipped_mode = 0
         self.offline_messages = 0

@@ -23,10 +23,10 @@ from typing import Any, TextIO
 from prometheus_client import CollectorRegistry
 
 from agent.config.load import Config, load_config
-from agent.ingest.buffers import Buffers, IngestHandler
+from agent.ingest.buffers import IngestHandler
 from agent.ops.metrics import Metrics
+from agent.pipeline.builder import build_pipeline, load_runtimes
 from agent.pipeline.messages import Kind, OutMessage
-from agent.pipeline.runtime import AssetRuntime
 from agent.pipeline.tick import Pipeline, WindowObserver
 
 
@@ -70,15 +70,12 @@ class Replayer:
     def build(cls, cfg: Config, logger: logging.Logger | None = None, *,
               observer: WindowObserver | None = None,
               sink: CollectingSink | None = None) -> Replayer:
-        from agent.daemon import load_asset_bundle
-
         log = logger or logging.getLogger("watchkeep.replay")
         metrics = Metrics(CollectorRegistry())
-        buffers = Buffers(cfg)
-        runtimes = [AssetRuntime.build(a, *load_asset_bundle(a, log)) for a in cfg.assets]
         sink = sink or CollectingSink()
-        pipe = Pipeline(cfg, buffers, sink, metrics, log, runtimes, observer=observer)
-        return cls(cfg, metrics, IngestHandler(cfg, buffers, metrics, log), pipe, sink)
+        running = build_pipeline(cfg, load_runtimes(cfg, log), sink, metrics, log,
+                                 observer=observer)
+        return cls(cfg, metrics, running.handler, running.pipeline, sink)
 
     def advance(self, t: float) -> None:
         """Run every tick due up to simulated time `t`."""
