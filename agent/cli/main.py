@@ -15,8 +15,8 @@ Command = Callable[[argparse.Namespace], int]
 
 def cmd_run(args: argparse.Namespace) -> int:
     from agent.config.load import load_config
-    from agent.daemon import run_daemon
     from agent.ops.logs import setup_logging
+    from agent.ops.run import run_daemon
 
     cfg = load_config(args.config)
     return run_daemon(cfg, setup_logging(args.log_level, args.log_format))

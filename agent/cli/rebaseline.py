@@ -17,8 +17,9 @@ import time
 from pathlib import Path
 from typing import Any, TextIO
 
+from agent.learning.jobs import Result
 from agent.learning.rebaseline import RebaselineError
-from agent.ops.admin import request
+from agent.ops.admin import AdminVerb, request
 
 DEFAULT_SOCKET = "/var/lib/watchkeep/admin.sock"
 
@@ -83,10 +84,10 @@ def add_rebaseline_arguments(p: argparse.ArgumentParser) -> None:
 def cmd_rebaseline(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
     out = out or sys.stdout
     if args.cancel:
-        reply = _ask(args, {"verb": "cancel", "asset": args.asset})
+        reply = _ask(args, {"verb": AdminVerb.CANCEL, "asset": args.asset})
         print(f"{args.asset}: rebaseline {reply['cancelled']} cancelled", file=out)
         return 0
-    doc: dict[str, Any] = {"verb": "rebaseline", "asset": args.asset, "reason": args.reason,
+    doc: dict[str, Any] = {"verb": AdminVerb.REBASELINE, "asset": args.asset, "reason": args.reason,
                            "accept_shift": bool(args.accept_shift)}
     if args.mode:
         doc["mode"] = args.mode
@@ -102,7 +103,7 @@ def cmd_rebaseline(args: argparse.Namespace, *, out: TextIO | None = None) -> in
         return 0
     deadline = time.monotonic() + args.timeout if args.timeout > 0 else None
     while True:
-        s = _ask(args, {"verb": "status"})["assets"].get(args.asset, {})
+        s = _ask(args, {"verb": AdminVerb.STATUS})["assets"].get(args.asset, {})
         last = s.get("last_rebaseline") or {}
         if s.get("learning") is None and last.get("request_id") == reply["request_id"]:
             break
@@ -120,7 +121,7 @@ def cmd_rebaseline(args: argparse.Namespace, *, out: TextIO | None = None) -> in
               f"{'; ' + figs if figs else ''}", file=out)
         for r in last.get("reasons", []):
             print(f"  {r}", file=out)
-    return 0 if last.get("result") == "accepted" else 8
+    return 0 if last.get("result") == Result.ACCEPTED else 8
 
 
 def add_models_arguments(p: argparse.ArgumentParser) -> None:
@@ -136,7 +137,7 @@ def cmd_models(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
     out = out or sys.stdout
     if args.adopt:
         return _adopt(args, out)
-    reply = _ask(args, {"verb": "models", "asset": args.asset})
+    reply = _ask(args, {"verb": AdminVerb.MODELS, "asset": args.asset})
     if args.json:
         print(json.dumps(reply, indent=2), file=out)
         return 0
@@ -185,7 +186,7 @@ def add_rollback_arguments(p: argparse.ArgumentParser) -> None:
 
 def cmd_rollback(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
     out = out or sys.stdout
-    doc: dict[str, Any] = {"verb": "rollback", "asset": args.asset, "reason": args.reason}
+    doc: dict[str, Any] = {"verb": AdminVerb.ROLLBACK, "asset": args.asset, "reason": args.reason}
     if args.mode:
         doc["mode"] = args.mode
     if args.to:

@@ -25,6 +25,7 @@ import struct
 import threading
 from collections.abc import Callable
 from dataclasses import dataclass
+from enum import StrEnum
 from pathlib import Path
 from typing import Any
 
@@ -34,6 +35,16 @@ from agent.ops.logs import kv
 
 MAX_REQUEST_BYTES = 64 * 1024
 SOCKET_MODE = 0o600
+
+
+class AdminVerb(StrEnum):
+    """The requests the admin socket takes (`"verb"` of the request object)."""
+
+    REBASELINE = "rebaseline"
+    CANCEL = "cancel"
+    ROLLBACK = "rollback"
+    MODELS = "models"
+    STATUS = "status"
 
 
 class AdminUnavailable(WatchkeepError):

@@ -27,20 +27,48 @@ import hashlib
 import logging
 import time
 from collections.abc import Callable, Iterable, Mapping
+from contextlib import AbstractContextManager
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import Any, Protocol
 
-from agent.config.load import AssetConfig, Config, load_config
+from agent.config.load import load_config
+from agent.config.schema import AssetConfig, Config
 from agent.errors import BundleError, WatchkeepError
 from agent.ingest.buffers import Buffers, ChannelBuffer, IngestHandler, asset_buffers
 from agent.models.bundle import MODEL_JSON, MODEL_ONNX, Bundle, load_bundle
+from agent.ops.heap import thaw_heap
 from agent.ops.logs import kv
+from agent.ops.metrics import Metrics
+from agent.pipeline.builder import Running, build_pipeline, new_runtime
 from agent.pipeline.runtime import AssetRuntime, check_bundle_fits
-from agent.pipeline.tick import Pipeline
 
-if TYPE_CHECKING:
-    from agent.daemon import Daemon
+
+class Loop(Protocol):
+    """The pipeline loop as a reload needs it: what runs now, held between two ticks,
+    replaced as a whole."""
+
+    @property
+    def current(self) -> Running: ...
+
+    def paused(self) -> AbstractContextManager[None]: ...
+
+    def swap(self, running: Running) -> None: ...
+
+
+class Reconfigurable(Protocol):
+    """Ingest: samples decoded from now on go to `handler`; subscriptions follow `cfg`."""
+
+    def reconfigure(self, cfg: Config, handler: IngestHandler[Any]) -> None: ...
+
+
+class Notify(Protocol):
+    """systemd's notification socket (agent/ops/notify.py)."""
+
+    def reloading(self) -> bool: ...
+
+    def ready(self, status: str = "") -> bool: ...
+
 
 # Top-level config keys a running daemon cannot take over: they name the sockets,
 # files and identity it was started with.
@@ -151,21 +179,20 @@ def _load_fitting(asset: AssetConfig) -> Bundle:
 
 @dataclass
 class Reloader:
-    """Reloads one running daemon from its config file (`cfg.source`)."""
+    """Reloads the running pipeline from its config file (`cfg.source`)."""
 
-    daemon: Daemon
+    loop: Loop
+    ingest: Reconfigurable
+    metrics: Metrics
+    notifier: Notify
+    log: logging.Logger
     load: Callable[[Path], Config] = load_config
     clock: Callable[[], float] = time.time
     history: list[ReloadResult] = field(default_factory=list)
 
-    @property
-    def log(self) -> logging.Logger:
-        return self.daemon.log
-
     def reload(self) -> ReloadResult:
         """Apply the config file now on disk, or reject it and keep the running one."""
-        d = self.daemon
-        d.notifier.reloading()
+        self.notifier.reloading()
         try:
             result = self._reload()
         except ReloadRejected as exc:
@@ -173,7 +200,7 @@ class Reloader:
         except Exception as exc:  # an unexpected fault must not take the daemon down
             self.log.exception("reload failed unexpectedly")
             result = ReloadResult(False, f"unexpected {type(exc).__name__}: {exc}")
-        m = d.metrics
+        m = self.metrics
         if result.ok:
             m.reloads.labels("success").inc()
             m.reload_ok.set(1)
@@ -184,14 +211,13 @@ class Reloader:
             m.reload_ok.set(0)
             self.log.error(kv("config reload rejected; the running config stays",
                               error=result.message))
-        d.notifier.ready(_status_line(d, result))
+        self.notifier.ready(_status_line(self.loop.current, result))
         self.history.append(result)
         del self.history[:-20]
         return result
 
     def _reload(self) -> ReloadResult:
-        d = self.daemon
-        old = d.cfg
+        old = self.loop.current.cfg
         if old.source is None:
             raise ReloadRejected("the running config was not read from a file")
         try:
@@ -202,11 +228,18 @@ class Reloader:
         if fixed:
             raise ReloadRejected(f"changes to {', '.join(fixed)} need a restart "
                                  "(systemctl restart watchkeep)")
-        old_rts = {rt.cfg.name: rt for rt in d.pipeline.runtimes}
+        old_rts = {rt.cfg.name: rt for rt in self.loop.current.pipeline.runtimes}
         digests = {a.name: bundle_digest(a.bundle) for a in new.assets}
         plan = plan_assets(_running(old_rts.values()), new.assets, digests)
-
         # Everything slow and fallible first, with the old pipeline still ticking.
+        fresh = self._fresh(new, plan)
+        self._swap(new, old_rts, fresh)
+        thaw_heap()  # the replaced runtimes must be collectable
+        return ReloadResult(True, plan.summary(), plan)
+
+    def _fresh(self, new: Config, plan: AssetPlan) -> dict[str, AssetRuntime]:
+        """New runtimes for the changed, added and retried assets (bundles loaded and
+        warmed up)."""
         fresh: dict[str, AssetRuntime] = {}
         for a in new.assets:
             if a.name in plan.changed or a.name in plan.added:
@@ -216,58 +249,46 @@ class Reloader:
                         bundle = _load_fitting(a)
                     except BundleError as exc:
                         raise ReloadRejected(f"asset {a.name}: {exc}") from exc
-                fresh[a.name] = AssetRuntime.build(a, bundle, None)
+                fresh[a.name] = new_runtime(a, bundle)
             elif a.name in plan.retried:
                 try:
-                    fresh[a.name] = AssetRuntime.build(a, _load_fitting(a), None)
+                    fresh[a.name] = new_runtime(a, _load_fitting(a))
                 except BundleError as exc:
                     self.log.error(kv("model bundle still rejected; the asset keeps running "
                                       "without a model", asset=a.name, error=str(exc)))
+        return fresh
 
-        self._swap(new, plan, old_rts, fresh)
-        from agent.daemon import thaw_heap
-
-        thaw_heap()  # the replaced runtimes must be collectable
-        return ReloadResult(True, plan.summary(), plan)
-
-    def _swap(self, new: Config, plan: AssetPlan, old_rts: Mapping[str, AssetRuntime],
+    def _swap(self, new: Config, old_rts: Mapping[str, AssetRuntime],
               fresh: Mapping[str, AssetRuntime]) -> None:
-        d = self.daemon
-        old_pipeline: Pipeline = d.pipeline
+        old = self.loop.current
         old_bufs = {rt.cfg.name: bufs
-                    for rt, bufs in zip(old_pipeline.runtimes, d.buffers.by_asset, strict=True)}
+                    for rt, bufs in zip(old.pipeline.runtimes, old.buffers.by_asset, strict=True)}
         runtimes: list[AssetRuntime] = []
         by_asset: list[list[ChannelBuffer]] = []
         for a in new.assets:
             if a.name in fresh:
-                rt = fresh[a.name]
-                if a.name in old_rts:  # event sequence numbers go on; consumers order by them
-                    rt.sequence = old_rts[a.name].sequence
-                runtimes.append(rt)
+                runtimes.append(fresh[a.name])
                 by_asset.append(asset_buffers(a))
             else:  # kept, or retried and still failing: the very same objects carry on
                 runtimes.append(old_rts[a.name])
                 by_asset.append(old_bufs[a.name])
         buffers = Buffers(new)
         buffers.by_asset = by_asset
-        handler = IngestHandler(new, buffers, d.metrics, d.log)
-        with d.loop.paused():
-            pipeline = Pipeline(new, buffers, old_pipeline.sink, d.metrics, d.log, runtimes,
-                                observer=old_pipeline.observer,
-                                observes=old_pipeline.observes)
+        with self.loop.paused():
+            for name, rt in fresh.items():
+                if name in old_rts:  # event sequence numbers go on; consumers order by them
+                    rt.sequence = old_rts[name].sequence
+            running = build_pipeline(new, runtimes, old.pipeline.sink, self.metrics, self.log,
+                                     buffers=buffers, observer=old.pipeline.observer,
+                                     observes=old.pipeline.observes)
             # Samples decoded from here on land in the new buffers (kept assets' buffers
             # are the same objects); subscriptions follow the new config.
-            d.ingest.reconfigure(new, handler)
-            d.handler = handler
-            d.buffers = buffers
-            d.pipeline = pipeline
-            d.loop.pipeline = pipeline
-            d.loop.tick_s = new.tick_s
-            d.cfg = new
+            self.ingest.reconfigure(new, running.handler)
+            self.loop.swap(running)
 
 
-def _status_line(d: Daemon, result: ReloadResult) -> str:
-    n = len(d.pipeline.runtimes)
-    loaded = sum(1 for rt in d.pipeline.runtimes if rt.bundle is not None)
+def _status_line(running: Running, result: ReloadResult) -> str:
+    rts = running.pipeline.runtimes
+    loaded = sum(1 for rt in rts if rt.bundle is not None)
     head = "reloaded" if result.ok else "reload rejected (running the previous config)"
-    return f"{n} assets, {loaded} models loaded; {head}"
+    return f"{len(rts)} assets, {loaded} models loaded; {head}"

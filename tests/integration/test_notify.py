@@ -14,7 +14,7 @@ from pathlib import Path
 
 import pytest
 
-from agent.daemon import TEST_WEDGE_ENV
+from agent.ops.run import TEST_WEDGE_ENV
 from tests.brokers import Broker, free_port, wait_for
 from tests.helpers import asset_doc, train_pca_bundle, write_config
 

@@ -495,23 +495,24 @@ def readme_lines_matching(pattern: str) -> list[tuple[int, str]]:
 
 def exported_metric_names() -> set[str]:
     """Family and sample names of a real registry with what the daemon puts on it:
-    `Metrics`, the MQTT command receiver's counters and the rebaseline manager's
-    families."""
+    `Metrics`, the MQTT command receiver's counters and re-learning's families."""
     import logging
 
     from agent.learning.commands import CommandReceiver
+    from agent.learning.metrics import LearningMetrics
+
+    class NoAssets:
+        def names(self) -> list[str]:
+            return []
 
     reg = CollectorRegistry()
     Metrics(reg)
     CommandReceiver("p", lambda *a, **k: None, assets=lambda: (), enabled=lambda: False,
                     registry=reg, logger=logging.getLogger("test"))
+    LearningMetrics(NoAssets(), dict, reg)  # with no asset, names() is all it reads
     text = generate_latest(reg).decode()
     names = set(re.findall(r"^# TYPE (\S+) ", text, re.M))
     names |= set(re.findall(r"^([a-zA-Z_:][a-zA-Z0-9_:]*)", text, re.M))
-    # The rebaseline manager's custom collector needs a running daemon: its families are
-    # read from their declarations (`...MetricFamily("watchkeep_...")`) in the source.
-    src = (ROOT / "agent" / "learning" / "manager.py").read_text(encoding="utf-8")
-    names |= set(re.findall(r'MetricFamily\(\s*"(watchkeep_[a-z0-9_]+)"', src))
     for n in list(names):  # a counter family `x` is scraped as `x_total`, `x_created`
         names |= {n + "_total", n + "_info"}
     return names
