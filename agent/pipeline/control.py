@@ -3,12 +3,12 @@
 Assets are named, never handed out: each call looks the asset up in whichever pipeline
 runs now (`current()`, the pipeline loop's; a reload replaces it), so a caller cannot
 keep a runtime a reload has retired. This is the one module outside the pipeline that
-knows how an asset's runtime holds its bundles, detector and sequence numbers.
+knows how an asset's runtime holds its bundles and detector; its events are made by
+the pipeline's `Emitter.message`, the one place that moves sequence numbers.
 """
 
 from __future__ import annotations
 
-import json
 from collections.abc import Callable, Mapping
 from typing import Any
 
@@ -16,7 +16,7 @@ import numpy as np
 
 from agent.core.detector import State
 from agent.core.detector_params import DetectorParams
-from agent.core.events import EventType, make_event
+from agent.core.events import EventType
 from agent.learning.ports import OpenAnomaly
 from agent.models.bundle import Bundle
 from agent.ops.metrics import Metrics
@@ -97,14 +97,6 @@ class PipelineControl:
 
     def event(self, asset: str, etype: EventType, data: Mapping[str, Any], id_key: str,
               kind: Kind, time_s: float) -> tuple[OutMessage, int]:
-        p = self.current()
         rt = self._rt(asset)
-        rt.sequence += 1
-        doc = {**data, "sequence": rt.sequence}
-        ev = make_event(etype, p.source.for_asset(asset), asset, time_s, doc, id_key=id_key)
-        rt.last_event = {"type": ev["type"], "id": ev["id"], "time": ev["time"]}
-        self.metrics.events.labels(etype.value).inc()
-        payload = json.dumps(ev, separators=(",", ":"), allow_nan=False).encode()
-        msg = OutMessage(f"{p.prefix}/assets/{asset}/events", payload, kind, qos=1,
-                         asset=asset, event=etype, event_id=ev["id"])
+        msg = self.current().emit.message(rt, etype, time_s, dict(data), kind, id_key=id_key)
         return msg, rt.sequence

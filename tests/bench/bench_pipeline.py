@@ -26,9 +26,9 @@ import onnxruntime as ort
 from prometheus_client import CollectorRegistry
 
 from agent.config.load import parse_config
-from agent.ops.heap import freeze_heap
 from agent.ingest.buffers import Buffers
 from agent.models.bundle import _session_options, load_bundle
+from agent.ops.heap import freeze_heap
 from agent.ops.metrics import Metrics
 from agent.pipeline.runtime import AssetRuntime
 from agent.pipeline.tick import Pipeline

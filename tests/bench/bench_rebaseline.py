@@ -27,8 +27,8 @@ import numpy as np
 from agent.commission.autoencoder import TrainConfig, fit_autoencoder
 from agent.commission.calibrate import calibrate
 from agent.commission.export import export_dense
-from agent.learning.training import ONE_THREAD
 from agent.learning.rebaseline import numpy_scores, reservoir
+from agent.learning.training import ONE_THREAD
 from agent.learning.worker import JOB_JSON, WINDOWS_NPZ
 from agent.models.store import ModelStore
 from tests.bench import bench_latency as lat
