@@ -19,7 +19,6 @@ a flat channel separately). A zero-RMS segment has crest factor 0.
 
 from __future__ import annotations
 
-import threading
 from collections.abc import Sequence
 
 import numpy as np
@@ -83,34 +82,41 @@ def segment_features(segments: Sequence[np.ndarray]) -> np.ndarray:
 ALL_FEATURES = frozenset(FEATURES)
 
 
-_scratch = threading.local()
+class WorkArrays:
+    """Reusable work arrays for the feature passes of one pipeline (use from one thread
+    at a time). Fresh megabyte temporaries cost page faults on every call: with them the
+    passes below are several times slower. Without one, each pass makes its own."""
+
+    def __init__(self) -> None:
+        self._bufs: dict[str, np.ndarray] = {}
+
+    def get(self, name: str, shape: tuple[int, int]) -> np.ndarray:
+        """The work array `name` as `shape` (valid until the next `get` of that name)."""
+        size = shape[0] * shape[1]
+        b = self._bufs.get(name)
+        if b is None or b.size < size:
+            b = self._bufs[name] = np.empty(max(size, 2 * (b.size if b is not None else 0)))
+        return b[:size].reshape(shape)
 
 
-def _buffer(name: str, shape: tuple[int, int]) -> np.ndarray:
-    """A reusable work array of `shape` for this thread. Fresh megabyte temporaries
-    cost page faults on every call: with them the pass below is several times slower."""
-    size = shape[0] * shape[1]
-    bufs = getattr(_scratch, "bufs", None)
-    if bufs is None:
-        bufs = _scratch.bufs = {}
-    b = bufs.get(name)
-    if b is None or b.size < size:
-        b = bufs[name] = np.empty(max(size, 2 * (b.size if b is not None else 0)))
-    return b[:size].reshape(shape)
+def _buffer(work: WorkArrays | None, name: str, shape: tuple[int, int]) -> np.ndarray:
+    return work.get(name, shape) if work is not None else np.empty(shape)
 
 
-def stack_rows(parts: Sequence[np.ndarray], buffer: str = "x") -> np.ndarray:
-    """Matrices of equal width stacked into one, in the reusable work array `buffer` of
-    this thread (valid until the next call with that name): the input of one
-    `block_features` pass. A single part comes back as it is."""
+def stack_rows(parts: Sequence[np.ndarray], buffer: str = "x", *,
+               work: WorkArrays | None = None) -> np.ndarray:
+    """Matrices of equal width stacked into one, in the work array `buffer` of `work`
+    (valid until its next use): the input of one `block_features` pass. A single part
+    comes back as it is."""
     if len(parts) == 1:
         return parts[0]
     width = parts[0].shape[1]
     n = sum(p.shape[0] for p in parts)
-    return np.concatenate(parts, out=_buffer(buffer, (n, width)))
+    return np.concatenate(parts, out=_buffer(work, buffer, (n, width)))
 
 
-def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES) -> np.ndarray:
+def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES, *,
+                   work: WorkArrays | None = None) -> np.ndarray:
     """The features of each row of `x` [segments, samples] (all rows full length):
     [segments, len(FEATURES)] float64, NaN in the columns not in `needed`.
 
@@ -127,8 +133,8 @@ def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES) -> np.n
     cols["mean"] = mean
     if needed & {"std", "skewness", "kurtosis"}:
         # Central moments from deviations about each row's own mean (see segment_features).
-        d = np.subtract(x, mean[:, None], out=_buffer("d", x.shape))
-        d2 = np.multiply(d, d, out=_buffer("d2", x.shape))
+        d = np.subtract(x, mean[:, None], out=_buffer(work, "d", x.shape))
+        d2 = np.multiply(d, d, out=_buffer(work, "d2", x.shape))
         m2 = d2.sum(axis=1) * inv
         flat = m2 <= (1e-12 * np.maximum(np.abs(mean), 1e-300)) ** 2
         safe = np.where(flat, 1.0, m2)

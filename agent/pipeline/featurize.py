@@ -16,7 +16,7 @@ from typing import Protocol
 import numpy as np
 
 from agent.config.load import SpectrumConfig
-from agent.core.features import block_features, segment_features, stack_rows
+from agent.core.features import WorkArrays, block_features, segment_features, stack_rows
 from agent.core.spectral import spectral_features
 from agent.core.windows.closed import Block, ClosedWindow
 from agent.pipeline.runtime import AssetRuntime
@@ -34,15 +34,17 @@ class Pending(Protocol):
     def w(self) -> ClosedWindow: ...
 
 
-def feature_rows(todo: Sequence[Pending]) -> list[np.ndarray]:
-    """The full feature row of each window (module docstring)."""
+def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None) -> list[np.ndarray]:
+    """The full feature row of each window (module docstring), the passes in `work`'s
+    reusable arrays."""
     needed = frozenset().union(*{p.rt.td_needed for p in todo})
     by_len, n_by_len, ragged, whole, places, spans = _place_all(todo)
     feats = {}
     for n, parts in by_len.items():
         base = whole.get(n)
-        x = base if base is not None and base.shape[0] == n_by_len[n] else stack_rows(parts)
-        feats[n] = block_features(x, needed)
+        x = base if base is not None and base.shape[0] == n_by_len[n] \
+            else stack_rows(parts, work=work)
+        feats[n] = block_features(x, needed, work=work)
     if ragged:
         feats[-1] = segment_features(ragged)
     spec = _spectral(todo)

@@ -42,6 +42,7 @@ import numpy as np
 from agent.config.load import Config
 from agent.core.decode import Reason
 from agent.core.events import rfc3339
+from agent.core.features import WorkArrays
 from agent.core.limits import ZoneLimits
 from agent.core.timebase import Step
 from agent.core.windows.closed import ClosedWindow
@@ -92,6 +93,7 @@ class Pipeline:
         self._m = {rt.cfg.name: AssetMetrics.of(metrics, rt.cfg.name) for rt in runtimes}
         self._m_at = [self._m[rt.cfg.name] for rt in runtimes]
         self.emit = Emitter(cfg, metrics, logger, self._m)
+        self._work = WorkArrays()  # the feature passes' reusable arrays (pipeline thread)
         self.judge = Judge(metrics, logger, buffers, self.emit, cfg.ingest.startup_grace_s)
         # Ingest writes each asset's samples straight into its runtime's assembler.
         self._inboxes: list[AssetInbox] = []
@@ -377,7 +379,7 @@ class Pipeline:
 
     def _features(self, todo: list[Pending]) -> list[np.ndarray]:
         t0 = time.perf_counter()
-        rows = feature_rows(todo)
+        rows = feature_rows(todo, self._work)
         self.metrics.feature_seconds.observe(time.perf_counter() - t0)
         return rows
 

@@ -152,3 +152,19 @@ def test_block_features_compute_only_what_is_needed() -> None:
                 np.testing.assert_array_equal(part[:, i], full[:, i])
             elif name != "mean":  # the mean is the base of everything else
                 assert np.all(np.isnan(part[:, i])), name
+
+
+def test_work_arrays_are_reused_and_change_nothing() -> None:
+    """A pass in a `WorkArrays` gives the same values as one with fresh arrays, and the
+    next pass of no larger size reuses the same memory."""
+    from agent.core.features import WorkArrays, block_features, stack_rows
+
+    rng = np.random.default_rng(13)
+    parts = [rng.normal(size=(3, 64)), rng.normal(size=(2, 64))]
+    work = WorkArrays()
+    x = stack_rows(parts, work=work)
+    np.testing.assert_array_equal(x, np.vstack(parts))
+    np.testing.assert_array_equal(block_features(x, work=work),
+                                  block_features(np.vstack(parts)))
+    again = stack_rows(parts[::-1], work=work)
+    assert np.shares_memory(again, x)
