@@ -24,19 +24,31 @@ from typing import Any
 from agent.config.load import Config
 from agent.core.decode import Block, Reason
 from agent.ingest.mqtt import Ingest, IngestHandler, PlainCount
+from agent.ingest.protocol import (
+    KEY_MASK,
+    KEY_SHIFT,
+    Blocks,
+    Bye,
+    ChildMessage,
+    Counts,
+    Data,
+    Errors,
+    Init,
+    KeyCounts,
+    Live,
+    Log,
+    Reconfigure,
+    State,
+    Stop,
+    Switched,
+    channel_key,
+)
 from agent.ops.logs import LOGGER_NAME, kv
 
 FLUSH_S = 0.002          # a sample waits at most this long in the child
 MAX_BATCH = 512          # ... or until this many messages are waiting
 MAX_BATCH_SAMPLES = 32768  # ... or this many samples (waveform blocks)
 COUNTS_EVERY_S = 0.25    # message/sample/reject counts follow this often
-KEY_SHIFT = 16           # key = asset_index << 16 | channel_index
-KEY_MASK = (1 << KEY_SHIFT) - 1
-
-
-def channel_key(asset_index: int, channel_index: int) -> int:
-    """One int naming a channel on the wire (`key >> KEY_SHIFT`, `key & KEY_MASK`)."""
-    return (asset_index << KEY_SHIFT) | channel_index
 
 
 class _Sender:
@@ -46,7 +58,7 @@ class _Sender:
         self.conn = conn
         self.lock = threading.Lock()
 
-    def send(self, msg: tuple[Any, ...]) -> None:
+    def send(self, msg: ChildMessage) -> None:
         with self.lock:
             self.conn.send(msg)
 
@@ -101,13 +113,13 @@ class _Batch:
     def _send_locked(self) -> None:
         if not self.n:
             return
-        blocks: tuple[Any, ...] = ()
+        blocks = None
         if self.blocks:
             # The blocks' values as one bytes object: pickling one large buffer costs
             # far less than one small one per message.
             keys, t0s, rates, sizes, arrivals, vals = zip(*self.blocks, strict=True)
-            blocks = (keys, t0s, rates, sizes, arrivals, b"".join(vals))
-        msg = ("data", self.gen, self.keys, self.ts, self.values, self.arrivals, blocks)
+            blocks = Blocks(keys, t0s, rates, sizes, arrivals, b"".join(vals))
+        msg = Data(self.gen, self.keys, self.ts, self.values, self.arrivals, blocks)
         self._reset()
         self.sender.send(msg)
 
@@ -137,7 +149,7 @@ class _Tap:
     def set_liveness(self, death: str | None, t: float) -> None:
         # After the samples decoded before it, so the daemon sees them in order.
         self.batch.flush()
-        self.batch.sender.send(("live", self.batch.gen, self.key, death, t))
+        self.batch.sender.send(Live(self.batch.gen, self.key, death, t))
 
 
 class _TapBuffers:
@@ -165,9 +177,9 @@ class _Generation:
         self.channel_keys = [(r.key, channel_key(r.asset_index, r.channel_index))
                              for r in self.handler.channels]
 
-    def counts(self) -> tuple[Any, ...] | None:
+    def counts(self) -> Counts | None:
         """The deltas since the last call, or None when nothing changed."""
-        per_key: dict[int, tuple[int, int, int]] = {}
+        per_key: dict[int, KeyCounts] = {}
         for ck, key in self.channel_keys:
             tap = self.taps.by_asset[key >> KEY_SHIFT][key & KEY_MASK]
             g = self.gaps[ck]
@@ -175,7 +187,8 @@ class _Generation:
             # it adds after the read goes out next time.
             nm, ns, ng = tap.n_messages, tap.n_samples, g.n
             if nm != tap.sent_messages or ns != tap.sent_samples or ng != g.sent:
-                per_key[key] = (nm - tap.sent_messages, ns - tap.sent_samples, ng - g.sent)
+                per_key[key] = KeyCounts(nm - tap.sent_messages, ns - tap.sent_samples,
+                                         ng - g.sent)
                 tap.sent_messages, tap.sent_samples, g.sent = nm, ns, ng
         rejected = {}
         for r, c in self.rejected.items():
@@ -185,15 +198,15 @@ class _Generation:
                 c.sent = n
         if not per_key and not rejected:
             return None
-        return ("counts", self.gen, per_key, rejected)
+        return Counts(self.gen, per_key, rejected)
 
 
-def errors_delta(errors: PlainCount) -> tuple[Any, ...] | None:
-    """("errors", n) for the callback errors counted since the last call, or None."""
+def errors_delta(errors: PlainCount) -> Errors | None:
+    """The callback errors counted since the last call, or None."""
     n = errors.n
     if n == errors.sent:
         return None
-    msg = ("errors", n - errors.sent)
+    msg = Errors(n - errors.sent)
     errors.sent = n
     return msg
 
@@ -208,7 +221,7 @@ class _PipeLogHandler(logging.Handler):
             msg = record.getMessage()
             if record.exc_info:
                 msg += " exc=" + repr(logging.Formatter().formatException(record.exc_info))
-            self.sender.send(("log", record.levelno, msg))
+            self.sender.send(Log(record.levelno, msg))
         except Exception:  # a log line must never take ingest down
             pass
 
@@ -223,7 +236,7 @@ class _WorkerIngest(Ingest):
         super()._on_connect(client, userdata, flags, reason, props)
         try:
             if not reason.is_failure:
-                self.sender.send(("state", True, ""))
+                self.sender.send(State(True, ""))
         except Exception:  # never raise on paho's thread; a broken pipe ends the child
             pass
 
@@ -231,7 +244,7 @@ class _WorkerIngest(Ingest):
                        props: Any) -> None:
         super()._on_disconnect(client, userdata, flags, reason, props)
         with contextlib.suppress(Exception):
-            self.sender.send(("state", False, str(reason)))
+            self.sender.send(State(False, str(reason)))
 
 
 class _Worker:
@@ -294,16 +307,16 @@ class _Worker:
                 self.send_counts(live)
 
     def serve(self) -> None:
-        """Apply the daemon's messages until "stop" or the pipe closes."""
+        """Apply the daemon's messages until `Stop` or the pipe closes."""
         while True:
             try:
                 msg = self.conn.recv()
             except (EOFError, OSError):
                 return  # the daemon is gone: so is its ingest
-            if msg[0] == "stop":
+            if isinstance(msg, Stop):
                 break
-            if msg[0] == "config":
-                self._switch(msg[1], msg[2])
+            if isinstance(msg, Reconfigure):
+                self._switch(msg.gen, msg.cfg)
 
     def _switch(self, gen: int, cfg: Config) -> None:
         """A new config generation: ingest moves to it; the old one's last batch and
@@ -317,10 +330,10 @@ class _Worker:
         c = previous.counts()
         if c is not None:
             self.sender.send(c)
-        self.sender.send(("gen", new.gen))
+        self.sender.send(Switched(new.gen))
 
     def close(self) -> None:
-        """Stop ingest and the flusher, send what is left and "bye", close the pipe."""
+        """Stop ingest and the flusher, send what is left and `Bye`, close the pipe."""
         self.stop.set()
         with contextlib.suppress(Exception):
             self.ingest.stop()
@@ -333,7 +346,7 @@ class _Worker:
             if self.log.isEnabledFor(logging.DEBUG):  # what the child's memory is made of
                 self.log.debug(kv("ingest worker modules", packages=",".join(sorted(
                     {m.partition(".")[0] for m in sys.modules}))))
-            self.sender.send(("bye",))
+            self.sender.send(Bye())
         self.conn.close()
 
 
@@ -354,12 +367,12 @@ def main(argv: list[str]) -> int:
     """`python -m agent.ingest.child <fd>`: started by `ProcessIngest`, not by hand."""
     conn = Connection(int(argv[1]))
     try:
-        kind, gen, cfg, level = conn.recv()
+        init = conn.recv()
     except (EOFError, OSError):
         return 0
-    if kind != "init":
+    if not isinstance(init, Init):
         return 2
-    worker_main(conn, cfg, gen, level)
+    worker_main(conn, init.cfg, init.gen, init.level)
     return 0
 
 

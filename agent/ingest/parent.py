@@ -14,26 +14,27 @@ The child imports neither numpy nor prometheus_client, to stay small: it sends a
 json-batch block as its first time, rate and values, and the daemon makes the block's
 timestamps with the same arithmetic as thread mode (`blocks_timestamps`), so the same
 samples land in the windows either way. Wire protocol over one duplex
-`multiprocessing` connection on a socket pair, pickled tuples:
+`multiprocessing` connection on a socket pair, pickled NamedTuples of
+agent/ingest/protocol.py:
 
 child -> parent
-  ("data", gen, keys, ts, values, arrivals, blocks)  scalar samples as parallel lists
-      (key = asset_index << 16 | channel_index) and json-batch blocks as (keys, t0s,
-      rates, sizes, arrivals, values) with the blocks' float64 values concatenated in
+  Data(gen, keys, ts, values, arrivals, blocks)  scalar samples as parallel lists
+      (key = asset_index << 16 | channel_index) and json-batch `Blocks(keys, t0s,
+      rates, sizes, arrivals, values)` with the blocks' float64 values concatenated in
       one bytes object; sent when the batch is `FLUSH_S` old or holds `MAX_BATCH`
       messages or `MAX_BATCH_SAMPLES` samples, whichever comes first
-  ("counts", gen, {key: (messages, samples, gaps)}, {reason: n})  deltas, every
+  Counts(gen, {key: KeyCounts(messages, samples, gaps)}, {reason: n})  deltas, every
       `COUNTS_EVERY_S` and before a switch or stop
-  ("errors", n)                  callback errors counted in the child since the last one
-  ("live", gen, key, death, t)   a Sparkplug death certificate (`death` names it) or a
+  Errors(n)                      callback errors counted in the child since the last one
+  Live(gen, key, death, t)       a Sparkplug death certificate (`death` names it) or a
       birth after one (None) for one channel, after the samples decoded before it
-  ("state", connected, reason)   the local broker connection came up / went down
-  ("log", levelno, message)      a log line (the child's logging is rate-limited already)
-  ("gen", gen)                   the child now routes with config generation `gen`
-  ("bye",)                       last message before a requested exit
+  State(connected, reason)       the local broker connection came up / went down
+  Log(levelno, message)          a log line (the child's logging is rate-limited already)
+  Switched(gen)                  the child now routes with config generation `gen`
+  Bye()                          last message before a requested exit
 parent -> child
-  ("config", gen, Config)        reload: route with this config from now on
-  ("stop",)                      disconnect, send what is left, exit
+  Reconfigure(gen, Config)       reload: route with this config from now on
+  Stop()                         disconnect, send what is left, exit
 
 Generations: a reload gives the routes a new number; the parent keeps the previous
 generation's channel buffers until the child says it switched, so samples decoded
@@ -41,7 +42,7 @@ just before the switch still land (kept assets share their buffers across both).
 
 The child is `python -m agent.ingest.child <fd>` (a plain subprocess with one end of
 a socket pair, so no multiprocessing helper processes come with it); its first message
-from the parent is ("init", gen, Config, log level). It ignores SIGINT/SIGTERM/SIGHUP
+from the parent is Init(gen, Config, log level). It ignores SIGINT/SIGTERM/SIGHUP
 (the daemon decides when it stops) and exits when the pipe closes, so it never
 outlives the daemon. If it dies, the parent logs
 it, counts it (`watchkeep_ingest_worker_restarts_total`) and starts a new one after a
@@ -59,14 +60,29 @@ import threading
 import time
 from collections.abc import Callable
 from multiprocessing.connection import Connection
-from typing import Any
 
 import numpy as np
 
 from agent.config.load import Config
 from agent.core.decode import Reason, blocks_timestamps
 from agent.ingest.buffers import Buffers, IngestHandler, append_run
-from agent.ingest.child import KEY_MASK, KEY_SHIFT, channel_key
+from agent.ingest.protocol import (
+    KEY_MASK,
+    KEY_SHIFT,
+    Bye,
+    Counts,
+    Data,
+    Errors,
+    Init,
+    Live,
+    Log,
+    ParentMessage,
+    Reconfigure,
+    State,
+    Stop,
+    Switched,
+    channel_key,
+)
 from agent.ops.logs import kv
 from agent.ops.metrics import Metrics
 
@@ -128,7 +144,7 @@ class ProcessIngest:
         finally:
             theirs.close()
         conn = Connection(ours.detach())
-        conn.send(("init", self._gen, self.cfg, self.log.getEffectiveLevel()))
+        conn.send(Init(self._gen, self.cfg, self.log.getEffectiveLevel()))
         self._conn, self._proc = conn, proc
         self.worker_pid = proc.pid
 
@@ -136,7 +152,7 @@ class ProcessIngest:
         """Ask the child to disconnect and send what it holds; apply it; reap the child."""
         self._stopping.set()
         with contextlib.suppress(OSError, ValueError):
-            self._send(("stop",))
+            self._send(Stop())
         if self._reader is not None:
             self._reader.join(STOP_TIMEOUT_S)
         proc = self._proc
@@ -157,9 +173,9 @@ class ProcessIngest:
         self.handler = handler
         # When the child is being restarted, it starts with the new config anyway.
         with contextlib.suppress(OSError, ValueError):
-            self._send(("config", self._gen, cfg))
+            self._send(Reconfigure(self._gen, cfg))
 
-    def _send(self, msg: tuple[Any, ...]) -> None:
+    def _send(self, msg: ParentMessage) -> None:
         conn = self._conn
         if conn is None:
             raise OSError("no ingest worker")
@@ -207,32 +223,31 @@ class ProcessIngest:
             except (EOFError, OSError):
                 return False
             try:
-                kind = msg[0]
-                if kind == "data":
+                if isinstance(msg, Data):
                     self._apply(msg)
-                elif kind == "counts":
+                elif isinstance(msg, Counts):
                     self._apply_counts(msg)
-                elif kind == "errors":
-                    self._errors.inc(msg[1])
-                elif kind == "live":
+                elif isinstance(msg, Errors):
+                    self._errors.inc(msg.n)
+                elif isinstance(msg, Live):
                     self._apply_liveness(msg)
-                elif kind == "state":
-                    self._set_connected(msg[1], msg[2])
-                elif kind == "log":
-                    self.log.log(msg[1], msg[2])
-                elif kind == "gen":
-                    # The child switched to msg[1]; it still flushes the generation
+                elif isinstance(msg, State):
+                    self._set_connected(msg.connected, msg.reason)
+                elif isinstance(msg, Log):
+                    self.log.log(msg.levelno, msg.message)
+                elif isinstance(msg, Switched):
+                    # The child switched to msg.gen; it still flushes the generation
                     # before it (samples decoded during the switch), not older ones.
-                    for g in [g for g in self._gens if g < msg[1] - 1]:
+                    for g in [g for g in self._gens if g < msg.gen - 1]:
                         del self._gens[g]
-                elif kind == "bye":
+                elif isinstance(msg, Bye):
                     return True
             except Exception:
                 self._errors.inc()
                 self.log.exception("applying the ingest worker's message failed")
 
-    def _apply(self, msg: tuple[Any, ...]) -> None:
-        _, gen, keys, ts, values, arrivals, blocks = msg
+    def _apply(self, msg: Data) -> None:
+        gen, keys, ts, values, arrivals, blocks = msg
         found = self._gens.get(gen)
         if found is None:
             return  # routes of a generation already dropped (a reload raced it)
@@ -267,14 +282,14 @@ class ProcessIngest:
         if due and handler.wake is not None:
             handler.wake.set()
 
-    def _apply_liveness(self, msg: tuple[Any, ...]) -> None:
-        _, gen, key, death, t = msg
+    def _apply_liveness(self, msg: Live) -> None:
+        gen, key, death, t = msg
         found = self._gens.get(gen)
         if found is not None:
             found[0].buffers.by_asset[key >> KEY_SHIFT][key & KEY_MASK].set_liveness(death, t)
 
-    def _apply_counts(self, msg: tuple[Any, ...]) -> None:
-        _, gen, per_key, rejected = msg
+    def _apply_counts(self, msg: Counts) -> None:
+        gen, per_key, rejected = msg
         found = self._gens.get(gen)
         if found is None:
             return

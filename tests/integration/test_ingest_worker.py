@@ -20,7 +20,8 @@ import numpy as np
 from agent.config.load import load_config
 from agent.core.decode import Block, Reason, blocks_timestamps
 from agent.daemon import Daemon
-from agent.ingest.child import MAX_BATCH, _Batch, _Generation, _Sender, channel_key
+from agent.ingest.child import MAX_BATCH, _Batch, _Generation, _Sender
+from agent.ingest.protocol import Counts, Data, channel_key
 from tests.brokers import Broker, wait_for
 from tests.helpers import asset_doc, publisher, readings, train_pca_bundle, write_config
 
@@ -165,13 +166,13 @@ def test_batch_is_sent_when_full_and_on_flush() -> None:
         batch.add(key, float(i), float(-i), 100.0 + i)
     assert wake.is_set()
     first = parent.recv()  # type: ignore[attr-defined]
-    assert first[0] == "data" and first[1] == 7 and len(first[2]) == MAX_BATCH
+    assert isinstance(first, Data) and first.gen == 7 and len(first.keys) == MAX_BATCH
     batch.add_block(key, Block(0.0, 1.0, array("d", [1.0] * 3)), 200.0)
     batch.add_block(key + 1, Block(3.0, 2.0, array("d", [0.0] * 2)), 201.0)
     batch.flush()
     second = parent.recv()  # type: ignore[attr-defined]
-    assert second[3] == [float(i) for i in range(MAX_BATCH, MAX_BATCH + 5)]
-    keys, t0s, rates, sizes, arrivals, raw = second[6]
+    assert second.ts == [float(i) for i in range(MAX_BATCH, MAX_BATCH + 5)]
+    keys, t0s, rates, sizes, arrivals, raw = second.blocks
     assert (keys, t0s, rates, sizes, arrivals) == ((key, key + 1), (0.0, 3.0), (1.0, 2.0),
                                                    (3, 2), (200.0, 201.0))
     assert np.frombuffer(raw).tolist() == [1, 1, 1, 0, 0]
@@ -189,9 +190,11 @@ def test_counts_are_deltas(tmp_path: Path) -> None:
     g.handler.handle("plant/P-1/temp", b'{"value": 1.5}', time.time())
     g.handler.handle("plant/P-1/temp", b"{not json", time.time())
     g.handler.handle("plant/nowhere", b"1", time.time())
-    kind, gen, per_key, rejected = g.counts()  # type: ignore[misc]
+    counts = g.counts()
+    assert isinstance(counts, Counts)
+    gen, per_key, rejected = counts
     key = next(k for t, k in g.key_of.items() if t == "plant/P-1/temp")
-    assert (kind, gen) == ("counts", 0)
+    assert gen == 0
     assert per_key == {key: (2, 1, 0)}
     assert rejected == {Reason.MALFORMED.value: 1, Reason.UNKNOWN_TOPIC.value: 1}
     assert g.counts() is None

@@ -22,6 +22,7 @@ from agent.config.load import load_config, parse_config
 from agent.ingest.buffers import Buffers, Ingest, IngestHandler, close_inboxes
 from agent.ingest.child import _Generation, _Sender, errors_delta
 from agent.ingest.parent import ProcessIngest
+from agent.ingest.protocol import Bye, Data
 from agent.ops.metrics import Metrics
 
 T0 = 0.1234567  # small times: a last-bit difference in k / rate would show in the sum
@@ -97,7 +98,7 @@ def test_thread_and_process_ingest_fill_the_windows_alike() -> None:
     data = 0
     while ours.poll(0.5):
         msg = ours.recv()
-        assert msg[0] == "data"
+        assert isinstance(msg, Data)
         daemon_side._apply(msg)
         data += 1
     assert data >= 1 and counts is not None
@@ -152,7 +153,7 @@ def test_child_callback_errors_reach_the_daemons_counter() -> None:
     for _ in range(2):
         ingest._on_message(None, None, mqtt.MQTTMessage(topic=b"t/F-1/temp"))  # type: ignore[arg-type]
     sender = _Sender(theirs)
-    for msg in (errors_delta(ingest._errors), errors_delta(ingest._errors), ("bye",)):
+    for msg in (errors_delta(ingest._errors), errors_delta(ingest._errors), Bye()):
         if msg is not None:
             sender.send(msg)
     m = Metrics(CollectorRegistry())
