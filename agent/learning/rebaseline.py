@@ -360,15 +360,7 @@ def shift_of(old: OldModel, x_new: np.ndarray) -> dict[str, float]:
             "max_feature_shift": old.feature_names[top]}  # type: ignore[dict-item]
 
 
-def rebaseline(old: OldModel, x_new: np.ndarray, rehearsal: Rehearsal | None, s: Settings, *,
-               accept_shift: bool,
-               score_fn: Callable[[list[DenseLayer], np.ndarray], np.ndarray] | None = None
-               ) -> Outcome:
-    """Run one rebaseline (module docstring); `x_new` rows are in `old.feature_names` order.
-
-    `score_fn(layers, z)` scores standardised rows as the daemon will (onnxruntime on
-    the exported model); numpy's forward pass when not given.
-    """
+def _check_new(old: OldModel, x_new: np.ndarray) -> np.ndarray:
     x_new = np.asarray(x_new, np.float64)
     if x_new.ndim != 2 or x_new.shape[1] != len(old.feature_names):
         raise RebaselineError("the new windows do not match the model's features")
@@ -377,22 +369,37 @@ def rebaseline(old: OldModel, x_new: np.ndarray, rehearsal: Rehearsal | None, s:
                               "are needed")
     if not np.all(np.isfinite(x_new)):
         raise RebaselineError("the new windows contain non-finite features")
-    score = score_fn or (lambda layers, z: numpy_scores(layers, z))
-    figures: dict[str, Any] = {"old_version": old.version, "n_new": len(x_new),
-                               "settings": s.as_json(), "accept_shift": accept_shift}
-    figures.update(shift_of(old, x_new))
-    over = figures["shift"] > s.max_shift
-    figures["shift_exceeded"] = bool(over)
-    if over and not accept_shift:
-        return Outcome(Verdict.REFUSED, (
-            f"the new windows sit {figures['shift']:.3g}x the old threshold from the model "
-            f"(max_shift {s.max_shift:g}; largest feature shift "
-            f"{figures['max_feature_shift_sd']:.3g} sd in {figures['max_feature_shift']}): "
-            "this looks like a fault, not a new normal; inspect the machine, or repeat "
-            "with --accept-shift",), figures)
-    reh = rehearsal if rehearsal is not None and rehearsal.size else None
-    if reh is not None and tuple(reh.feature_names) != old.feature_names:
-        raise RebaselineError("the rehearsal set's features differ from the model's")
+    return x_new
+
+
+def _refusal(figures: Mapping[str, Any], s: Settings) -> Outcome:
+    return Outcome(Verdict.REFUSED, (
+        f"the new windows sit {figures['shift']:.3g}x the old threshold from the model "
+        f"(max_shift {s.max_shift:g}; largest feature shift "
+        f"{figures['max_feature_shift_sd']:.3g} sd in {figures['max_feature_shift']}): "
+        "this looks like a fault, not a new normal; inspect the machine, or repeat "
+        "with --accept-shift",), dict(figures))
+
+
+@dataclass(frozen=True)
+class _Split:
+    """The new windows (standardised) and the rehearsal set split four ways: train,
+    validation, calibration, test; `use_reh` whether rehearsal rows join the first three."""
+
+    z_new: np.ndarray
+    new: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]
+    z_reh: np.ndarray
+    reh: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]
+    use_reh: bool
+
+    def part(self, i: int) -> np.ndarray:
+        """Part `i` of the new windows, with the rehearsal set's when it is used."""
+        if self.use_reh:
+            return np.concatenate([self.z_new[self.new[i]], self.z_reh[self.reh[i]]])
+        return self.z_new[self.new[i]]
+
+
+def _split(old: OldModel, x_new: np.ndarray, reh: Rehearsal | None, s: Settings) -> _Split:
     z_new = old.z(x_new)
     n_tr, n_va, n_ca, n_te = split_four(len(z_new), s.seed)
     if reh is not None:
@@ -402,56 +409,97 @@ def rebaseline(old: OldModel, x_new: np.ndarray, rehearsal: Rehearsal | None, s:
     else:
         z_reh = np.empty((0, z_new.shape[1]))
         r_tr = r_va = r_ca = r_te = np.empty(0, np.int64)
-    use_reh = s.train_on_rehearsal and reh is not None
-    z_train = np.concatenate([z_new[n_tr], z_reh[r_tr]]) if use_reh else z_new[n_tr]
-    z_val = np.concatenate([z_new[n_va], z_reh[r_va]]) if use_reh else z_new[n_va]
-    ft = refit_linear(old.layers, z_train, z_val) if is_linear(old.layers) else \
-        fine_tune(old.layers, z_train, z_val, s)
-    cal_z = np.concatenate([z_new[n_ca], z_reh[r_ca]]) if use_reh else z_new[n_ca]
-    c = old.calibration
-    cal = calibrate(score(ft.layers, cal_z),
-                    quantile=float(c.get("quantile", DEFAULT_QUANTILE)),
-                    margin=float(c.get("margin", DEFAULT_MARGIN)),
-                    clear_ratio=float(c.get("clear_ratio", DEFAULT_CLEAR_RATIO)),
-                    min_windows=min(20, len(cal_z)))
-    test = score(ft.layers, z_new[n_te])
-    fa_rate = float(np.mean(test > cal.threshold))
-    raised = sum(1 for _, t in run_detector(test, cal.threshold, cal.clear_threshold,
-                                            s.detector) if t is Transition.RAISED)
-    old_test = numpy_scores(old.layers, z_new[n_te])
-    figures.update({
-        "split": {"train": len(n_tr), "val": len(n_va), "calib": len(n_ca), "test": len(n_te),
-                  "rehearsal_train": len(r_tr) if use_reh else 0,
-                  "rehearsal_calib": len(r_ca) if use_reh else 0,
-                  "rehearsal_test": len(r_te)},
-        "fine_tune": {"epochs_run": ft.epochs_run, "best_epoch": ft.best_epoch,
-                      "val_loss_before": _r(ft.val_loss_before), "val_loss": _r(ft.val_loss),
-                      "train_loss": _r(ft.train_loss)},
-        "old_threshold": _r(old.threshold), "threshold": _r(cal.threshold),
-        "clear_threshold": _r(cal.clear_threshold),
-        "old_false_alarm_rate": _r(np.mean(old_test > old.threshold)),
-        "false_alarm_rate": _r(fa_rate), "false_alarm_budget": s.false_alarm_budget,
-        "raised_on_test": raised,
-    })
-    reasons = []
-    if fa_rate > s.false_alarm_budget:
-        reasons.append(f"false-alarm rate on held-out new-normal windows {fa_rate:.3g} is "
-                       f"over the budget {s.false_alarm_budget:g}")
-    if reh is not None and len(r_te):
-        before = float(np.mean(numpy_scores(old.layers, z_reh[r_te])))
-        after_s = numpy_scores(ft.layers, z_reh[r_te])
+    return _Split(z_new, (n_tr, n_va, n_ca, n_te), z_reh, (r_tr, r_va, r_ca, r_te),
+                  s.train_on_rehearsal and reh is not None)
+
+
+def _rehearsal_check(old: OldModel, ft: FineTune, sp: _Split, has_reh: bool, threshold: float,
+                     s: Settings, figures: dict[str, Any], reasons: list[str]) -> None:
+    """Does the new model still know the rehearsal set (the conditions trained before)?"""
+    r_te = sp.reh[3]
+    if has_reh and len(r_te):
+        before = float(np.mean(numpy_scores(old.layers, sp.z_reh[r_te])))
+        after_s = numpy_scores(ft.layers, sp.z_reh[r_te])
         after = float(np.mean(after_s))
         ratio = after / before if before > 0 else float("inf")
         figures.update({"rehearsal_score_old": _r(before), "rehearsal_score": _r(after),
                         "rehearsal_ratio": _r(ratio) if np.isfinite(ratio) else None,
                         "rehearsal_tolerance": s.rehearsal_tolerance,
-                        "rehearsal_false_alarm_rate": _r(np.mean(after_s > cal.threshold))})
+                        "rehearsal_false_alarm_rate": _r(np.mean(after_s > threshold))})
         if ratio > s.rehearsal_tolerance:
             reasons.append(f"the score on the rehearsal set grew {ratio:.3g}x (tolerance "
                            f"{s.rehearsal_tolerance:g}): the model would forget what it knew")
     else:
         figures["rehearsal_ratio"] = None
         reasons.append("no rehearsal set: the model cannot be checked for forgetting")
+
+
+def _held_out(old: OldModel, ft: FineTune, sp: _Split,
+              score: Callable[[list[DenseLayer], np.ndarray], np.ndarray], threshold: float,
+              clear_threshold: float, s: Settings) -> tuple[float, dict[str, Any]]:
+    """The new model on the held-out new windows: its false-alarm rate, and the figures
+    of the split, the fine-tuning and the test."""
+    n_tr, n_va, n_ca, n_te = sp.new
+    test = score(ft.layers, sp.z_new[n_te])
+    fa_rate = float(np.mean(test > threshold))
+    raised = sum(1 for _, t in run_detector(test, threshold, clear_threshold, s.detector)
+                 if t is Transition.RAISED)
+    old_test = numpy_scores(old.layers, sp.z_new[n_te])
+    r_tr, _, r_ca, r_te = sp.reh
+    return fa_rate, {
+        "split": {"train": len(n_tr), "val": len(n_va), "calib": len(n_ca), "test": len(n_te),
+                  "rehearsal_train": len(r_tr) if sp.use_reh else 0,
+                  "rehearsal_calib": len(r_ca) if sp.use_reh else 0,
+                  "rehearsal_test": len(r_te)},
+        "fine_tune": {"epochs_run": ft.epochs_run, "best_epoch": ft.best_epoch,
+                      "val_loss_before": _r(ft.val_loss_before), "val_loss": _r(ft.val_loss),
+                      "train_loss": _r(ft.train_loss)},
+        "old_threshold": _r(old.threshold), "threshold": _r(threshold),
+        "clear_threshold": _r(clear_threshold),
+        "old_false_alarm_rate": _r(np.mean(old_test > old.threshold)),
+        "false_alarm_rate": _r(fa_rate), "false_alarm_budget": s.false_alarm_budget,
+        "raised_on_test": raised,
+    }
+
+
+def rebaseline(old: OldModel, x_new: np.ndarray, rehearsal: Rehearsal | None, s: Settings, *,
+               accept_shift: bool,
+               score_fn: Callable[[list[DenseLayer], np.ndarray], np.ndarray] | None = None
+               ) -> Outcome:
+    """Run one rebaseline (module docstring); `x_new` rows are in `old.feature_names` order.
+
+    `score_fn(layers, z)` scores standardised rows as the daemon will (onnxruntime on
+    the exported model); numpy's forward pass when not given.
+    """
+    x_new = _check_new(old, x_new)
+    score = score_fn or (lambda layers, z: numpy_scores(layers, z))
+    figures: dict[str, Any] = {"old_version": old.version, "n_new": len(x_new),
+                               "settings": s.as_json(), "accept_shift": accept_shift}
+    figures.update(shift_of(old, x_new))
+    over = figures["shift"] > s.max_shift
+    figures["shift_exceeded"] = bool(over)
+    if over and not accept_shift:
+        return _refusal(figures, s)
+    reh = rehearsal if rehearsal is not None and rehearsal.size else None
+    if reh is not None and tuple(reh.feature_names) != old.feature_names:
+        raise RebaselineError("the rehearsal set's features differ from the model's")
+    sp = _split(old, x_new, reh, s)
+    ft = refit_linear(old.layers, sp.part(0), sp.part(1)) if is_linear(old.layers) else \
+        fine_tune(old.layers, sp.part(0), sp.part(1), s)
+    cal_z = sp.part(2)
+    c = old.calibration
+    cal = calibrate(score(ft.layers, cal_z),
+                    quantile=float(c.get("quantile", DEFAULT_QUANTILE)),
+                    margin=float(c.get("margin", DEFAULT_MARGIN)),
+                    clear_ratio=float(c.get("clear_ratio", DEFAULT_CLEAR_RATIO)),
+                    min_windows=min(20, len(cal_z)))
+    fa_rate, held_out = _held_out(old, ft, sp, score, cal.threshold, cal.clear_threshold, s)
+    figures.update(held_out)
+    reasons = []
+    if fa_rate > s.false_alarm_budget:
+        reasons.append(f"false-alarm rate on held-out new-normal windows {fa_rate:.3g} is "
+                       f"over the budget {s.false_alarm_budget:g}")
+    _rehearsal_check(old, ft, sp, reh is not None, cal.threshold, s, figures, reasons)
     new_reh = reservoir(x_new, old.feature_names, s.rehearsal_size, seed=s.seed,
                         start=reh)
     verdict = Verdict.REJECTED if reasons else Verdict.ACCEPTED

@@ -25,9 +25,12 @@ import os
 import sys
 import time
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+
+if TYPE_CHECKING:
+    from agent.learning.rebaseline import OldModel, Outcome
 
 JOB_JSON = "job.json"
 WINDOWS_NPZ = "windows.npz"
@@ -62,22 +65,11 @@ def _ort_scores(layers: list[Any], z: np.ndarray) -> np.ndarray:
     return np.mean((z32 - out).astype(np.float64) ** 2, axis=1)
 
 
-def run_job(job_dir: Path) -> dict[str, Any]:
-    """Carry out the job in `job_dir` and return the result document (also written)."""
-    from datetime import UTC, datetime
-
-    from agent import __version__
-    from agent.commission.export import export_dense
-    from agent.core.detector import DetectorParams
-    from agent.learning.rebaseline import OldModel, Settings, Verdict, layers_from_onnx, rebaseline
+def _old_model(base: Path) -> tuple[OldModel, dict[str, Any]]:
+    """The base version as `OldModel`, and its model.json document."""
+    from agent.learning.rebaseline import OldModel, layers_from_onnx
     from agent.models.bundle import MODEL_JSON, MODEL_ONNX
-    from agent.models.store import ModelStore, read_rehearsal
 
-    t0 = time.monotonic()
-    job = json.loads((job_dir / JOB_JSON).read_text(encoding="utf-8"))
-    store = ModelStore(job["store"]["root"], job["store"]["keep"])
-    asset, mode = job["asset"], job["mode"]
-    base = store.version_path(asset, mode, int(job["base_version"]))
     doc = json.loads((base / MODEL_JSON).read_text(encoding="utf-8"))
     layers = layers_from_onnx((base / MODEL_ONNX).read_bytes())
     old = OldModel(layers, tuple(doc["feature_names"]),
@@ -85,6 +77,49 @@ def run_job(job_dir: Path) -> dict[str, Any]:
                    np.asarray(doc["scaler"]["scale"], np.float64),
                    float(doc["threshold"]), float(doc["clear_threshold"]), int(doc["version"]),
                    dict(doc.get("calibration", {})))
+    return old, doc
+
+
+def _new_doc(doc: dict[str, Any], job: dict[str, Any], old: OldModel, out: Outcome, version: int,
+             starts: np.ndarray) -> dict[str, Any]:
+    """The new version's model.json: the base's, with the new threshold, calibration,
+    training summary and lineage."""
+    from datetime import UTC, datetime
+
+    from agent import __version__
+
+    doc = {k: v for k, v in doc.items() if k not in ("format", "format_version")}
+    now = datetime.now(UTC).isoformat(timespec="seconds").replace("+00:00", "Z")
+    training = dict(doc.get("training", {}))
+    training["rebaseline"] = {"n_windows": len(starts),
+                              "time_span": {"start": float(starts.min()),
+                                            "end": float(starts.max())},
+                              "rehearsal_windows": out.rehearsal.size if out.rehearsal else 0}
+    doc.update({
+        "version": version, "threshold": out.threshold,
+        "clear_threshold": out.clear_threshold,
+        "calibration": {**(out.calibration or {}), "method": "quantile",
+                        "data": "held-out new-normal + rehearsal windows"},
+        "created": now, "watchkeep_version": __version__, "training": training,
+        "lineage": {"method": "rebaseline", "parent": old.version,
+                    "request": job["request"], "validation": out.figures},
+    })
+    return doc
+
+
+def run_job(job_dir: Path) -> dict[str, Any]:
+    """Carry out the job in `job_dir` and return the result document (also written)."""
+    from agent.commission.export import export_dense
+    from agent.core.detector import DetectorParams
+    from agent.learning.rebaseline import Settings, Verdict, rebaseline
+    from agent.models.store import ModelStore, read_rehearsal
+
+    t0 = time.monotonic()
+    job = json.loads((job_dir / JOB_JSON).read_text(encoding="utf-8"))
+    store = ModelStore(job["store"]["root"], job["store"]["keep"])
+    asset, mode = job["asset"], job["mode"]
+    base = store.version_path(asset, mode, int(job["base_version"]))
+    old, doc = _old_model(base)
     with np.load(job_dir / WINDOWS_NPZ, allow_pickle=False) as z:
         x_new = np.asarray(z["features"], np.float64)
         starts = np.asarray(z["window_start"], np.float64)
@@ -101,27 +136,10 @@ def run_job(job_dir: Path) -> dict[str, Any]:
     if out.verdict is Verdict.ACCEPTED:
         assert out.layers is not None and out.threshold is not None
         version = int(job["new_version"])
-        for k in ("format", "format_version"):
-            doc.pop(k, None)
-        now = datetime.now(UTC).isoformat(timespec="seconds").replace("+00:00", "Z")
-        training = dict(doc.get("training", {}))
-        training["rebaseline"] = {"n_windows": len(x_new),
-                                  "time_span": {"start": float(starts.min()),
-                                                "end": float(starts.max())},
-                                  "rehearsal_windows": out.rehearsal.size if out.rehearsal
-                                  else 0}
-        doc.update({
-            "version": version, "threshold": out.threshold,
-            "clear_threshold": out.clear_threshold,
-            "calibration": {**(out.calibration or {}), "method": "quantile",
-                            "data": "held-out new-normal + rehearsal windows"},
-            "created": now, "watchkeep_version": __version__, "training": training,
-            "lineage": {"method": "rebaseline", "parent": old.version,
-                        "request": job["request"], "validation": out.figures},
-        })
         model_bytes = export_dense(out.layers, doc=f"watchkeep autoencoder {asset}/{mode} "
                                                    f"v{version} (rebaselined)")
-        store.write_version(asset, mode, version, model_bytes, doc, out.rehearsal)
+        store.write_version(asset, mode, version, model_bytes,
+                            _new_doc(doc, job, old, out, version, starts), out.rehearsal)
         result["version"] = version
     result["train_time_s"] = round(time.monotonic() - t0, 3)
     write_json(job_dir / RESULT_JSON, result)
