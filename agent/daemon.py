@@ -33,9 +33,10 @@ from agent.ingest.buffers import Buffers, Ingest, IngestHandler
 from agent.ingest.parent import ProcessIngest
 from agent.learning.commands import CommandReceiver
 from agent.learning.manager import RebaselineManager
+from agent.ops.http_server import HttpServer
 from agent.ops.logs import kv
 from agent.ops.loop import IngestFeedback, LoopLock, PipelineLoop
-from agent.ops.metrics import HttpServer, Metrics
+from agent.ops.metrics import Metrics
 from agent.ops.notify import Notifier
 from agent.ops.reload import Reloader
 from agent.pipeline.builder import build_pipeline, load_runtimes

@@ -62,3 +62,9 @@ class OutboxError(WatchkeepError):
     """The store-and-forward database cannot be opened or written."""
 
     exit_code = 5
+
+
+class RebaselineError(WatchkeepError):
+    """A rebaseline request or job that cannot be carried out."""
+
+    exit_code = 7

@@ -159,7 +159,8 @@ def cmd_models(args: argparse.Namespace, *, out: TextIO | None = None) -> int:
 
 def _adopt(args: argparse.Namespace, out: TextIO) -> int:
     from agent.commission.dataset import read_dataset
-    from agent.learning.rebaseline import DEFAULT_REHEARSAL_SIZE, reservoir
+    from agent.config.rebaseline import DEFAULT_REHEARSAL_SIZE
+    from agent.learning.rehearsal import reservoir
     from agent.models.bundle import load_bundle
 
     store = _store_from(args)

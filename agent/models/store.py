@@ -35,7 +35,7 @@ import numpy as np
 from agent.config.rebaseline import DEFAULT_KEEP  # numpy-free, for the config
 from agent.errors import BundleError
 from agent.fsutil import FileContent, fsync_dir, replace_dir
-from agent.learning.rebaseline import Rehearsal
+from agent.learning.rehearsal import Rehearsal
 from agent.models.bundle import FORMAT, FORMAT_VERSION, MODEL_JSON, MODEL_ONNX
 
 ACTIVE = "active"

@@ -30,10 +30,6 @@ from prometheus_client import (
 from prometheus_client.metrics_core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.registry import Collector
 
-# The HTTP server lives in agent.ops.http_server; importable from here too while the
-# daemon still imports it from this module.
-from agent.ops.http_server import HttpServer
-
 if TYPE_CHECKING:
     from agent.config.schema import Config
     from agent.pipeline.runtime import AssetRuntime
@@ -62,7 +58,7 @@ class PipelineView(Protocol):
     @property
     def buffers(self) -> _ChannelsByAsset: ...
 
-__all__ = ["FAMILIES", "WORK_BUCKETS", "Family", "HttpServer", "Kind", "Metrics",
+__all__ = ["FAMILIES", "WORK_BUCKETS", "Family", "Kind", "Metrics",
            "PlainFamily", "PlainSeries", "TickGauges"]
 
 # 50 µs to 5 s: one tick's features and a batch's inference run from well under a

@@ -29,13 +29,7 @@ MAX_FUNCTION_LINES = 60
 DECLARATIVE: dict[str, str] = {}
 
 # path: who is reworking it (issue 22).
-IN_PROGRESS: dict[str, str] = {
-    "agent/config/load.py": "the config/learning/reload helper",
-    "agent/learning/manager.py": "the config/learning/reload helper",
-    "agent/learning/rebaseline.py": "the config/learning/reload helper",
-    "agent/learning/worker.py": "the config/learning/reload helper",
-    "agent/daemon.py": "the config/learning/reload helper (composition root under 250)",
-}
+IN_PROGRESS: dict[str, str] = {}
 
 
 @dataclass(frozen=True)
