@@ -426,7 +426,7 @@ class SparkplugDecoder:
                                    f"ts {ts:.3f} is {ts - arrival:+.0f} s from now"))
                 continue
             if convert is None:
-                self._array(routes, ts, raw, dtype, kind, append)
+                self._array(routes, ts, raw, dtype, kind, append, arrival)
                 continue
             value = convert(raw)
             if not isfinite(value):  # a Float or Double only
@@ -458,9 +458,11 @@ class SparkplugDecoder:
         return True
 
     def _array(self, routes: list[Route], ts: float, raw: bytes, dtype: int, kind: int,
-               append: Callable[[tuple[Route, float, float | Block]], None]) -> None:
+               append: Callable[[tuple[Route, float, float | Block]], None],
+               arrival: float) -> None:
         """An array metric: one block of its values for each route (none, with a note,
-        when the array is malformed or holds a non-finite value)."""
+        when the array is malformed, holds a non-finite value, or ends beyond the clock
+        skew of `arrival`)."""
         try:
             values = array_values(raw, dtype, kind)
         except ValueError as exc:
@@ -472,7 +474,16 @@ class SparkplugDecoder:
             self.notes.append((Note.REJECTED, Reason.NON_FINITE, "array sample"))
             return
         for r in routes:
-            append((r, ts, Block(ts, r.channel.rate_hz, values)))
+            block = Block(ts, r.channel.rate_hz, values)
+            # The block's span is bounded like its first time, as for json-batch
+            # (decode.py): its last sample must be within the clock skew too.
+            last = block.time_of(len(values) - 1)
+            if not abs(last - arrival) <= self.max_skew_s:
+                self.notes.append((Note.REJECTED, Reason.CLOCK_SKEW,
+                                   f"an array of {len(values)} samples ends "
+                                   f"{last - arrival:+.0f} s from now"))
+                continue
+            append((r, ts, block))
 
     def _unknown(self, unknown: int, group: str, node_id: str, arrival: float) -> None:
         """Metrics not in the birth: counted, and the edge node asked for a rebirth."""
