@@ -25,7 +25,7 @@ MAX_PAYLOAD_BYTES = 262_144  # ingest.max_payload_bytes, the default
 @functools.cache
 def demo_config() -> Any:
     """The demo plant's daemon config (its bundles need not exist)."""
-    from agent.config import load_config
+    from agent.config.load import load_config
 
     return load_config(DEMO_CONFIG, require_bundles=False)
 

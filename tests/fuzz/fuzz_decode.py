@@ -19,7 +19,7 @@ from typing import Any
 import numpy as np
 from hypothesis import strategies as st
 
-from agent.config import ChannelConfig, Decoder, parse_config
+from agent.config.load import ChannelConfig, Decoder, parse_config
 from agent.core.decode import RATE_TOLERANCE, Block, Reason, Rejected, decode_message
 from tests.fuzz.common import (
     MAX_PAYLOAD_BYTES,

@@ -20,7 +20,7 @@ from typing import Any
 
 from hypothesis import strategies as st
 
-from agent.config import Config, parse_config
+from agent.config.load import Config, parse_config
 from agent.core.decode import Block, Reason, Rejected
 from agent.core.routing import channel_routes
 from agent.core.sparkplug import Note, SparkplugDecoder
