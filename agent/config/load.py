@@ -418,10 +418,16 @@ class _Reader:
             return None if default is _REQUIRED else default
         return float(v) if kind == "num" else v
 
-    def path(self, v: str | None) -> Path | None:
+    def path(self, v: str | None, where: str) -> Path | None:
+        """A path setting (`where` is its key path) made absolute against the config's
+        directory, `~` and `~user` expanded."""
         if v is None:
             return None
-        p = Path(v).expanduser()
+        try:
+            p = Path(v).expanduser()
+        except RuntimeError:  # `~name` of no user here, or no home directory to expand to
+            self.bad(where, "a path whose leading ~ names a user of this machine", v)
+            p = Path(v)
         return p if p.is_absolute() else (self.base_dir / p)
 
 
@@ -541,9 +547,9 @@ def _broker(r: _Reader, node: Any, path: str, default_id: str, default_port: int
         tpath = f"{path}.tls"
         t = r.mapping(n["tls"], tpath,
                       ("ca_file", "cert_file", "key_file", "verify", "allow_insecure"))
-        ca = r.path(r.get(t, "ca_file", tpath, "str", None))
-        cert = r.path(r.get(t, "cert_file", tpath, "str", None))
-        key = r.path(r.get(t, "key_file", tpath, "str", None))
+        ca = r.path(r.get(t, "ca_file", tpath, "str", None), f"{tpath}.ca_file")
+        cert = r.path(r.get(t, "cert_file", tpath, "str", None), f"{tpath}.cert_file")
+        key = r.path(r.get(t, "key_file", tpath, "str", None), f"{tpath}.key_file")
         for label, p in (("ca_file", ca), ("cert_file", cert), ("key_file", key)):
             if p is not None and not p.is_file():
                 r.bad(f"{tpath}.{label}", "an existing file", found=str(p))
@@ -555,7 +561,8 @@ def _broker(r: _Reader, node: Any, path: str, default_id: str, default_port: int
             r.bad(f"{tpath}.verify", "true (set allow_insecure: true as well to accept an "
                   "unverified TLS connection)", verify)
         tls = TlsConfig(ca, cert, key, verify, insecure)
-    pw_file = r.path(r.get(n, "password_file", path, "str", None))
+    pw_file = r.path(r.get(n, "password_file", path, "str", None),
+                     f"{path}.password_file")
     if pw_file is not None and n.get("password") is not None:
         # Two sources for one secret: which one wins would be a silent surprise.
         r.bad(f"{path}.password_file", "either password or password_file, not both")
@@ -771,7 +778,7 @@ def _modes(r: _Reader, node: Any, path: str, channels: dict[str, ChannelConfig]
             r.bad(f"{where}.code", "either code or a min/max band, not both", code)
         if lo is not None and hi is not None and lo >= hi:
             r.bad(f"{where}.max", f"more than min ({lo:g})", hi)
-        bundle = r.path(r.get(m, "bundle", where, "str", None))
+        bundle = r.path(r.get(m, "bundle", where, "str", None), f"{where}.bundle")
         r.bundle_dir(bundle, f"{where}.bundle")
         states.append(ModeSpec(str(mname), lo, hi, code, bundle,
                                r.get(m, "scored", where, "bool", True),
@@ -845,7 +852,7 @@ def _asset(r: _Reader, node: Any, path: str) -> AssetConfig | None:
     if k > nn:
         r.bad(f"{dpath}.raise_k", f"at most raise_n ({nn})", k)
         k = nn
-    bundle = r.path(r.get(n, "bundle", path, "str", None))
+    bundle = r.path(r.get(n, "bundle", path, "str", None), f"{path}.bundle")
     r.bundle_dir(bundle, f"{path}.bundle")
     by_name = {c.name: c for c in channels}
     speed = r.get(n, "speed_channel", path, "str", None)
@@ -890,7 +897,8 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
     prefix = r.get(top, "topic_prefix", "", "str", f"watchkeep/{site}/{gateway}", _topic_ok,
                    "a topic prefix without wildcards")
     prefix = prefix.rstrip("/")
-    state_dir = r.path(r.get(top, "state_dir", "", "str", "/var/lib/watchkeep")) \
+    state_dir = r.path(r.get(top, "state_dir", "", "str", "/var/lib/watchkeep"),
+                       "state_dir") \
         or Path("/var/lib/watchkeep")
     role = f"watchkeep-{site}-{gateway}"
     local = _broker(r, top.get("local_broker"), "local_broker", f"{role}-ingest", 1883)
@@ -925,7 +933,8 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
     sync = r.get(ob, "synchronous", "outbox", "str", "FULL", lambda v: v in ("FULL", "NORMAL"),
                  "FULL or NORMAL")
     outbox = OutboxConfig(
-        path=r.path(r.get(ob, "path", "outbox", "str", None)) or state_dir / "outbox.sqlite",
+        path=r.path(r.get(ob, "path", "outbox", "str", None), "outbox.path")
+        or state_dir / "outbox.sqlite",
         synchronous=Synchronous(sync),
         max_rows=r.get(ob, "max_rows", "outbox", "int", 100_000, lambda v: v >= 10,
                        "an integer >= 10"),
@@ -1045,14 +1054,25 @@ def load_config(path: str | Path, *, require_bundles: bool = True) -> Config:
     """Read and check a YAML config file (`parse_config` for `require_bundles`)."""
     p = Path(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        raw = p.read_bytes()
     except OSError as exc:
         raise ConfigError([ConfigProblem(str(p), "a readable file", exc.strerror or str(exc))]
                           ) from exc
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw.count(b"\n", 0, exc.start) + 1
+        column = exc.start - (raw.rfind(b"\n", 0, exc.start) + 1) + 1
+        raise ConfigError([ConfigProblem(f"line {line}, column {column}", "UTF-8 text",
+                                         f"byte 0x{raw[exc.start]:02x}")], str(p)) from None
     import yaml  # here, not at the top: the ingest child unpickles config, never loads it
 
     try:
         doc = yaml_load(text)
+    except RecursionError:  # PyYAML composes nested collections recursively
+        raise ConfigError([ConfigProblem("(file)", "YAML nested less deeply",
+                                         "collections nested past the parser's recursion "
+                                         "limit")], str(p)) from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = (f"line {mark.line + 1}, column {mark.column + 1}" if mark is not None

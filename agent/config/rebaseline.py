@@ -75,13 +75,15 @@ class RebaselineConfig:
 def parse_rebaseline(r: Any, node: Any, path: str, state_dir: Path) -> RebaselineConfig:
     """Read the section at `path` with the loader's reader `r`; defaults for what is unset."""
     d = r.mapping(node, path, KEYS)
-    sock = r.path(r.get(d, "admin_socket", path, "str", None)) or state_dir / "admin.sock"
+    sock = r.path(r.get(d, "admin_socket", path, "str", None), f"{path}.admin_socket") \
+        or state_dir / "admin.sock"
     if len(str(sock).encode()) > 107:  # sun_path holds 108 bytes with the final NUL
         r.bad(f"{path}.admin_socket", "a path of at most 107 bytes (a unix socket limit)",
               str(sock))
     return RebaselineConfig(
         admin_socket=sock,
-        models_dir=r.path(r.get(d, "models_dir", path, "str", None)) or state_dir / "models",
+        models_dir=r.path(r.get(d, "models_dir", path, "str", None), f"{path}.models_dir")
+        or state_dir / "models",
         enabled=r.get(d, "enabled", path, "bool", True),
         windows=r.get(d, "windows", path, "int", DEFAULT_WINDOWS,
                       lambda v: MIN_NEW_WINDOWS <= v <= MAX_WINDOWS,

@@ -11,7 +11,7 @@ from __future__ import annotations
 import os
 
 import pytest
-from hypothesis import HealthCheck, given, settings
+from hypothesis import HealthCheck, Phase, given, settings
 from hypothesis import strategies as st
 
 from tests.fuzz import harness
@@ -35,8 +35,10 @@ def test_structured_inputs_hold(name: str) -> None:
     """Hypothesis' structured inputs of each target pass its oracle."""
     target = harness.load(name)
 
+    # No shrinking: some targets' examples take tens of milliseconds, and a shrink runs
+    # thousands; the failing input is printed as drawn (and derandomized runs repeat it).
     @settings(max_examples=max(1, int(target.examples * FACTOR)), derandomize=not RANDOM,
-              deadline=None, database=None,
+              deadline=None, database=None, phases=[Phase.explicit, Phase.generate],
               suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large,
                                      HealthCheck.filter_too_much])
     @given(st.data())
