@@ -91,6 +91,14 @@ def _need(doc: Mapping[str, Any], key: str, kind: type | tuple[type, ...], path:
     return value
 
 
+def _float(doc: Mapping[str, Any], key: str, path: str) -> float:
+    """A number of model.json as a float; an integer past float64's range is refused."""
+    try:
+        return float(_need(doc, key, (int, float), path))
+    except OverflowError:
+        raise BundleError(path, f"model.json: {key} is out of range") from None
+
+
 def parse_meta(doc: Mapping[str, Any], path: str) -> BundleMeta:
     """Check a decoded `model.json` and return it as typed values."""
     if doc.get("format") != FORMAT:
@@ -107,7 +115,7 @@ def parse_meta(doc: Mapping[str, Any], path: str) -> BundleMeta:
     try:
         mean = np.asarray(scaler.get("mean", []), dtype=np.float64)
         scale = np.asarray(scaler.get("scale", []), dtype=np.float64)
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):  # Overflow: an integer past float64
         raise BundleError(path, "model.json: scaler mean/scale must be lists of numbers"
                           ) from None
     if mean.shape != (len(names),) or scale.shape != (len(names),):
@@ -118,8 +126,8 @@ def parse_meta(doc: Mapping[str, Any], path: str) -> BundleMeta:
     if score.get("function") != "mse":
         raise BundleError(path, f"model.json: score function {score.get('function')!r} "
                                 "is not supported (only 'mse')")
-    threshold = float(_need(doc, "threshold", (int, float), path))
-    clear = float(_need(doc, "clear_threshold", (int, float), path))
+    threshold = _float(doc, "threshold", path)
+    clear = _float(doc, "clear_threshold", path)
     if not (math.isfinite(threshold) and threshold > 0):
         raise BundleError(path, "model.json: threshold must be a positive number")
     if not (math.isfinite(clear) and 0 < clear <= threshold):

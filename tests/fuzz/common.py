@@ -61,6 +61,7 @@ awkward_numbers = st.one_of(
     st.floats(allow_nan=True, allow_infinity=True),
     st.sampled_from([0.0, -0.0, 5e-324, -5e-324, 1e308, -1e308, 2.0**53, 1e-300]),
     st.integers(min_value=-(10**400), max_value=10**400),
+    st.sampled_from([2**1024, -(2**1024), 10**400, 2**63, -(2**63) - 1]),  # past float64
     st.booleans(), st.none(), st.text(max_size=6), st.just([]), st.just({}),
 )
 # Times around the gateway clock: near it, past the clock-skew limit either way, absurd.

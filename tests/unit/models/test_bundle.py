@@ -214,6 +214,13 @@ def test_missing_keys_are_named(key: str) -> None:
     ({"training": [1, 2]}, "training has the wrong type (list)"),
     ({"mode": 3}, "mode has the wrong type (int)"),
     ({"created": 1796119200}, "created has the wrong type (int)"),
+    # Integers past float64's range (JSON allows them): an OverflowError escaped
+    # parse_meta; found by the bundle-json fuzz target.
+    ({"threshold": 2**1024}, "threshold is out of range"),
+    ({"clear_threshold": -(10**400)}, "clear_threshold is out of range"),
+    ({"scaler": {"mean": [0.0] * 5, "scale": -(10**400)}}, "must be lists of numbers"),
+    ({"scaler": {"mean": [2**1024] + [0.0] * 4, "scale": [1.0] * 5}},
+     "must be lists of numbers"),
 ])
 def test_bad_values_give_a_clear_reason(over: dict[str, Any], expected: str) -> None:
     doc = {"format": "watchkeep-bundle", "format_version": 1, **meta(**over)}
