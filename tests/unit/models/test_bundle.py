@@ -252,6 +252,20 @@ def test_a_file_that_is_not_onnx(tmp_path: Path, content: bytes) -> None:
     assert reason(p).startswith("model.onnx is not a loadable ONNX model"), reason(p)
 
 
+def test_a_dimension_name_that_is_not_utf8(tmp_path: Path) -> None:
+    """A symbolic dimension whose name is not UTF-8 (protobuf keeps the bytes; onnxruntime
+    raised UnicodeDecodeError when the input's shape was read, which escaped load_bundle):
+    found by the bundle-onnx fuzz target, which flipped a bit of the 'N' below."""
+    def build():
+        return [helper.make_node("Identity", ["x"], ["recon"])], []
+
+    model = graph_model(build, batch="N")
+    assert model.count(b"\x12\x01N") == 2  # dim_param "N" of the input and the output
+    p = make(tmp_path, model.replace(b"\x12\x01N", b"\x12\x01\xce", 1))
+    assert reason(p).startswith("model.onnx declares an input or output whose name or "
+                                "dimension is not UTF-8 text"), reason(p)
+
+
 def test_input_that_is_not_float32(tmp_path: Path) -> None:
     def build():
         return [helper.make_node("Cast", ["x"], ["recon"], to=TensorProto.FLOAT)], []
