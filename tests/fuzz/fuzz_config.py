@@ -134,5 +134,5 @@ def strategy() -> Any:
     return st.one_of(mutated(), text)
 
 
-TARGET = Target("config", one_input, seeds, strategy, examples=60, max_len=65536,
+TARGET = Target("config", one_input, seeds, strategy, examples=40, max_len=65536,
                 timeout_s=20)

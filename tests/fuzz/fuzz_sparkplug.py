@@ -266,5 +266,5 @@ def strategy() -> Any:
         st.lists(st.sampled_from(session()) | message, max_size=10).map(pack))
 
 
-TARGET = Target("sparkplug-b", one_input, seeds, strategy, examples=300, max_len=65536)
+TARGET = Target("sparkplug-b", one_input, seeds, strategy, examples=200, max_len=65536)
 __all__ = ["TARGET", "check_message", "decoder", "pack", "payload", "session"]
