@@ -10,11 +10,15 @@ one does. After three good windows the fuzzed messages arrive (on one of A's top
 B's, or topics no channel reads), then sixteen more good windows.
 
 Input: records of [topic selector byte][payload length, 3 bytes big-endian][payload],
-at most four. The contract (issue 20: no input may stop other channels or assets): no
-exception from `handle` or `tick`; no asset's work fails (`watchkeep_asset_errors_total`
-stays 0); the asset not written to scores exactly the windows it scores without the
-fuzzed messages; the asset written to is scoring again in the last four windows (a
-message inside the time-base guard's tolerance may cost it up to ~10 s of data), unless
+at most four. An input of odd length goes through ingest as `ingest.worker: process`
+runs it (the child's decode and batches, pickled, applied by the daemon's side), an
+even one as `thread` runs it.
+
+The contract (issue 20: no input may stop other channels or assets): no exception from
+`handle` or `tick`; no asset's work fails (`watchkeep_asset_errors_total` stays 0); the
+asset not written to scores exactly the windows it scores without the fuzzed messages;
+the asset written to is scoring again in the last four windows (a message inside the
+time-base guard's tolerance may cost it up to ~10 s of data), unless
 the guard accepted a clock step on it (`_stepped`).
 """
 
@@ -22,6 +26,7 @@ from __future__ import annotations
 
 import functools
 import logging
+import pickle
 import shutil
 import tempfile
 from dataclasses import dataclass, field
@@ -172,10 +177,33 @@ def pack(msgs: list[tuple[int, bytes]]) -> bytes:
     return b"".join(bytes([t]) + len(p).to_bytes(3, "big") + p for t, p in msgs)
 
 
-class Run:
-    """One stream through a fresh daemon core: buffers, handler, pipeline."""
+class _Pipe:
+    """The child's end of the socket pair, in this process: each message is pickled as
+    on the real pipe and applied by the daemon's side as `ProcessIngest` applies what it
+    reads (`_read_until_end`); what the daemon cannot apply raises here."""
 
-    def __init__(self) -> None:
+    def __init__(self, parent: Any) -> None:
+        self.parent = parent
+
+    def send(self, msg: tuple[Any, ...]) -> None:
+        msg = pickle.loads(pickle.dumps(msg))
+        kind = msg[0]
+        if kind == "data":
+            self.parent._apply(msg)
+        elif kind == "counts":
+            self.parent._apply_counts(msg)
+        elif kind == "live":
+            self.parent._apply_liveness(msg)
+        else:
+            raise AssertionError(f"unexpected message from the ingest child: {msg!r}")
+
+
+class Run:
+    """One stream through a fresh daemon core: buffers, handler, pipeline. `process`:
+    ingest as `ingest.worker: process` does it (the child's handler and batches, the
+    daemon's `ProcessIngest` applying them), else as `thread` (one handler)."""
+
+    def __init__(self, process: bool = False) -> None:
         from prometheus_client import CollectorRegistry
 
         from agent.ingest.buffers import Buffers
@@ -192,15 +220,36 @@ class Run:
         self.buffers = Buffers(cfg)
         self.handler = IngestHandler(cfg, self.buffers, self.metrics, log)
         self.node = EdgeNode()
-        self.handler.publish = lambda topic, payload: setattr(self.node, "asked", True)
+        self.child: Any = None
+        if process:
+            import threading
+
+            from agent.ingest.child import _Generation, _Sender
+            from agent.ingest.parent import ProcessIngest
+
+            parent = ProcessIngest(cfg, self.handler, self.metrics, log)  # never started
+            self.child = _Generation(0, cfg, _Sender(_Pipe(parent)),  # type: ignore[arg-type]
+                                     threading.Event(), log)
+            self.decoder = self.child.handler
+        else:
+            self.decoder = self.handler
+        self.decoder.publish = lambda topic, payload: setattr(self.node, "asked", True)
         runtimes = [AssetRuntime.build(a, bundles[a.name], None) for a in cfg.assets]
         self.pipeline = Pipeline(cfg, self.buffers, _NullSink(), self.metrics, log, runtimes)
         self.scored: dict[str, list[float]] = {"A": [], "B": []}
 
+    def handle(self, topic: str, payload: bytes, arrival: float) -> None:
+        self.decoder.handle(topic, payload, arrival)
+        if self.child is not None:  # the child's flusher, after every message
+            self.child.batch.flush()
+            counts = self.child.counts()
+            if counts is not None:
+                self.child.batch.sender.send(counts)
+
     def window(self, k: int) -> None:
         msgs = good_window(k, self.node)
         for arrival, topic, payload in msgs:
-            self.handler.handle(topic, payload, arrival)
+            self.handle(topic, payload, arrival)
         self.tick(msgs[-1][0] + 0.01)
 
     def tick(self, now: float) -> None:
@@ -216,7 +265,7 @@ class Run:
             self.window(k)
         at = T0 + FUZZ_AT + DELAY / 2
         for i, (topic, payload) in enumerate(fuzzed):
-            self.handler.handle(TOPICS[topic], payload, at + 0.001 * i)
+            self.handle(TOPICS[topic], payload, at + 0.001 * i)
         for k in range(FUZZ_AT, FUZZ_AT + AFTER):
             self.window(k)
 
@@ -227,17 +276,18 @@ class _NullSink:
 
 
 @functools.cache
-def baseline() -> dict[str, list[float]]:
+def baseline(process: bool) -> dict[str, list[float]]:
     """Windows scored after each tick with no fuzzed message."""
-    r = Run()
+    r = Run(process)
     r.run([])
     return r.scored
 
 
 def one_input(data: bytes) -> None:
     fuzzed = records(data)
-    base = baseline()
-    r = Run()
+    process = len(data) % 2 == 1  # half the inputs each way, deterministically
+    base = baseline(process)
+    r = Run(process)
     r.run(fuzzed)
     written = {FUZZED_ASSET[t] for t, _ in fuzzed} - {None}
     for a in "AB":
