@@ -190,6 +190,12 @@ class SparkplugDecoder:
                 if device in self._wanted[(group, node_id)]:
                     self._unborn(node, group, node_id, device, arrival)
                 return []
+            if not msg.HasField("seq"):
+                # A DBIRTH MUST carry one (tck-id-payloads-dbirth-seq). Without it no gap
+                # would show, so a birth that redeclared the metrics (another name behind
+                # an alias) would blind the device's channels until its next real birth.
+                raise Rejected(Reason.MALFORMED, f"{group}/{node_id}/{device}: DBIRTH "
+                               "without a sequence number")
             self._check_seq(node, msg, group, node_id, arrival)
             return self._dbirth(node, msg, group, node_id, device, arrival)
         if verb == "NDEATH":

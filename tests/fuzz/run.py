@@ -31,6 +31,10 @@ def main(argv: list[str]) -> None:
     _, packages = harness.MODULES[name]
     with atheris.instrument_imports(include=list(packages)):
         target = harness.load(name)
+        # Targets import some modules where they first need them (a daemon, the
+        # pipeline): one seed through the oracle here gets those instrumented too.
+        seeds = list(target.seeds())
+        target.one_input(seeds[0])
     if seeds_dir is not None:
         harness.write_seeds(target, seeds_dir)
     flags = [f"-max_len={target.max_len}", f"-timeout={target.timeout_s}"]

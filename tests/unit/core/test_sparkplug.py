@@ -212,6 +212,23 @@ def test_array_span_is_bounded_like_its_first_time(count: int, kept: bool) -> No
         assert [(n[0], n[1]) for n in dec.notes] == [(Note.REJECTED, Reason.CLOCK_SKEW)]
 
 
+def test_dbirth_without_a_sequence_number_is_refused() -> None:
+    """A DBIRTH without seq (which every DBIRTH MUST carry) is malformed and changes
+    nothing. Found by the ingest-tick fuzz target: one such DBIRTH naming 'PumP/Flow'
+    behind the flow metric's alias replaced the device's table, so every later DDATA by
+    that alias was skipped as a metric no channel reads; with no sequence number no gap
+    showed, no rebirth was asked for, and the channel had no data for good."""
+    dec = _decoder(_config({"flow": "Pump/Flow"}))
+    _born(dec, [FLOW])
+    dec.notes.clear()
+    with pytest.raises(Rejected) as info:
+        dec.decode(DBIRTH, _payload(None, [dict(FLOW, name="PumP/Flow")]), NOW)
+    assert info.value.reason is Reason.MALFORMED
+    got = dec.decode(DDATA, _payload(2, [{"alias": 1, "double_value": 4.0}]), NOW)
+    assert _values(got) == {"flow": (MS / 1000, 4.0)}
+    assert dec.notes == []
+
+
 def test_sequence_gap_and_wrap() -> None:
     """seq follows by one modulo 256 (tck-id-payloads-sequence-num-incrementing): 255 -> 0
     is no gap, a jump is one for every channel of the edge node."""
