@@ -190,12 +190,9 @@ class SparkplugDecoder:
                 if device in self._wanted[(group, node_id)]:
                     self._unborn(node, group, node_id, device, arrival)
                 return []
-            if not msg.HasField("seq"):
-                # A DBIRTH MUST carry one (tck-id-payloads-dbirth-seq). Without it no gap
-                # would show, so a birth that redeclared the metrics (another name behind
-                # an alias) would blind the device's channels until its next real birth.
-                raise Rejected(Reason.MALFORMED, f"{group}/{node_id}/{device}: DBIRTH "
-                               "without a sequence number")
+            if not msg.HasField("seq"):  # MUST have one (tck-id-payloads-dbirth-seq): else
+                # no gap shows, and one redeclaring an alias blinds a channel for good
+                raise Rejected(Reason.MALFORMED, "DBIRTH without a sequence number")
             self._check_seq(node, msg, group, node_id, arrival)
             return self._dbirth(node, msg, group, node_id, device, arrival)
         if verb == "NDEATH":
@@ -481,13 +478,10 @@ class SparkplugDecoder:
             return
         for r in routes:
             block = Block(ts, r.channel.rate_hz, values)
-            # The block's span is bounded like its first time, as for json-batch
-            # (decode.py): its last sample must be within the clock skew too.
-            last = block.time_of(len(values) - 1)
+            last = block.time_of(len(values) - 1)  # bounded like json-batch's (decode.py)
             if not abs(last - arrival) <= self.max_skew_s:
-                self.notes.append((Note.REJECTED, Reason.CLOCK_SKEW,
-                                   f"an array of {len(values)} samples ends "
-                                   f"{last - arrival:+.0f} s from now"))
+                self.notes.append((Note.REJECTED, Reason.CLOCK_SKEW, f"an array of "
+                                   f"{len(values)} samples ends {last - arrival:+.0f} s away"))
                 continue
             append((r, ts, block))
 
