@@ -326,6 +326,13 @@ def seeds() -> list[bytes]:
         (3, spb_payload(11, [{"alias": 1, "double_value": 1.0,
                               "timestamp": int((t + 280) * 1000)}], None)),
         (6, spb_payload(None, [{"name": "bdSeq", "datatype": UINT64, "long_value": 1}], None)),
+        # found here: a metric 5.6 s ahead (beyond timeout_s) blinded A for good
+        (3, spb_payload(2, [{"alias": 1, "double_value": 11.9,
+                             "timestamp": int((t + 5.62) * 1000)}], int((t + 0.5) * 1000))),
+        # found here: a DBIRTH without seq hiding the flow metric behind its alias
+        (4, spb_payload(None, [{"name": "PumP/Flow", "alias": 1, "datatype": DOUBLE,
+                                "double_value": 1.0, "timestamp": int(t * 1000)}],
+                        int(t * 1000))),
     ]
     out += [pack([p]) for p in probes]
     out.append(pack(probes[1:2] * 3))  # a clock step needs three messages to be followed
