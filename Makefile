@@ -4,7 +4,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed
 
-.PHONY: test demo bench lint typecheck clean test-deps dist deb powercut
+.PHONY: test demo bench lint typecheck clean test-deps dist deb powercut fuzz
 
 $(STAMP): pyproject.toml
 	$(PY) -m venv $(VENV)
@@ -41,6 +41,12 @@ bench: $(STAMP) test-deps
 # (FULL or NORMAL) are optional. Results in bench-results/powercut-<sync>.json.
 powercut: $(STAMP) test-deps
 	$(BIN)/python -m tests.faults.powercut --cuts $${CUTS:-50} --synchronous $${SYNC:-FULL}
+
+# Coverage-guided fuzzing (tests/fuzz, DEVELOPERS.md "Fuzzing"): every target under
+# atheris for FUZZ_SECONDS (60) each, or only FUZZ_TARGETS; corpora, logs and crash
+# inputs in .fuzz/<target>/. Prints executions, coverage and crashes per target.
+fuzz: $(STAMP)
+	$(BIN)/python -m tests.fuzz --seconds $${FUZZ_SECONDS:-60} $${FUZZ_TARGETS:-}
 
 lint: $(STAMP)
 	$(BIN)/ruff check agent simulator tests

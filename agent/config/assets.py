@@ -255,7 +255,7 @@ def _modes(r: Reader, node: Any, path: str, channels: dict[str, ChannelConfig]
             r.bad(f"{where}.code", "either code or a min/max band, not both", code)
         if lo is not None and hi is not None and lo >= hi:
             r.bad(f"{where}.max", f"more than min ({lo:g})", hi)
-        bundle = r.path(r.get_str(m, "bundle", where, None))
+        bundle = r.path(r.get_str(m, "bundle", where, None), f"{where}.bundle")
         r.bundle_dir(bundle, f"{where}.bundle")
         states.append(ModeSpec(str(mname), lo, hi, code, bundle,
                                r.get_bool(m, "scored", where, True),
@@ -329,7 +329,7 @@ def _asset(r: Reader, node: Any, path: str) -> AssetConfig | None:
     if k > nn:
         r.bad(f"{dpath}.raise_k", f"at most raise_n ({nn})", k)
         k = nn
-    bundle = r.path(r.get_str(n, "bundle", path, None))
+    bundle = r.path(r.get_str(n, "bundle", path, None), f"{path}.bundle")
     r.bundle_dir(bundle, f"{path}.bundle")
     by_name = {c.name: c for c in channels}
     speed = r.get_str(n, "speed_channel", path, None)

@@ -125,9 +125,9 @@ def _endpoints(r: Reader, n: dict[str, Any], path: str, default_port: int
 
 def _tls(r: Reader, node: Any, tpath: str) -> TlsConfig:
     t = r.mapping(node, tpath, ("ca_file", "cert_file", "key_file", "verify", "allow_insecure"))
-    ca = r.path(r.get_str(t, "ca_file", tpath, None))
-    cert = r.path(r.get_str(t, "cert_file", tpath, None))
-    key = r.path(r.get_str(t, "key_file", tpath, None))
+    ca = r.path(r.get_str(t, "ca_file", tpath, None), f"{tpath}.ca_file")
+    cert = r.path(r.get_str(t, "cert_file", tpath, None), f"{tpath}.cert_file")
+    key = r.path(r.get_str(t, "key_file", tpath, None), f"{tpath}.key_file")
     for label, p in (("ca_file", ca), ("cert_file", cert), ("key_file", key)):
         if p is not None and not p.is_file():
             r.bad(f"{tpath}.{label}", "an existing file", found=str(p))
@@ -157,7 +157,8 @@ def _broker(r: Reader, node: Any, path: str, default_id: str, default_port: int,
     protocol = r.get_str(n, "protocol", path, "3.1.1", lambda v: v in ("3.1.1", "5"),
                          "'3.1.1' or '5'")
     tls = _tls(r, n["tls"], f"{path}.tls") if n.get("tls") is not None else None
-    pw_file = r.path(r.get_str(n, "password_file", path, None))
+    pw_file = r.path(r.get_str(n, "password_file", path, None),
+                     f"{path}.password_file")
     if pw_file is not None and n.get("password") is not None:
         # Two sources for one secret: which one wins would be a silent surprise.
         r.bad(f"{path}.password_file", "either password or password_file, not both")
@@ -211,7 +212,8 @@ def _outbox(r: Reader, node: Any, state_dir: Path) -> OutboxConfig:
     sync = r.get_str(ob, "synchronous", "outbox", "FULL", lambda v: v in ("FULL", "NORMAL"),
                      "FULL or NORMAL")
     return OutboxConfig(
-        path=r.path(r.get_str(ob, "path", "outbox", None)) or state_dir / "outbox.sqlite",
+        path=r.path(r.get_str(ob, "path", "outbox", None), "outbox.path")
+        or state_dir / "outbox.sqlite",
         synchronous=Synchronous(sync),
         max_rows=r.get_int(ob, "max_rows", "outbox", 100_000, lambda v: v >= 10,
                            "an integer >= 10"),
@@ -240,13 +242,15 @@ def _http(r: Reader, node: Any) -> HttpConfig:
 def parse_rebaseline(r: Reader, node: Any, path: str, state_dir: Path) -> RebaselineConfig:
     """The `rebaseline:` section at `path`; defaults for what is unset."""
     d = r.mapping(node, path, REBASELINE_KEYS)
-    sock = r.path(r.get_str(d, "admin_socket", path, None)) or state_dir / "admin.sock"
+    sock = r.path(r.get_str(d, "admin_socket", path, None), f"{path}.admin_socket") \
+        or state_dir / "admin.sock"
     if len(str(sock).encode()) > 107:  # sun_path holds 108 bytes with the final NUL
         r.bad(f"{path}.admin_socket", "a path of at most 107 bytes (a unix socket limit)",
               str(sock))
     return RebaselineConfig(
         admin_socket=sock,
-        models_dir=r.path(r.get_str(d, "models_dir", path, None)) or state_dir / "models",
+        models_dir=r.path(r.get_str(d, "models_dir", path, None), f"{path}.models_dir")
+        or state_dir / "models",
         enabled=r.get_bool(d, "enabled", path, True),
         windows=r.get_int(d, "windows", path, DEFAULT_WINDOWS,
                           lambda v: MIN_NEW_WINDOWS <= v <= MAX_WINDOWS,
@@ -314,7 +318,7 @@ def parse_config(doc: Any, base_dir: Path, source: Path | None = None, *,
     gateway = r.get_str(top, "gateway", "", REQUIRED, is_name, f"a gateway {_NAME_WORDS}")
     prefix = r.get_str(top, "topic_prefix", "", f"watchkeep/{site}/{gateway}", is_topic,
                        "a topic prefix without wildcards").rstrip("/")
-    state_dir = r.path(r.get_str(top, "state_dir", "", "/var/lib/watchkeep")) \
+    state_dir = r.path(r.get_str(top, "state_dir", "", "/var/lib/watchkeep"), "state_dir") \
         or Path("/var/lib/watchkeep")
     role = f"watchkeep-{site}-{gateway}"
     local = _broker(r, top.get("local_broker"), "local_broker", f"{role}-ingest", 1883)
@@ -344,14 +348,25 @@ def load_config(path: str | Path, *, require_bundles: bool = True) -> Config:
     """Read and check a YAML config file (`parse_config` for `require_bundles`)."""
     p = Path(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        raw = p.read_bytes()
     except OSError as exc:
         raise ConfigError([ConfigProblem(str(p), "a readable file", exc.strerror or str(exc))]
                           ) from exc
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw.count(b"\n", 0, exc.start) + 1
+        column = exc.start - (raw.rfind(b"\n", 0, exc.start) + 1) + 1
+        raise ConfigError([ConfigProblem(f"line {line}, column {column}", "UTF-8 text",
+                                         f"byte 0x{raw[exc.start]:02x}")], str(p)) from None
     import yaml  # here, not at the top: the ingest child unpickles config, never loads it
 
     try:
         doc = yaml_load(text)
+    except RecursionError:  # PyYAML composes nested collections recursively
+        raise ConfigError([ConfigProblem("(file)", "YAML nested less deeply",
+                                         "collections nested past the parser's recursion "
+                                         "limit")], str(p)) from None
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = (f"line {mark.line + 1}, column {mark.column + 1}" if mark is not None

@@ -115,11 +115,16 @@ class Reader:
                          found=f"unknown key {k!r}")
         return node
 
-    def path(self, v: str | None) -> Path | None:
-        """A configured path, relative ones against the config file's directory."""
+    def path(self, v: str | None, where: str) -> Path | None:
+        """A configured path (`where` is its key path), relative ones against the config
+        file's directory, `~` and `~user` expanded."""
         if v is None:
             return None
-        p = Path(v).expanduser()
+        try:
+            p = Path(v).expanduser()
+        except RuntimeError:  # `~name` of no user here, or no home directory to expand to
+            self.bad(where, "a path whose leading ~ names a user of this machine", v)
+            p = Path(v)
         return p if p.is_absolute() else (self.base_dir / p)
 
     def _get(self, node: dict[str, Any], key: str, path: str, kind: str, default: Any,

@@ -190,6 +190,9 @@ class SparkplugDecoder:
                 if device in self._wanted[(group, node_id)]:
                     self._unborn(node, group, node_id, device, arrival)
                 return []
+            if not msg.HasField("seq"):  # MUST have one (tck-id-payloads-dbirth-seq): else
+                # no gap shows, and one redeclaring an alias blinds a channel for good
+                raise Rejected(Reason.MALFORMED, "DBIRTH without a sequence number")
             self._check_seq(node, msg, group, node_id, arrival)
             return self._dbirth(node, msg, group, node_id, device, arrival)
         if verb == "NDEATH":
@@ -426,7 +429,7 @@ class SparkplugDecoder:
                                    f"ts {ts:.3f} is {ts - arrival:+.0f} s from now"))
                 continue
             if convert is None:
-                self._array(routes, ts, raw, dtype, kind, append)
+                self._array(routes, ts, raw, dtype, kind, append, arrival)
                 continue
             value = convert(raw)
             if not isfinite(value):  # a Float or Double only
@@ -458,9 +461,11 @@ class SparkplugDecoder:
         return True
 
     def _array(self, routes: list[Route], ts: float, raw: bytes, dtype: int, kind: int,
-               append: Callable[[tuple[Route, float, float | Block]], None]) -> None:
+               append: Callable[[tuple[Route, float, float | Block]], None],
+               arrival: float) -> None:
         """An array metric: one block of its values for each route (none, with a note,
-        when the array is malformed or holds a non-finite value)."""
+        when the array is malformed, holds a non-finite value, or ends beyond the clock
+        skew of `arrival`)."""
         try:
             values = array_values(raw, dtype, kind)
         except ValueError as exc:
@@ -472,7 +477,13 @@ class SparkplugDecoder:
             self.notes.append((Note.REJECTED, Reason.NON_FINITE, "array sample"))
             return
         for r in routes:
-            append((r, ts, Block(ts, r.channel.rate_hz, values)))
+            block = Block(ts, r.channel.rate_hz, values)
+            last = block.time_of(len(values) - 1)  # bounded like json-batch's (decode.py)
+            if not abs(last - arrival) <= self.max_skew_s:
+                self.notes.append((Note.REJECTED, Reason.CLOCK_SKEW, f"an array of "
+                                   f"{len(values)} samples ends {last - arrival:+.0f} s away"))
+                continue
+            append((r, ts, block))
 
     def _unknown(self, unknown: int, group: str, node_id: str, arrival: float) -> None:
         """Metrics not in the birth: counted, and the edge node asked for a rebirth."""

@@ -123,6 +123,8 @@ def parse_command(prefix: str, topic: str, payload: bytes, retained: bool,
         doc = json.loads(payload)
     except (ValueError, UnicodeDecodeError):
         return Rejected(Reason.NOT_JSON, "payload is not JSON")
+    except RecursionError:  # nested deeper than the parser's recursion limit
+        return Rejected(Reason.NOT_JSON, "payload is JSON nested too deeply")
     if not isinstance(doc, dict):
         return Rejected(Reason.NOT_OBJECT, "payload is not a JSON object")
     known = ("windows", "mode", "reason", "requested_by", "accept_shift")

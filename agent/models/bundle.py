@@ -91,6 +91,14 @@ def _need(doc: Mapping[str, Any], key: str, kind: type | tuple[type, ...], path:
     return value
 
 
+def _float(doc: Mapping[str, Any], key: str, path: str) -> float:
+    """A number of model.json as a float; an integer past float64's range is refused."""
+    try:
+        return float(_need(doc, key, (int, float), path))
+    except OverflowError:
+        raise BundleError(path, f"model.json: {key} is out of range") from None
+
+
 def parse_meta(doc: Mapping[str, Any], path: str) -> BundleMeta:
     """Check a decoded `model.json` and return it as typed values."""
     if doc.get("format") != FORMAT:
@@ -107,7 +115,7 @@ def parse_meta(doc: Mapping[str, Any], path: str) -> BundleMeta:
     try:
         mean = np.asarray(scaler.get("mean", []), dtype=np.float64)
         scale = np.asarray(scaler.get("scale", []), dtype=np.float64)
-    except (TypeError, ValueError):
+    except (TypeError, ValueError, OverflowError):  # Overflow: an integer past float64
         raise BundleError(path, "model.json: scaler mean/scale must be lists of numbers"
                           ) from None
     if mean.shape != (len(names),) or scale.shape != (len(names),):
@@ -118,8 +126,8 @@ def parse_meta(doc: Mapping[str, Any], path: str) -> BundleMeta:
     if score.get("function") != "mse":
         raise BundleError(path, f"model.json: score function {score.get('function')!r} "
                                 "is not supported (only 'mse')")
-    threshold = float(_need(doc, "threshold", (int, float), path))
-    clear = float(_need(doc, "clear_threshold", (int, float), path))
+    threshold = _float(doc, "threshold", path)
+    clear = _float(doc, "clear_threshold", path)
     if not (math.isfinite(threshold) and threshold > 0):
         raise BundleError(path, "model.json: threshold must be a positive number")
     if not (math.isfinite(clear) and 0 < clear <= threshold):
@@ -334,29 +342,32 @@ def _open_session(sp: str, onnx_path: Path) -> tuple[bytes, Any]:
 def _check_io(sp: str, meta: BundleMeta, session: Any) -> BundleMeta:
     """The model takes one float [N, F] input with a dynamic batch, named as model.json
     says; returns `meta` with the input and output names filled in."""
-    inputs = session.get_inputs()
-    outputs = session.get_outputs()
+    try:  # onnxruntime decodes names and symbolic dimensions as UTF-8 when they are read
+        inputs = [(i.name, i.type, list(i.shape)) for i in session.get_inputs()]
+        out_names = [o.name for o in session.get_outputs()]
+    except UnicodeDecodeError as exc:
+        raise BundleError(sp, f"{MODEL_ONNX} declares an input or output whose name or "
+                              f"dimension is not UTF-8 text ({exc.reason})") from exc
     if len(inputs) != 1:
         raise BundleError(sp, f"the model has {len(inputs)} inputs, expected 1")
     n = len(meta.feature_names)
-    inp = inputs[0]
-    if inp.type != "tensor(float)":
-        raise BundleError(sp, f"model input {inp.name!r} is {inp.type}, expected tensor(float)")
-    if len(inp.shape) != 2 or (isinstance(inp.shape[1], int) and inp.shape[1] != n):
-        raise BundleError(sp, f"model input {inp.name!r} has shape {inp.shape}, "
+    in_name, in_type, in_shape = inputs[0]
+    if in_type != "tensor(float)":
+        raise BundleError(sp, f"model input {in_name!r} is {in_type}, expected tensor(float)")
+    if len(in_shape) != 2 or (isinstance(in_shape[1], int) and in_shape[1] != n):
+        raise BundleError(sp, f"model input {in_name!r} has shape {in_shape}, "
                               f"expected [N, {n}] for {n} feature names")
-    if isinstance(inp.shape[0], int):
-        raise BundleError(sp, f"model input {inp.name!r} has a fixed batch size "
-                              f"{inp.shape[0]}; windows are scored in batches, so the first "
+    if isinstance(in_shape[0], int):
+        raise BundleError(sp, f"model input {in_name!r} has a fixed batch size "
+                              f"{in_shape[0]}; windows are scored in batches, so the first "
                               "dimension must be dynamic")
-    if meta.onnx_input and meta.onnx_input != inp.name:
+    if meta.onnx_input and meta.onnx_input != in_name:
         raise BundleError(sp, f"model.json names input {meta.onnx_input!r}, "
-                              f"the model's is {inp.name!r}")
-    out_names = [o.name for o in outputs]
+                              f"the model's is {in_name!r}")
     out_name = meta.onnx_output or out_names[0]
     if out_name not in out_names:
         raise BundleError(sp, f"model.json names output {out_name!r}, the model has {out_names}")
-    return BundleMeta(**{**meta.__dict__, "onnx_input": inp.name, "onnx_output": out_name})
+    return BundleMeta(**{**meta.__dict__, "onnx_input": in_name, "onnx_output": out_name})
 
 
 def _probe(sp: str, bundle: Bundle, n: int) -> None:

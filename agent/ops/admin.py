@@ -95,7 +95,10 @@ class _Request(socketserver.StreamRequestHandler):
         try:
             if len(line) > MAX_REQUEST_BYTES:
                 raise ValueError("request too large")
-            doc = json.loads(line)
+            try:
+                doc = json.loads(line)
+            except RecursionError:  # nested deeper than the parser's recursion limit
+                raise ValueError("JSON nested too deeply") from None
             if not isinstance(doc, dict):
                 raise ValueError("a request is a JSON object")
             reply = self.server.handler(doc, _peer(self.connection))

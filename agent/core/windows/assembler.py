@@ -282,6 +282,7 @@ class WindowAssembler:
                 late = int(np.count_nonzero(ts[~keep] >= self._first_start))
                 ts, values = ts[keep], values[keep]
                 if ts.size == 0:
+                    self._arrived(arrival)
                     return late
         g, r = self._where[channel]
         n = ts.size
@@ -304,6 +305,7 @@ class WindowAssembler:
     def add_one(self, channel: int, t: float, value: float, arrival: float) -> int:
         """Append one sample of one channel; returns 1 if it was late, else 0."""
         if self._next_k is not None and t < self._next_k * self.cfg.hop_s:
+            self._arrived(arrival)
             return 1 if t >= self._first_start else 0
         g, r = self._where[channel]
         h = g.hi[r]
@@ -320,6 +322,17 @@ class WindowAssembler:
         if arrival > self._last_arrival:
             self._last_arrival = arrival
         return 0
+
+    def _arrived(self, arrival: float) -> None:
+        """A late sample arriving while the newest sample time is still ahead of the
+        gateway clock says that newest sample ran ahead of the data, not that data has
+        stopped: the timeout then waits for the data. Without this, one sample stamped
+        more than `timeout_s` ahead (inside the time-base guard's tolerance) kept the
+        timeout closing windows at wall-clock pace ahead of the data for good, every
+        later sample late (found by the ingest-tick fuzz target). Samples stamped at
+        or before their arrival, the usual case, leave the timeout as it was."""
+        if self._max_ts > arrival > self._last_arrival:
+            self._last_arrival = arrival
 
     def _reach(self, now: float) -> float:
         """The newest sample time advanced by the wall-clock time since the last arrival

@@ -88,6 +88,38 @@ def test_yaml_syntax_error_names_its_line(tmp_path: Path) -> None:
     assert str(info.value).startswith(f"{path}: {BAD_YAML_WHERE}")
 
 
+# Found by the config fuzz target (tests/fuzz/fuzz_config.py): each was a traceback
+# (UnicodeDecodeError, RecursionError from PyYAML's composer), not a ConfigError.
+@pytest.mark.parametrize(("raw", "problem"), [
+    (b"site: fernbrook\ngateway: \xe8\xda\n", "line 2, column 10: expected UTF-8 text, "
+     "got byte 0xe8"),
+    (b"\xff\xfe", "line 1, column 1: expected UTF-8 text, got byte 0xff"),
+    (b"site: " + b"[" * 3000 + b"]" * 3000 + b"\n", "(file): expected YAML nested less "
+     "deeply, got collections nested past the parser's recursion limit"),
+])
+def test_undecodable_or_deeply_nested_file_is_one_problem(tmp_path: Path, raw: bytes,
+                                                          problem: str) -> None:
+    path = tmp_path / "watchkeep.yaml"
+    path.write_bytes(raw)
+    assert problems_of(path) == [problem]
+
+
+@pytest.mark.parametrize(("edit", "where"), [
+    ({"state_dir": "~nosuchuser-wk/state"}, "state_dir"),
+    ({"outbox": {"path": "~nosuchuser-wk/outbox.sqlite"}}, "outbox.path"),
+    ({"rebaseline": {"admin_socket": "~nosuchuser-wk/a.sock"}}, "rebaseline.admin_socket"),
+])
+def test_tilde_of_no_user_names_its_key(tmp_path: Path, edit: dict[str, Any],
+                                        where: str) -> None:
+    """`~name` of no user on this machine is a problem at the key (found by the config
+    fuzz target: Path.expanduser's RuntimeError escaped the loader)."""
+    value = next(iter(edit.values()))
+    value = value if isinstance(value, str) else next(iter(value.values()))
+    assert problems_of(write(tmp_path, {**base_doc(), **edit})) == [
+        f"{where}: expected a path whose leading ~ names a user of this machine, "
+        f"got {value!r}"]
+
+
 def test_all_problems_are_in_the_error_text(tmp_path: Path) -> None:
     """The exception text lists every problem, one per line, under a count."""
     case = next(c for c in BROKEN if c.id == "several problems at once")

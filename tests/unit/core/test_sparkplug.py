@@ -191,6 +191,44 @@ def test_arrays_are_blocks(dtype: int, raw: bytes, values: list[float]) -> None:
     assert (block.t0, block.rate_hz, list(block.values)) == ((MS + 10) / 1000, 1.0, values)
 
 
+@pytest.mark.parametrize(("count", "kept"), [(301, True), (302, False), (3001, False)])
+def test_array_span_is_bounded_like_its_first_time(count: int, kept: bool) -> None:
+    """An array whose last sample lies beyond max_clock_skew_s of arrival is refused
+    (clock_skew), as a json-batch block is: found by the sparkplug-b fuzz target (a
+    3,011-sample BooleanArray at 10 Hz ended 301 s ahead; on the 1 Hz channel here,
+    302 samples end 301 s ahead). The time-base guard refused it later, as `ahead`;
+    the decoder now says why."""
+    dec = _decoder(_config({"wave": "Vib/Wave"}))
+    raw = count.to_bytes(4, "little") + b"\xaa" * ((count + 7) // 8)
+    _born(dec, [{"name": "Vib/Wave", "alias": 4, "datatype": BOOLEAN_ARRAY,
+                 "bytes_value": (1).to_bytes(4, "little") + b"\x80", "timestamp": MS}])
+    dec.notes.clear()
+    got = dec.decode(DDATA, _payload(2, [{"alias": 4, "bytes_value": raw}], ts=MS), NOW)
+    if kept:
+        (_, _, block), = got
+        assert len(block) == count and dec.notes == []
+    else:
+        assert got == []
+        assert [(n[0], n[1]) for n in dec.notes] == [(Note.REJECTED, Reason.CLOCK_SKEW)]
+
+
+def test_dbirth_without_a_sequence_number_is_refused() -> None:
+    """A DBIRTH without seq (which every DBIRTH MUST carry) is malformed and changes
+    nothing. Found by the ingest-tick fuzz target: one such DBIRTH naming 'PumP/Flow'
+    behind the flow metric's alias replaced the device's table, so every later DDATA by
+    that alias was skipped as a metric no channel reads; with no sequence number no gap
+    showed, no rebirth was asked for, and the channel had no data for good."""
+    dec = _decoder(_config({"flow": "Pump/Flow"}))
+    _born(dec, [FLOW])
+    dec.notes.clear()
+    with pytest.raises(Rejected) as info:
+        dec.decode(DBIRTH, _payload(None, [dict(FLOW, name="PumP/Flow")]), NOW)
+    assert info.value.reason is Reason.MALFORMED
+    got = dec.decode(DDATA, _payload(2, [{"alias": 1, "double_value": 4.0}]), NOW)
+    assert _values(got) == {"flow": (MS / 1000, 4.0)}
+    assert dec.notes == []
+
+
 def test_sequence_gap_and_wrap() -> None:
     """seq follows by one modulo 256 (tck-id-payloads-sequence-num-incrementing): 255 -> 0
     is no gap, a jump is one for every channel of the edge node."""

@@ -176,6 +176,30 @@ def test_timeout_uses_wall_time_since_arrival_not_the_sample_clock() -> None:
     assert len(asm.close_due(T0 + 1.5 + behind_s + 2.5).windows) == 1
 
 
+@pytest.mark.parametrize("ahead_s", [3.0, 5.6, 9.0])
+def test_one_sample_ahead_of_the_gateway_clock_does_not_blind_the_asset(ahead_s: float
+                                                                      ) -> None:
+    """One sample stamped `ahead_s` (more than timeout_s, less than the time-base
+    guard's 10 s) ahead of a live stream: the stream's samples until it catches up are
+    late, then its windows fill again. Found by the ingest-tick fuzz target (a Sparkplug
+    metric stamped 5.6 s ahead): the late samples did not count as arrivals, so the
+    timeout kept closing windows at wall-clock pace ahead_s ahead of the data, and every
+    later sample was late, for good."""
+    asm = assembler(lateness_s=0.2, timeout_s=2.0)
+    delay = 0.05  # arrival - sample time of the live stream
+    feed(asm, grid(0.0, 3.0), arrival=T0 + 3.0 + delay)
+    asm.close_due(T0 + 3.0 + delay)
+    asm.add_one(0, T0 + 3.0 + ahead_s, 1.0, T0 + 3.0 + delay)  # the one outlier
+    full = []
+    for k in range(3, 20):  # the live stream goes on, 10 samples a second
+        for t in grid(k, k + 1):
+            asm.add_one(0, float(t), 0.0, float(t) + delay)
+            full += [w.start - T0 for w in asm.close_due(float(t) + delay).windows
+                     if w.complete]
+    assert full and full[-1] >= 17.0, full  # complete windows again at the end
+    assert full[0] <= 3.0 + ahead_s + 1.0, full  # from where the outlier was
+
+
 def test_coverage_per_channel_decides_completeness() -> None:
     """Complete needs every channel at min_coverage of the samples its rate promises."""
     asm = assembler(min_coverage=0.8, rates=(RATE_HZ, 100.0, RATE_HZ))

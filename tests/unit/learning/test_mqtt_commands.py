@@ -78,6 +78,10 @@ def test_empty_object_takes_the_defaults() -> None:
     (TOPIC, json.dumps({"requested_by": "x" * 101}).encode(), False, Reason.BAD_FIELD),
     (TOPIC, json.dumps({"reason": "x" * 501}).encode(), False, Reason.BAD_FIELD),
     (TOPIC, b'{"asset": "B-201"}', False, Reason.BAD_FIELD),
+    # found by the mqtt-commands fuzz target: a RecursionError escaped parse_command, the
+    # commands thread logged a traceback per message and counted `failed`
+    (TOPIC, b"[" * 1500 + b"]" * 1500, False, Reason.NOT_JSON),
+    (TOPIC, b'{"reason": ' + b"[" * 2000 + b"]" * 2000 + b"}", False, Reason.NOT_JSON),
 ])
 def test_rejected(topic: str, payload: bytes, retained: bool, reason: Reason) -> None:
     """Each malformed or misdirected command is turned away with its bounded reason."""

@@ -214,6 +214,13 @@ def test_missing_keys_are_named(key: str) -> None:
     ({"training": [1, 2]}, "training has the wrong type (list)"),
     ({"mode": 3}, "mode has the wrong type (int)"),
     ({"created": 1796119200}, "created has the wrong type (int)"),
+    # Integers past float64's range (JSON allows them): an OverflowError escaped
+    # parse_meta; found by the bundle-json fuzz target.
+    ({"threshold": 2**1024}, "threshold is out of range"),
+    ({"clear_threshold": -(10**400)}, "clear_threshold is out of range"),
+    ({"scaler": {"mean": [0.0] * 5, "scale": -(10**400)}}, "must be lists of numbers"),
+    ({"scaler": {"mean": [2**1024] + [0.0] * 4, "scale": [1.0] * 5}},
+     "must be lists of numbers"),
 ])
 def test_bad_values_give_a_clear_reason(over: dict[str, Any], expected: str) -> None:
     doc = {"format": "watchkeep-bundle", "format_version": 1, **meta(**over)}
@@ -243,6 +250,20 @@ def test_input_width_that_does_not_match_the_feature_list(tmp_path: Path) -> Non
 def test_a_file_that_is_not_onnx(tmp_path: Path, content: bytes) -> None:
     p = make(tmp_path, content)
     assert reason(p).startswith("model.onnx is not a loadable ONNX model"), reason(p)
+
+
+def test_a_dimension_name_that_is_not_utf8(tmp_path: Path) -> None:
+    """A symbolic dimension whose name is not UTF-8 (protobuf keeps the bytes; onnxruntime
+    raised UnicodeDecodeError when the input's shape was read, which escaped load_bundle):
+    found by the bundle-onnx fuzz target, which flipped a bit of the 'N' below."""
+    def build():
+        return [helper.make_node("Identity", ["x"], ["recon"])], []
+
+    model = graph_model(build, batch="N")
+    assert model.count(b"\x12\x01N") == 2  # dim_param "N" of the input and the output
+    p = make(tmp_path, model.replace(b"\x12\x01N", b"\x12\x01\xce", 1))
+    assert reason(p).startswith("model.onnx declares an input or output whose name or "
+                                "dimension is not UTF-8 text"), reason(p)
 
 
 def test_input_that_is_not_float32(tmp_path: Path) -> None:
