@@ -16,7 +16,9 @@ Exits 1 when any target crashed.
 from __future__ import annotations
 
 import argparse
+import os
 import re
+import shutil
 import subprocess
 import sys
 import time
@@ -49,10 +51,16 @@ def run_target(name: str, seconds: int, work: Path, extra: list[str]) -> Result:
     cmd = [sys.executable, "-m", "tests.fuzz.run", name, "--seeds", str(seeds),
            str(corpus), str(seeds), f"-max_total_time={seconds}", "-print_final_stats=1",
            "-rss_limit_mb=3072", f"-artifact_prefix={base}/", *extra]
+    # libFuzzer ends the process without Python's exit handlers, so the target's
+    # scratch directories go in a TMPDIR of its own, removed here.
+    tmp = base / "tmp"
+    tmp.mkdir(exist_ok=True)
     t0 = time.monotonic()
     with open(base / "log.txt", "wb") as log:
-        proc = subprocess.run(cmd, stdout=log, stderr=subprocess.STDOUT, check=False)
+        proc = subprocess.run(cmd, stdout=log, stderr=subprocess.STDOUT, check=False,
+                              env={**os.environ, "TMPDIR": str(tmp.resolve())})
     took = time.monotonic() - t0
+    shutil.rmtree(tmp, ignore_errors=True)
     text = (base / "log.txt").read_text(errors="replace")
     stats = _STATS.findall(text)
     execs = _EXECUTED.findall(text)

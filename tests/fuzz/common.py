@@ -3,9 +3,12 @@ plant, the demo config's channels, and Hypothesis strategies of awkward values."
 
 from __future__ import annotations
 
+import atexit
 import functools
 import json
 import math
+import shutil
+import tempfile
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -20,6 +23,13 @@ EXAMPLE_CONFIG = ROOT / "config" / "example.yaml"
 NOW = 1_796_119_200.0  # 2026-12-01T09:20:00Z: every target's gateway clock
 SKEW_S = 300.0  # ingest.max_clock_skew_s, the default
 MAX_PAYLOAD_BYTES = 262_144  # ingest.max_payload_bytes, the default
+
+
+def scratch_dir(prefix: str) -> Path:
+    """A new temporary directory, removed when the process ends."""
+    path = Path(tempfile.mkdtemp(prefix=f"wk-fuzz-{prefix}-"))
+    atexit.register(shutil.rmtree, path, ignore_errors=True)
+    return path
 
 
 @functools.cache

@@ -56,7 +56,7 @@ def daemon() -> tuple[Any, Path, _Tracebacks]:
     """The running daemon, its admin socket and the traceback catcher."""
     from agent.config.load import load_config
     from agent.daemon import Daemon
-    from agent.learning.rebaseline import reservoir
+    from agent.learning.rehearsal import reservoir
     from agent.models.bundle import load_bundle
     from agent.models.store import ModelStore
     from tests.helpers import asset_doc, train_pca_bundle, write_config

@@ -14,7 +14,6 @@ import functools
 import json
 import math
 import shutil
-import tempfile
 from pathlib import Path
 from typing import Any
 
@@ -23,7 +22,7 @@ from hypothesis import strategies as st
 
 from agent.errors import BundleError
 from agent.models.bundle import MODEL_JSON, MODEL_ONNX, Bundle, load_bundle
-from tests.fuzz.common import awkward_numbers, json_values
+from tests.fuzz.common import awkward_numbers, json_values, scratch_dir
 from tests.fuzz.harness import Target, check
 
 
@@ -32,7 +31,7 @@ def valid() -> tuple[bytes, bytes]:
     """(model.json, model.onnx) of a valid bundle."""
     from tests.helpers import train_pca_bundle
 
-    tmp = Path(tempfile.mkdtemp(prefix="wk-fuzz-bundle-src-"))
+    tmp = scratch_dir("bundle-src")
     path = train_pca_bundle(tmp / "b", "P-1", seed=3)
     out = (path / MODEL_JSON).read_bytes(), (path / MODEL_ONNX).read_bytes()
     shutil.rmtree(tmp, ignore_errors=True)
@@ -41,7 +40,7 @@ def valid() -> tuple[bytes, bytes]:
 
 @functools.cache
 def _dir() -> Path:
-    return Path(tempfile.mkdtemp(prefix="wk-fuzz-bundle-"))
+    return scratch_dir("bundle")
 
 
 def check_bundle(meta: bytes, model: bytes) -> None:

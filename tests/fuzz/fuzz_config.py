@@ -12,8 +12,6 @@ from __future__ import annotations
 
 import copy
 import functools
-import os
-import tempfile
 from pathlib import Path
 from typing import Any
 
@@ -22,15 +20,19 @@ from hypothesis import strategies as st
 
 from agent.config.load import Config, load_config
 from agent.errors import ConfigError
-from tests.fuzz.common import DEMO_CONFIG, EXAMPLE_CONFIG, awkward_numbers, json_values
+from tests.fuzz.common import (
+    DEMO_CONFIG,
+    EXAMPLE_CONFIG,
+    awkward_numbers,
+    json_values,
+    scratch_dir,
+)
 from tests.fuzz.harness import Target, check
 
 
 @functools.cache
 def _file() -> Path:
-    fd, name = tempfile.mkstemp(prefix="wk-fuzz-config-", suffix=".yaml")
-    os.close(fd)
-    return Path(name)
+    return scratch_dir("config") / "watchkeep.yaml"
 
 
 def check_config(text: bytes) -> None:
@@ -67,7 +69,7 @@ def seeds() -> list[bytes]:
     from tests.unit.config.config_cases import BAD_YAML, BROKEN
 
     out = [EXAMPLE_CONFIG.read_bytes(), DEMO_CONFIG.read_bytes(), BAD_YAML.encode()]
-    tmp = Path(tempfile.mkdtemp(prefix="wk-fuzz-config-seeds-"))
+    tmp = scratch_dir("config-seeds")
     for case in BROKEN:
         built = case.build(tmp)
         out.append(built.encode() if isinstance(built, str)

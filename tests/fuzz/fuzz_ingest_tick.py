@@ -28,14 +28,12 @@ import functools
 import logging
 import pickle
 import shutil
-import tempfile
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any
 
 from hypothesis import strategies as st
 
-from tests.fuzz.common import NOW, awkward_numbers, json_bytes, json_values, times
+from tests.fuzz.common import NOW, awkward_numbers, json_bytes, json_values, scratch_dir, times
 from tests.fuzz.harness import Target, check
 
 RATE = 2.0
@@ -77,7 +75,7 @@ def _setup() -> tuple[Any, dict[str, Any]]:
     from agent.models.bundle import load_bundle
     from tests.helpers import train_pca_bundle
 
-    tmp = Path(tempfile.mkdtemp(prefix="wk-fuzz-tick-"))
+    tmp = scratch_dir("tick")
     bundles = {a: load_bundle(train_pca_bundle(tmp / a, a, seed=i + 1, samples=int(RATE)))
                for i, a in enumerate("AB")}
     doc = {"site": "fz", "gateway": "gw", "state_dir": str(tmp / "state"),
@@ -185,7 +183,7 @@ class _Pipe:
     def __init__(self, parent: Any) -> None:
         self.parent = parent
 
-    def send(self, msg: tuple[Any, ...]) -> None:
+    def send(self, msg: Any) -> None:
         from agent.ingest.protocol import Counts, Data, Live
 
         msg = pickle.loads(pickle.dumps(msg))
