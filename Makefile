@@ -37,10 +37,13 @@ demo: $(STAMP)
 bench: $(STAMP) test-deps
 	$(BIN)/python -m tests.bench
 
-# At least 50 power cuts of a KVM guest (tests/faults/powercut.py); CUTS and SYNC
-# (FULL or NORMAL) are optional. Results in bench-results/powercut-<sync>.json.
+# The long power-cut run (tests/faults/powercut.py): one run of CUTS (50) cuts with
+# outbox.synchronous FULL, then NORMAL_CUTS (15) with NORMAL for comparison (NORMAL_CUTS=0
+# skips it). Results in bench-results/powercut-full.json and powercut-normal.json.
 powercut: $(STAMP) test-deps
-	$(BIN)/python -m tests.faults.powercut --cuts $${CUTS:-50} --synchronous $${SYNC:-FULL}
+	$(BIN)/python -m tests.faults.powercut --cuts $${CUTS:-50} --synchronous FULL
+	[ "$${NORMAL_CUTS:-15}" = 0 ] || \
+	  $(BIN)/python -m tests.faults.powercut --cuts $${NORMAL_CUTS:-15} --synchronous NORMAL
 
 # Coverage-guided fuzzing (tests/fuzz, DEVELOPERS.md "Fuzzing"): every target under
 # atheris for FUZZ_SECONDS (60) each, or only FUZZ_TARGETS; corpora, logs and crash

@@ -16,8 +16,8 @@ What it makes, under `CACHE/powercut-vm-<key>/`:
 The key hashes the build's inputs (`BUILD_VERSION`, the package and module lists, the
 PID 1 script), the project's dependency list and the release: the project's
 own code is not in the image (the test puts it on a small disk of its own at each run),
-so a code change does not rebuild the image. The debootstrap tarball is shared with the
-package test (`debootstrap-<suite>-<arch>-minbase+systemd.tar.gz`, same name and content).
+so a code change does not rebuild the image. The debootstrap tarball is the package
+test's (tests/debroot.py: `debootstrap-<suite>-<arch>-minbase+systemd.tar.gz`).
 
 Needs root (chroot, mount of /proc), debootstrap and mkfs.ext4. A cold build takes a
 few minutes (debootstrap when no tarball is cached, the kernel package and its
@@ -30,7 +30,6 @@ import fcntl
 import hashlib
 import json
 import os
-import re
 import shutil
 import subprocess
 import sys
@@ -40,11 +39,9 @@ import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 
+from tests.debroot import CACHE, INCLUDE, base_tarball, host_suite, mounts_under
+
 ROOT = Path(__file__).resolve().parents[2]
-CACHE = Path(os.environ.get("WATCHKEEP_TEST_CACHE", "/var/cache/watchkeep-tests"))
-# The package test's debootstrap tarball has systemd in it; reusing the same tarball
-# (and so the same include) keeps one copy on the machine.
-INCLUDE = "systemd"
 PACKAGES = ("linux-image-amd64", "python3", "python3-venv", "iproute2", "kmod", "e2fsprogs")
 # Modules the initramfs must carry to find a virtio root disk; the rest load from the root.
 INITRAMFS_MODULES = ("virtio_pci", "virtio_blk", "virtio_net", "virtio_console", "ext4")
@@ -94,27 +91,10 @@ def sh(*cmd: str, timeout: float = 1500, **kw: object) -> subprocess.CompletedPr
 
 def host_release() -> tuple[str, str]:
     """(suite, arch) of the host's Debian."""
-    info = dict(ln.split("=", 1) for ln in Path("/etc/os-release").read_text().splitlines()
-                if "=" in ln)
-    if info.get("ID") != "debian":
+    suite = host_suite()
+    if suite is None:
         raise RuntimeError("the VM is built from the host's Debian release; this is not Debian")
-    arch = sh("dpkg", "--print-architecture").stdout.strip()
-    return info.get("VERSION_CODENAME", "").strip('"'), arch
-
-
-def apt_mirror(suite: str) -> str:
-    """The mirror the host's apt uses for `suite` (deb822 or one-line sources)."""
-    for p in sorted(Path("/etc/apt/sources.list.d").glob("*.sources")):
-        for stanza in p.read_text().split("\n\n"):
-            f = dict(re.findall(r"^(\w[\w-]*):\s*(.*)$", stanza, re.M))
-            if "deb" in f.get("Types", "").split() and suite in f.get("Suites", "").split():
-                return f["URIs"].split()[0]
-    for p in [Path("/etc/apt/sources.list"), *Path("/etc/apt/sources.list.d").glob("*.list")]:
-        for ln in p.read_text().splitlines() if p.exists() else []:
-            m = re.match(r"deb\s+(?:\[[^]]*\]\s+)?(\S+)\s+(\S+)", ln)
-            if m and m.group(2) == suite:
-                return m.group(1)
-    return "http://deb.debian.org/debian"
+    return suite, sh("dpkg", "--print-architecture").stdout.strip()
 
 
 def dependencies() -> list[str]:
@@ -154,31 +134,6 @@ def prune(keep: Path, min_age_s: float = 86400.0) -> None:
             shutil.rmtree(old, ignore_errors=True)
 
 
-def base_tarball(suite: str, arch: str, log: object) -> Path:
-    """debootstrap's minbase root (+systemd), as the package test caches it."""
-    tarball = CACHE / f"debootstrap-{suite}-{arch}-minbase+{INCLUDE}.tar.gz"
-    if tarball.exists():
-        return tarball
-    work = Path(tempfile.mkdtemp(prefix="watchkeep-debootstrap-", dir="/var/tmp"))
-    try:
-        log(f"image: debootstrap {suite} ({arch})")  # type: ignore[operator]
-        sh("debootstrap", "--variant=minbase", f"--include={INCLUDE}", f"--arch={arch}",
-           suite, str(work / "root"), apt_mirror(suite))
-        sh("chroot", str(work / "root"), "apt-get", "clean")
-        part = tarball.with_suffix(".part")
-        sh("tar", "--numeric-owner", "-C", str(work / "root"), "-czf", str(part), ".")
-        part.rename(tarball)
-    finally:
-        shutil.rmtree(work, ignore_errors=True)
-    return tarball
-
-
-def _mounts_under(path: Path) -> list[str]:
-    prefix = str(path) + "/"
-    return [ln.split()[1] for ln in Path("/proc/self/mounts").read_text().splitlines()
-            if ln.split()[1].startswith(prefix)]
-
-
 def build(dest: Path, suite: str, arch: str, log: object) -> None:
     """Build the kernel, initrd and root image into `dest` (replaced whole)."""
     for tool in ("debootstrap", "chroot", "mount", "mkfs.ext4"):
@@ -187,7 +142,7 @@ def build(dest: Path, suite: str, arch: str, log: object) -> None:
     if os.geteuid() != 0:
         raise RuntimeError("building the VM image needs root (chroot, mount)")
     t0 = time.monotonic()
-    tarball = base_tarball(suite, arch, log)
+    tarball = base_tarball(suite, arch, lambda m: log(f"image: {m}"))  # type: ignore[operator]
     work = Path(tempfile.mkdtemp(prefix="watchkeep-vm-", dir="/var/tmp"))
     root = work / "root"
     root.mkdir()
@@ -231,7 +186,7 @@ def build(dest: Path, suite: str, arch: str, log: object) -> None:
     finally:
         for m in reversed(mounted):
             subprocess.run(["umount", str(m)], check=False)
-    left = _mounts_under(work)
+    left = mounts_under(work)
     if left:
         raise RuntimeError(f"still mounted, {work} kept: {left}")
     try:

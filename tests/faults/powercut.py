@@ -68,20 +68,26 @@ SITE, GATEWAY = "fernbrook", "powercut-vm"
 
 
 class Unavailable(RuntimeError):
-    """The machine cannot run the VM (no KVM, no QEMU, not root): skip, or fail in CI."""
+    """The machine cannot run the VM (no QEMU, not root; or `accel="kvm"` where KVM
+    cannot run the guest): skip, or fail in CI."""
 
 
-def kvm_problem() -> str | None:
-    """Why a KVM guest cannot run here, or None."""
+def vm_problem() -> str | None:
+    """Why the VM cannot run here at all (no QEMU, not root), or None."""
     if shutil.which(QEMU) is None:
         return f"{QEMU} is missing (apt-get install qemu-system-x86)"
+    if os.geteuid() != 0:
+        return "the VM image is built with debootstrap and chroot, which need root"
+    return None
+
+
+def kvm_refused() -> str | None:
+    """Why /dev/kvm cannot be opened here, or None."""
     try:
         fd = os.open("/dev/kvm", os.O_RDWR)
     except OSError as exc:
-        return f"KVM is refused: /dev/kvm: {exc.strerror}"
+        return f"KVM is refused (/dev/kvm: {exc.strerror})"
     os.close(fd)
-    if os.geteuid() != 0:
-        return "the VM image is built with debootstrap and chroot, which need root"
     return None
 
 
@@ -156,7 +162,7 @@ class Plant(threading.Thread):
     def run(self) -> None:
         rng = random.Random(7)
         names = asset_names(self.n)
-        t = math.ceil(time.time())
+        t = float(math.ceil(time.time()))
         while not self.stop_ev.is_set():
             for i, name in enumerate(names):
                 w = int(t // window_length(i))
@@ -301,7 +307,7 @@ def run(cuts: int, sync: str = "FULL", *, seed: int | None = None, n_assets: int
         accel: str = "auto", max_minutes: float | None = None,
         drain_timeout_s: float = 120.0) -> dict[str, Any]:
     """`cuts` power cuts; returns the figures (see `summarize`). Raises Unavailable."""
-    problem = kvm_problem()
+    problem = vm_problem()
     if problem:
         raise Unavailable(problem)
     seed = random.randrange(1 << 30) if seed is None else seed
@@ -311,7 +317,7 @@ def run(cuts: int, sync: str = "FULL", *, seed: int | None = None, n_assets: int
     build_s = time.monotonic() - t_build
     accel_note = ""
     if accel in ("auto", "kvm"):
-        why = kvm_runs_guest(image)
+        why = kvm_refused() or kvm_runs_guest(image)
         if why is None:
             accel = "kvm"
         elif accel == "kvm":
@@ -532,8 +538,11 @@ def main(argv: list[str] | None = None) -> int:
     keys = ("cuts", "committed_before_cuts", "delivered", "lost", "duplicates",
             "extra_deliveries", "quick_check_failed", "corrupt_files", "sequences_back",
             "sequence_numbers_reused", "upstream_paused_cuts", "cuts_within_1s_of_a_commit",
-            "median_boot_s", "wall_s")
+            "median_boot_s", "wall_s", "accel")
     print(f"powercut ({args.synchronous}): " + ", ".join(f"{k} {res[k]}" for k in keys))
+    if res["accel"] != "kvm":
+        print(f"powercut: KVM NOT USED: {res['accel_note']}; the cuts ran under QEMU's "
+              "software emulation (TCG)")
     print(f"powercut: results in {out}")
     bad = res["quick_check_failed"] or res["corrupt_files"] or res["cuts"] < args.cuts
     if args.synchronous == "FULL":

@@ -2,7 +2,8 @@
 clean, an upgrade keeps the configuration, and a purge leaves nothing behind.
 
 One root for the whole module, made with debootstrap (cached as a tarball under
-/var/cache/watchkeep-tests/, keyed by suite and architecture) and used through chroot
+/var/cache/watchkeep-tests/, keyed by suite and architecture, by tests/debroot.py, which
+the power-cut VM's image shares) and used through chroot
 with /proc and a read-only bind of /dev mounted; the tests run in file order on it.
 Needs root, debootstrap and dpkg-dev (.ci/test-deps); skipped otherwise, and failed
 instead when WATCHKEEP_CI=1 (set by .ci/run; tests/conftest.py fails any skip then too).
@@ -22,16 +23,14 @@ from pathlib import Path
 
 import pytest
 
+from tests.debroot import CACHE, apt_mirror, base_tarball, host_suite, mounts_under
+
 pytestmark = [pytest.mark.slow, pytest.mark.timeout(1800)]
 
 ROOT = Path(__file__).resolve().parents[2]
 BUILD = ROOT / "packaging" / "debian" / "build-deb"
-CACHE = Path(os.environ.get("WATCHKEEP_TEST_CACHE", "/var/cache/watchkeep-tests"))
 CONF = "etc/watchkeep/watchkeep.yaml"
 UNIT = "lib/systemd/system/watchkeep.service"
-# The root is a gateway: systemd is there (systemd-analyze runs inside the root, on
-# the installed unit, against the root's own units and files).
-INCLUDE = "systemd"
 
 
 def unavailable(reason: str) -> None:
@@ -43,30 +42,11 @@ def unavailable(reason: str) -> None:
 
 def host_release() -> tuple[str, str]:
     """(suite, mirror): the host's Debian release, as the package is built for it."""
-    info = dict(ln.split("=", 1) for ln in Path("/etc/os-release").read_text().splitlines()
-                if "=" in ln)
-    if info.get("ID") != "debian":
+    suite = host_suite()
+    if suite is None:
         unavailable("the package is built for the host's Debian release; this is not Debian")
-    suite = info.get("VERSION_CODENAME", "").strip('"')
-    mirror = os.environ.get("WATCHKEEP_DEBIAN_MIRROR") or apt_mirror(suite)
-    return suite, mirror
-
-
-def apt_mirror(suite: str) -> str:
-    """The mirror the host's apt uses for `suite` (deb822 or one-line sources)."""
-    texts = [p.read_text() for p in sorted(Path("/etc/apt/sources.list.d").glob("*.sources"))]
-    for text in texts:
-        for stanza in text.split("\n\n"):
-            f = dict(re.findall(r"^(\w[\w-]*):\s*(.*)$", stanza, re.M))
-            if "deb" in f.get("Types", "").split() and suite in f.get("Suites", "").split():
-                return f["URIs"].split()[0]
-    lists = [Path("/etc/apt/sources.list"), *Path("/etc/apt/sources.list.d").glob("*.list")]
-    for p in lists:
-        for ln in p.read_text().splitlines() if p.exists() else []:
-            m = re.match(r"deb\s+(?:\[[^]]*\]\s+)?(\S+)\s+(\S+)", ln)
-            if m and m.group(2) == suite:
-                return m.group(1)
-    return "http://deb.debian.org/debian"
+    assert suite is not None
+    return suite, apt_mirror(suite)
 
 
 def sh(*cmd: str, timeout: float = 900, **kw: object) -> subprocess.CompletedProcess[str]:
@@ -113,32 +93,6 @@ class Root:
         return out
 
 
-def mounts_under(path: Path) -> list[str]:
-    prefix = str(path) + "/"
-    return [ln.split()[1] for ln in Path("/proc/self/mounts").read_text().splitlines()
-            if ln.split()[1].startswith(prefix)]
-
-
-def cached_root(suite: str, arch: str, mirror: str) -> Path:
-    """The debootstrap tarball for (suite, arch), made on first use."""
-    tarball = CACHE / f"debootstrap-{suite}-{arch}-minbase+{INCLUDE}.tar.gz"
-    if tarball.exists():
-        return tarball
-    CACHE.mkdir(parents=True, exist_ok=True)
-    work = Path(tempfile.mkdtemp(prefix="watchkeep-debootstrap-", dir="/var/tmp"))
-    try:
-        sh("debootstrap", "--variant=minbase", f"--include={INCLUDE}", f"--arch={arch}",
-           suite, str(work / "root"), mirror, timeout=1500)
-        sh("chroot", str(work / "root"), "apt-get", "clean")
-        part = tarball.with_suffix(".part")
-        sh("tar", "--numeric-owner", "-C", str(work / "root"), "-czf", str(part), ".")
-        part.rename(tarball)
-    finally:
-        assert not mounts_under(work), mounts_under(work)
-        shutil.rmtree(work)
-    return tarball
-
-
 @pytest.fixture(scope="module")
 def built(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """The package, built from this checkout by packaging/debian/build-deb."""
@@ -163,8 +117,8 @@ def root(built: Path) -> Iterator[Root]:
     arch = sh("dpkg", "--print-architecture").stdout.strip()
     t0 = time.monotonic()
     try:
-        tarball = cached_root(suite, arch, mirror)
-    except AssertionError as e:
+        tarball = base_tarball(suite, arch)
+    except RuntimeError as e:
         unavailable(f"debootstrap of {suite} from {mirror} failed: {e}")
     work = Path(tempfile.mkdtemp(prefix="watchkeep-deb-root-", dir="/var/tmp"))
     r = Root(work / "root")
