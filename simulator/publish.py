@@ -74,11 +74,15 @@ def publish(
     client_id: str | None = None,
     clock: Callable[[], float] = time.monotonic,
     connect_timeout_s: float = 10.0,
+    wall_start: float | None = None,
 ) -> PublishStats:
     """Connect, publish every message in order, wait until the last is sent, disconnect.
 
     Pacing: message at simulated time t is sent at wall ``w0 + (t − sim_origin) / speed``
-    (`sim_origin` defaults to the first message's time). `on_sent` is called after each
+    (`sim_origin` defaults to the first message's time), where w0 is when the connection
+    was made, or, with `wall_start` (unix seconds), that moment of the wall clock: then
+    several publishers given one `wall_start` keep in step however long each took to
+    start (one that starts late catches up at once). `on_sent` is called after each
     publish (e.g. to append to a capture file). Setting `stop` ends the run early.
     Raises `PublishError` if the broker cannot be reached or stops taking data.
     """
@@ -118,6 +122,8 @@ def publish(
             raise PublishError(f"broker {host}:{port} did not answer within "
                                f"{connect_timeout_s:g} s")
         w0 = clock()
+        if wall_start is not None:
+            w0 += wall_start - time.time()  # wall_start in `clock`'s terms
         origin = sim_origin
         for msg in messages:
             if stop.is_set():

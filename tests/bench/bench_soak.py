@@ -1,8 +1,9 @@
 """Soak: the demo plant scaled to 200 assets, for 30 minutes, on a crowded gateway.
 
 On the same machine, all started and stopped here by PID: one Mosquitto broker (local
-and upstream, as in the demo), the simulator (`watchkeep-sim run`, real time, as four
-processes of 50 machines sharing one start time) publishing
+and upstream, as in the demo), the simulator (the plant of `watchkeep-sim run`, real
+time, as four processes of 50 machines held to one wall-clock start by
+tests/bench/soak_shard.py) publishing
 config/demo/normal.yaml's four machines cloned 50 times (`P-101-00` ... `C-301-49`, each
 clone with its original's speed changes, so modes and settling come and go), the daemon
 (`watchkeep run`, config/demo/watchkeep.yaml's assets cloned the same way, each with
@@ -55,7 +56,7 @@ from tests.brokers import Broker, free_port, wait_for
 
 ROOT = Path(__file__).resolve().parents[2]
 DEMO = ROOT / "config" / "demo"
-COPIES = 50  # x 4 demo machines = 200 assets
+COPIES = 50  # x 4 demo machines = 200 assets (the issue's gateway; --assets to profile)
 # The simulator in processes of a quarter of the plant each (one Python process cannot
 # format and publish 200 machines' 2,560 Hz vibration in real time beside the hog).
 SIM_SHARDS = 4
@@ -76,13 +77,14 @@ def clone_name(name: str, k: int) -> str:
     return f"{name}-{k:02d}"
 
 
-def scaled_scenario(minutes: float, shard: int = 0, shards: int = 1) -> dict[str, Any]:
-    """normal.yaml's machines, each cloned COPIES times with its own speed changes; the
+def scaled_scenario(minutes: float, shard: int = 0, shards: int = 1,
+                    copies: int = COPIES) -> dict[str, Any]:
+    """normal.yaml's machines, each cloned `copies` times with its own speed changes; the
     clones k with k % shards == shard."""
     doc = yaml.safe_load((DEMO / "normal.yaml").read_text())
     span = minutes * 60 + 120
     assets, timeline = [], []
-    for k in range(shard, COPIES, shards):
+    for k in range(shard, copies, shards):
         for a in doc["assets"]:
             assets.append({**a, "name": clone_name(a["name"], k)})
         for ev in doc["timeline"]:
@@ -96,15 +98,15 @@ def scaled_scenario(minutes: float, shard: int = 0, shards: int = 1) -> dict[str
     return doc
 
 
-def scaled_config(state: Path, port: int, http_port: int, models: dict[str, dict[str, Path]]
-                  ) -> dict[str, Any]:
+def scaled_config(state: Path, port: int, http_port: int, models: dict[str, dict[str, Path]],
+                  copies: int = COPIES) -> dict[str, Any]:
     """config/demo/watchkeep.yaml with every asset cloned, topics and models to match."""
     doc = yaml.safe_load((DEMO / "watchkeep.yaml").read_text())
     doc.update(state_dir=str(state), http={"host": "127.0.0.1", "port": http_port},
                local_broker={"host": "127.0.0.1", "port": port},
                upstream_broker={"host": "127.0.0.1", "port": port})
     assets = []
-    for k in range(COPIES):
+    for k in range(copies):
         for a in doc["assets"]:
             name = clone_name(a["name"], k)
             text = yaml.safe_dump(a).replace(f"/{a['name']}/", f"/{name}/")
@@ -170,30 +172,56 @@ def hist_p99(prev: dict[str, float], cur: dict[str, float], name: str) -> float:
     return float("inf")
 
 
+PROBE_TOPIC = "bench/soak/probe"
+PROBE_EVERY_S = 0.25
+
+
 class Upstream:
-    """Receives the windows' state messages (latency) and the broker's $SYS drops."""
+    """Receives the windows' state messages (latency), the broker's $SYS drops, one
+    current sensor of each simulator shard (the feed) and its own probe.
+
+    The probe is a message this client publishes to the broker and receives back,
+    stamped with its send time: its delay is the broker's and this subscriber's own
+    (on a crowded machine, this process waits for a core too). A feed sample's delay
+    is the simulator's lag on top of that: the simulator stamps a scalar with the time
+    it was due to be sampled and publishes it then, so feed lag minus probe delay is
+    how far behind its own schedule the simulator runs."""
 
     def __init__(self, port: int, lateness: dict[str, float]) -> None:
         self.lock = threading.Lock()
         self.lat: list[tuple[float, float]] = []  # (receipt, seconds beyond close)
         self.feed: list[tuple[float, float]] = []  # (receipt, sample age)
+        self.probe: list[float] = []  # round trip through the broker, seconds
         self.sys: dict[str, float] = {}
         self.lateness = lateness
+        self._stop = threading.Event()
         self.c = mqtt.Client(CallbackAPIVersion.VERSION2, client_id="bench-soak-up")
         self.c.on_message = self._on
         self.c.connect("127.0.0.1", port)
         self.c.subscribe("watchkeep/+/+/assets/+/state", qos=1)
         self.c.subscribe("$SYS/broker/publish/messages/dropped", qos=0)
         self.c.subscribe("$SYS/broker/store/messages/count", qos=0)
-        # One clone's flow sensor stands for the feed (JSON, ts in simulated time).
-        self.c.subscribe("fernbrook/raw-water/P-101-00/current", qos=0)
+        # One current sensor per simulator shard (clone k is in shard k % SIM_SHARDS).
+        for k in range(SIM_SHARDS):
+            self.c.subscribe(f"fernbrook/raw-water/{clone_name('P-101', k)}/current", qos=0)
+        self.c.subscribe(PROBE_TOPIC, qos=0)
         self.c.loop_start()
+        self._prober = threading.Thread(target=self._probe, daemon=True)
+        self._prober.start()
+
+    def _probe(self) -> None:
+        while not self._stop.wait(PROBE_EVERY_S):
+            self.c.publish(PROBE_TOPIC, repr(time.time()), qos=0)
 
     def _on(self, c: Any, u: Any, msg: mqtt.MQTTMessage) -> None:
         now = time.time()
         if msg.topic.startswith("$SYS"):
             with self.lock:
                 self.sys[msg.topic.rsplit("/", 1)[-1]] = float(msg.payload)
+            return
+        if msg.topic == PROBE_TOPIC:
+            with self.lock:
+                self.probe.append(now - float(msg.payload))
             return
         if msg.retain:  # a retained state from before we subscribed
             return
@@ -208,22 +236,79 @@ class Upstream:
             with self.lock:
                 self.feed.append((now, now - float(d["ts"])))
 
-    def take(self) -> tuple[list[float], list[float]]:
+    def take(self) -> tuple[list[float], list[float], list[float]]:
         with self.lock:
             lat, self.lat = [x for _, x in self.lat], []
             feed, self.feed = [x for _, x in self.feed], []
-        return lat, feed
+            probe, self.probe = self.probe, []
+        return lat, feed, probe
 
     def close(self) -> None:
+        self._stop.set()
+        self._prober.join(5)
         self.c.disconnect()
         self.c.loop_stop()
+
+
+CLK_TCK = os.sysconf("SC_CLK_TCK")
+
+
+def proc_cpu_s(pid: int) -> float:
+    """CPU seconds (user + system) `pid` has used; 0 once it is gone."""
+    try:
+        stat = Path(f"/proc/{pid}/stat").read_text()
+    except OSError:
+        return 0.0
+    f = stat[stat.rindex(")") + 2:].split()  # the fields after the command name
+    return (int(f[11]) + int(f[12])) / CLK_TCK
+
+
+def machine_cpu_s() -> tuple[float, float, float]:
+    """(total, busy, steal) CPU seconds of the whole machine, all cores (/proc/stat);
+    busy leaves out idle, iowait and steal (time the hypervisor gave to someone else)."""
+    f = [int(x) for x in Path("/proc/stat").read_text().split("\n", 1)[0].split()[1:9]]
+    user, nice, system, _idle, _iowait, irq, softirq, steal = f
+    return sum(f) / CLK_TCK, (user + nice + system + irq + softirq) / CLK_TCK, steal / CLK_TCK
+
+
+class CpuShare:
+    """Who used the machine's cores over each interval, in % of one core (the 2-core
+    machine has 200 %): each process group of the soak, the whole machine, and what is
+    left, the other work on the machine (other sessions' tests and builds)."""
+
+    def __init__(self, groups: dict[str, list[int]]) -> None:
+        self.groups = groups
+        self.last = self._read()
+
+    def _read(self) -> tuple[float, dict[str, float], tuple[float, float, float]]:
+        return (time.monotonic(),
+                {g: sum(proc_cpu_s(q) for q in pids) for g, pids in self.groups.items()},
+                machine_cpu_s())
+
+    def take(self) -> dict[str, float]:
+        t, per, mach = self._read()
+        t0, per0, mach0 = self.last
+        self.last = (t, per, mach)
+        dt = max(t - t0, 1e-6)
+        out = {g: round(100 * (per[g] - per0.get(g, 0.0)) / dt, 1) for g in per}
+        busy = 100 * (mach[1] - mach0[1]) / dt
+        out["machine"] = round(busy, 1)
+        out["steal"] = round(100 * (mach[2] - mach0[2]) / dt, 1)
+        out["others"] = round(max(0.0, busy - sum(v for g, v in out.items()
+                                                  if g in per)), 1)
+        return out
+
+
+def load1() -> float:
+    return float(Path("/proc/loadavg").read_text().split()[0])
 
 
 def p(xs: list[float], q: float) -> float:
     return float(np.percentile(xs, q)) if xs else float("nan")
 
 
-def run(minutes: float, out_dir: Path) -> dict[str, Any]:
+def run(minutes: float, out_dir: Path, copies: int = COPIES, hog: bool = True
+        ) -> dict[str, Any]:
     from agent.cli.demo import ensure_models
 
     t_setup = time.monotonic()
@@ -231,13 +316,13 @@ def run(minutes: float, out_dir: Path) -> dict[str, Any]:
     tmp = Path(tempfile.mkdtemp(prefix="watchkeep-soak-"))
     broker = Broker(tmp / "broker", extra="sys_interval 10\n").start()
     http_port = free_port()
-    cfg = scaled_config(tmp / "state", broker.port, http_port, models)
+    cfg = scaled_config(tmp / "state", broker.port, http_port, models, copies)
     lateness = {a["name"]: float(a.get("window", {}).get("lateness_s", 1.0))
                 for a in cfg["assets"]}
     (tmp / "watchkeep.yaml").write_text(yaml.safe_dump(cfg, sort_keys=False))
     for i in range(SIM_SHARDS):
         (tmp / f"scenario-{i}.yaml").write_text(
-            yaml.safe_dump(scaled_scenario(minutes, i, SIM_SHARDS), sort_keys=False))
+            yaml.safe_dump(scaled_scenario(minutes, i, SIM_SHARDS, copies), sort_keys=False))
     bin_dir = Path(sys.executable).parent
     procs: dict[str, subprocess.Popen[bytes]] = {}
     up = Upstream(broker.port, lateness)
@@ -249,18 +334,26 @@ def run(minutes: float, out_dir: Path) -> dict[str, Any]:
                  "--log-level", "WARNING"], stdout=subprocess.DEVNULL, stderr=err)
         wait_for(lambda: _scrape(http_port), timeout_s=180, interval_s=0.5,
                  what="the daemon's /metrics")
-        procs["hog"] = subprocess.Popen([sys.executable, "-c", HOG])
-        start = f"{time.time() + 2:.3f}"  # the shards share one simulated clock
+        if hog:
+            procs["hog"] = subprocess.Popen([sys.executable, "-c", HOG])
+        # The shards share one simulated clock, held to the wall clock from `start`
+        # (tests/bench/soak_shard.py): a few seconds ahead, time for them to start.
+        start = f"{time.time() + 5:.3f}"
         for i in range(SIM_SHARDS):
             with open(tmp / f"sim-{i}.log", "wb") as err:
                 procs[f"sim{i}"] = subprocess.Popen(
-                    [str(bin_dir / "watchkeep-sim"), "run", "--scenario",
-                     str(tmp / f"scenario-{i}.yaml"), "--broker", f"127.0.0.1:{broker.port}",
+                    [sys.executable, "-m", "tests.bench.soak_shard", "--scenario",
+                     str(tmp / f"scenario-{i}.yaml"), "--port", str(broker.port),
                      "--duration", str(minutes * 60 + 30), "--start", start],
-                    stdout=subprocess.DEVNULL, stderr=err)
+                    stdout=subprocess.DEVNULL, stderr=err, cwd=ROOT)
+        cpu = CpuShare({
+            "daemon": [procs["daemon"].pid], "ingest_child": [],
+            "simulator": [procs[f"sim{i}"].pid for i in range(SIM_SHARDS)],
+            "broker": [broker.proc.pid] if broker.proc is not None else [],
+            "hog": [procs["hog"].pid] if hog else [], "bench": [os.getpid()]})
         setup_s = time.monotonic() - t_setup
         print(f"soak: {len(cfg['assets'])} assets, {minutes:g} min, setup {setup_s:.0f} s "
-              f"(daemon up), hog pid {procs['hog'].pid}", flush=True)
+              f"(daemon up), hog {procs['hog'].pid if hog else 'none'}", flush=True)
         t0 = time.monotonic()
         prev = _scrape(http_port) or {}
         base: dict[str, float] | None = None
@@ -279,7 +372,9 @@ def run(minutes: float, out_dir: Path) -> dict[str, Any]:
                                        f"logs in {tmp}")
             cur = _scrape(http_port) or prev
             pids = tree(procs["daemon"].pid)
-            lat, feed = up.take()
+            cpu.groups["ingest_child"] = pids[1:]  # (re)started children too
+            lat, feed, probe = up.take()
+            share = cpu.take()
             el = time.monotonic() - t0
             if base is None and el >= WARMUP_S:
                 base = {**loss_series(cur), "broker_dropped": up.sys.get("dropped", 0.0)}
@@ -287,7 +382,7 @@ def run(minutes: float, out_dir: Path) -> dict[str, Any]:
                 family(prev, "watchkeep_pipeline_tick_seconds_count")
             dt_s = family(cur, "watchkeep_pipeline_tick_seconds_sum") - \
                 family(prev, "watchkeep_pipeline_tick_seconds_sum")
-            row = {
+            row: dict[str, Any] = {
                 "t_s": round(el, 1),
                 "rss_mb": round(sum(rss_mb(q) for q in pids), 1),
                 "pss_mb": round(sum(pss_mb(q) for q in pids), 1),
@@ -299,6 +394,13 @@ def run(minutes: float, out_dir: Path) -> dict[str, Any]:
                 "latency_p99_ms": round(1000 * p(lat, 99), 1),
                 "windows": len(lat),
                 "feed_lag_p99_ms": round(1000 * p(feed, 99), 1),
+                "probe_lag_p99_ms": round(1000 * p(probe, 99), 1),
+                # the simulator's own lag: its samples' delay beyond the probe's
+                "sim_lag_p99_ms": round(max(0.0, 1000 * (p(feed, 99) - p(probe, 50))), 1)
+                if feed and probe else None,
+                "load1": load1(),
+                "cpu_pct": share,
+                "tick_busy_pct": round(100 * dt_s / INTERVAL_S, 1),
                 "outbox_rows": family(cur, "watchkeep_outbox_rows"),
                 "received": family(cur, "watchkeep_messages_received_total"),
                 "losses": {k: v for k, v in loss_series(cur).items() if v},
@@ -309,9 +411,12 @@ def run(minutes: float, out_dir: Path) -> dict[str, Any]:
             series.append(row)
             prev = cur
             print(f"  {el:6.0f} s  rss {row['rss_mb']:6.1f} MB  tick {row['tick_mean_ms']} ms "
-                  f"(p99<= {row['tick_p99_ms']})  latency p99 {row['latency_p99_ms']} ms "
-                  f"({row['windows']} windows)  feed p99 {row['feed_lag_p99_ms']} ms  "
-                  f"outbox {row['outbox_rows']:.0f}  losses {sum(row['losses'].values()):.0f}",
+                  f"(p99<= {row['tick_p99_ms']}, busy {row['tick_busy_pct']}%)  latency p99 "
+                  f"{row['latency_p99_ms']} ms ({row['windows']} windows)  sim lag p99 "
+                  f"{row['sim_lag_p99_ms']} ms  probe p99 {row['probe_lag_p99_ms']} ms  "
+                  f"outbox {row['outbox_rows']:.0f}  losses {sum(row['losses'].values()):.0f}"
+                  f"  load {row['load1']}  cpu% " + " ".join(f"{k} {v:.0f}"
+                                                             for k, v in share.items()),
                   flush=True)
         sim_rc = 0
         for i in range(SIM_SHARDS):
@@ -330,7 +435,8 @@ def run(minutes: float, out_dir: Path) -> dict[str, Any]:
         broker.stop()
     sim_log = "".join((tmp / f"sim-{i}.log").read_text(errors="replace")
                       for i in range(SIM_SHARDS))
-    res = summarize(series, base or {}, minutes, sim_log, sim_rc, tmp, out_dir)
+    res = summarize(series, base or {}, minutes, sim_log, sim_rc, tmp, out_dir,
+                    assets=len(cfg["assets"]), hog_cores=int(hog))
     res["interrupted"] = interrupted
     return res
 
@@ -343,8 +449,14 @@ def _scrape(port: int) -> dict[str, float] | None:
         return None
 
 
+def _median(xs: Any) -> float | None:
+    v = [x for x in xs if x is not None and x == x]
+    return round(float(np.median(v)), 1) if v else None
+
+
 def summarize(series: list[dict[str, Any]], base: dict[str, float], minutes: float,
-              sim_log: str, sim_rc: int | None, tmp: Path, out_dir: Path) -> dict[str, Any]:
+              sim_log: str, sim_rc: int | None, tmp: Path, out_dir: Path, *,
+              assets: int = 4 * COPIES, hog_cores: int = 1) -> dict[str, Any]:
     if not series:
         raise RuntimeError(f"the soak stopped before its first sample; logs in {tmp}")
     last = series[-1]
@@ -357,14 +469,20 @@ def summarize(series: list[dict[str, Any]], base: dict[str, float], minutes: flo
     steady = [r for r in series if r["t_s"] >= WARMUP_S]
     lat99 = [r["latency_p99_ms"] for r in steady if r["windows"]]
     res = {
-        "assets": 4 * COPIES, "minutes": minutes, "interval_s": INTERVAL_S,
-        "warmup_s": WARMUP_S, "hog_cores": 1,
+        "assets": assets, "minutes": minutes, "interval_s": INTERVAL_S,
+        "warmup_s": WARMUP_S, "hog_cores": hog_cores,
         "latency_p99_ms_median": float(np.median(lat99)) if lat99 else None,
         "latency_p99_ms_worst": max(lat99) if lat99 else None,
         "feed_lag_p99_ms_median": float(np.median([r["feed_lag_p99_ms"] for r in steady]))
         if steady else None,
         "tick_mean_ms_median": float(np.median([r["tick_mean_ms"] or 0 for r in steady]))
         if steady else None,
+        "sim_lag_p99_ms_median": _median(r["sim_lag_p99_ms"] for r in steady),
+        "probe_lag_p99_ms_median": _median(r["probe_lag_p99_ms"] for r in steady),
+        "load1_median": _median(r["load1"] for r in steady),
+        # % of one core, median over the intervals after the warm-up
+        "cpu_pct_median": {k: _median(r["cpu_pct"].get(k) for r in steady)
+                           for k in (steady[0]["cpu_pct"] if steady else {})},
         "rss_mb_first": steady[0]["rss_mb"] if steady else None,
         "rss_mb_last": last["rss_mb"], "rss_mb_max": max(r["rss_mb"] for r in series),
         "pss_mb_last": last["pss_mb"],
@@ -392,41 +510,61 @@ def plot(series: list[dict[str, Any]], path: Path, res: dict[str, Any]) -> str |
         print("soak: matplotlib missing (pip install -e '.[plot]'); no plot", file=sys.stderr)
         return None
     t = [r["t_s"] / 60 for r in series]
-    fig, ax = plt.subplots(3, 2, figsize=(12, 10), sharex=True)
+    fig, ax = plt.subplots(4, 2, figsize=(12, 13), sharex=True)
     panels = [
         (ax[0, 0], "memory (MB)", [("rss_mb", "RSS daemon + ingest"), ("pss_mb", "PSS")]),
         (ax[0, 1], "tick (ms)", [("tick_mean_ms", "mean"), ("tick_p99_ms", "p99 bucket bound"),
                                  ("tick_lag_ms", "lag (gauge)")]),
         (ax[1, 0], "latency beyond window close (ms)",
          [("latency_p99_ms", "p99"), ("latency_p50_ms", "p50"),
-          ("feed_lag_p99_ms", "feed lag p99 (simulator -> broker -> subscriber)")]),
+          ("sim_lag_p99_ms", "simulator's own lag p99 (feed less probe)"),
+          ("probe_lag_p99_ms", "probe p99 (broker + this bench's subscriber)")]),
         (ax[1, 1], "outbox depth (rows)", [("outbox_rows", "rows")]),
     ]
     for a, title, keys in panels:
         for k, label in keys:
-            a.plot(t, [np.nan if r[k] is None or (a is ax[1, 0] and r[k] <= 0) else r[k]
+            a.plot(t, [np.nan if r.get(k) is None or (a is ax[1, 0] and r[k] <= 0) else r[k]
                        for r in series], label=label)
         a.set_title(title)
         a.legend(fontsize=7)
         a.grid(alpha=0.3)
     ax[1, 0].axhline(100, color="red", lw=0.8, ls="--")  # the goal: 100 ms beyond close
     ax[1, 0].set_yscale("log")
+    # Who had the cores: the soak's own processes, and the rest of the machine.
+    groups = [("watchkeep", ("daemon", "ingest_child")), ("simulator", ("simulator",)),
+              ("broker", ("broker",)), ("hog", ("hog",)), ("bench", ("bench",)),
+              ("other work on the machine", ("others",)), ("steal (hypervisor)", ("steal",))]
+    shares = [[sum(r.get("cpu_pct", {}).get(k, 0.0) for k in keys) for r in series]
+              for _, keys in groups]
+    ax[2, 0].stackplot(t, shares, labels=[g for g, _ in groups], alpha=0.8)
+    ax[2, 0].axhline(100 * (os.cpu_count() or 1), color="black", lw=0.8, ls="--")
+    ax[2, 0].set_title("CPU, % of one core (dashed: all cores)")
+    ax[2, 0].legend(fontsize=6, loc="upper left")
+    ax[2, 0].grid(alpha=0.3)
+    ax[2, 1].plot(t, [r.get("load1") for r in series], label="load average (1 min)")
+    ax[2, 1].plot(t, [r.get("tick_busy_pct", np.nan) / 10 for r in series],
+                  label="pipeline busy ticking (% / 10)")
+    ax[2, 1].axhline(os.cpu_count() or 1, color="black", lw=0.8, ls="--")
+    ax[2, 1].set_title("machine load (dashed: cores)")
+    ax[2, 1].legend(fontsize=7)
+    ax[2, 1].grid(alpha=0.3)
     fams = sorted({k.split("{")[0] for r in series for k in r["losses"]})
     for fam in fams:  # each family summed over its labels (assets, channels, reasons)
-        ax[2, 0].plot(t, [sum(v for k, v in r["losses"].items() if k.split("{")[0] == fam)
+        ax[3, 0].plot(t, [sum(v for k, v in r["losses"].items() if k.split("{")[0] == fam)
                           for r in series], label=fam.replace("watchkeep_", ""))
-    ax[2, 0].plot(t, [r["broker_dropped"] for r in series], label="broker dropped ($SYS)")
-    ax[2, 0].set_title("loss counters (cumulative)")
-    ax[2, 0].legend(fontsize=6)
-    ax[2, 0].grid(alpha=0.3)
-    ax[2, 0].axvline(WARMUP_S / 60, color="grey", lw=0.8, ls=":")
-    ax[2, 1].plot(t, [r["windows"] for r in series], label="windows delivered / 10 s")
-    ax[2, 1].set_title("windows delivered upstream per interval")
-    ax[2, 1].grid(alpha=0.3)
-    for a in ax[2]:
+    ax[3, 0].plot(t, [r["broker_dropped"] for r in series], label="broker dropped ($SYS)")
+    ax[3, 0].set_title("loss counters (cumulative)")
+    ax[3, 0].legend(fontsize=6)
+    ax[3, 0].grid(alpha=0.3)
+    ax[3, 0].axvline(WARMUP_S / 60, color="grey", lw=0.8, ls=":")
+    ax[3, 1].plot(t, [r["windows"] for r in series], label="windows delivered / 10 s")
+    ax[3, 1].set_title("windows delivered upstream per interval")
+    ax[3, 1].grid(alpha=0.3)
+    for a in ax[3]:
         a.set_xlabel("minutes")
     lost = sum(res["losses_after_warmup"].values()) if res["losses_after_warmup"] else 0
-    fig.suptitle(f"soak: {res['assets']} assets + simulator + broker + 1-core hog, "
+    fig.suptitle(f"soak: {res['assets']} assets + simulator + broker + "
+                 f"{res['hog_cores']}-core hog, "
                  f"{res['minutes']:g} min; latency p99 (median of 10 s intervals) "
                  f"{res['latency_p99_ms_median']} ms; lost after warm-up {lost:.0f}",
                  fontsize=9)
@@ -445,13 +583,20 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(prog="python -m tests.bench.bench_soak")
     ap.add_argument("--minutes", type=float,
                     default=float(os.environ.get("WATCHKEEP_SOAK_MINUTES", "30")))
+    ap.add_argument("--assets", type=int, default=4 * COPIES,
+                    help="the issue's gateway has 200; fewer to profile (a multiple of 4)")
+    ap.add_argument("--no-hog", action="store_true",
+                    help="without the one-core CPU hog (to profile)")
     args = ap.parse_args(sys.argv[1:] if argv is None else argv)
     # SIGTERM (a timeout, a CI stop) unwinds like Ctrl-C, so `finally` stops what we started.
     signal.signal(signal.SIGTERM, _terminate)
-    res = run(args.minutes, RESULTS)
-    rows = [[k, str(res[k])[:100]] for k in (
+    if args.assets % 4 or not 4 <= args.assets <= 4 * COPIES:
+        ap.error(f"--assets: a multiple of 4 from 4 to {4 * COPIES}")
+    res = run(args.minutes, RESULTS, args.assets // 4, hog=not args.no_hog)
+    rows = [[k, str(res[k])[:160]] for k in (
         "assets", "minutes", "latency_p99_ms_median", "latency_p99_ms_worst",
-        "feed_lag_p99_ms_median", "tick_mean_ms_median", "rss_mb_first", "rss_mb_last",
+        "feed_lag_p99_ms_median", "sim_lag_p99_ms_median", "probe_lag_p99_ms_median",
+        "load1_median", "cpu_pct_median", "tick_mean_ms_median", "rss_mb_first", "rss_mb_last",
         "rss_mb_max", "pss_mb_last", "outbox_rows_max", "windows_received",
         "losses_after_warmup", "feed_kept_up")]
     print(table(rows, ["soak", "value"]))

@@ -178,6 +178,21 @@ def test_paced_publish_in_process_keeps_order(broker: int) -> None:
     assert _by_topic(sub.received) == _by_topic([(t, p) for _, t, p in expected])
 
 
+def test_wall_start_holds_each_message_until_its_wall_clock_time(broker: int) -> None:
+    """With `wall_start`, the message at simulated time t leaves no earlier than
+    wall_start + (t - sim_origin) / speed on the wall clock, whenever the run started."""
+    origin, speed = 5000.0, 2.0
+    msgs = [(origin + dt, "itwall/a", b"x") for dt in (0.0, 0.2, 0.4)]
+    sent_at: list[float] = []
+    wall_start = time.time() + 0.3
+    stats = publish(iter(msgs), host="127.0.0.1", port=broker, speed=speed,
+                    sim_origin=origin, wall_start=wall_start,
+                    on_sent=lambda m: sent_at.append(time.time()))
+    assert stats.sent == 3
+    due = [wall_start + (t - origin) / speed for t, _, _ in msgs]
+    assert all(s >= d - 0.005 for s, d in zip(sent_at, due, strict=True)), (sent_at, due)
+
+
 def test_stop_event_ends_a_paced_run_early(broker: int) -> None:
     """Setting `stop` ends publish() at the next message; the rest are not sent."""
     s = parse_scenario({"plant": "itstop", "seed": 1, "start": 0.0, "duration_s": 600,
