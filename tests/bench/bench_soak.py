@@ -187,7 +187,8 @@ class Upstream:
     it was due to be sampled and publishes it then, so feed lag minus probe delay is
     how far behind its own schedule the simulator runs."""
 
-    def __init__(self, port: int, lateness: dict[str, float]) -> None:
+    def __init__(self, port: int, lateness: dict[str, float], shards: int = SIM_SHARDS
+                 ) -> None:
         self.lock = threading.Lock()
         self.lat: list[tuple[float, float]] = []  # (receipt, seconds beyond close)
         self.feed: list[tuple[float, float]] = []  # (receipt, sample age)
@@ -201,8 +202,8 @@ class Upstream:
         self.c.subscribe("watchkeep/+/+/assets/+/state", qos=1)
         self.c.subscribe("$SYS/broker/publish/messages/dropped", qos=0)
         self.c.subscribe("$SYS/broker/store/messages/count", qos=0)
-        # One current sensor per simulator shard (clone k is in shard k % SIM_SHARDS).
-        for k in range(SIM_SHARDS):
+        # One current sensor per simulator shard (clone k is in shard k % shards).
+        for k in range(shards):
             self.c.subscribe(f"fernbrook/raw-water/{clone_name('P-101', k)}/current", qos=0)
         self.c.subscribe(PROBE_TOPIC, qos=0)
         self.c.loop_start()
@@ -317,15 +318,16 @@ def run(minutes: float, out_dir: Path, copies: int = COPIES, hog: bool = True
     broker = Broker(tmp / "broker", extra="sys_interval 10\n").start()
     http_port = free_port()
     cfg = scaled_config(tmp / "state", broker.port, http_port, models, copies)
+    shards = min(SIM_SHARDS, copies)
     lateness = {a["name"]: float(a.get("window", {}).get("lateness_s", 1.0))
                 for a in cfg["assets"]}
     (tmp / "watchkeep.yaml").write_text(yaml.safe_dump(cfg, sort_keys=False))
-    for i in range(SIM_SHARDS):
+    for i in range(shards):
         (tmp / f"scenario-{i}.yaml").write_text(
-            yaml.safe_dump(scaled_scenario(minutes, i, SIM_SHARDS, copies), sort_keys=False))
+            yaml.safe_dump(scaled_scenario(minutes, i, shards, copies), sort_keys=False))
     bin_dir = Path(sys.executable).parent
     procs: dict[str, subprocess.Popen[bytes]] = {}
-    up = Upstream(broker.port, lateness)
+    up = Upstream(broker.port, lateness, shards)
     series: list[dict[str, Any]] = []
     try:
         with open(tmp / "daemon.log", "wb") as err:
@@ -339,7 +341,7 @@ def run(minutes: float, out_dir: Path, copies: int = COPIES, hog: bool = True
         # The shards share one simulated clock, held to the wall clock from `start`
         # (tests/bench/soak_shard.py): a few seconds ahead, time for them to start.
         start = f"{time.time() + 5:.3f}"
-        for i in range(SIM_SHARDS):
+        for i in range(shards):
             with open(tmp / f"sim-{i}.log", "wb") as err:
                 procs[f"sim{i}"] = subprocess.Popen(
                     [sys.executable, "-m", "tests.bench.soak_shard", "--scenario",
@@ -348,7 +350,7 @@ def run(minutes: float, out_dir: Path, copies: int = COPIES, hog: bool = True
                     stdout=subprocess.DEVNULL, stderr=err, cwd=ROOT)
         cpu = CpuShare({
             "daemon": [procs["daemon"].pid], "ingest_child": [],
-            "simulator": [procs[f"sim{i}"].pid for i in range(SIM_SHARDS)],
+            "simulator": [procs[f"sim{i}"].pid for i in range(shards)],
             "broker": [broker.proc.pid] if broker.proc is not None else [],
             "hog": [procs["hog"].pid] if hog else [], "bench": [os.getpid()]})
         setup_s = time.monotonic() - t_setup
@@ -419,7 +421,7 @@ def run(minutes: float, out_dir: Path, copies: int = COPIES, hog: bool = True
                                                              for k, v in share.items()),
                   flush=True)
         sim_rc = 0
-        for i in range(SIM_SHARDS):
+        for i in range(shards):
             procs[f"sim{i}"].terminate()
             sim_rc = max(sim_rc, abs(procs[f"sim{i}"].wait(60)))
     finally:
@@ -434,7 +436,7 @@ def run(minutes: float, out_dir: Path, copies: int = COPIES, hog: bool = True
         up.close()
         broker.stop()
     sim_log = "".join((tmp / f"sim-{i}.log").read_text(errors="replace")
-                      for i in range(SIM_SHARDS))
+                      for i in range(shards))
     res = summarize(series, base or {}, minutes, sim_log, sim_rc, tmp, out_dir,
                     assets=len(cfg["assets"]), hog_cores=int(hog))
     res["interrupted"] = interrupted
