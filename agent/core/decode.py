@@ -105,10 +105,14 @@ def _number(v: Any, what: str) -> float:
 def _loads_relaxed(payload: bytes) -> Any:
     try:
         return _loads(payload)
-    except _JSON_ERRORS:
-        pass
-    # orjson refuses the NaN/Infinity literals that some publishers send; the stdlib
-    # parser reads them, so they are counted as non-finite, not as malformed.
+    except _JSON_ERRORS as exc:
+        # orjson refuses the NaN/Infinity literals that some publishers send, and numbers
+        # past float range; the stdlib parser reads them, so they are counted as
+        # non-finite, not as malformed. Nesting past orjson's depth limit (1,024) is
+        # malformed here and now: whether the stdlib parser would read it depends on the
+        # interpreter's recursion limit, which other code in the process may have raised.
+        if "depth limit" in str(exc):
+            raise Rejected(Reason.MALFORMED, "JSON nested too deeply") from None
     try:
         return json.loads(payload)
     except (ValueError, UnicodeDecodeError) as exc:

@@ -107,8 +107,7 @@ def components(graph: dict[str, list[Edge]]) -> list[list[str]]:
     stack: list[str] = []
     on: set[str] = set()
     comps: list[list[str]] = []
-    counter = 0
-    sys.setrecursionlimit(max(10_000, sys.getrecursionlimit()))
+    counter = 0  # the graph's depth is well under the default recursion limit
 
     def visit(v: str) -> None:
         nonlocal counter

@@ -261,3 +261,19 @@ def test_arbitrary_json_never_raises_anything_but_rejected(ch: ChannelConfig, do
     except Rejected:
         return
     assert np.all(np.isfinite(np.asarray(v))) and np.all(np.isfinite(np.asarray(ts)))
+
+
+@pytest.mark.parametrize("ch", [JSON, BATCH])
+def test_deep_nesting_is_malformed_whatever_the_recursion_limit(ch: ChannelConfig) -> None:
+    """JSON nested past orjson's depth limit is malformed even when something in the
+    process has raised the interpreter's recursion limit (the stdlib parser would then
+    read it, and the payload would count as a wrong type instead)."""
+    import sys
+
+    deep = b'{"ts": ' * 5000 + b"1" + b"}" * 5000
+    was = sys.getrecursionlimit()
+    sys.setrecursionlimit(50_000)
+    try:
+        assert reason_of(deep, ch) is Reason.MALFORMED
+    finally:
+        sys.setrecursionlimit(was)
