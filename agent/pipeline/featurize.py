@@ -95,20 +95,7 @@ def _place_all(todo: Sequence[Pending]) -> tuple[
         first = len(places)
         w = p.w
         blocks = w.blocks
-        if len(blocks) == 1 and blocks[0].uniform and blocks[0].base is not None:
-            # The usual case, `_place` spelt out: one full block, rows of a cut matrix.
-            blk = blocks[0]
-            n = blk.values.shape[1]
-            off = n_by_len.get(n, 0)
-            parts = by_len.get(n)
-            if parts is None:
-                parts = by_len[n] = []
-            parts.append(blk.values)
-            n_by_len[n] = off + len(blk.chans)
-            places.append((blk.chans, n, off))
-            base = whole.get(n, blk.base) if off else blk.base
-            whole[n] = base if base is blk.base and blk.row0 == off else None
-        elif blocks:
+        if blocks:
             for blk in blocks:
                 _place(blk, by_len, n_by_len, ragged, places, whole)
         else:  # a window built from per-channel arrays
