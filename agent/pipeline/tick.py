@@ -35,7 +35,7 @@ import logging
 import math
 import time
 from collections.abc import Callable, Mapping, Sequence
-from typing import Any, Protocol
+from typing import Any, Protocol, TypeVar
 
 import numpy as np
 
@@ -56,6 +56,8 @@ from agent.pipeline.infer import Item, Result, Scorer
 from agent.pipeline.judge import Judge, Pending
 from agent.pipeline.messages import OutMessage
 from agent.pipeline.runtime import AssetRuntime
+
+T = TypeVar("T")
 
 __all__ = ["Pipeline", "Sink", "TickStats", "WindowObserver", "WindowWanted"]
 
@@ -370,35 +372,36 @@ class Pipeline:
             except Exception as exc:
                 self._failed(p.rt, "detector", exc)
 
-    def _by_asset(self, todo: Sequence[Any], rt_of: Callable[[Any], AssetRuntime]
-                  ) -> dict[int, list[Any]]:
-        groups: dict[int, list[Any]] = {}
-        for it in todo:
-            groups.setdefault(id(rt_of(it)), []).append(it)
-        return groups
-
-    def _features(self, todo: list[Pending]) -> list[np.ndarray]:
-        t0 = time.perf_counter()
-        rows = feature_rows(todo, self._work)
-        self.metrics.feature_seconds.observe(time.perf_counter() - t0)
-        return rows
-
-    def _rows(self, todo: list[Pending]) -> None:
-        """`_features` of every window into its `row`; contained per asset."""
+    def _contained(self, todo: Sequence[T], rt_of: Callable[[T], AssetRuntime], stage: str,
+                   work: Callable[[Sequence[T]], None]) -> None:
+        """`work(todo)` for all at once; when it raises, again asset by asset, and only
+        an asset whose own part raises fails (`_failed` at `stage`)."""
         try:
-            for p, r in zip(todo, self._features(todo), strict=True):
-                p.row = r
+            work(todo)
             return
         except Exception as exc:
-            if len({id(p.rt) for p in todo}) == 1:
-                self._failed(todo[0].rt, "features", exc)
+            if len({id(rt_of(it)) for it in todo}) == 1:
+                self._failed(rt_of(todo[0]), stage, exc)
                 return
-        for part in self._by_asset(todo, lambda p: p.rt).values():
+        groups: dict[int, list[T]] = {}
+        for it in todo:
+            groups.setdefault(id(rt_of(it)), []).append(it)
+        for part in groups.values():
             try:
-                for p, r in zip(part, self._features(part), strict=True):
-                    p.row = r
+                work(part)
             except Exception as exc:
-                self._failed(part[0].rt, "features", exc)
+                self._failed(rt_of(part[0]), stage, exc)
+
+    def _rows(self, todo: list[Pending]) -> None:
+        """Every window's feature row into its `row`; contained per asset."""
+        def work(part: Sequence[Pending]) -> None:
+            t0 = time.perf_counter()
+            rows = feature_rows(part, self._work)
+            self.metrics.feature_seconds.observe(time.perf_counter() - t0)
+            for p, r in zip(part, rows, strict=True):
+                p.row = r
+
+        self._contained(todo, lambda p: p.rt, "features", work)
 
     def _scores(self, items: list[Item], by_key: dict[int, Pending]) -> dict[int, Result]:
         """The scorer's results, contained per asset."""
@@ -408,18 +411,9 @@ class Pipeline:
                 self.log.error(kv("model failed", asset=rt.cfg.name, error=detail))
             self._skip(rt, "model_error")
 
-        try:
-            return self.scorer.scores(items, model_error)
-        except Exception as exc:
-            if len({id(by_key[it[0]].rt) for it in items}) == 1:
-                self._failed(by_key[items[0][0]].rt, "inference", exc)
-                return {}
         results: dict[int, Result] = {}
-        for part in self._by_asset(items, lambda it: by_key[it[0]].rt).values():
-            try:
-                results.update(self.scorer.scores(part, model_error))
-            except Exception as exc:
-                self._failed(by_key[part[0][0]].rt, "inference", exc)
+        self._contained(items, lambda it: by_key[it[0]].rt, "inference",
+                        lambda part: results.update(self.scorer.scores(part, model_error)))
         return results
 
     def status(self) -> dict[str, Any]:
