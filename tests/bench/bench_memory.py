@@ -55,7 +55,10 @@ def tree(pid: int) -> list[int]:
     """`pid` and its child processes (the ingest worker), from /proc."""
     kids: list[int] = []
     for task in Path(f"/proc/{pid}/task").iterdir():
-        kids += [int(c) for c in (task / "children").read_text().split()]
+        try:
+            kids += [int(c) for c in (task / "children").read_text().split()]
+        except (FileNotFoundError, ProcessLookupError):  # the thread ended meanwhile
+            continue
     return [pid, *kids]
 
 
