@@ -37,15 +37,25 @@ BARE = ("import time, numpy, onnxruntime, onnx, paho.mqtt.client, prometheus_cli
         "orjson; time.sleep(4)")
 
 
+def _proc(pid: int, name: str) -> list[str]:
+    """The lines of /proc/<pid>/<name>; none once the process is gone."""
+    try:
+        return Path(f"/proc/{pid}/{name}").read_text().splitlines()
+    except (FileNotFoundError, ProcessLookupError):
+        return []
+
+
 def rss_mb(pid: int) -> float:
-    for line in Path(f"/proc/{pid}/status").read_text().splitlines():
+    """RSS in MB; 0 for a process that is gone (a restarted ingest child)."""
+    for line in _proc(pid, "status"):
         if line.startswith("VmRSS:"):
             return int(line.split()[1]) / 1024
-    return float("nan")
+    return 0.0
 
 
 def pss_mb(pid: int) -> float:
-    for line in Path(f"/proc/{pid}/smaps_rollup").read_text().splitlines():
+    """PSS in MB; 0 for a process that is gone."""
+    for line in _proc(pid, "smaps_rollup"):
         if line.startswith("Pss:"):
             return int(line.split()[1]) / 1024
     return float("nan")
