@@ -197,3 +197,21 @@ class StampedCollector:
     def close(self) -> None:
         self.client.disconnect()
         self.client.loop_stop()
+
+
+def sparkplug_payload(seq: int | None, metrics: list[dict[str, Any]],
+                      ts_ms: int | None) -> bytes:
+    """A Sparkplug B payload: its timestamp and seq when given, each metric's fields as
+    given (name, alias, datatype, a value field, ...)."""
+    from agent.sparkplug_b.sparkplug_b_pb2 import Payload
+
+    p = Payload()
+    if ts_ms is not None:
+        p.timestamp = ts_ms
+    if seq is not None:
+        p.seq = seq
+    for spec in metrics:
+        m = p.metrics.add()
+        for k, v in spec.items():
+            setattr(m, k, v)
+    return p.SerializeToString()

@@ -92,18 +92,9 @@ def _setup() -> tuple[Any, dict[str, Any]]:
 
 
 def spb_payload(seq: int | None, metrics: list[dict[str, Any]], ts_ms: int | None) -> bytes:
-    from agent.sparkplug_b.sparkplug_b_pb2 import Payload
+    from tests.helpers import sparkplug_payload
 
-    p = Payload()
-    if ts_ms is not None:
-        p.timestamp = ts_ms
-    if seq is not None:
-        p.seq = seq
-    for spec in metrics:
-        m = p.metrics.add()
-        for k, v in spec.items():
-            setattr(m, k, v)
-    return p.SerializeToString()
+    return sparkplug_payload(seq, metrics, ts_ms)
 
 
 @dataclass

@@ -24,9 +24,9 @@ from agent.config.load import Config, parse_config
 from agent.core.decode import Block, Reason, Rejected
 from agent.core.routing import channel_routes
 from agent.core.sparkplug import Note, SparkplugDecoder
-from agent.sparkplug_b.sparkplug_b_pb2 import Payload
 from tests.fuzz.common import MAX_PAYLOAD_BYTES, NOW, SKEW_S
 from tests.fuzz.harness import Target, check
+from tests.helpers import sparkplug_payload
 
 G, E, D = "fernbrook-dosing", "dosing-gw", "C-301"
 BASE = f"spBv1.0/{G}"
@@ -136,16 +136,7 @@ def one_input(data: bytes) -> None:
 
 
 def payload(seq: int | None, metrics: list[dict[str, Any]], ts: int | None = MS) -> bytes:
-    p = Payload()
-    if ts is not None:
-        p.timestamp = ts
-    if seq is not None:
-        p.seq = seq
-    for spec in metrics:
-        m = p.metrics.add()
-        for k, v in spec.items():
-            setattr(m, k, v)
-    return p.SerializeToString()
+    return sparkplug_payload(seq, metrics, ts)
 
 
 def _birth_metrics(alias: bool = True) -> list[dict[str, Any]]:

@@ -28,6 +28,7 @@ from agent.ops.metrics import Metrics
 from agent.pipeline.runtime import AssetRuntime
 from agent.pipeline.tick import Pipeline
 from agent.sparkplug_b.sparkplug_b_pb2 import Payload
+from tests.helpers import sparkplug_payload
 
 G, E, D = "fernbrook-dosing", "dosing-gw", "C-301"
 BASE = f"spBv1.0/{G}"
@@ -66,16 +67,7 @@ def _decoder(cfg: Config) -> SparkplugDecoder:
 
 
 def _payload(seq: int | None, metrics: list[dict[str, Any]], ts: int | None = MS) -> bytes:
-    p = Payload()
-    if ts is not None:
-        p.timestamp = ts
-    if seq is not None:
-        p.seq = seq
-    for spec in metrics:
-        m = p.metrics.add()
-        for k, v in spec.items():
-            setattr(m, k, v)
-    return p.SerializeToString()
+    return sparkplug_payload(seq, metrics, ts)
 
 
 def _born(dec: SparkplugDecoder, device_metrics: list[dict[str, Any]], *,
