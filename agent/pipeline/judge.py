@@ -12,6 +12,7 @@ Skip reasons, first match wins: `sensor_fault`, `incomplete`, `unknown_mode`,
 from __future__ import annotations
 
 import logging
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 from itertools import pairwise
@@ -59,23 +60,34 @@ class Judge:
         # Gauge children of limits and zones, with the value last set.
         self._gauges: dict[tuple[int, tuple[str, ...]], list[Any]] = {}
 
-    def stale(self, rt: AssetRuntime, ai: int, now: float) -> None:
-        """Staleness of the asset's channels with `stale_s`, judged every tick."""
+    def stale(self, rt: AssetRuntime, ai: int, now: float) -> float:
+        """Staleness of the asset's channels with `stale_s`, judged at `now`. Returns
+        the earliest time one of them can turn stale unless a sample arrives (inf
+        while each is stale already or never can be): until then, judging them again
+        changes nothing, as arrivals only move forward (tick.py visits the asset again
+        then, or sooner when a window of it closes)."""
+        wake = math.inf
         for ci in rt.stale_channels:
             h = rt.health[ci]
+            stale_s = h.limits.stale_s
             buf = self.buffers.by_asset[ai][ci]
             if not buf.last_arrival:
                 # Never published since start: *waiting*, not stale, for the startup
                 # grace (or the channel's own stale_s, if longer); then stale.
-                since = now - (rt.started_s if rt.started_s is not None else now)
-                if since <= max(self.grace_s, h.limits.stale_s or 0.0):
+                start = rt.started_s if rt.started_s is not None else now
+                bound = max(self.grace_s, stale_s or 0.0)
+                if now - start <= bound:
+                    wake = min(wake, start + bound)
                     continue
-                last = rt.started_s if rt.started_s is not None else now
+                last = start
             else:
                 last = buf.last_arrival
             change = h.check_stale(now - last)
             if change is not None:
                 self.emit.sensor_event(rt, ci, change, now, f"stale|{last:.3f}", None)
+            if stale_s is not None and not h.stale:
+                wake = min(wake, last + stale_s)
+        return wake
 
     def liveness(self, rt: AssetRuntime, notes: list[tuple[int, str | None, float]],
                  now: float) -> None:

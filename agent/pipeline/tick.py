@@ -10,9 +10,9 @@ all the tick's windows at once:
    (`close_inboxes` -> `close_many`: the usual case, exactly the next tumbling window
    with rows in step, is cut for all such assets together as rows of one matrix per
    segment length);
-2. **judge** (`judge.py`): staleness and liveness every tick, then per window sensor
-   health and the operating mode with settling, only for the assets and channels
-   that have them -> `sensor.fault` / `sensor.recovered`;
+2. **judge** (`judge.py`): staleness (when a channel can have gone stale) and liveness,
+   then per window sensor health and the operating mode with settling, only for the
+   assets and channels that have them -> `sensor.fault` / `sensor.recovered`;
 3. **features** (`featurize.py`): time-domain features of all the tick's windows in
    one pass per segment length, spectral ones in one FFT per group of segments;
 4. **limits** (`judge.py`): static limits and ISO 10816-3 zones -> `limit.exceeded`,
@@ -58,6 +58,7 @@ from agent.pipeline.messages import OutMessage
 from agent.pipeline.runtime import AssetRuntime
 
 T = TypeVar("T")
+STALE_MARGIN_S = 1e-6
 
 __all__ = ["Pipeline", "Sink", "TickStats", "WindowObserver", "WindowWanted"]
 
@@ -108,7 +109,12 @@ class Pipeline:
         # What each tick asks of every asset before taking any lock (`tick`).
         self._screen = [(rt.assembler, ib) for rt, ib in zip(runtimes, self._inboxes,
                                                               strict=True)]
-        self._stale_at = [ai for ai, rt in enumerate(runtimes) if rt.stale_channels]
+        # The assets with channels judged for staleness, and for each the time from
+        # which one of them can be stale (`Judge.stale`; -inf: judge at the next tick).
+        self._stale_at = np.array([ai for ai, rt in enumerate(runtimes) if rt.stale_channels],
+                                  dtype=np.intp)
+        self._stale_pos = {int(ai): k for k, ai in enumerate(self._stale_at)}
+        self._stale_wake = np.full(len(self._stale_at), -np.inf)
         # Staleness is judged every tick while this is true. A replay or an offline
         # record turns it off for the ticks after the data has ended (the end of a
         # recording is not every sensor going silent).
@@ -178,7 +184,8 @@ class Pipeline:
     def _due(self, now: float) -> list[int]:
         """The assets with something to do at `now`: a window due
         (`WindowAssembler.due`), late samples, refused or stepped times or liveness
-        notes to count, or channels whose staleness is judged every tick.
+        notes to count, or a channel that can have gone stale since the asset's last
+        visit (`Judge.stale` says from when).
 
         Read without the assets' locks: ingest only ever moves a sample time or an
         arrival forward and adds to the counts, so a stale read here is the same as
@@ -186,8 +193,11 @@ class Pipeline:
         takes it); what is closed is decided again under the locks."""
         due = [ai for ai, (asm, ib) in enumerate(self._screen)
                if ib.late or ib.liveness or ib.ahead or ib.steps or asm.due(now)]
-        if self._stale_at and self.judge_stale:
-            due = sorted(set(due).union(self._stale_at))
+        if self._stale_at.size and self.judge_stale:
+            # A margin for rounding: a visit a little early changes nothing.
+            stale = self._stale_at[self._stale_wake <= now + STALE_MARGIN_S]
+            if stale.size:
+                due = sorted(set(due).union(stale.tolist()))
         return due
 
     def tick(self, now: float) -> TickStats:
@@ -251,7 +261,7 @@ class Pipeline:
                 continue
             try:
                 if rt.stale_channels and self.judge_stale:
-                    judge.stale(rt, ai, now)
+                    self._stale_wake[self._stale_pos[ai]] = judge.stale(rt, ai, now)
                 if res.empty_skipped:
                     self._skip(rt, "no_data", res.empty_skipped)
                     rt.empty_streak += res.empty_skipped

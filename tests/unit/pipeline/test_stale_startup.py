@@ -113,3 +113,25 @@ def test_replay_cli_scores_option(tmp_path: Path, capsys: pytest.CaptureFixture[
     assert f", {len(lines)} window lines in {tmp_path / 'scores.jsonl'}" in err
     assert len(lines) >= 11 and (tmp_path / "ev.jsonl").is_file()
     assert all(json.loads(x)["score"] is not None for x in lines)
+
+
+def test_a_fresh_asset_is_not_visited_every_tick_for_staleness(tmp_path: Path) -> None:
+    """Staleness is judged when a channel can have gone stale (`Judge.stale` returns
+    when), not by visiting every asset with `stale_s` at every tick: between windows,
+    a fresh asset is left alone; the tick after its deadline faults it, as before."""
+    r = Replayer.build(_cfg(tmp_path))
+    for t, topic, payload in ((json.loads(p)["ts"], tp, p) for tp, p in
+                              readings("P-1", T0, 3, seed=1)):
+        r.feed(t, topic, payload)
+    r.advance(T0 + 3 + 0.5)
+    visits = []
+    t = T0 + 3 + 0.5
+    while t < T0 + 3 + 4.5:  # the windows have closed; stale_s 5 s not reached
+        t += r.cfg.tick_s
+        r.advance(t)
+        visits.append(bool(r.pipeline.last_due))
+    assert visits.count(True) <= 3, visits  # the last windows' timeouts, not every tick
+    assert _faults(r) == []
+    r.advance(T0 + 3 + 5.0 + 2 * r.cfg.tick_s)
+    got = _faults(r)
+    assert len(got) == 3 and all(e["data"]["reasons"] == ["stale"] for e in got)
