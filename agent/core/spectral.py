@@ -37,6 +37,7 @@ from collections.abc import Sequence
 import numpy as np
 
 from agent.config.schema import SpectrumConfig
+from agent.core.features import WorkArrays, stack_rows
 
 VELOCITY_BAND_HZ = (10.0, 1000.0)  # ISO 10816-3:2009 clause 4 measurement band
 MIN_SAMPLES = 8
@@ -72,20 +73,36 @@ def psd(x: np.ndarray, fs: float) -> tuple[np.ndarray, np.ndarray]:
     return np.fft.rfftfreq(n, 1.0 / fs), p
 
 
+def _work(work: WorkArrays | None, name: str, shape: tuple[int, int],
+          complex_: bool = False) -> np.ndarray:
+    """A work array of `work` (fresh without one); complex ones as pairs of floats."""
+    if not complex_:
+        return work.get(name, shape) if work is not None else np.empty(shape)
+    if work is None:
+        return np.empty(shape, dtype=np.complex128)
+    return work.get(name, (shape[0], 2 * shape[1])).view(np.complex128)
+
+
 def _group_features(x: np.ndarray, fs: float, spec: SpectrumConfig,
-                    speed_hz: np.ndarray) -> np.ndarray:
-    """Features of equal-length segments x [M, N] sharing a config: [M, n_features]."""
+                    speed_hz: np.ndarray, work: WorkArrays | None = None) -> np.ndarray:
+    """Features of equal-length segments x [M, N] sharing a config: [M, n_features].
+
+    The megabyte intermediates live in `work`'s arrays (fresh ones cost page faults on
+    every call, a third of the time at 2,560 Hz x 5 s); the arithmetic is the same."""
     m, n = x.shape
+    nf = n // 2 + 1
     w = hann(n)
-    d = x - x.mean(axis=1, keepdims=True)
-    spec_c = np.fft.rfft(d * w, axis=1)
-    mag = np.abs(spec_c)
+    d = np.subtract(x, x.mean(axis=1, keepdims=True), out=_work(work, "sp_d", (m, n)))
+    spec_c = np.fft.rfft(np.multiply(d, w, out=_work(work, "sp_dw", (m, n))), axis=1,
+                         out=_work(work, "sp_c", (m, nf), True))
+    mag = np.abs(spec_c, out=_work(work, "sp_mag", (m, nf)))
     freqs = np.fft.rfftfreq(n, 1.0 / fs)
     df = fs / n
     nyq = fs / 2.0
     c = _one_sided(n)
-    p = mag * mag * (c / (fs * float(np.sum(w * w))))
-    amp = mag * (c / float(np.sum(w)))
+    p = np.multiply(mag, mag, out=_work(work, "sp_p", (m, nf)))
+    p *= c / (fs * float(np.sum(w * w)))
+    amp = np.multiply(mag, c / float(np.sum(w)), out=_work(work, "sp_amp", (m, nf)))
     cols: list[np.ndarray] = []
     if spec.bands_hz:
         masks = np.stack([band_mask(freqs, lo, hi, nyq) for lo, hi in spec.bands_hz])
@@ -102,14 +119,7 @@ def _group_features(x: np.ndarray, fs: float, spec: SpectrumConfig,
         nb = np.stack([amp[rows, np.clip(t + j, 1, kmax)] for j in (-1, 0, 1)])
         cols.append(np.where(ok, nb.max(axis=0), 0.0))
     if spec.envelope_hz is not None:
-        lo, hi = spec.envelope_hz
-        raw = np.fft.rfft(d, axis=1)
-        analytic = np.zeros((m, n), dtype=np.complex128)
-        keep = band_mask(freqs, lo, hi, nyq) & (freqs > 0)
-        # The analytic signal: positive frequencies doubled, negative ones zero.
-        analytic[:, :freqs.size] = np.where(keep, 2.0 * raw, 0.0)
-        env = np.abs(np.fft.ifft(analytic, axis=1))
-        cols.append(env.std(axis=1))
+        cols.append(_envelope_std(d, freqs, spec.envelope_hz, nyq, work))
     if spec.velocity_rms:
         lo, hi = VELOCITY_BAND_HZ
         band = band_mask(freqs, lo, min(hi, nyq), nyq) & (freqs > 0)
@@ -120,9 +130,35 @@ def _group_features(x: np.ndarray, fs: float, spec: SpectrumConfig,
     return np.stack(cols, axis=1) if cols else np.empty((m, 0))
 
 
+def _envelope_std(d: np.ndarray, freqs: np.ndarray, band_hz: tuple[float, float],
+                  nyq: float, work: WorkArrays | None) -> np.ndarray:
+    """The standard deviation of the Hilbert envelope of each row of `d` (mean removed)
+    band-passed to `band_hz`, as `np.abs(np.fft.ifft(analytic)).std(axis=1)`."""
+    m, n = d.shape
+    raw = np.fft.rfft(d, axis=1, out=_work(work, "sp_raw", (m, freqs.size), True))
+    analytic = _work(work, "sp_an", (m, n), True)
+    keep = np.flatnonzero(band_mask(freqs, band_hz[0], band_hz[1], nyq) & (freqs > 0))
+    # The analytic signal: positive frequencies doubled, negative ones zero. The band
+    # is one run of bins.
+    lo, hi = (int(keep[0]), int(keep[-1]) + 1) if keep.size else (0, 0)
+    analytic[:, :lo] = 0.0
+    np.multiply(raw[:, lo:hi], 2.0, out=analytic[:, lo:hi])
+    analytic[:, hi:] = 0.0
+    env = np.abs(np.fft.ifft(analytic, axis=1, out=analytic),
+                 out=_work(work, "sp_env", (m, n)))
+    # env.std(axis=1), in place (numpy's own steps: mean, deviations, their mean square).
+    mean = env.sum(axis=1, keepdims=True)
+    mean /= n
+    env -= mean
+    env *= env
+    var = env.sum(axis=1)
+    var /= n
+    return np.sqrt(var)
+
+
 def spectral_features(segments: Sequence[np.ndarray], rates_hz: Sequence[float],
-                      specs: Sequence[SpectrumConfig], speeds_hz: Sequence[float]
-                      ) -> list[np.ndarray]:
+                      specs: Sequence[SpectrumConfig], speeds_hz: Sequence[float],
+                      work: WorkArrays | None = None) -> list[np.ndarray]:
     """Each segment's features in `specs[i].feature_names()` order.
 
     `speeds_hz[i]` is the running speed (shaft rate in Hz) during segment i, NaN when
@@ -137,9 +173,10 @@ def spectral_features(segments: Sequence[np.ndarray], rates_hz: Sequence[float],
         else:
             out[i] = np.full(len(spec.feature_names()), np.nan)
     for (_, fs, spec), idx in groups.items():
-        x = np.stack([np.asarray(segments[i], dtype=np.float64) for i in idx])
+        x = stack_rows([np.asarray(segments[i], dtype=np.float64).reshape(1, -1)
+                        for i in idx], "sp_x", work=work)
         sp = np.asarray([speeds_hz[i] for i in idx], dtype=np.float64)
-        block = _group_features(x, fs, spec, sp)
+        block = _group_features(x, fs, spec, sp, work)
         for j, i in enumerate(idx):
             out[i] = block[j]
     return out  # type: ignore[return-value]  # every entry is set above

@@ -47,7 +47,7 @@ def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None) -> lis
         feats[n] = block_features(x, needed, work=work)
     if ragged:
         feats[-1] = segment_features(ragged)
-    spec = _spectral(todo)
+    spec = _spectral(todo, work)
     rows: list[np.ndarray] = []
     for p, (a, b), k in zip(todo, spans, spec[1], strict=True):
         rt = p.rt
@@ -105,7 +105,8 @@ def _place_all(todo: Sequence[Pending]) -> tuple[
     return by_len, n_by_len, ragged, whole, places, spans
 
 
-def _spectral(todo: Sequence[Pending]) -> tuple[list[np.ndarray], list[int]]:
+def _spectral(todo: Sequence[Pending], work: WorkArrays | None = None
+              ) -> tuple[list[np.ndarray], list[int]]:
     """The spectral features of every spectral channel of every window, in window and
     channel order, and per window where its first one is (-1: none)."""
     segs: list[np.ndarray] = []
@@ -130,7 +131,7 @@ def _spectral(todo: Sequence[Pending]) -> tuple[list[np.ndarray], list[int]]:
             rates.append(ch.rate_hz)
             cfgs.append(ch.spectrum)
             speeds.append(speed_hz)
-    return (spectral_features(segs, rates, cfgs, speeds) if segs else []), first
+    return (spectral_features(segs, rates, cfgs, speeds, work) if segs else []), first
 
 
 def _place(blk: Block, by_len: dict[int, list[np.ndarray]], n_by_len: dict[int, int],

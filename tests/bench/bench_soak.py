@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import re
 import signal
@@ -342,8 +343,12 @@ def run(minutes: float, out_dir: Path, copies: int = COPIES, hog: bool = True
         if hog:
             procs["hog"] = subprocess.Popen([sys.executable, "-c", HOG])
         # The shards share one simulated clock, held to the wall clock from `start`
-        # (tests/bench/soak_shard.py): a few seconds ahead, time for them to start.
-        start = f"{time.time() + 5:.3f}"
+        # (tests/bench/soak_shard.py): a few seconds ahead, time for them to start. On a
+        # whole second, so that the samples are on the windows' grid and the sample that
+        # closes a window is due at its `end + lateness_s`, from which latency is
+        # measured; off the grid, every window waited for the next sample as well (up to
+        # one sample period, 0.1 s at the demo's 10 Hz), the same for all assets.
+        start = f"{math.ceil(time.time() + 5)}"
         for i in range(shards):
             with open(tmp / f"sim-{i}.log", "wb") as err:
                 procs[f"sim{i}"] = subprocess.Popen(

@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 
 from agent.config.load import SpectrumConfig
+from agent.core.features import WorkArrays
 from agent.core.spectral import spectral_features
 
 SPEC = SpectrumConfig(bands_hz=((10.0, 200.0), (200.0, 1280.0)), velocity_rms=True,
@@ -29,6 +31,30 @@ def test_batched_equals_one_by_one() -> None:
     for seg, sp, row in zip(segs, speeds, together, strict=True):
         (alone,) = spectral_features([seg], [2560.0], [SPEC], [sp])
         np.testing.assert_allclose(row, alone, rtol=1e-12)
+
+
+def test_work_arrays_change_nothing() -> None:
+    """With a pipeline's reusable work arrays (kept between calls of other sizes and
+    configs, as the tick keeps them), every value is bit for bit what fresh arrays give;
+    the envelope's standard deviation is numpy's `std` of the Hilbert envelope."""
+    rng = np.random.default_rng(4)
+    work = WorkArrays()
+    other = SpectrumConfig(envelope_hz=(0.0, 5000.0))
+    for n, spec in ((12800, SPEC), (1024, other), (2304, SPEC), (12800, other)):
+        segs = [rng.normal(size=n) for _ in range(3)]
+        fresh = spectral_features(segs, [2560.0] * 3, [spec] * 3, [49.5] * 3)
+        reused = spectral_features(segs, [2560.0] * 3, [spec] * 3, [49.5] * 3, work)
+        for a, b in zip(fresh, reused, strict=True):
+            assert np.array_equal(a, b)
+    # The envelope as its textbook definition, band-passed 600-1100 Hz in the frequency
+    # domain: |analytic signal| (positive frequencies doubled, negative ones zero).
+    x = rng.normal(size=2560)
+    spec_x = np.fft.fft(x - x.mean())
+    f = np.fft.fftfreq(x.size, 1 / 2560.0)
+    analytic = np.where((f >= 600.0) & (f < 1100.0), 2.0 * spec_x, 0.0)
+    (row,) = spectral_features([x], [2560.0], [SPEC], [49.5], work)
+    assert row[SPEC.feature_names().index("envelope_rms")] == pytest.approx(
+        np.abs(np.fft.ifft(analytic)).std(), rel=1e-12)
 
 
 def test_short_segment_is_nan_and_unknown_speed_is_zero_orders() -> None:
