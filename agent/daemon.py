@@ -148,7 +148,7 @@ class Daemon:
                                    max_connections=cfg.http.max_connections,
                                    request_timeout_s=cfg.http.request_timeout_s)
         self._start_threads()
-        loaded = sum(1 for rt in runtimes if rt.bundle is not None)
+        loaded = sum(1 for rt in runtimes if rt.models.shown is not None)
         self.log.info(kv("watchkeep started", version=__version__, assets=len(runtimes),
                          models=loaded,
                          http=f"{cfg.http.host}:{self.http.port}" if self.http else "off"))
@@ -185,7 +185,7 @@ class Daemon:
         if not self.ingest.connected.is_set():
             return False, "local broker not connected"
         missing = [rt.cfg.name for rt in self.pipeline.runtimes
-                   if rt.cfg.bundle is not None and rt.bundle is None]
+                   if rt.cfg.bundle is not None and rt.models.shown is None]
         if missing:
             return False, "models not loaded: " + ", ".join(missing)
         failing = self.loop.failing()

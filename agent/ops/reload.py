@@ -162,7 +162,7 @@ def _running(runtimes: Iterable[AssetRuntime]) -> dict[str, AssetNow]:
         if rt.cfg.bundle is None:
             digest = None
         else:
-            digest = rt.bundle.digest if rt.bundle is not None else ""
+            digest = rt.models.shown.digest if rt.models.shown is not None else ""
         out[rt.cfg.name] = AssetNow(rt.cfg, digest)
     return out
 
@@ -289,6 +289,6 @@ class Reloader:
 
 def _status_line(running: Running, result: ReloadResult) -> str:
     rts = running.pipeline.runtimes
-    loaded = sum(1 for rt in rts if rt.bundle is not None)
+    loaded = sum(1 for rt in rts if rt.models.shown is not None)
     head = "reloaded" if result.ok else "reload rejected (running the previous config)"
     return f"{len(rts)} assets, {loaded} models loaded; {head}"

@@ -29,7 +29,7 @@ STATUS_EVERY_S = 10.0  # how often STATUS= (systemctl status) is refreshed
 def status_line(daemon: Daemon) -> str:
     """The one-line summary systemd shows in `systemctl status`."""
     rts = daemon.pipeline.runtimes
-    loaded = sum(1 for rt in rts if rt.bundle is not None)
+    loaded = sum(1 for rt in rts if rt.models.shown is not None)
     anomalous = sum(1 for rt in rts if rt.state.value == "anomalous")
     local = "up" if daemon.ingest.connected.is_set() else "down"
     up = "up" if daemon.upstream.connected.is_set() else "down"

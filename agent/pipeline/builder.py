@@ -66,9 +66,9 @@ def load_runtimes(cfg: Config, logger: logging.Logger, *, models: bool = True
         if models:
             bundle, err = load_asset_bundle(a, logger)
             rt = AssetRuntime.build(a, bundle, err)
-            if rt.bundle_error and not err:
+            if rt.models.error and not err:
                 logger.error(kv("model bundle rejected; the asset runs without a model",
-                                asset=a.name, error=rt.bundle_error))
+                                asset=a.name, error=rt.models.error))
         else:
             rt = AssetRuntime.build(a, None, None, mode_bundles=({}, {}))
         runtimes.append(rt)

@@ -12,8 +12,6 @@ from __future__ import annotations
 from collections.abc import Callable, Mapping
 from typing import Any
 
-import numpy as np
-
 from agent.core.detector import State
 from agent.core.detector_params import DetectorParams
 from agent.core.events import EventType
@@ -21,7 +19,7 @@ from agent.learning.ports import OpenAnomaly
 from agent.models.bundle import Bundle
 from agent.ops.metrics import Metrics
 from agent.pipeline.messages import Kind, OutMessage
-from agent.pipeline.runtime import DEFAULT_MODE, AssetRuntime, check_bundle_fits, feature_layout
+from agent.pipeline.runtime import DEFAULT_MODE, AssetRuntime, check_bundle_fits
 from agent.pipeline.tick import Pipeline
 
 
@@ -55,7 +53,7 @@ class PipelineControl:
         return rt.mode if rt.modes is not None else DEFAULT_MODE
 
     def serving(self, asset: str, mode: str) -> Bundle | None:
-        bundle, _ = self._rt(asset).bundle_for(mode)
+        bundle, _ = self._rt(asset).models.for_mode(mode)
         return bundle
 
     def serving_modes(self, asset: str) -> dict[str, Bundle]:
@@ -63,9 +61,9 @@ class PipelineControl:
         rt = self._find(asset)
         if rt is None:
             return {}
-        out = dict(rt.mode_bundles)
-        if rt.asset_bundle is not None:
-            out.setdefault(DEFAULT_MODE, rt.asset_bundle)
+        out = dict(rt.models.mode_bundles)
+        if rt.models.asset_bundle is not None:
+            out.setdefault(DEFAULT_MODE, rt.models.asset_bundle)
         return out
 
     def fits(self, asset: str, bundle: Bundle) -> str | None:
@@ -82,15 +80,8 @@ class PipelineControl:
 
     def install(self, asset: str, mode: str, bundle: Bundle) -> None:
         rt = self._rt(asset)
-        if mode in rt.mode_bundles:
-            layout = feature_layout(rt.cfg)
-            rt.mode_bundles[mode] = bundle
-            rt.mode_index[mode] = np.asarray([layout[n] for n in bundle.meta.feature_names],
-                                             np.int64)
-            if rt.asset_bundle is None:
-                rt.bundle = next(iter(rt.mode_bundles.values()))
-            rt.detector.reset()
-            rt.raised_at = None
+        if mode in rt.models.mode_bundles:
+            rt.install_mode(mode, bundle)
         else:
             rt.set_bundle(bundle, None)
         self.metrics.model_loaded.labels(asset).set(1)

@@ -37,7 +37,7 @@ class Pending(Protocol):
 def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None) -> list[np.ndarray]:
     """The full feature row of each window (module docstring), the passes in `work`'s
     reusable arrays."""
-    needed = frozenset().union(*{p.rt.td_needed for p in todo})
+    needed = frozenset().union(*{p.rt.layout.td_needed for p in todo})
     by_len, n_by_len, ragged, whole, places, spans = _place_all(todo)
     feats = {}
     for n, parts in by_len.items():
@@ -52,7 +52,7 @@ def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None) -> lis
     for p, (a, b), k in zip(todo, spans, spec[1], strict=True):
         rt = p.rt
         n_ch = len(rt.cfg.channels)
-        if b - a == 1 and not rt.spectral:
+        if b - a == 1 and not rt.layout.spectral:
             chans, n, off = places[a]
             if len(chans) == n_ch:  # one block of every channel in order: a view
                 rows.append(feats[n][off:off + n_ch].reshape(-1))
@@ -65,7 +65,8 @@ def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None) -> lis
         if k < 0:
             rows.append(np.concatenate(per_ch))
             continue
-        extra = dict(zip(rt.spectral, spec[0][k:k + len(rt.spectral)], strict=True))
+        spectral = rt.layout.spectral
+        extra = dict(zip(spectral, spec[0][k:k + len(spectral)], strict=True))
         parts = []
         for ci in range(n_ch):
             parts.append(per_ch[ci])
@@ -116,18 +117,19 @@ def _spectral(todo: Sequence[Pending], work: WorkArrays | None = None
     first: list[int] = []
     for p in todo:
         rt = p.rt
-        if not rt.spectral:
+        lay = rt.layout
+        if not lay.spectral:
             first.append(-1)
             continue
         first.append(len(segs))
         speed_hz = np.nan
-        if rt.speed_index is not None:
-            sv = p.w.channel(rt.speed_index, rt.chan_at[rt.speed_index])
+        if lay.speed_index is not None:
+            sv = p.w.channel(lay.speed_index, lay.chan_at[lay.speed_index])
             speed_hz = float(sv.mean()) / 60.0 if sv.size else np.nan
-        for ci in rt.spectral:
+        for ci in lay.spectral:
             ch = rt.cfg.channels[ci]
             assert ch.spectrum is not None
-            segs.append(p.w.channel(ci, rt.chan_at[ci]))
+            segs.append(p.w.channel(ci, lay.chan_at[ci]))
             rates.append(ch.rate_hz)
             cfgs.append(ch.spectrum)
             speeds.append(speed_hz)

@@ -67,7 +67,7 @@ class Judge:
         changes nothing, as arrivals only move forward (tick.py visits the asset again
         then, or sooner when a window of it closes)."""
         wake = math.inf
-        for ci in rt.stale_channels:
+        for ci in rt.layout.stale_channels:
             h = rt.health[ci]
             stale_s = h.limits.stale_s
             buf = self.buffers.by_asset[ai][ci]
@@ -103,10 +103,10 @@ class Judge:
                stats: dict[int, WindowStats] | None = None) -> Pending:
         """Sensor health of the window's checked channels (from `stats` where
         `health_stats` had them), then its mode."""
-        if not rt.checked and rt.modes is None:  # nothing to judge but completeness
+        if not rt.layout.checked and rt.modes is None:  # nothing to judge but completeness
             return Pending(rt, w, rt.mode, (), None if w.complete else "incomplete")
         health = rt.health
-        for ci in rt.checked:  # passive channels: nothing to judge (decoders let no
+        for ci in rt.layout.checked:  # passive channels: nothing to judge (decoders let no
             # non-finite sample through), and they can never be faulty
             st = stats.get(ci) if stats is not None else None
             if st is not None:
@@ -115,12 +115,12 @@ class Judge:
                 change = health[ci].check_window(w.values[ci], w.timestamps[ci])
             if change is not None:
                 self.emit.sensor_event(rt, ci, change, w.end, f"{w.start:.3f}", w)
-        faulty = tuple(i for i in rt.checked if health[i].faulty)
+        faulty = tuple(i for i in rt.layout.checked if health[i].faulty)
         settling = False
         scored = True
-        if rt.modes is not None and rt.mode_index_ch is not None:
-            ch = rt.mode_index_ch
-            d = rt.modes.step(w.channel(ch, rt.chan_at[ch]), w.start)
+        if rt.modes is not None and rt.layout.mode_channel is not None:
+            ch = rt.layout.mode_channel
+            d = rt.modes.step(w.channel(ch, rt.layout.chan_at[ch]), w.start)
             if d.mode != rt.mode:
                 self.set_mode(rt, d.mode)
             settling, scored = d.settling, d.scored
@@ -150,9 +150,9 @@ class Judge:
         mats: dict[int, tuple[np.ndarray, np.ndarray, list[int], list[tuple[int, int]],
                               list[bool]]] = {}
         for wi, (rt, w) in enumerate(wins):
-            if not rt.checked:
+            if not rt.layout.checked:
                 continue
-            is_checked, wants_rate = rt.is_checked, rt.wants_rate
+            is_checked, wants_rate = rt.layout.is_checked, rt.layout.wants_rate
             for blk in w.blocks:
                 base, tbase = blk.base, blk.tbase
                 if base is None or tbase is None or not blk.uniform:
@@ -197,7 +197,7 @@ class Judge:
         channels without a sensor fault (a faulty sensor's value says nothing about the
         machine). Gauges are set when their value changes (children looked up once)."""
         rt, w = p.rt, p.w
-        for ci, at in rt.velocity_at:
+        for ci, at in rt.layout.velocity_at:
             v = float(row[at])
             if ci not in p.faulty and np.isfinite(v):
                 cname = rt.cfg.channels[ci].name

@@ -111,8 +111,8 @@ class Pipeline:
                                                               strict=True)]
         # The assets with channels judged for staleness, and for each the time from
         # which one of them can be stale (`Judge.stale`; -inf: judge at the next tick).
-        self._stale_at = np.array([ai for ai, rt in enumerate(runtimes) if rt.stale_channels],
-                                  dtype=np.intp)
+        self._stale_at = np.array([ai for ai, rt in enumerate(runtimes)
+                                   if rt.layout.stale_channels], dtype=np.intp)
         self._stale_pos = {int(ai): k for k, ai in enumerate(self._stale_at)}
         self._stale_wake = np.full(len(self._stale_at), -np.inf)
         # Staleness is judged every tick while this is true. A replay or an offline
@@ -139,12 +139,13 @@ class Pipeline:
 
     def _all_bundles(self) -> list[Bundle]:
         return [b for rt in self.runtimes
-                for b in (rt.asset_bundle, *rt.mode_bundles.values()) if b is not None]
+                for b in (rt.models.asset_bundle, *rt.models.mode_bundles.values())
+                if b is not None]
 
     def _publish_model_gauges(self, rt: AssetRuntime) -> None:
-        self.metrics.model_loaded.labels(rt.cfg.name).set(1 if rt.bundle else 0)
-        if rt.bundle is not None:
-            self._m[rt.cfg.name].threshold.set(rt.bundle.meta.threshold)
+        self.metrics.model_loaded.labels(rt.cfg.name).set(1 if rt.models.shown else 0)
+        if rt.models.shown is not None:
+            self._m[rt.cfg.name].threshold.set(rt.models.shown.meta.threshold)
 
     def _skip(self, rt: AssetRuntime, reason: str, n: int = 1) -> None:
         if n:
@@ -260,7 +261,7 @@ class Pipeline:
                     rt.assembler.reset()
                 continue
             try:
-                if rt.stale_channels and self.judge_stale:
+                if rt.layout.stale_channels and self.judge_stale:
                     self._stale_wake[self._stale_pos[ai]] = judge.stale(rt, ai, now)
                 if res.empty_skipped:
                     self._skip(rt, "no_data", res.empty_skipped)
@@ -295,7 +296,7 @@ class Pipeline:
                 self._set_coverage(rt, cov)
             else:
                 rt.coverage = cov
-            if not rt.checked and rt.modes is None:  # nothing to judge but completeness
+            if not rt.layout.checked and rt.modes is None:  # nothing to judge but completeness
                 pending.append(Pending(rt, w, rt.mode, (), None if w.complete
                                        else "incomplete"))
                 continue
@@ -342,18 +343,16 @@ class Pipeline:
                 continue
             try:
                 row = p.row
-                if row is not None and (rt.limits or rt.velocity_at):
+                if row is not None and (rt.limits or rt.layout.velocity_at):
                     self.judge.limits(p, row)
                 if p.reason is not None:
                     skip(rt, p.reason)
                     continue
                 assert row is not None
                 if observer is not None and (observes is None or observes(rt.cfg.name)):
-                    observer(rt.cfg.name, p.mode, p.w, row[rt.record_index], rt.record_names)
-                if rt.mode_bundles:
-                    bundle, index = rt.bundle_for(p.mode)
-                else:
-                    bundle, index = rt.asset_bundle, rt.model_index
+                    lay = rt.layout
+                    observer(rt.cfg.name, p.mode, p.w, row[lay.record_index], lay.record_names)
+                bundle, index = rt.models.for_mode(p.mode)
                 if bundle is None:
                     skip(rt, "no_model")
                     continue
@@ -430,8 +429,8 @@ class Pipeline:
         """Per-asset status for `/status` and `watchkeep status`."""
         assets = []
         for rt in self.runtimes:
-            meta = rt.bundle.meta if rt.bundle else None
-            serving, _ = rt.bundle_for(rt.mode)
+            meta = rt.models.shown.meta if rt.models.shown else None
+            serving, _ = rt.models.for_mode(rt.mode)
             if serving is not None:
                 meta = serving.meta
             limits = {}
@@ -448,9 +447,9 @@ class Pipeline:
                 "last_window_end": rfc3339(rt.last_window_end) if rt.last_window_end else None,
                 "last_event": rt.last_event,
                 "model": ({"id": meta.model_id, "version": meta.version} if meta else None),
-                "model_error": rt.bundle_error,
-                "mode_models": {m: b.meta.model_id for m, b in rt.mode_bundles.items()},
-                "mode_model_errors": dict(rt.mode_bundle_errors),
+                "model_error": rt.models.error,
+                "mode_models": {m: b.meta.model_id for m, b in rt.models.mode_bundles.items()},
+                "mode_model_errors": dict(rt.models.mode_errors),
                 "sensor_faults": {c.name: [r.value for r in h.reasons]
                                   for c, h in zip(rt.cfg.channels, rt.health, strict=True)
                                   if h.faulty},

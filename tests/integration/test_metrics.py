@@ -91,7 +91,7 @@ def test_scrape_has_the_expected_series_and_values(running, tmp_path: Path) -> N
     assert value(s, "watchkeep_windows_scored_total", asset="P-1") >= 19
     assert value(s, "watchkeep_windows_closed_total", asset="P-1") >= 19
     # Per-asset gauges follow the model.
-    thr = daemon.pipeline.runtimes[0].bundle.meta.threshold
+    thr = daemon.pipeline.runtimes[0].models.shown.meta.threshold
     assert value(s, "watchkeep_anomaly_threshold", asset="P-1") == pytest.approx(thr)
     assert value(s, "watchkeep_anomaly_score", asset="P-1") < thr
     assert value(s, "watchkeep_asset_anomalous", asset="P-1") == 0

@@ -202,7 +202,7 @@ def test_rebaseline_through_the_admin_socket(running) -> None:
     rc, text = _cli("models", "--asset", "P-1", "--socket", sock)
     assert rc == 0 and "* v2" in text and "  v1" in text and "impeller trimmed" in text, text
     # 4. A second rebaseline whose worker is killed mid-training: v2 stays, bytes and all.
-    v2_digest = daemon.pipeline.runtimes[0].bundle.digest
+    v2_digest = daemon.pipeline.runtimes[0].models.shown.digest
     daemon.rebaseline.worker_env[TEST_DELAY_ENV] = "60"
     rc, _ = _cli("rebaseline", "--asset", "P-1", "--socket", sock, "--reason", "crash test")
     assert rc == 0
@@ -216,7 +216,7 @@ def test_rebaseline_through_the_admin_socket(running) -> None:
     assert "killed by signal 9" in failed["data"]["reasons"][0]
     assert store.active_version("P-1", "default") == 2
     assert store.versions("P-1", "default") == [1, 2]
-    assert daemon.pipeline.runtimes[0].bundle.digest == v2_digest
+    assert daemon.pipeline.runtimes[0].models.shown.digest == v2_digest
     # 5. Rollback: v1's exact files are serving again.
     v1_digest = load_bundle(store.version_path("P-1", "default", 1)).digest
     rc, text = _cli("rollback", "--asset", "P-1", "--socket", sock, "--reason", "test")
@@ -224,7 +224,7 @@ def test_rebaseline_through_the_admin_socket(running) -> None:
     rb = wait_for(lambda: _event(collector, "model.updated", action="rollback"),
                   what="rollback event")
     assert (rb["data"]["old_version"], rb["data"]["new_version"]) == (2, 1)
-    assert daemon.pipeline.runtimes[0].bundle.digest == v1_digest
+    assert daemon.pipeline.runtimes[0].models.shown.digest == v1_digest
     assert store.active_version("P-1", "default") == 1
     seqs = [e["data"]["sequence"] for e in collector.events()]
     assert seqs == sorted(seqs)

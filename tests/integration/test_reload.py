@@ -80,15 +80,15 @@ def test_changed_threshold_applies_and_the_other_asset_keeps_its_windows(plant) 
     wait_for(lambda: samples_p2._value.get() == 55, what="P-2's first 5.5 windows ingested")
     old_p2 = daemon.pipeline.runtimes[1]
     old_p2_asm, old_p1 = old_p2.assembler, daemon.pipeline.runtimes[0]
-    assert old_p1.bundle is not None
-    new_thr = old_p1.bundle.meta.threshold / 1e6  # every normal window is now "anomalous"
+    assert old_p1.models.shown is not None
+    new_thr = old_p1.models.shown.meta.threshold / 1e6  # every normal window is now "anomalous"
     set_threshold(Path(old_p1.cfg.bundle), new_thr)
 
     assert daemon.reload() is True
 
     p1_rt, p2_rt = daemon.pipeline.runtimes
     assert p2_rt is old_p2 and p2_rt.assembler is old_p2_asm
-    assert p1_rt is not old_p1 and p1_rt.bundle.meta.threshold == pytest.approx(new_thr)
+    assert p1_rt is not old_p1 and p1_rt.models.shown.meta.threshold == pytest.approx(new_thr)
     assert daemon.metrics.threshold.labels("P-1")._value.get() == pytest.approx(new_thr)
     assert counter(daemon, "reloads", "success") == 1
     for topic, payload in p2_after + p1_after:

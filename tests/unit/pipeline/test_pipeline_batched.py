@@ -75,7 +75,7 @@ def _tick(pipe: Pipeline, buffers: Buffers, k: int, rng: np.random.Generator) ->
 
 def _check_scores(runtimes: list[AssetRuntime], rows: dict[str, np.ndarray]) -> None:
     for rt in runtimes:
-        bundle, _ = rt.bundle_for(rt.mode)
+        bundle, _ = rt.models.for_mode(rt.mode)
         assert bundle is not None and rt.last_score is not None
         want, _ = bundle.score(rows[rt.cfg.name][None, :])
         np.testing.assert_allclose(rt.last_score, want[0], rtol=1e-5, atol=1e-9,
