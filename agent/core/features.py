@@ -99,8 +99,16 @@ class WorkArrays:
         return b[:size].reshape(shape)
 
 
-def _buffer(work: WorkArrays | None, name: str, shape: tuple[int, int]) -> np.ndarray:
-    return work.get(name, shape) if work is not None else np.empty(shape)
+def work_array(work: WorkArrays | None, name: str, shape: tuple[int, int], *,
+               complex_: bool = False) -> np.ndarray:
+    """The work array `name` of `work` as `shape` (a fresh one without `work`); a
+    complex one is held as pairs of floats."""
+    dtype = np.complex128 if complex_ else np.float64
+    if work is None:
+        return np.empty(shape, dtype=dtype)
+    if not complex_:
+        return work.get(name, shape)
+    return work.get(name, (shape[0], 2 * shape[1])).view(np.complex128)
 
 
 def stack_rows(parts: Sequence[np.ndarray], buffer: str = "x", *,
@@ -112,7 +120,7 @@ def stack_rows(parts: Sequence[np.ndarray], buffer: str = "x", *,
         return parts[0]
     width = parts[0].shape[1]
     n = sum(p.shape[0] for p in parts)
-    return np.concatenate(parts, out=_buffer(work, buffer, (n, width)))
+    return np.concatenate(parts, out=work_array(work, buffer, (n, width)))
 
 
 def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES, *,
@@ -133,8 +141,8 @@ def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES, *,
     cols["mean"] = mean
     if needed & {"std", "skewness", "kurtosis"}:
         # Central moments from deviations about each row's own mean (see segment_features).
-        d = np.subtract(x, mean[:, None], out=_buffer(work, "d", x.shape))
-        d2 = np.multiply(d, d, out=_buffer(work, "d2", x.shape))
+        d = np.subtract(x, mean[:, None], out=work_array(work, "d", x.shape))
+        d2 = np.multiply(d, d, out=work_array(work, "d2", x.shape))
         m2 = d2.sum(axis=1) * inv
         flat = m2 <= (1e-12 * np.maximum(np.abs(mean), 1e-300)) ** 2
         safe = np.where(flat, 1.0, m2)

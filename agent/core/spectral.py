@@ -37,7 +37,7 @@ from collections.abc import Sequence
 import numpy as np
 
 from agent.config.schema import SpectrumConfig
-from agent.core.features import WorkArrays, stack_rows
+from agent.core.features import WorkArrays, stack_rows, work_array
 
 VELOCITY_BAND_HZ = (10.0, 1000.0)  # ISO 10816-3:2009 clause 4 measurement band
 MIN_SAMPLES = 8
@@ -77,16 +77,6 @@ def psd(x: np.ndarray, fs: float) -> tuple[np.ndarray, np.ndarray]:
     return np.fft.rfftfreq(n, 1.0 / fs), p
 
 
-def _work(work: WorkArrays | None, name: str, shape: tuple[int, int],
-          complex_: bool = False) -> np.ndarray:
-    """A work array of `work` (fresh without one); complex ones as pairs of floats."""
-    if not complex_:
-        return work.get(name, shape) if work is not None else np.empty(shape)
-    if work is None:
-        return np.empty(shape, dtype=np.complex128)
-    return work.get(name, (shape[0], 2 * shape[1])).view(np.complex128)
-
-
 def _group_features(x: np.ndarray, fs: float, spec: SpectrumConfig,
                     speed_hz: np.ndarray, work: WorkArrays | None = None) -> np.ndarray:
     """Features of equal-length segments x [M, N] sharing a config: [M, n_features].
@@ -96,17 +86,17 @@ def _group_features(x: np.ndarray, fs: float, spec: SpectrumConfig,
     m, n = x.shape
     nf = n // 2 + 1
     w = hann(n)
-    d = np.subtract(x, x.mean(axis=1, keepdims=True), out=_work(work, "sp_d", (m, n)))
-    spec_c = np.fft.rfft(np.multiply(d, w, out=_work(work, "sp_dw", (m, n))), axis=1,
-                         out=_work(work, "sp_c", (m, nf), True))
-    mag = np.abs(spec_c, out=_work(work, "sp_mag", (m, nf)))
+    d = np.subtract(x, x.mean(axis=1, keepdims=True), out=work_array(work, "sp_d", (m, n)))
+    spec_c = np.fft.rfft(np.multiply(d, w, out=work_array(work, "sp_dw", (m, n))), axis=1,
+                         out=work_array(work, "sp_c", (m, nf), complex_=True))
+    mag = np.abs(spec_c, out=work_array(work, "sp_mag", (m, nf)))
     freqs = np.fft.rfftfreq(n, 1.0 / fs)
     df = fs / n
     nyq = fs / 2.0
     c = _one_sided(n)
-    p = np.multiply(mag, mag, out=_work(work, "sp_p", (m, nf)))
+    p = np.multiply(mag, mag, out=work_array(work, "sp_p", (m, nf)))
     p *= c / (fs * float(np.sum(w * w)))
-    amp = np.multiply(mag, c / float(np.sum(w)), out=_work(work, "sp_amp", (m, nf)))
+    amp = np.multiply(mag, c / float(np.sum(w)), out=work_array(work, "sp_amp", (m, nf)))
     cols: list[np.ndarray] = []
     if spec.bands_hz:
         masks = np.stack([band_mask(freqs, lo, hi, nyq) for lo, hi in spec.bands_hz])
@@ -139,8 +129,8 @@ def _envelope_std(d: np.ndarray, freqs: np.ndarray, band_hz: tuple[float, float]
     """The standard deviation of the Hilbert envelope of each row of `d` (mean removed)
     band-passed to `band_hz`, as `np.abs(np.fft.ifft(analytic)).std(axis=1)`."""
     m, n = d.shape
-    raw = np.fft.rfft(d, axis=1, out=_work(work, "sp_raw", (m, freqs.size), True))
-    analytic = _work(work, "sp_an", (m, n), True)
+    raw = np.fft.rfft(d, axis=1, out=work_array(work, "sp_raw", (m, freqs.size), complex_=True))
+    analytic = work_array(work, "sp_an", (m, n), complex_=True)
     keep = np.flatnonzero(band_mask(freqs, band_hz[0], band_hz[1], nyq) & (freqs > 0))
     # The analytic signal: positive frequencies doubled, negative ones zero. The band
     # is one run of bins.
@@ -149,7 +139,7 @@ def _envelope_std(d: np.ndarray, freqs: np.ndarray, band_hz: tuple[float, float]
     np.multiply(raw[:, lo:hi], 2.0, out=analytic[:, lo:hi])
     analytic[:, hi:] = 0.0
     env = np.abs(np.fft.ifft(analytic, axis=1, out=analytic),
-                 out=_work(work, "sp_env", (m, n)))
+                 out=work_array(work, "sp_env", (m, n)))
     # env.std(axis=1), in place (numpy's own steps: mean, deviations, their mean square).
     mean = env.sum(axis=1, keepdims=True)
     mean /= n

@@ -437,8 +437,9 @@ class TickGauges:
                             _forget(metric, asset=name, channel=ch.name)
         for rt in pipeline.runtimes:
             name = rt.cfg.name
-            if rt.models.shown is not None:
-                meta = rt.models.shown.meta
+            shown = rt.models.shown
+            if shown is not None:
+                meta = shown.meta
                 m.model_info.labels(name).info({"model_id": meta.model_id,
                                                 "version": str(meta.version),
                                                 "mode": meta.mode})
@@ -447,7 +448,7 @@ class TickGauges:
                 m.threshold.labels(name).set(math.nan)
             if rt.last_score is None:  # a fresh runtime: no score until its first window
                 m.score.labels(name).set(math.nan)
-            m.model_loaded.labels(name).set(1 if rt.models.shown is not None else 0)
+            m.model_loaded.labels(name).set(1 if shown is not None else 0)
             m.anomalous.labels(name).set(1 if rt.state.value == "anomalous" else 0)
         cfg = pipeline.cfg
         m.outbox_capacity_rows.set(cfg.outbox.max_rows)

@@ -162,7 +162,8 @@ def _running(runtimes: Iterable[AssetRuntime]) -> dict[str, AssetNow]:
         if rt.cfg.bundle is None:
             digest = None
         else:
-            digest = rt.models.shown.digest if rt.models.shown is not None else ""
+            shown = rt.models.shown
+            digest = shown.digest if shown is not None else ""
         out[rt.cfg.name] = AssetNow(rt.cfg, digest)
     return out
 

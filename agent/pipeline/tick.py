@@ -109,12 +109,10 @@ class Pipeline:
         # What each tick asks of every asset before taking any lock (`tick`).
         self._screen = [(rt.assembler, ib) for rt, ib in zip(runtimes, self._inboxes,
                                                               strict=True)]
-        # The assets with channels judged for staleness, and for each the time from
-        # which one of them can be stale (`Judge.stale`; -inf: judge at the next tick).
-        self._stale_at = np.array([ai for ai, rt in enumerate(runtimes)
-                                   if rt.layout.stale_channels], dtype=np.intp)
-        self._stale_pos = {int(ai): k for k, ai in enumerate(self._stale_at)}
-        self._stale_wake = np.full(len(self._stale_at), -np.inf)
+        # Per asset, the time from which one of its channels can be stale (`Judge.stale`;
+        # -inf: judge at the next tick; inf: an asset without `stale_s`).
+        self._stale_wake = np.array([-np.inf if rt.layout.stale_channels else np.inf
+                                     for rt in runtimes], dtype=np.float64)
         # Staleness is judged every tick while this is true. A replay or an offline
         # record turns it off for the ticks after the data has ended (the end of a
         # recording is not every sensor going silent).
@@ -143,9 +141,10 @@ class Pipeline:
                 if b is not None]
 
     def _publish_model_gauges(self, rt: AssetRuntime) -> None:
-        self.metrics.model_loaded.labels(rt.cfg.name).set(1 if rt.models.shown else 0)
-        if rt.models.shown is not None:
-            self._m[rt.cfg.name].threshold.set(rt.models.shown.meta.threshold)
+        shown = rt.models.shown
+        self.metrics.model_loaded.labels(rt.cfg.name).set(1 if shown else 0)
+        if shown is not None:
+            self._m[rt.cfg.name].threshold.set(shown.meta.threshold)
 
     def _skip(self, rt: AssetRuntime, reason: str, n: int = 1) -> None:
         if n:
@@ -194,9 +193,9 @@ class Pipeline:
         takes it); what is closed is decided again under the locks."""
         due = [ai for ai, (asm, ib) in enumerate(self._screen)
                if ib.late or ib.liveness or ib.ahead or ib.steps or asm.due(now)]
-        if self._stale_at.size and self.judge_stale:
+        if self.judge_stale:
             # A margin for rounding: a visit a little early changes nothing.
-            stale = self._stale_at[self._stale_wake <= now + STALE_MARGIN_S]
+            stale = np.flatnonzero(self._stale_wake <= now + STALE_MARGIN_S)
             if stale.size:
                 due = sorted(set(due).union(stale.tolist()))
         return due
@@ -262,7 +261,7 @@ class Pipeline:
                 continue
             try:
                 if rt.layout.stale_channels and self.judge_stale:
-                    self._stale_wake[self._stale_pos[ai]] = judge.stale(rt, ai, now)
+                    self._stale_wake[ai] = judge.stale(rt, ai, now)
                 if res.empty_skipped:
                     self._skip(rt, "no_data", res.empty_skipped)
                     rt.empty_streak += res.empty_skipped
