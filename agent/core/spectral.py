@@ -160,21 +160,75 @@ def spectral_features(segments: Sequence[np.ndarray], rates_hz: Sequence[float],
     call (per CHUNK_SAMPLES samples); a segment shorter than MIN_SAMPLES gives NaN (its
     window is never scored).
     """
-    out: list[np.ndarray | None] = [None] * len(segments)
-    groups: dict[tuple[int, float, SpectrumConfig], list[int]] = {}
+    flat, starts = spectral_flat(segments, rates_hz, specs, speeds_hz, work)
+    return [flat[a:a + len(spec.feature_names())]
+            for a, spec in zip(starts.tolist(), specs, strict=True)]
+
+
+def spectral_flat(segments: Sequence[np.ndarray], rates_hz: Sequence[float],
+                  specs: Sequence[SpectrumConfig], speeds_hz: Sequence[float],
+                  work: WorkArrays | None = None,
+                  rows: Sequence[tuple[np.ndarray, int] | None] | None = None
+                  ) -> tuple[np.ndarray, np.ndarray]:
+    """`spectral_features` as one flat array and, per segment, where its features start
+    in it (the tick gathers its feature rows from such arrays in one step).
+
+    `rows[i]`, when given, says segment i is the whole row `rows[i][1]` of the matrix
+    `rows[i][0]`: the rows of a chunk that are consecutive rows of one matrix are taken
+    as a slice of it instead of being stacked again. The values are the same."""
+    starts = np.empty(len(segments), dtype=np.int64)
+    parts: list[np.ndarray] = []
+    pos = 0
+    groups: dict[tuple[int, float, int], list[int]] = {}
+    # Equal configs are one group (by their first object); an object seen before is not
+    # hashed again.
+    canon: dict[SpectrumConfig, SpectrumConfig] = {}
+    first_of: dict[int, SpectrumConfig] = {}
     for i, (seg, fs, spec) in enumerate(zip(segments, rates_hz, specs, strict=True)):
         if seg.size >= MIN_SAMPLES:
-            groups.setdefault((int(seg.size), float(fs), spec), []).append(i)
+            c = first_of.get(id(spec))
+            if c is None:
+                c = first_of[id(spec)] = canon.setdefault(spec, spec)
+            groups.setdefault((seg.size, float(fs), id(c)), []).append(i)
         else:
-            out[i] = np.full(len(spec.feature_names()), np.nan)
-    for (n, fs, spec), members in groups.items():
+            nan = np.full(len(spec.feature_names()), np.nan)
+            parts.append(nan)
+            starts[i] = pos
+            pos += nan.size
+    by_id = {id(c): c for c in canon.values()}
+    for (n, fs, cid), members in groups.items():
+        spec = by_id[cid]
         step = max(1, CHUNK_SAMPLES // n)
         for c0 in range(0, len(members), step):
             idx = members[c0:c0 + step]
-            x = stack_rows([np.asarray(segments[i], dtype=np.float64).reshape(1, -1)
-                            for i in idx], "sp_x", work=work)
+            x = _slice_of(idx, rows, n)
+            if x is None:
+                x = stack_rows([np.asarray(segments[i], dtype=np.float64).reshape(1, -1)
+                                for i in idx], "sp_x", work=work)
             sp = np.asarray([speeds_hz[i] for i in idx], dtype=np.float64)
             block = _group_features(x, fs, spec, sp, work)
-            for j, i in enumerate(idx):
-                out[i] = block[j]
-    return out  # type: ignore[return-value]  # every entry is set above
+            parts.append(block.reshape(-1))
+            width = block.shape[1]
+            starts[idx] = pos + width * np.arange(len(idx))
+            pos += block.size
+    flat = np.concatenate(parts) if parts else np.empty(0)
+    return flat, starts
+
+
+def _slice_of(idx: Sequence[int], rows: Sequence[tuple[np.ndarray, int] | None] | None,
+              n: int) -> np.ndarray | None:
+    """The segments `idx` as one slice of a matrix when they are its consecutive whole
+    rows of length n (`spectral_flat`'s `rows`), else None."""
+    if rows is None:
+        return None
+    first = rows[idx[0]]
+    if first is None:
+        return None
+    base, r0 = first
+    if base.ndim != 2 or base.shape[1] != n or base.dtype != np.float64:
+        return None
+    for j, i in enumerate(idx):
+        got = rows[i]
+        if got is None or got[0] is not base or got[1] != r0 + j:
+            return None
+    return base[r0:r0 + len(idx)]

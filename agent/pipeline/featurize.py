@@ -4,24 +4,37 @@ Time-domain features come from one `block_features` pass per segment length over
 full-length rate-group blocks of every window (the usual case; blocks cut together for
 many assets are taken as the one matrix they are rows of), and one `segment_features`
 pass over the rest; spectral features from one FFT per group of equal-length segments
-(`agent/core/spectral.py`). A window's row is its channels' time-domain features in
+(`agent/core/spectral.py`, fed slices of the cut matrices where the segments are
+consecutive rows of one). A window's row is its channels' time-domain features in
 channel order, each followed by the channel's spectral ones (`runtime.feature_layout`).
+
+Every pass writes into one flat array, and the rows are gathered from it in one numpy
+step per *class* of windows: windows whose assets lay out their rows alike
+(`_Template`) and whose blocks have the same lengths. Python then touches each window
+a few times (where its blocks are), not once per channel and feature.
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
+from dataclasses import dataclass
 from typing import Protocol
 
 import numpy as np
 
 from agent.config.load import SpectrumConfig
-from agent.core.features import WorkArrays, block_features, segment_features, stack_rows
-from agent.core.spectral import spectral_features
-from agent.core.windows.closed import Block, ClosedWindow
-from agent.pipeline.runtime import AssetRuntime
+from agent.core.features import (
+    FEATURE_INDEX,
+    WorkArrays,
+    block_features,
+    segment_features,
+    stack_rows,
+)
+from agent.core.spectral import spectral_flat
+from agent.core.windows.closed import ClosedWindow
+from agent.pipeline.runtime import AssetLayout, AssetRuntime
 
-_EMPTY = np.empty(0)
+NF = len(FEATURE_INDEX)
 
 
 class Pending(Protocol):
@@ -34,121 +47,215 @@ class Pending(Protocol):
     def w(self) -> ClosedWindow: ...
 
 
+@dataclass(frozen=True, slots=True)
+class _Template:
+    """How one kind of layout's full row is gathered: column j is `slots[slot[j]] +
+    const[j]` in the tick's flat feature array, where a window's slots are where each
+    channel's time-domain features start, then where each spectral channel's features
+    start. Assets whose channels sit alike in their windows and have equal spectra
+    share one (`template`), so their windows are gathered together."""
+
+    chan_at: tuple[tuple[int, int], ...]
+    slot: np.ndarray
+    const: np.ndarray
+    # Per spectral channel: its spectrum (one object for equal configs) and rate.
+    spectra: tuple[tuple[SpectrumConfig, float], ...]
+    wants_speed: bool  # a spectral channel tracks orders of the running speed
+
+    @property
+    def n_spec(self) -> int:
+        return len(self.spectra)
+
+
+def _template_of(lay: AssetLayout) -> _Template:
+    cfg = lay.cfg
+    slot: list[int] = []
+    const: list[int] = []
+    n_ch = len(cfg.channels)
+    spectra: list[tuple[SpectrumConfig, float]] = []
+    for ci, ch in enumerate(cfg.channels):
+        slot += [ci] * NF
+        const += range(NF)
+        if ch.spectrum is not None:
+            k = len(ch.spectral_features)
+            slot += [n_ch + len(spectra)] * k
+            const += range(k)
+            spectra.append((ch.spectrum, ch.rate_hz))
+    return _Template(lay.chan_at, np.asarray(slot, np.int64), np.asarray(const, np.int64),
+                     tuple(spectra), any(sp.orders for sp, _ in spectra))
+
+
+_BY_LAYOUT: dict[int, tuple[AssetLayout, _Template]] = {}
+_BY_SHAPE: dict[tuple[object, ...], _Template] = {}
+
+
+def template(lay: AssetLayout) -> _Template:
+    """The layout's `_Template`, shared by every layout of the same shape (made once per
+    layout)."""
+    got = _BY_LAYOUT.get(id(lay))
+    if got is None or got[0] is not lay:
+        if len(_BY_LAYOUT) > 4096:
+            _BY_LAYOUT.clear()
+            _BY_SHAPE.clear()
+        t = _template_of(lay)
+        shape = (t.chan_at, t.spectra, len(t.slot))
+        t = _BY_SHAPE.setdefault(shape, t)
+        got = _BY_LAYOUT[id(lay)] = (lay, t)
+    return got[1]
+
+
+@dataclass(slots=True)
+class _Placed:
+    """Where the tick's segments go in the time-domain passes: full-length rows by
+    segment length (and the one cut matrix they are, when they are one whole), the
+    ragged segments, and per window its blocks' lengths (-1: ragged) and first rows."""
+
+    by_len: dict[int, list[np.ndarray]]
+    n_by_len: dict[int, int]
+    whole: dict[int, np.ndarray | None]
+    ragged: list[np.ndarray]
+    lens: list[tuple[int, ...]]
+    offs: list[tuple[int, ...]]
+
+
+def _place_all(todo: Sequence[Pending]) -> _Placed:
+    by_len: dict[int, list[np.ndarray]] = {}
+    n_by_len: dict[int, int] = {}
+    whole: dict[int, np.ndarray | None] = {}
+    ragged: list[np.ndarray] = []
+    lens: list[tuple[int, ...]] = []
+    offs: list[tuple[int, ...]] = []
+    for p in todo:
+        blocks = p.w.blocks
+        if not blocks:  # a window built from per-channel arrays: ragged, in channel order
+            lens.append(())
+            offs.append((len(ragged),))
+            ragged.extend(p.w.values)
+            continue
+        ln: list[int] = []
+        of: list[int] = []
+        for blk in blocks:
+            if blk.uniform:
+                n = blk.values.shape[1]
+                off = n_by_len.get(n, 0)
+                by_len.setdefault(n, []).append(blk.values)
+                n_by_len[n] = off + len(blk.chans)
+                # Still the rows 0..off of one matrix cut for all these blocks, in order?
+                base = whole.get(n, blk.base) if off else blk.base
+                whole[n] = base if base is not None and base is blk.base and blk.row0 == off \
+                    else None
+            else:
+                n, off = -1, len(ragged)
+                ragged.extend(blk.values[r, :k] for r, k in enumerate(blk.counts))
+            ln.append(n)
+            of.append(off)
+        lens.append(tuple(ln))
+        offs.append(tuple(of))
+    return _Placed(by_len, n_by_len, whole, ragged, lens, offs)
+
+
 def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None) -> list[np.ndarray]:
     """The full feature row of each window (module docstring), the passes in `work`'s
-    reusable arrays."""
+    reusable arrays. Rows are views of one array per class of windows."""
     needed = frozenset().union(*{p.rt.layout.td_needed for p in todo})
-    by_len, n_by_len, ragged, whole, places, spans = _place_all(todo)
-    feats = {}
-    for n, parts in by_len.items():
-        base = whole.get(n)
-        x = base if base is not None and base.shape[0] == n_by_len[n] \
+    pl = _place_all(todo)
+    flats: list[np.ndarray] = []
+    starts: dict[int, int] = {}
+    pos = 0
+    for n, parts in pl.by_len.items():
+        base = pl.whole.get(n)
+        x = base if base is not None and base.shape[0] == pl.n_by_len[n] \
             else stack_rows(parts, work=work)
-        feats[n] = block_features(x, needed, work=work)
-    if ragged:
-        feats[-1] = segment_features(ragged)
-    spec = _spectral(todo, work)
-    rows: list[np.ndarray] = []
-    for p, (a, b), k in zip(todo, spans, spec[1], strict=True):
-        rt = p.rt
-        n_ch = len(rt.cfg.channels)
-        if b - a == 1 and not rt.layout.spectral:
-            chans, n, off = places[a]
-            if len(chans) == n_ch:  # one block of every channel in order: a view
-                rows.append(feats[n][off:off + n_ch].reshape(-1))
-                continue
-        per_ch: list[np.ndarray] = [_EMPTY] * n_ch
-        for chans, n, off in places[a:b]:
-            f = feats[n]
-            for r, c in enumerate(chans):
-                per_ch[c] = f[off + r]
-        if k < 0:
-            rows.append(np.concatenate(per_ch))
-            continue
-        spectral = rt.layout.spectral
-        extra = dict(zip(spectral, spec[0][k:k + len(spectral)], strict=True))
-        parts = []
-        for ci in range(n_ch):
-            parts.append(per_ch[ci])
-            got = extra.get(ci)
-            if got is not None:
-                parts.append(got)
-        rows.append(np.concatenate(parts))
+        f = block_features(x, needed, work=work)
+        starts[n] = pos
+        flats.append(f.reshape(-1))
+        pos += f.size
+    if pl.ragged:
+        f = segment_features(pl.ragged)
+        starts[-1] = pos
+        flats.append(f.reshape(-1))
+        pos += f.size
+    tmpls = [template(p.rt.layout) for p in todo]
+    spec_flat, spec_starts, first = _spectral(todo, tmpls, work)
+    spec_starts += pos
+    flats.append(spec_flat)
+    flat = np.concatenate(flats) if len(flats) > 1 else flats[0]
+    return _gather(flat, starts, spec_starts, first, tmpls, pl)
+
+
+def _gather(flat: np.ndarray, starts: dict[int, int], spec_starts: np.ndarray,
+            first: list[int], tmpls: list[_Template], pl: _Placed) -> list[np.ndarray]:
+    """Every window's row out of `flat`, one gather per class (`_Template`, lengths)."""
+    classes: dict[tuple[int, tuple[int, ...]], list[int]] = {}
+    for i, (t, ln) in enumerate(zip(tmpls, pl.lens, strict=True)):
+        classes.setdefault((id(t), ln), []).append(i)
+    rows: list[np.ndarray] = [flat[:0]] * len(tmpls)
+    for (_, ln), members in classes.items():
+        t = tmpls[members[0]]
+        offs = np.asarray([pl.offs[i] for i in members], dtype=np.int64)
+        # Per window, where each channel's time-domain features start.
+        if ln:
+            chan_at = t.chan_at
+            blk = [b for b, _ in chan_at]
+            row = np.asarray([r for _, r in chan_at], dtype=np.int64)
+            base = np.asarray([starts[ln[b]] for b in blk], dtype=np.int64)
+            td = base + (offs[:, blk] + row) * NF
+        else:  # per-channel arrays: ragged segments in channel order
+            n_ch = len(t.chan_at)
+            td = starts[-1] + (offs[:, :1] + np.arange(n_ch)) * NF
+        if t.n_spec:
+            f = np.asarray([first[i] for i in members], dtype=np.int64)
+            sp = spec_starts[f[:, None] + np.arange(t.n_spec)]
+            td = np.concatenate([td, sp], axis=1)
+        got = flat[td[:, t.slot] + t.const]
+        for j, i in enumerate(members):
+            rows[i] = got[j]
     return rows
 
 
-def _place_all(todo: Sequence[Pending]) -> tuple[
-        dict[int, list[np.ndarray]], dict[int, int], list[np.ndarray],
-        dict[int, np.ndarray | None], list[tuple[tuple[int, ...], int, int]],
-        list[tuple[int, int]]]:
-    """Where every window's blocks go in the feature pass: the full-length rows by
-    segment length (and whether they are one cut matrix whole), the ragged segments,
-    per block (its channels, segment length or -1 for ragged, first row there) and
-    per window its span of blocks."""
-    by_len: dict[int, list[np.ndarray]] = {}
-    n_by_len: dict[int, int] = {}
-    ragged: list[np.ndarray] = []
-    whole: dict[int, np.ndarray | None] = {}
-    # Per block: (its channels, segment length or -1 for ragged, first row there).
-    places: list[tuple[tuple[int, ...], int, int]] = []
-    spans: list[tuple[int, int]] = []
-    for p in todo:
-        first = len(places)
-        w = p.w
-        blocks = w.blocks
-        if blocks:
-            for blk in blocks:
-                _place(blk, by_len, n_by_len, ragged, places, whole)
-        else:  # a window built from per-channel arrays
-            places.append((tuple(range(len(w.values))), -1, len(ragged)))
-            ragged.extend(w.values)
-        spans.append((first, len(places)))
-    return by_len, n_by_len, ragged, whole, places, spans
-
-
-def _spectral(todo: Sequence[Pending], work: WorkArrays | None = None
-              ) -> tuple[list[np.ndarray], list[int]]:
+def _spectral(todo: Sequence[Pending], tmpls: list[_Template], work: WorkArrays | None
+              ) -> tuple[np.ndarray, np.ndarray, list[int]]:
     """The spectral features of every spectral channel of every window, in window and
-    channel order, and per window where its first one is (-1: none)."""
+    channel order, as `spectral_flat` gives them, and per window the index of its first
+    spectral segment (-1: none)."""
     segs: list[np.ndarray] = []
+    rows: list[tuple[np.ndarray, int] | None] = []
     rates: list[float] = []
     cfgs: list[SpectrumConfig] = []
     speeds: list[float] = []
     first: list[int] = []
-    for p in todo:
-        rt = p.rt
-        lay = rt.layout
-        if not lay.spectral:
+    for p, t in zip(todo, tmpls, strict=True):
+        if not t.n_spec:
             first.append(-1)
             continue
+        rt, w = p.rt, p.w
+        lay = rt.layout
         first.append(len(segs))
         speed_hz = np.nan
-        if lay.speed_index is not None:
-            sv = p.w.channel(lay.speed_index, lay.chan_at[lay.speed_index])
+        if t.wants_speed and lay.speed_index is not None:
+            sv = w.channel(lay.speed_index, lay.chan_at[lay.speed_index])
             speed_hz = float(sv.mean()) / 60.0 if sv.size else np.nan
-        for ci in lay.spectral:
-            ch = rt.cfg.channels[ci]
-            assert ch.spectrum is not None
-            segs.append(p.w.channel(ci, lay.chan_at[ci]))
-            rates.append(ch.rate_hz)
-            cfgs.append(ch.spectrum)
+        for ci, (spec, fs) in zip(lay.spectral, t.spectra, strict=True):
+            at = lay.chan_at[ci]
+            segs.append(w.channel(ci, at))
+            rows.append(_row_of(w, at))
+            rates.append(fs)
+            cfgs.append(spec)
             speeds.append(speed_hz)
-    return (spectral_features(segs, rates, cfgs, speeds, work) if segs else []), first
+    if not segs:
+        return np.empty(0), np.empty(0, np.int64), first
+    flat, starts = spectral_flat(segs, rates, cfgs, speeds, work, rows)
+    return flat, starts, first
 
 
-def _place(blk: Block, by_len: dict[int, list[np.ndarray]], n_by_len: dict[int, int],
-           ragged: list[np.ndarray], places: list[tuple[tuple[int, ...], int, int]],
-           whole: dict[int, np.ndarray | None]) -> None:
-    if blk.uniform:
-        n = blk.values.shape[1]
-        off = n_by_len.get(n, 0)
-        by_len.setdefault(n, []).append(blk.values)
-        n_by_len[n] = off + len(blk.chans)
-        places.append((blk.chans, n, off))
-        # Still the rows 0..off of one matrix cut for all these blocks, in order?
-        base = whole.get(n, blk.base) if off else blk.base
-        whole[n] = base if base is not None and base is blk.base and blk.row0 == off \
-            else None
-    else:
-        places.append((blk.chans, -1, len(ragged)))
-        ragged.extend(blk.values[r, :k] for r, k in enumerate(blk.counts))
+def _row_of(w: ClosedWindow, at: tuple[int, int]) -> tuple[np.ndarray, int] | None:
+    """The channel's samples at `at` as (matrix, row) when they are a whole row of a
+    matrix (a uniform block; of the joint cut's matrix when it made the block)."""
+    if not w.blocks:
+        return None
+    blk = w.blocks[at[0]]
+    if not blk.uniform:
+        return None
+    if blk.base is not None:
+        return blk.base, blk.row0 + at[1]
+    return blk.values, at[1]
