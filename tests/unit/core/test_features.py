@@ -100,7 +100,10 @@ def test_features_do_not_depend_on_how_segments_are_grouped(segs: list[np.ndarra
 
 @settings(max_examples=100, deadline=None)
 @given(hnp.arrays(np.float64, st.integers(1, 60),
-                  elements=st.floats(-1e3, 1e3, allow_nan=False, allow_infinity=False)),
+                  # Below ~1e-154 a square is subnormal or 0 and rms loses its digits
+                  # (x = 3e-158 gave crest factor 0.9999999988): no sensor reads that.
+                  elements=st.floats(-1e3, 1e3, allow_nan=False, allow_infinity=False)
+                  .filter(lambda v: v == 0.0 or abs(v) > 1e-150)),
        st.floats(-1e3, 1e3), st.floats(0.01, 100.0))
 def test_invariances_of_shape_features(x: np.ndarray, shift: float, scale: float) -> None:
     """std, ptp scale with the signal; skewness and kurtosis ignore shift and scale;
