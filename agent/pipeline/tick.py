@@ -310,12 +310,13 @@ class Pipeline:
     def _account(self, due: list[int]) -> None:
         """After the tick's work: which assets work again, and whether all fail."""
         failed = self._failed_now
+        runtimes = self.runtimes
         for ai in due:
-            rt = self.runtimes[ai]
+            rt = runtimes[ai]
             if not rt.worked:
                 rt.worked = True
                 self._n_worked += 1
-            if rt.cfg.name not in failed and rt.error is not None:
+            if rt.error is not None and rt.cfg.name not in failed:
                 rt.error = None
                 self._n_failing -= 1
                 self.metrics.asset_failing.labels(rt.cfg.name).set(0)
