@@ -165,17 +165,18 @@ def spectral_features(segments: Sequence[np.ndarray], rates_hz: Sequence[float],
             for a, spec in zip(starts.tolist(), specs, strict=True)]
 
 
-def spectral_flat(segments: Sequence[np.ndarray], rates_hz: Sequence[float],
+Segment = np.ndarray | tuple[np.ndarray, int]
+
+
+def spectral_flat(segments: Sequence[Segment], rates_hz: Sequence[float],
                   specs: Sequence[SpectrumConfig], speeds_hz: Sequence[float],
-                  work: WorkArrays | None = None,
-                  rows: Sequence[tuple[np.ndarray, int] | None] | None = None
-                  ) -> tuple[np.ndarray, np.ndarray]:
+                  work: WorkArrays | None = None) -> tuple[np.ndarray, np.ndarray]:
     """`spectral_features` as one flat array and, per segment, where its features start
     in it (the tick gathers its feature rows from such arrays in one step).
 
-    `rows[i]`, when given, says segment i is the whole row `rows[i][1]` of the matrix
-    `rows[i][0]`: the rows of a chunk that are consecutive rows of one matrix are taken
-    as a slice of it instead of being stacked again. The values are the same."""
+    A segment is an array of samples or `(matrix, r)`, the whole row r of a float64
+    matrix: the segments of a chunk that are consecutive rows of one matrix go to the
+    FFT as a slice of it instead of being stacked again. The values are the same."""
     starts = np.empty(len(segments), dtype=np.int64)
     parts: list[np.ndarray] = []
     pos = 0
@@ -185,11 +186,12 @@ def spectral_flat(segments: Sequence[np.ndarray], rates_hz: Sequence[float],
     canon: dict[SpectrumConfig, SpectrumConfig] = {}
     first_of: dict[int, SpectrumConfig] = {}
     for i, (seg, fs, spec) in enumerate(zip(segments, rates_hz, specs, strict=True)):
-        if seg.size >= MIN_SAMPLES:
+        size = seg[0].shape[1] if isinstance(seg, tuple) else seg.size
+        if size >= MIN_SAMPLES:
             c = first_of.get(id(spec))
             if c is None:
                 c = first_of[id(spec)] = canon.setdefault(spec, spec)
-            groups.setdefault((seg.size, float(fs), id(c)), []).append(i)
+            groups.setdefault((size, float(fs), id(c)), []).append(i)
         else:
             nan = np.full(len(spec.feature_names()), np.nan)
             parts.append(nan)
@@ -201,10 +203,9 @@ def spectral_flat(segments: Sequence[np.ndarray], rates_hz: Sequence[float],
         step = max(1, CHUNK_SAMPLES // n)
         for c0 in range(0, len(members), step):
             idx = members[c0:c0 + step]
-            x = _slice_of(idx, rows, n)
+            x = _slice_of([segments[i] for i in idx])
             if x is None:
-                x = stack_rows([np.asarray(segments[i], dtype=np.float64).reshape(1, -1)
-                                for i in idx], "sp_x", work=work)
+                x = stack_rows([_as_row(segments[i]) for i in idx], "sp_x", work=work)
             sp = np.asarray([speeds_hz[i] for i in idx], dtype=np.float64)
             block = _group_features(x, fs, spec, sp, work)
             parts.append(block.reshape(-1))
@@ -215,20 +216,22 @@ def spectral_flat(segments: Sequence[np.ndarray], rates_hz: Sequence[float],
     return flat, starts
 
 
-def _slice_of(idx: Sequence[int], rows: Sequence[tuple[np.ndarray, int] | None] | None,
-              n: int) -> np.ndarray | None:
-    """The segments `idx` as one slice of a matrix when they are its consecutive whole
-    rows of length n (`spectral_flat`'s `rows`), else None."""
-    if rows is None:
-        return None
-    first = rows[idx[0]]
-    if first is None:
+def _as_row(seg: Segment) -> np.ndarray:
+    if isinstance(seg, tuple):
+        return seg[0][seg[1]:seg[1] + 1]
+    return np.asarray(seg, dtype=np.float64).reshape(1, -1)
+
+
+def _slice_of(segs: Sequence[Segment]) -> np.ndarray | None:
+    """The segments as one slice of a matrix when they are its consecutive whole rows
+    (`spectral_flat`), else None."""
+    first = segs[0]
+    if not isinstance(first, tuple):
         return None
     base, r0 = first
-    if base.ndim != 2 or base.shape[1] != n or base.dtype != np.float64:
+    if base.dtype != np.float64:
         return None
-    for j, i in enumerate(idx):
-        got = rows[i]
-        if got is None or got[0] is not base or got[1] != r0 + j:
+    for j, seg in enumerate(segs):
+        if not isinstance(seg, tuple) or seg[0] is not base or seg[1] != r0 + j:
             return None
-    return base[r0:r0 + len(idx)]
+    return base[r0:r0 + len(segs)]

@@ -30,7 +30,7 @@ from agent.core.features import (
     segment_features,
     stack_rows,
 )
-from agent.core.spectral import spectral_flat
+from agent.core.spectral import Segment, spectral_flat
 from agent.core.windows.closed import ClosedWindow
 from agent.pipeline.runtime import AssetLayout, AssetRuntime
 
@@ -136,14 +136,19 @@ def _place_all(todo: Sequence[Pending]) -> _Placed:
         of: list[int] = []
         for blk in blocks:
             if blk.uniform:
-                n = blk.values.shape[1]
-                off = n_by_len.get(n, 0)
-                by_len.setdefault(n, []).append(blk.values)
+                vals = blk.values
+                n = vals.shape[1]
+                off = n_by_len.get(n)
+                if off is None:
+                    off = 0
+                    by_len[n] = [vals]
+                    whole[n] = blk.base if blk.row0 == 0 else None
+                else:
+                    by_len[n].append(vals)
+                    # Still the rows 0..off of one matrix cut for all these blocks?
+                    if whole[n] is not None and (blk.base is not whole[n] or blk.row0 != off):
+                        whole[n] = None
                 n_by_len[n] = off + len(blk.chans)
-                # Still the rows 0..off of one matrix cut for all these blocks, in order?
-                base = whole.get(n, blk.base) if off else blk.base
-                whole[n] = base if base is not None and base is blk.base and blk.row0 == off \
-                    else None
             else:
                 n, off = -1, len(ragged)
                 ragged.extend(blk.values[r, :k] for r, k in enumerate(blk.counts))
@@ -218,8 +223,7 @@ def _spectral(todo: Sequence[Pending], tmpls: list[_Template], work: WorkArrays 
     """The spectral features of every spectral channel of every window, in window and
     channel order, as `spectral_flat` gives them, and per window the index of its first
     spectral segment (-1: none)."""
-    segs: list[np.ndarray] = []
-    rows: list[tuple[np.ndarray, int] | None] = []
+    segs: list[Segment] = []
     rates: list[float] = []
     cfgs: list[SpectrumConfig] = []
     speeds: list[float] = []
@@ -228,34 +232,27 @@ def _spectral(todo: Sequence[Pending], tmpls: list[_Template], work: WorkArrays 
         if not t.n_spec:
             first.append(-1)
             continue
-        rt, w = p.rt, p.w
-        lay = rt.layout
+        w = p.w
+        lay = p.rt.layout
         first.append(len(segs))
         speed_hz = np.nan
         if t.wants_speed and lay.speed_index is not None:
             sv = w.channel(lay.speed_index, lay.chan_at[lay.speed_index])
             speed_hz = float(sv.mean()) / 60.0 if sv.size else np.nan
+        blocks = w.blocks
         for ci, (spec, fs) in zip(lay.spectral, t.spectra, strict=True):
             at = lay.chan_at[ci]
-            segs.append(w.channel(ci, at))
-            rows.append(_row_of(w, at))
+            blk = blocks[at[0]] if blocks else None
+            if blk is not None and blk.uniform:
+                # A whole row of a matrix (of the joint cut's, when it made the block).
+                segs.append((blk.base, blk.row0 + at[1]) if blk.base is not None
+                            else (blk.values, at[1]))
+            else:
+                segs.append(w.channel(ci, at))
             rates.append(fs)
             cfgs.append(spec)
             speeds.append(speed_hz)
     if not segs:
         return np.empty(0), np.empty(0, np.int64), first
-    flat, starts = spectral_flat(segs, rates, cfgs, speeds, work, rows)
+    flat, starts = spectral_flat(segs, rates, cfgs, speeds, work)
     return flat, starts, first
-
-
-def _row_of(w: ClosedWindow, at: tuple[int, int]) -> tuple[np.ndarray, int] | None:
-    """The channel's samples at `at` as (matrix, row) when they are a whole row of a
-    matrix (a uniform block; of the joint cut's matrix when it made the block)."""
-    if not w.blocks:
-        return None
-    blk = w.blocks[at[0]]
-    if not blk.uniform:
-        return None
-    if blk.base is not None:
-        return blk.base, blk.row0 + at[1]
-    return blk.values, at[1]
