@@ -113,6 +113,10 @@ class Pipeline:
         # -inf: judge at the next tick; inf: an asset without `stale_s`).
         self._stale_wake = np.array([-np.inf if rt.layout.stale_channels else np.inf
                                      for rt in runtimes], dtype=np.float64)
+        # Per asset, whether one of its channels was stale, or had never published, when
+        # last judged: only a sample's arrival changes that, and when is not known
+        # ahead, so such an asset is judged at every visit.
+        self._stale_held = [False] * len(runtimes)
         # Staleness is judged every tick while this is true. A replay or an offline
         # record turns it off for the ticks after the data has ended (the end of a
         # recording is not every sensor going silent).
@@ -260,8 +264,15 @@ class Pipeline:
                     rt.assembler.reset()
                 continue
             try:
-                if rt.layout.stale_channels and self.judge_stale:
+                if rt.layout.stale_channels and self.judge_stale and (
+                        self._stale_held[ai]
+                        or self._stale_wake[ai] <= now + STALE_MARGIN_S):
+                    # Before the wake time no channel can have turned stale: judging
+                    # then would change nothing (`Judge.stale`).
                     self._stale_wake[ai] = judge.stale(rt, ai, now)
+                    bufs = self.buffers.by_asset[ai]
+                    self._stale_held[ai] = any(rt.health[ci].stale or not bufs[ci].last_arrival
+                                               for ci in rt.layout.stale_channels)
                 if res.empty_skipped:
                     self._skip(rt, "no_data", res.empty_skipped)
                     rt.empty_streak += res.empty_skipped
