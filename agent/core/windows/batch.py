@@ -107,54 +107,85 @@ def _no_times(n: int, m: int) -> np.ndarray:
 
 
 def _close_fast(fast: list[_Item], results: list[AssembleResult | None], now: float) -> None:
-    """`close_many`'s joint cut of the items in `fast`, results into `results`."""
-    blocks = _cut_blocks(fast)
+    """`close_many`'s joint cut of the items in `fast`, results into `results`. An
+    item is finished (its result set, its assembler moved past the window) as soon as
+    its blocks are cut; should a later copy fail, only the unfinished ones are left."""
+    blocks = _cut_blocks(fast, results)
     _finish(fast, blocks, results, now)
 
 
-def _cut_blocks(fast: list[_Item]) -> list[list[Block | None]]:
-    """The blocks of every (item, group) with samples, cut per segment length at once."""
+def _cut_blocks(fast: list[_Item], results: list[AssembleResult | None]
+                ) -> list[list[Block | None]]:
+    """The blocks of every (item, group) with samples, cut per segment length at once.
+    An item of one rate group cut whole is finished here (`_finish_one`)."""
     # Every (item, group) with samples, by how many each of its rows holds: (item,
     # group index, the group, its first pending index, the window's end, whether all its
-    # pending samples are before the end, whether its timestamps are wanted).
-    by_width: dict[int, list[tuple[int, int, _Group, int, float, bool, bool]]] = {}
+    # pending samples are before the end, whether its timestamps are wanted, whether
+    # it is the item's only group).
+    by_width: dict[int, list[tuple[int, int, _Group, int, float, bool, bool, bool]]] = {}
     blocks: list[list[Block | None]] = []
     for fi, (_, a, _, end, spans) in enumerate(fast):
         blocks.append([None] * len(spans))
         # The newest sample of any channel before the end: every pending one is in.
         full = a._max_ts < end
         keep = a.keep_times or not full
+        alone = len(spans) == 1
         for gi, (g, lo0, m) in enumerate(spans):
             if m:
                 got = by_width.get(m)
                 if got is None:
                     got = by_width[m] = []
-                got.append((fi, gi, g, lo0, end, full, keep))
+                got.append((fi, gi, g, lo0, end, full, keep, alone))
     for m, members in by_width.items():
         v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
         kept = [mb for mb in members if mb[6]]
         t = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in kept]) if kept else None
         off = t_off = 0
-        for fi, gi, g, _, end, full, keep in members:
+        no_times = None
+        for fi, gi, g, lo0, end, full, keep, alone in members:
             n = len(g.chans)
-            ts = t[t_off:t_off + n] if keep and t is not None else _no_times(n, m)
+            if keep and t is not None:
+                ts = t[t_off:t_off + n]
+                t_off += n
+            else:
+                ts = no_times if no_times is not None and n == no_times.shape[0] \
+                    else (no_times := _no_times(n, m))
             if full:
-                blocks[fi][gi] = Block(g.chans, ts, v[off:off + n], [m] * n, True, v, off,
-                                       t if keep else None)
+                blk = Block(g.chans, ts, v[off:off + n], [m] * n, True, v, off,
+                            t if keep else None)
+                if alone:
+                    _finish_one(fast[fi], blk, lo0, m, results)
+                else:
+                    blocks[fi][gi] = blk
             else:
                 counts = (ts < end).sum(axis=1).tolist()
                 mc = max(counts)
                 blocks[fi][gi] = Block(g.chans, ts[:, :mc], v[off:off + n, :mc], counts)
             off += n
-            if keep:
-                t_off += n
     return blocks
+
+
+def _finish_one(item: _Item, blk: Block, lo0: int, m: int,
+                results: list[AssembleResult | None]) -> None:
+    """`_finish` of an item of one rate group whose block is cut whole (`blk`, every row
+    holding its m pending samples from `lo0`)."""
+    i, a, start, end, spans = item
+    g = spans[0][0]
+    cov = m / g.expected if g.expected else 1.0
+    complete = not (g.expected and cov < a.cfg.min_coverage)
+    w = ClosedWindow.of_blocks(start, end, complete, (blk,), a._expected, cov)
+    assert a._next_k is not None
+    a._set_next(a._next_k + 1)
+    g.lo = [lo0 + m] * len(g.chans)  # rows in step stay in step
+    results[i] = AssembleResult(None, [w])
 
 
 def _finish(fast: list[_Item], blocks: list[list[Block | None]],
             results: list[AssembleResult | None], now: float) -> None:
     """Each item's window from its blocks, and its assembler moved past it."""
     for (i, a, start, end, spans), bl in zip(fast, blocks, strict=True):
+        if results[i] is not None:  # finished by `_cut_blocks`
+            continue
         complete = True
         total = 0
         cov = 1.0
@@ -180,8 +211,8 @@ def _finish(fast: list[_Item], blocks: list[list[Block | None]],
             except Exception as exc:
                 results[i] = AssembleResult(exc)
             continue
-        results[i] = AssembleResult(None, [ClosedWindow.of_blocks(
-            start, end, complete, tuple(bl), a._expected, cov)])  # type: ignore[arg-type]
+        w = ClosedWindow.of_blocks(start, end, complete, tuple(bl), a._expected,  # type: ignore[arg-type]
+                                   cov)
         assert a._next_k is not None
         a._set_next(a._next_k + 1)
         for (g, lo0, m), blk in zip(spans, bl, strict=True):
@@ -192,3 +223,4 @@ def _finish(fast: list[_Item], blocks: list[list[Block | None]],
                 g.lo = [lo0 + blk.values.shape[1]] * len(g.chans)
             else:
                 g.drop(blk.counts)
+        results[i] = AssembleResult(None, [w])
