@@ -119,6 +119,7 @@ class Emitter:
         self._times_json: dict[float, bytes] = {}
         # Per runtime (by id; the slot holds it): what `step` reads of an asset.
         self._slots: dict[int, _AssetSlot] = {}
+        self._slot_ids: dict[str, int] = {}
         self._topic_cache: dict[str, tuple[str, str, str]] = {}
         self.out: list[OutMessage] = []
         self.stats = TickStats()
@@ -293,9 +294,13 @@ class Emitter:
 
     def _slot(self, rt: AssetRuntime) -> _AssetSlot:
         name = rt.cfg.name
+        old = self._slot_ids.get(name)
+        if old is not None:  # a runtime replaced under the same name: let the old go
+            self._slots.pop(old, None)
         state_topic, scores_topic, _ = self.topics(name)
         slot = self._slots[id(rt)] = _AssetSlot(rt, name, self._m[name], state_topic,
                                                 scores_topic)
+        self._slot_ids[name] = id(rt)
         return slot
 
     def _detect(self, rt: AssetRuntime, start: float, end: float, mode: str, bundle: Bundle,
