@@ -32,15 +32,22 @@ class Transition(StrEnum):
 class Detector:
     """One asset's detector; `step` is called once per scored window, in time order."""
 
+    __slots__ = ("_below", "_n_above", "_quiet_run", "_recent", "_span", "_stride", "params",
+                 "peak_score", "state")
+
     def __init__(self, params: DetectorParams) -> None:
         self.params = params
         self.state = State.NORMAL
         self._stride = params.stride
         span = (params.raise_n - 1) * params.stride + 1
+        self._span = span
         self._recent: deque[bool] = deque(maxlen=span)
         self._n_above = 0  # how many of `_recent` are True (kept, not summed per window)
         self._below = 0
         self.peak_score = 0.0
+        # How many windows in a row went through `quiet` since `_recent` last changed
+        # otherwise: once it is full of them, another changes nothing.
+        self._quiet_run = 0
 
     def _rises(self, above: bool) -> bool:
         """Append this window's verdict; whether k of the last n (strided) are above."""
@@ -61,6 +68,7 @@ class Detector:
     def step(self, score: float, threshold: float, clear_threshold: float) -> Transition | None:
         """Feed one window's score; return the transition it causes, if any."""
         above = score > threshold
+        self._quiet_run = 0
         if self.state is State.NORMAL:
             if self._rises(above):
                 self.state = State.ANOMALOUS
@@ -81,6 +89,18 @@ class Detector:
             self._below = 0
         return None
 
+    def quiet(self) -> None:
+        """`step` of a window not above the threshold while NORMAL, which cannot raise
+        (k of the last n were not above before it, and it adds none): only the
+        history moves."""
+        if self._quiet_run == self._span:
+            return  # `_recent` is all False and full: as it was
+        self._quiet_run += 1
+        recent = self._recent
+        if self._n_above and len(recent) == recent.maxlen and recent[0]:
+            self._n_above -= 1  # strided, `_n_above` stays 0 (`_rises` sums instead)
+        recent.append(False)
+
     def reset(self) -> None:
         """Forget history (after a model change or a gap)."""
         self.state = State.NORMAL
@@ -88,6 +108,7 @@ class Detector:
         self._n_above = 0
         self._below = 0
         self.peak_score = 0.0
+        self._quiet_run = 0
 
 
 def run_detector(scores: np.ndarray, threshold: float, clear_threshold: float,

@@ -33,6 +33,7 @@ from agent.core.events import Severity
 _RANK = {Severity.MINOR: 0, Severity.MAJOR: 1, Severity.CRITICAL: 2}
 _BAND = {v: k for k, v in _RANK.items()}
 LEADING_SHARE = 0.5
+_QUIET = (_RANK[Severity.MINOR], frozenset[str]())
 
 
 class Reason(StrEnum):
@@ -72,12 +73,18 @@ class Escalated:
 class EscalationTracker:
     """One asset's reference (what was last reported) and the recent windows."""
 
+    __slots__ = ("_quiet_run", "_recent", "_span", "channels", "k", "n", "seen", "severity",
+                 "stride")
+
     def __init__(self, raise_k: int = 1, raise_n: int = 1, stride: int = 1) -> None:
         self.k = raise_k
         self.n = raise_n
         self.stride = stride
-        self._recent: deque[tuple[int, frozenset[str]]] = deque(
-            maxlen=(raise_n - 1) * stride + 1)
+        self._span = (raise_n - 1) * stride + 1
+        self._recent: deque[tuple[int, frozenset[str]]] = deque(maxlen=self._span)
+        # How many windows in a row went through `observe_quiet`: once `_recent` is full
+        # of them, another changes nothing.
+        self._quiet_run = 0
         self.severity: Severity | None = None
         self.channels: frozenset[str] = frozenset()
         self.seen: frozenset[str] = frozenset()
@@ -90,6 +97,15 @@ class EscalationTracker:
     def observe(self, severity: Severity, channels: frozenset[str]) -> None:
         """Every scored window, raised or not (the raise rule's evidence)."""
         self._recent.append((_RANK[severity], channels))
+        self._quiet_run = 0
+
+    def observe_quiet(self) -> None:
+        """`observe` of a window in the lowest band with no leading channels (a score
+        under the threshold while not raised), without working out its band."""
+        if self._quiet_run == self._span:
+            return  # `_recent` is all _QUIET and full: as it was
+        self._quiet_run += 1
+        self._recent.append(_QUIET)
 
     def start(self, channels: frozenset[str]) -> Severity:
         """The asset was raised on the windows observed; returns the band the raise rule

@@ -65,11 +65,13 @@ def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
             ib.lock.acquire()
             held.append(ib.lock)
         results = close_many([ib.assembler for ib in inboxes], now)
-        late = [ib.late for ib in inboxes]
+        late = []
         for ib in inboxes:
-            ib.late = 0
-        if notes is not None:
-            for ib in inboxes:
+            n = ib.late
+            late.append(n)
+            if n:
+                ib.late = 0
+            if notes is not None:
                 notes.append((ib.ahead, ib.steps))
                 if ib.ahead or ib.steps:
                     ib.ahead = 0

@@ -27,7 +27,7 @@ from agent.core.windows.closed import ClosedWindow
 from agent.models.bundle import Bundle, BundleMeta
 from agent.ops.logs import kv
 from agent.ops.metrics import Metrics, PlainSeries
-from agent.pipeline.messages import Kind, OutMessage
+from agent.pipeline.messages import Kind, OutMessage, StatePayload, round_to
 from agent.pipeline.runtime import AssetRuntime
 
 
@@ -75,6 +75,35 @@ def to_json(doc: Any) -> bytes:
         return json.dumps(doc, separators=(",", ":"), allow_nan=False).encode()
 
 
+class _AssetSlot:
+    """What `step` reads of one asset, in one place (a window touches few objects): its
+    name, metric children and topics, what it reads of the bundle serving it (a
+    bundle's meta is fixed), and the last state payload rendered."""
+
+    __slots__ = ("bundle", "m", "model", "name", "payload", "rt", "score", "scored",
+                 "scores_topic", "state_topic", "threshold")
+
+    def __init__(self, rt: AssetRuntime, name: str, m: AssetMetrics, state_topic: str,
+                 scores_topic: str) -> None:
+        self.rt = rt
+        self.name = name
+        self.m = m
+        self.scored = m.scored
+        self.score = m.score
+        self.state_topic = state_topic
+        self.scores_topic = scores_topic
+        self.bundle: Bundle | None = None
+        self.threshold = 0.0
+        self.model: dict[str, Any] = {}
+        self.payload: StatePayload | None = None
+
+    def serve(self, bundle: Bundle) -> None:
+        """The window is scored by `bundle` (not the last window's)."""
+        self.bundle = bundle
+        self.threshold = bundle.meta.threshold
+        self.model = bundle.model_ref
+
+
 class Emitter:
     """Builds the tick's messages into `out`; counts events into `stats`."""
 
@@ -87,6 +116,10 @@ class Emitter:
         self.publish_scores = cfg.publish_scores
         self._m = asset_metrics
         self._times: dict[float, str] = {}
+        self._times_json: dict[float, bytes] = {}
+        # Per runtime (by id; the slot holds it): what `step` reads of an asset.
+        self._slots: dict[int, _AssetSlot] = {}
+        self._slot_ids: dict[str, int] = {}
         self._topic_cache: dict[str, tuple[str, str, str]] = {}
         self.out: list[OutMessage] = []
         self.stats = TickStats()
@@ -94,6 +127,7 @@ class Emitter:
     def start_tick(self) -> tuple[list[OutMessage], TickStats]:
         """A fresh message list and stats for a tick."""
         self._times.clear()
+        self._times_json.clear()
         self.out = []
         self.stats = TickStats()
         return self.out, self.stats
@@ -103,6 +137,13 @@ class Emitter:
         got = self._times.get(ts)
         if got is None:
             got = self._times[ts] = rfc3339(ts)
+        return got
+
+    def time_json(self, ts: float) -> bytes:
+        """`time(ts)` as JSON, remembered for the tick."""
+        got = self._times_json.get(ts)
+        if got is None:
+            got = self._times_json[ts] = orjson.dumps(self.time(ts))
         return got
 
     def topics(self, asset: str) -> tuple[str, str, str]:
@@ -190,18 +231,82 @@ class Emitter:
              score: float, sq: np.ndarray) -> None:
         """Count and publish one scored window, step the asset's detector and say what
         changed (raised, escalated, cleared; a drifting sensor instead of a raise)."""
-        meta = bundle.meta
-        name = rt.cfg.name
-        m = self._m[name]
-        m.scored.inc()
-        m.score.set(score)
-        if meta.threshold != rt.shown_threshold:
-            m.threshold.set(meta.threshold)
-            rt.shown_threshold = meta.threshold
+        slot = self._slots.get(id(rt))
+        if slot is None or slot.rt is not rt:
+            slot = self._slot(rt)
+        if slot.bundle is not bundle:
+            slot.serve(bundle)
+        threshold = slot.threshold
+        slot.scored.inc()
+        slot.score.set(score)
+        if threshold != rt.shown_threshold:
+            slot.m.threshold.set(threshold)
+            rt.shown_threshold = threshold
         self.stats.windows_scored += 1
         rt.last_score = score
         rt.last_window_end = end
         rt.sq_history.append(sq)
+        det = rt.detector
+        if det.state is State.NORMAL and not score > threshold and threshold > 0 \
+                and not rt.suspects:
+            # The usual window: nothing can change. The detector cannot raise on a
+            # window not above the threshold, no suspect waits to recover, and the
+            # window's severity band is the lowest (its score is under the threshold).
+            det.quiet()
+            rt.escalation.observe_quiet()
+            state = State.NORMAL
+        else:
+            self._detect(rt, start, end, mode, bundle, score, sq)
+            state = rt.detector.state  # a StrEnum: it serialises as its value
+        anomalous = 1 if state is State.ANOMALOUS else 0
+        if anomalous != rt.shown_anomalous:
+            slot.m.anomalous.set(anomalous)
+            rt.shown_anomalous = anomalous
+        self._state_message(slot, rt, end, mode, state, score)
+
+    def _state_message(self, slot: _AssetSlot, rt: AssetRuntime, end: float, mode: str,
+                       state: State, score: float) -> None:
+        """The retained state message of a scored window (and its score telemetry)."""
+        threshold = slot.threshold
+        rounded = round_to(score, 6)
+        tpl = slot.payload
+        last_event = rt.last_event
+        if tpl is None or not tpl.fits(state, mode, threshold, slot.model, last_event):
+            tpl = slot.payload = StatePayload(slot.name, state, mode, threshold, slot.model,
+                                              last_event)
+        if tpl.ok:
+            payload = tpl.render(
+                orjson.dumps(rounded),
+                orjson.dumps(round_to(score / threshold, 3)) if threshold > 0 else b"null",
+                self.time_json(end))
+        else:
+            payload = to_json({"asset": slot.name, "state": state, "mode": mode,
+                               "score": rounded, "score_ratio": ratio(score, threshold),
+                               "threshold": threshold, "window_end": self.time(end),
+                               "model": slot.model, "last_event": last_event})
+        topic = slot.state_topic
+        self.out.append(OutMessage(topic, payload, Kind.STATE, 1, True, topic, slot.name,
+                                   None, None, rounded, threshold))
+        if self.publish_scores:
+            tel = {"asset": slot.name, "mode": mode, "window_end": self.time(end),
+                   "score": rounded, "threshold": threshold}
+            self.out.append(OutMessage(slot.scores_topic, to_json(tel), Kind.SCORE, 0))
+
+    def _slot(self, rt: AssetRuntime) -> _AssetSlot:
+        name = rt.cfg.name
+        old = self._slot_ids.get(name)
+        if old is not None:  # a runtime replaced under the same name: let the old go
+            self._slots.pop(old, None)
+        state_topic, scores_topic, _ = self.topics(name)
+        slot = self._slots[id(rt)] = _AssetSlot(rt, name, self._m[name], state_topic,
+                                                scores_topic)
+        self._slot_ids[name] = id(rt)
+        return slot
+
+    def _detect(self, rt: AssetRuntime, start: float, end: float, mode: str, bundle: Bundle,
+                score: float, sq: np.ndarray) -> None:
+        """The detector step of a window that can change something, and its events."""
+        meta = bundle.meta
         tr = rt.detector.step(score, meta.threshold, meta.clear_threshold)
         if rt.suspects:
             self._suspects_recover(rt, score, meta.clear_threshold, end)
@@ -219,24 +324,6 @@ class Emitter:
             esc = rt.escalation.step()
             if esc is not None:
                 self._escalated(rt, esc, start, end, mode, score, meta, bundle.model_ref, sq)
-        state = rt.detector.state  # a StrEnum: it serialises as its value
-        anomalous = 1 if state is State.ANOMALOUS else 0
-        if anomalous != rt.shown_anomalous:
-            m.anomalous.set(anomalous)
-            rt.shown_anomalous = anomalous
-        state_topic, scores_topic, _ = self.topics(name)
-        rounded = round(score, 6)
-        end_s = self.time(end)
-        doc = {"asset": name, "state": state, "mode": mode, "score": rounded,
-               "score_ratio": ratio(score, meta.threshold),
-               "threshold": meta.threshold, "window_end": end_s, "model": bundle.model_ref,
-               "last_event": rt.last_event}
-        self.out.append(OutMessage(state_topic, to_json(doc), Kind.STATE, 1, True, state_topic,
-                                   name, None, None, rounded, meta.threshold))
-        if self.publish_scores:
-            tel = {"asset": name, "mode": mode, "window_end": end_s, "score": rounded,
-                   "threshold": meta.threshold}
-            self.out.append(OutMessage(scores_topic, to_json(tel), Kind.SCORE, 0))
 
     def _drifting(self, rt: AssetRuntime, start: float, end: float, score: float,
                   meta: BundleMeta, sq: np.ndarray) -> bool:

@@ -2,8 +2,12 @@
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 from enum import IntEnum
+from typing import Any
+
+import orjson
 
 from agent.core.events import EventType
 
@@ -48,3 +52,81 @@ class OutMessage:
     event_id: str | None = None
     score: float | None = None
     threshold: float | None = None
+
+
+_POW10 = {3: 1e3, 6: 1e6}
+# Below 2**52 every integer and every integer plus one is a float exactly.
+_EXACT_BELOW = 4.5e15
+# More than the error of x * 10**n in units of itself (half an ulp: 2**-53), with room.
+_REL_ERR = 2.3e-16
+
+
+def round_to(x: float, ndigits: int) -> float:
+    """`round(x, ndigits)` for ndigits 3 or 6, the same float, without the decimal
+    string Python's `round` goes through (several times dearer; twice per window).
+
+    Python rounds the exact binary value of `x` half to even at `ndigits` decimals and
+    returns the float nearest that decimal. Here: y = x * 10**n, off the exact product
+    by at most half an ulp; when y is further than that from every half-integer, the
+    nearest integer r to y is the one to the exact product, and r / 10**n (r and 10**n
+    exact, the division correctly rounded) is the float nearest the decimal. Anything
+    else (near a half-integer, not positive, too large) takes `round` itself."""
+    scale = _POW10[ndigits]
+    y = x * scale
+    if 0.0 < y < _EXACT_BELOW:
+        f = math.floor(y)
+        d = (y - f) - 0.5
+        err = y * _REL_ERR
+        if d > err:
+            return (f + 1) / scale
+        if d < -err:
+            return f / scale
+    return round(x, ndigits)
+
+
+class StatePayload:
+    """The retained state message of one asset as bytes, for one set of what changes
+    rarely (name, state, mode, threshold, model, last event): the JSON before the
+    score, between score and ratio, and after them up to and after the window's end,
+    rendered once; a window splices its score, ratio and end in (`render`). The bytes
+    are those of `orjson.dumps` of the state document (keys in the same order):
+    orjson writes a dict as `{"key":value,...}`, each value as it writes it alone.
+
+    `ok` is False when orjson cannot write one of the fixed parts (the document then
+    goes through the json module, and so must the whole of it)."""
+
+    __slots__ = ("head", "last_event", "mid", "mode", "model", "ok", "state", "tail",
+                 "threshold")
+
+    def __init__(self, name: str, state: str, mode: str, threshold: float,
+                 model: dict[str, Any], last_event: dict[str, Any] | None) -> None:
+        self.state = state
+        self.mode = mode
+        self.threshold = threshold
+        self.model = model
+        self.last_event = last_event
+        try:
+            dumps = orjson.dumps
+            self.head = (b'{"asset":' + dumps(name) + b',"state":' + dumps(state)
+                         + b',"mode":' + dumps(mode) + b',"score":')
+            self.mid = b',"threshold":' + dumps(threshold) + b',"window_end":'
+            self.tail = (b',"model":' + dumps(model) + b',"last_event":' + dumps(last_event)
+                         + b"}")
+            self.ok = True
+        except TypeError:
+            self.head = self.mid = self.tail = b""
+            self.ok = False
+
+    def fits(self, state: str, mode: str, threshold: float, model: dict[str, Any],
+             last_event: dict[str, Any] | None) -> bool:
+        """Whether this is the payload for these. The model and last event are replaced
+        whole, never changed in place, so identity says it; the threshold too (equal
+        numbers can print apart: 1 and 1.0, 0.0 and -0.0)."""
+        return (state is self.state and threshold is self.threshold
+                and model is self.model and last_event is self.last_event
+                and (mode is self.mode or mode == self.mode))
+
+    def render(self, score: bytes, ratio: bytes, window_end: bytes) -> bytes:
+        """The payload for a window: its rounded score, ratio and end, each as JSON."""
+        return b"".join((self.head, score, b',"score_ratio":', ratio, self.mid, window_end,
+                         self.tail))

@@ -284,7 +284,10 @@ class Pipeline:
             windows = res.windows
             if windows:
                 self._m_at[ai].closed.inc(len(windows))
-                wins.extend((rt, w) for w in windows)
+                if len(windows) == 1:
+                    wins.append((rt, windows[0]))
+                else:
+                    wins.extend((rt, w) for w in windows)
         stats.windows_closed += len(wins)
         return self._judge_windows(wins)
 

@@ -168,8 +168,9 @@ class _Group:
 class AssembleResult:
     __slots__ = ("empty_skipped", "error", "late_samples", "windows")
 
-    def __init__(self, error: Exception | None = None) -> None:
-        self.windows: list[ClosedWindow] = []
+    def __init__(self, error: Exception | None = None,
+                 windows: list[ClosedWindow] | None = None) -> None:
+        self.windows: list[ClosedWindow] = [] if windows is None else windows
         self.empty_skipped = 0
         self.late_samples = 0
         # `close_many`: the exception this assembler raised (its asset fails alone).
@@ -193,6 +194,7 @@ class WindowAssembler:
         # and no sample (-inf) does not.
         self._due_ts = -sys.float_info.max
         self._due_reach = math.inf
+        self._due2_ts = self._due2_reach = math.inf
         self._first_start = math.inf  # start of the first window
         self._max_ts = -math.inf
         self._last_arrival = -math.inf
@@ -229,9 +231,18 @@ class WindowAssembler:
     def _set_next(self, k: int) -> None:
         """Make window `k` the earliest open one (its samples are not touched)."""
         self._next_k = k
-        end = self._bounds(k)[1]
-        self._due_ts = end + self.cfg.lateness_s
-        self._due_reach = end + self.cfg.timeout_s
+        cfg = self.cfg
+        span, hop = self._span_k, cfg.hop_s
+        # The ends of windows k and k + 1, as `_bounds` computes them.
+        if span is not None:
+            end, after = (k + span) * hop, (k + 1 + span) * hop
+        else:
+            end, after = k * hop + cfg.length_s, (k + 1) * hop + cfg.length_s
+        self._due_ts = end + cfg.lateness_s
+        self._due_reach = end + cfg.timeout_s
+        # The same for the window after it (`close_many` asks whether only k is due).
+        self._due2_ts = after + cfg.lateness_s
+        self._due2_reach = after + cfg.timeout_s
 
     def due(self, now: float) -> bool:
         """Whether `close_due(now)` has anything to do: a window due, or samples held

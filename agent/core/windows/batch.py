@@ -9,6 +9,7 @@ whole. Everything else goes through `WindowAssembler.close_due`. Pure.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 
 import numpy as np
@@ -21,68 +22,72 @@ from agent.core.windows.assembler import (
     _Group,
 )
 
-_NOT_DUE = 0
-_ONE = 1
-_OTHER = 2
+# One item of the joint cut: (position in `close_many`'s list, the assembler, the
+# window's start and end, per rate group (the group, its first pending index, how many
+# samples each of its rows holds)).
+_Item = tuple[int, WindowAssembler, float, float, list[tuple[_Group, int, int]]]
 
 
-def _plan(asm: WindowAssembler, now: float
-          ) -> tuple[int, float, float, list[tuple[int, int]]]:
-    """Whether `asm` has nothing due at `now` (_NOT_DUE), exactly its next tumbling
-    window with every rate group's rows in step (_ONE: start, end and per group the
-    first pending index and how many are pending), or anything else (_OTHER)."""
-    k = asm._next_k
-    if k is None or asm._span_k != 1 or asm._any_unsorted:
-        return _OTHER, 0.0, 0.0, []
-    hop = asm.cfg.hop_s
-    end = (k + 1) * hop
-    reach = asm._reach(now)
-    if not asm._due(end, reach):
-        return _NOT_DUE, 0.0, 0.0, []
-    if asm._due((k + 2) * hop, reach):
-        return _OTHER, 0.0, 0.0, []
+def _plan(a: WindowAssembler, now: float) -> list[tuple[_Group, int, int]] | bool:
+    """Whether `a` has nothing due at `now` (False), exactly its next tumbling window
+    with every rate group's rows in step (per group: the group, its first pending index
+    and how many are pending), or anything else (True: `close_due`). Reads only what
+    the assembler keeps for it (`_set_next`: when its next window and the one after are
+    due), as `_due(end, _reach(now))` would compute them."""
+    if a._next_k is None or a._span_k != 1 or a._any_unsorted:
+        return True
+    max_ts = a._max_ts
+    idle = now - a._last_arrival
+    reach = (max_ts + idle if idle != math.inf else -math.inf) if idle > 0.0 else max_ts
+    if not (max_ts >= a._due_ts or reach >= a._due_reach):
+        return False
+    if max_ts >= a._due2_ts or reach >= a._due2_reach:
+        return True
     spans = []
-    for g in asm._groups:
+    for g in a._groups:
         lo, hi = g.lo, g.hi
         lo0, hi0 = lo[0], hi[0]
-        if lo.count(lo0) != len(lo) or hi.count(hi0) != len(hi) or hi0 - lo0 > g.bound:
-            return _OTHER, 0.0, 0.0, []
-        spans.append((lo0, hi0 - lo0))
-    return _ONE, k * hop, end, spans
+        n = len(lo)
+        if lo.count(lo0) != n or hi.count(hi0) != n or hi0 - lo0 > g.bound:
+            return True
+        spans.append((g, lo0, hi0 - lo0))
+    return spans
 
 
 def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[AssembleResult]:
     """`close_due(now)` of every assembler, the same windows in the same state after.
 
     The usual case of a tick (exactly the next tumbling window of an asset due, its
-    rows in step) is cut for all such assets together: one comparison and one copy
-    per segment length over the stacked rows of every asset, instead of a handful of
-    numpy calls per asset. Everything else goes through `close_due`.
+    rows in step) is cut for all such assets together: one copy per segment length
+    over the stacked rows of every asset, instead of a handful of numpy calls per
+    asset. Everything else goes through `close_due`.
 
     An assembler that raises fails alone: its result is an empty one carrying the
     exception (`AssembleResult.error`); the others' windows are cut as usual.
     """
     results: list[AssembleResult | None] = [None] * len(assemblers)
-    fast: list[tuple[int, float, float, list[tuple[int, int]]]] = []
+    fast: list[_Item] = []
     for i, a in enumerate(assemblers):
         try:
-            kind, start, end, spans = _plan(a, now)
-            if kind == _ONE:
-                fast.append((i, start, end, spans))
-            elif kind == _NOT_DUE:
+            plan = _plan(a, now)
+            if plan is True:
+                results[i] = a.close_due(now)
+            elif plan is False:
                 results[i] = AssembleResult()
             else:
-                results[i] = a.close_due(now)
+                assert a._next_k is not None
+                hop = a.cfg.hop_s
+                fast.append((i, a, a._next_k * hop, (a._next_k + 1) * hop, plan))
         except Exception as exc:
             results[i] = AssembleResult(exc)
     try:
-        _close_fast(assemblers, fast, results, now)
+        _close_fast(fast, results, now)
     except Exception:
         # The joint cut failed before it changed any assembler: each alone, contained.
-        for i, *_ in fast:
+        for i, a, *_ in fast:
             if results[i] is None:
                 try:
-                    results[i] = assemblers[i].close_due(now)
+                    results[i] = a.close_due(now)
                 except Exception as exc:
                     results[i] = AssembleResult(exc)
     return [r if r is not None else AssembleResult() for r in results]
@@ -101,75 +106,104 @@ def _no_times(n: int, m: int) -> np.ndarray:
     return got
 
 
-def _close_fast(assemblers: Sequence[WindowAssembler],
-                fast: list[tuple[int, float, float, list[tuple[int, int]]]],
-                results: list[AssembleResult | None], now: float) -> None:
-    """`close_many`'s joint cut of the assemblers in `fast`, results into `results`."""
-    blocks = _cut_blocks(assemblers, fast)
-    _finish(assemblers, fast, blocks, results, now)
+def _close_fast(fast: list[_Item], results: list[AssembleResult | None], now: float) -> None:
+    """`close_many`'s joint cut of the items in `fast`, results into `results`. An
+    item is finished (its result set, its assembler moved past the window) as soon as
+    its blocks are cut; should a later copy fail, only the unfinished ones are left."""
+    blocks = _cut_blocks(fast, results)
+    _finish(fast, blocks, results, now)
 
 
-def _cut_blocks(assemblers: Sequence[WindowAssembler],
-                fast: list[tuple[int, float, float, list[tuple[int, int]]]]
+def _cut_blocks(fast: list[_Item], results: list[AssembleResult | None]
                 ) -> list[list[Block | None]]:
-    """The blocks of every (item, group) with samples, cut per segment length at once."""
+    """The blocks of every (item, group) with samples, cut per segment length at once.
+    An item of one rate group cut whole is finished here (`_finish_one`)."""
     # Every (item, group) with samples, by how many each of its rows holds: (item,
     # group index, the group, its first pending index, the window's end, whether all its
-    # pending samples are before the end, whether its timestamps are wanted).
-    by_width: dict[int, list[tuple[int, int, _Group, int, float, bool, bool]]] = {}
+    # pending samples are before the end, whether its timestamps are wanted, whether
+    # it is the item's only group).
+    by_width: dict[int, list[tuple[int, int, _Group, int, float, bool, bool, bool]]] = {}
     blocks: list[list[Block | None]] = []
-    for fi, (i, _, end, spans) in enumerate(fast):
+    for fi, (_, a, _, end, spans) in enumerate(fast):
         blocks.append([None] * len(spans))
-        a = assemblers[i]
-        groups = a._groups
         # The newest sample of any channel before the end: every pending one is in.
         full = a._max_ts < end
         keep = a.keep_times or not full
-        for gi, (lo0, m) in enumerate(spans):
+        alone = len(spans) == 1
+        for gi, (g, lo0, m) in enumerate(spans):
             if m:
-                by_width.setdefault(m, []).append((fi, gi, groups[gi], lo0, end, full, keep))
+                got = by_width.get(m)
+                if got is None:
+                    got = by_width[m] = []
+                got.append((fi, gi, g, lo0, end, full, keep, alone))
     for m, members in by_width.items():
         v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
         kept = [mb for mb in members if mb[6]]
         t = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in kept]) if kept else None
         off = t_off = 0
-        for fi, gi, g, _, end, full, keep in members:
+        no_times = None
+        for fi, gi, g, lo0, end, full, keep, alone in members:
             n = len(g.chans)
-            ts = t[t_off:t_off + n] if keep and t is not None else _no_times(n, m)
+            if keep and t is not None:
+                ts = t[t_off:t_off + n]
+                t_off += n
+            else:
+                ts = no_times if no_times is not None and n == no_times.shape[0] \
+                    else (no_times := _no_times(n, m))
             if full:
-                blocks[fi][gi] = Block(g.chans, ts, v[off:off + n], [m] * n, True, v, off,
-                                       t if keep else None)
+                blk = Block(g.chans, ts, v[off:off + n], [m] * n, True, v, off,
+                            t if keep else None)
+                if alone:
+                    _finish_one(fast[fi], blk, lo0, m, results)
+                else:
+                    blocks[fi][gi] = blk
             else:
                 counts = (ts < end).sum(axis=1).tolist()
                 mc = max(counts)
                 blocks[fi][gi] = Block(g.chans, ts[:, :mc], v[off:off + n, :mc], counts)
             off += n
-            if keep:
-                t_off += n
     return blocks
 
 
-def _finish(assemblers: Sequence[WindowAssembler],
-            fast: list[tuple[int, float, float, list[tuple[int, int]]]],
-            blocks: list[list[Block | None]], results: list[AssembleResult | None],
-            now: float) -> None:
+def _finish_one(item: _Item, blk: Block, lo0: int, m: int,
+                results: list[AssembleResult | None]) -> None:
+    """`_finish` of an item of one rate group whose block is cut whole (`blk`, every row
+    holding its m pending samples from `lo0`)."""
+    i, a, start, end, spans = item
+    g = spans[0][0]
+    cov = m / g.expected if g.expected else 1.0
+    complete = not (g.expected and cov < a.cfg.min_coverage)
+    w = ClosedWindow.of_blocks(start, end, complete, (blk,), a._expected, cov)
+    assert a._next_k is not None
+    a._set_next(a._next_k + 1)
+    g.lo = [lo0 + m] * len(g.chans)  # rows in step stay in step
+    results[i] = AssembleResult(None, [w])
+
+
+def _finish(fast: list[_Item], blocks: list[list[Block | None]],
+            results: list[AssembleResult | None], now: float) -> None:
     """Each item's window from its blocks, and its assembler moved past it."""
-    for (i, start, end, _), bl in zip(fast, blocks, strict=True):
-        a = assemblers[i]
+    for (i, a, start, end, spans), bl in zip(fast, blocks, strict=True):
+        if results[i] is not None:  # finished by `_cut_blocks`
+            continue
         complete = True
         total = 0
         cov = 1.0
-        for gi, g in enumerate(a._groups):
+        min_cov = a.cfg.min_coverage
+        for gi, (g, _, m) in enumerate(spans):
             blk = bl[gi]
             if blk is None:
                 empty = np.empty((len(g.chans), 0))
                 blk = bl[gi] = Block(g.chans, empty, empty, [0] * len(g.chans))
-            counts = blk.counts
-            low = min(counts)
-            total += low * len(counts) if blk.uniform else sum(counts)
+            if blk.base is not None:  # cut whole: every row holds its m pending samples
+                low = m
+                total += m
+            else:
+                low = min(blk.counts)
+                total += sum(blk.counts)
             c = low / g.expected if g.expected else 1.0
             cov = min(cov, c) if gi else c
-            if g.expected and c < a.cfg.min_coverage:
+            if g.expected and c < min_cov:
                 complete = False
         if total == 0:  # an empty window: the gap logic of close_due decides
             try:
@@ -177,16 +211,16 @@ def _finish(assemblers: Sequence[WindowAssembler],
             except Exception as exc:
                 results[i] = AssembleResult(exc)
             continue
-        res = AssembleResult()
-        res.windows.append(ClosedWindow(start, end, None, None, None, complete,
-                                        blocks=tuple(bl), expected=a._expected,  # type: ignore[arg-type]
-                                        min_coverage=cov))
+        w = ClosedWindow.of_blocks(start, end, complete, tuple(bl), a._expected,  # type: ignore[arg-type]
+                                   cov)
         assert a._next_k is not None
         a._set_next(a._next_k + 1)
-        for g, blk in zip(a._groups, bl, strict=True):
+        for (g, lo0, m), blk in zip(spans, bl, strict=True):
             assert blk is not None
-            if blk.uniform:  # rows in step stay in step
-                g.lo = [g.lo[0] + blk.values.shape[1]] * len(g.lo)
+            if blk.base is not None:  # rows in step stay in step
+                g.lo = [lo0 + m] * len(g.chans)
+            elif blk.uniform:
+                g.lo = [lo0 + blk.values.shape[1]] * len(g.chans)
             else:
                 g.drop(blk.counts)
-        results[i] = res
+        results[i] = AssembleResult(None, [w])

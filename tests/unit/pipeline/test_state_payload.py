@@ -1,0 +1,125 @@
+"""The tick's shortcuts are the long way exactly: `round_to` is `round`, the rendered
+state payload is orjson's bytes of the state document, and a quiet window through
+`Detector.quiet` / `EscalationTracker.observe_quiet` leaves what `step` / `observe` do."""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+from hypothesis import example, given, settings
+from hypothesis import strategies as st
+
+from agent.core.detector import Detector, DetectorParams, State
+from agent.core.escalation import EscalationTracker
+from agent.core.events import rfc3339, severity_for
+from agent.pipeline.emit import ratio, to_json
+from agent.pipeline.messages import StatePayload, round_to
+
+
+def same(a: float, b: float) -> bool:
+    """The same float: equal with the same sign, or both NaN."""
+    return (math.isnan(a) and math.isnan(b)) or (a == b and math.copysign(1, a)
+                                                   == math.copysign(1, b))
+
+
+def halfway(ndigits: int) -> st.SearchStrategy[float]:
+    """Floats at and next to the ties of rounding at `ndigits` decimals."""
+    n = st.integers(min_value=-(10**12), max_value=10**12)
+    return st.builds(lambda k, step: math.nextafter((k + 0.5) / 10**ndigits,
+                                                    math.inf if step > 0 else -math.inf)
+                     if step else (k + 0.5) / 10**ndigits, n, st.integers(-1, 1))
+
+
+@settings(max_examples=1500, deadline=None)
+@given(x=st.floats() | halfway(6) | halfway(3), ndigits=st.sampled_from([3, 6]))
+@example(x=0.0, ndigits=6).via("zero")
+@example(x=-0.0, ndigits=6).via("negative zero")
+@example(x=2.5e-7, ndigits=6).via("a tie below the last digit")
+@example(x=4.4e9, ndigits=6).via("past 2**52 once scaled")
+@example(x=1e308, ndigits=3).via("overflows once scaled")
+def test_round_to_is_round(x: float, ndigits: int) -> None:
+    """The same float as `round(x, ndigits)`, ties, signs, NaN and infinities too."""
+    assert same(round_to(x, ndigits), round(x, ndigits))
+
+
+names = st.text(max_size=12)
+scores = st.floats(min_value=0.0, allow_infinity=False) | st.floats(allow_nan=False,
+                                                                       allow_infinity=False)
+thresholds = st.floats(allow_nan=False, allow_infinity=False) | st.integers(-5, 5)
+events = st.none() | st.fixed_dictionaries({"type": names, "id": names, "time": names})
+models = st.fixed_dictionaries({"id": names, "version": st.integers(0, 10**6)})
+
+
+@settings(max_examples=600, deadline=None)
+@given(name=names, state=st.sampled_from(list(State)), mode=names, threshold=thresholds,
+       model=models, last_event=events, score=scores,
+       end=st.floats(min_value=0, max_value=4e9))
+def test_state_payload_is_orjsons_bytes(name: str, state: State, mode: str,
+                                        threshold: float, model: dict[str, Any],
+                                        last_event: dict[str, Any] | None, score: float,
+                                        end: float) -> None:
+    """`StatePayload.render` as the emitter calls it, byte for byte `to_json` of the
+    state document as the emitter built it before."""
+    doc = {"asset": name, "state": state, "mode": mode, "score": round(score, 6),
+           "score_ratio": ratio(score, threshold), "threshold": threshold,
+           "window_end": rfc3339(end), "model": model, "last_event": last_event}
+    tpl = StatePayload(name, state, mode, threshold, model, last_event)
+    assert tpl.ok
+    assert tpl.fits(state, mode, threshold, model, last_event)
+    got = tpl.render(to_json(round_to(score, 6)),
+                     to_json(round_to(score / threshold, 3)) if threshold > 0 else b"null",
+                     to_json(rfc3339(end)))
+    assert got == to_json(doc)
+
+
+def test_a_payload_fits_only_what_it_was_rendered_for() -> None:
+    """Another state, mode, threshold object, model or last event: rendered again."""
+    model, event = {"id": "m", "version": 1}, {"type": "t", "id": "i", "time": "x"}
+    thr = 2.5
+    tpl = StatePayload("a", State.NORMAL, "run", thr, model, event)
+    assert tpl.fits(State.NORMAL, "run", thr, model, event)
+    assert not tpl.fits(State.ANOMALOUS, "run", thr, model, event)
+    assert not tpl.fits(State.NORMAL, "idle", thr, model, event)
+    assert not tpl.fits(State.NORMAL, "run", float("2.50"), model, event)
+    assert not tpl.fits(State.NORMAL, "run", thr, dict(model), event)
+    assert not tpl.fits(State.NORMAL, "run", thr, model, dict(event))
+
+
+def test_a_payload_orjson_cannot_write_is_not_used() -> None:
+    """A model reference orjson refuses: `ok` is False (the emitter writes the whole
+    document through the json module instead)."""
+    assert not StatePayload("a", State.NORMAL, "m", 1.0, {"id": {1, 2}}, None).ok
+
+
+@settings(max_examples=400, deadline=None)
+@given(levels=st.lists(st.sampled_from([0.1, 0.9, 1.5, 3.0, 6.0]), max_size=60),
+       k=st.integers(1, 3), extra=st.integers(0, 3), m=st.integers(1, 3),
+       stride=st.integers(1, 3))
+def test_quiet_windows_leave_what_step_and_observe_leave(levels: list[float], k: int,
+                                                         extra: int, m: int,
+                                                         stride: int) -> None:
+    """Windows under the threshold while NORMAL through `quiet` / `observe_quiet`, the
+    rest through `step` / `observe`: the same transitions, escalations and history as
+    every window through `step` / `observe`."""
+    thr, clear = 1.0, 0.8
+    params = DetectorParams(k, k + extra, m, stride)
+    dets = Detector(params), Detector(params)
+    escs = (EscalationTracker(k, k + extra, stride), EscalationTracker(k, k + extra, stride))
+    for score in levels:
+        seen = []
+        for quick, det, esc in zip((False, True), dets, escs, strict=True):
+            if quick and det.state is State.NORMAL and not score > thr:
+                det.quiet()
+                esc.observe_quiet()
+                tr = None
+            else:
+                tr = det.step(score, thr, clear)
+                esc.observe(severity_for(score, thr), frozenset())
+            if tr is not None:
+                got: Any = esc.start(frozenset()) if det.state is State.ANOMALOUS else esc.stop()
+            else:
+                got = esc.step() if det.state is State.ANOMALOUS else None
+            seen.append((tr, got, det.state, det._n_above, list(det._recent),
+                         det.peak_score, list(esc._recent), esc.severity))
+        assert seen[0] == seen[1]
