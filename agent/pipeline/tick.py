@@ -344,21 +344,28 @@ class Pipeline:
         """Features, limits, inference and detectors of the tick's windows. Each stage
         runs for all windows at once; when it raises, it runs again asset by asset and
         only the asset that raises fails (`_failed`), the others go on."""
-        failed = self._failed_now
         todo = [p for p in pending if p.w.complete]
         if todo:
             self._rows(todo)
+        items = self._items(pending)
+        if items:
+            self._detect(items, pending, self._scores(items, pending))
+
+    def _items(self, pending: list[Pending]) -> list[Item]:
+        """Limits of every window with a feature row; the windows to score, keyed by
+        their position in `pending`, with their rows and models."""
+        failed = self._failed_now
         items: list[Item] = []
         observer, observes = self.observer, self.observes
-        skip = self._skip
-        for p in pending:
+        skip, limits = self._skip, self.judge.limits
+        for key, p in enumerate(pending):
             rt = p.rt
             if failed and rt.cfg.name in failed:
                 continue
             try:
                 row = p.row
                 if row is not None and (rt.limits or rt.layout.velocity_at):
-                    self.judge.limits(p, row)
+                    limits(p, row)
                 if p.reason is not None:
                     skip(rt, p.reason)
                     continue
@@ -370,30 +377,34 @@ class Pipeline:
                 if bundle is None:
                     skip(rt, "no_model")
                     continue
-                items.append((id(p), row, bundle, index))
+                items.append((key, row, bundle, index))
             except Exception as exc:
                 self._failed(rt, "features", exc)
-        if not items:
-            return
-        by_key = {id(p): p for p in pending}
-        results = self._scores(items, by_key)
-        # Step detectors in window order, so an asset's windows are judged in time order.
+        return items
+
+    def _detect(self, items: list[Item], pending: list[Pending],
+                results: dict[int, Result]) -> None:
+        """Step detectors in window order, so an asset's windows are judged in time
+        order."""
+        failed = self._failed_now
         step = self.emit.step
         for key, *_ in items:
             got = results.get(key)
             if got is None:
                 continue
-            p = by_key[key]
-            if failed and p.rt.cfg.name in failed:
+            p = pending[key]
+            rt = p.rt
+            if failed and rt.cfg.name in failed:
                 continue
             score, sq, bundle = got
             if not math.isfinite(score):
-                skip(p.rt, "model_error")
+                self._skip(rt, "model_error")
                 continue
             try:
-                step(p.rt, p.w.start, p.w.end, p.mode, bundle, score, sq)
+                w = p.w
+                step(rt, w.start, w.end, p.mode, bundle, score, sq)
             except Exception as exc:
-                self._failed(p.rt, "detector", exc)
+                self._failed(rt, "detector", exc)
 
     def _contained(self, todo: Sequence[T], rt_of: Callable[[T], AssetRuntime], stage: str,
                    work: Callable[[Sequence[T]], None]) -> None:
@@ -426,16 +437,16 @@ class Pipeline:
 
         self._contained(todo, lambda p: p.rt, "features", work)
 
-    def _scores(self, items: list[Item], by_key: dict[int, Pending]) -> dict[int, Result]:
-        """The scorer's results, contained per asset."""
+    def _scores(self, items: list[Item], pending: list[Pending]) -> dict[int, Result]:
+        """The scorer's results by key (position in `pending`), contained per asset."""
         def model_error(key: int, detail: str) -> None:
-            rt = by_key[key].rt
+            rt = pending[key].rt
             if detail:
                 self.log.error(kv("model failed", asset=rt.cfg.name, error=detail))
             self._skip(rt, "model_error")
 
         results: dict[int, Result] = {}
-        self._contained(items, lambda it: by_key[it[0]].rt, "inference",
+        self._contained(items, lambda it: pending[it[0]].rt, "inference",
                         lambda part: results.update(self.scorer.scores(part, model_error)))
         return results
 
