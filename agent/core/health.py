@@ -24,6 +24,8 @@ common practice, no source).
 
 from __future__ import annotations
 
+import math
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import NamedTuple
@@ -31,6 +33,7 @@ from typing import NamedTuple
 import numpy as np
 
 RECOVER_WINDOWS = 2
+_SHORT_ROW = 64  # samples: `judge_rows` reduces rows up to this long samples-major
 
 
 class Reason(StrEnum):
@@ -157,6 +160,101 @@ def window_stats(values: np.ndarray, ts: np.ndarray, rate_rows: np.ndarray
             if finite[i] else None for i in range(rows)]
 
 
+class RowLimits(NamedTuple):
+    """The health limits of many rows (each one channel's window), as arrays for
+    `judge_rows`: lowest and highest value allowed (-inf / inf when off), whether a
+    flat row counts, and the rows with a rate-of-change limit with their limits."""
+
+    lo: np.ndarray
+    hi: np.ndarray
+    flat: np.ndarray  # bool
+    rate_rows: np.ndarray  # int64 positions of the rows with `max_rate_per_s`
+    rate_lim: np.ndarray  # their limits
+
+    @classmethod
+    def of(cls, limits: Sequence[HealthLimits]) -> RowLimits:
+        inf = math.inf
+        rate = [i for i, lim in enumerate(limits) if lim.max_rate_per_s is not None]
+        return cls(
+            np.array([-inf if lim.min_value is None else lim.min_value for lim in limits],
+                     dtype=np.float64),
+            np.array([inf if lim.max_value is None else lim.max_value for lim in limits],
+                     dtype=np.float64),
+            np.array([lim.flatline_windows is not None for lim in limits], dtype=bool),
+            np.array(rate, dtype=np.int64),
+            np.array([limits[i].max_rate_per_s for i in rate], dtype=np.float64))
+
+
+class RowVerdicts:
+    """What `judge_rows` found of many rows: which are quiet, and each row's numbers."""
+
+    __slots__ = ("_rate", "_rate_has", "hi", "lo", "quiet", "ts", "values")
+
+    def __init__(self, values: np.ndarray, ts: np.ndarray, quiet: np.ndarray,
+                 lo: np.ndarray, hi: np.ndarray, rate: np.ndarray, rate_has: np.ndarray
+                 ) -> None:
+        self.values, self.ts = values, ts
+        self.quiet = quiet
+        self.lo, self.hi = lo, hi
+        self._rate, self._rate_has = rate, rate_has
+
+    def stats(self, i: int, rate_at: int) -> WindowStats | None:
+        """Row `i`'s `WindowStats` (None when it holds a non-finite sample), `rate_at`
+        its position among the rate rows (-1: none), as `window_stats` gives them."""
+        if not (math.isfinite(self.lo[i]) and math.isfinite(self.hi[i])):
+            return None
+        v, t = self.values[i], self.ts[i]
+        lo, hi = float(v.min()), float(v.max())
+        rate = float(self._rate[rate_at]) if rate_at >= 0 and self._rate_has[rate_at] \
+            else None
+        return WindowStats(v.shape[0], lo, hi, rate, float(v[0]), float(t[0]),
+                           float(v[-1]), float(t[-1]))
+
+
+def judge_rows(lim: RowLimits, values: np.ndarray, ts: np.ndarray, calm: np.ndarray | bool,
+               last_v: np.ndarray, last_t: np.ndarray) -> RowVerdicts:
+    """Which rows of `values` / `ts` [rows, n >= 1] (every row full, each one window of
+    one channel) are *quiet*: `ChannelHealth.check_stats` of the row would find no
+    reason and change nothing but `_last`, given the channel is `calm` and its `_last`
+    is (`last_v`, `last_t`) for the rate rows (NaN for None). A row holding a
+    non-finite sample is never quiet.
+
+    Short rows are reduced samples-major (one elementwise pass per sample across all
+    rows instead of a reduction call per row). The order of a min or max does not
+    change the comparisons made here; `RowVerdicts.stats` reads lowest and highest
+    value of its row again, as `window_stats` does, and the rates are the same
+    elementwise quotients either way (their maximum is exact)."""
+    n = values.shape[1]
+    short = n <= _SHORT_ROW
+    x = np.ascontiguousarray(values.T) if short else values
+    axis = 0 if short else 1
+    lo, hi = x.min(axis=axis), x.max(axis=axis)
+    quiet: np.ndarray = np.isfinite(lo) & np.isfinite(hi) & (lo >= lim.lo) & (hi <= lim.hi)
+    quiet &= calm
+    quiet &= ~(lim.flat & (hi == lo))
+    sel = lim.rate_rows
+    rate = np.zeros(sel.size)
+    has = np.zeros(sel.size, dtype=bool)
+    if sel.size:
+        if short:
+            vs, tsel = x[:, sel], np.ascontiguousarray(ts[sel].T)
+            fv, ft = vs[0], tsel[0]
+        else:
+            vs, tsel = values[sel], ts[sel]
+            fv, ft = vs[:, 0], tsel[:, 0]
+        if n > 1:
+            dv, dt = np.diff(vs, axis=axis), np.diff(tsel, axis=axis)
+            ok = dt > 0
+            rate = np.abs(np.divide(dv, dt, out=np.zeros_like(dv), where=ok)).max(axis=axis)
+            has = np.asarray(ok.any(axis=axis))
+        loud = has & (rate > lim.rate_lim)
+        fwd = ft > last_t  # False where there is no last sample (NaN)
+        gap = np.where(fwd, ft - last_t, 1.0)
+        loud |= fwd & (np.abs(fv - last_v) / gap > lim.rate_lim)
+        quiet[sel] &= ~loud
+    return RowVerdicts(values, ts, quiet, lo, hi, rate, has)
+
+
 class ChannelHealth:
     """The health state machine of one channel."""
 
@@ -171,6 +269,9 @@ class ChannelHealth:
         # The last finite sample (value, time) of the previous window: a step that falls
         # exactly on a window boundary has its two samples in different windows.
         self._last: tuple[float, float] | None = None
+        # Not faulty, stale or dead, and no flat run counting: a window with no reason
+        # changes nothing but `_last` (what `judge_rows` lets the tick skip).
+        self.calm = True
 
     def check_window(self, values: np.ndarray, ts: np.ndarray) -> HealthChange | None:
         """Judge one closed window's samples of this channel."""
@@ -244,6 +345,7 @@ class ChannelHealth:
         faulty now; a birth (None) lets it recover through clean windows."""
         self.dead = death
         if death is None:
+            self._recalm()
             return None
         return self._judge([death], {"age_s": round(age_s, 3)}, clean_window=False)
 
@@ -254,10 +356,20 @@ class ChannelHealth:
         self.stale = age_s > self.limits.stale_s
         if self.stale and not self.faulty:
             return self._judge([Reason.STALE], {"age_s": round(age_s, 3)}, clean_window=False)
+        self._recalm()
         return None
+
+    def _recalm(self) -> None:
+        self.calm = not (self.faulty or self.stale or self._flat_windows) and self.dead is None
 
     def _judge(self, reasons: list[Reason], detail: dict[str, float], *, clean_window: bool
                ) -> HealthChange | None:
+        change = self._transition(reasons, detail, clean_window)
+        self._recalm()
+        return change
+
+    def _transition(self, reasons: list[Reason], detail: dict[str, float],
+                    clean_window: bool) -> HealthChange | None:
         if reasons:
             self._clean = 0
             if not self.faulty:

@@ -63,17 +63,38 @@ class ModeTracker:
         self.mode: str | None = None
         self.since: float | None = None  # start of the first window in this mode
         self.settle_until = -math.inf
+        # Per mode: its band widened by the hysteresis (`mode_for_value` keeps the
+        # current mode while the value stays inside it), and whether it is scored.
+        self._held = {m.name: (_widened(m, cfg.hysteresis), m.scored) for m in cfg.states}
+        # Decisions that keep the mode, by (mode, settling): values, shared.
+        self._kept: dict[tuple[str, bool], ModeDecision] = {}
 
     def step(self, values: np.ndarray, window_start: float) -> ModeDecision:
         """Decide the mode of the window starting at `window_start` from the mode
         channel's samples in it."""
         v = values[np.isfinite(values)] if values.size else values
         if v.size == 0:
+            return self.step_value(None, window_start)
+        return self.step_value(float(v[-1]) if self.cfg.by_code else float(v.mean()),
+                               window_start)
+
+    def step_value(self, value: float | None, window_start: float) -> ModeDecision:
+        """`step` given what it reads of the samples: the mean of the finite ones (the
+        last one with `by_code`), None when there is none."""
+        if value is not None and not self.cfg.by_code and self.mode is not None:
+            held = self._held.get(self.mode)
+            if held is not None and held[0][0] <= value < held[0][1]:
+                # The current mode holds (hysteresis): nothing changes.
+                settling = window_start < self.settle_until
+                key = (self.mode, settling)
+                d = self._kept.get(key)
+                if d is None:
+                    d = self._kept[key] = ModeDecision(self.mode, False, settling, held[1])
+                return d
+        if value is None:
             mode = self.mode or UNKNOWN_MODE
-        elif self.cfg.by_code:
-            mode = mode_for_value(self.cfg, float(v[-1]), self.mode)
         else:
-            mode = mode_for_value(self.cfg, float(v.mean()), self.mode)
+            mode = mode_for_value(self.cfg, value, self.mode)
         changed = self.mode is not None and mode != self.mode
         if changed:
             spec = self._specs.get(mode)
@@ -85,3 +106,10 @@ class ModeTracker:
         spec = self._specs.get(mode)
         return ModeDecision(mode, changed, window_start < self.settle_until,
                             spec is not None and spec.scored)
+
+
+def _widened(m: ModeSpec, widen: float) -> tuple[float, float]:
+    """`_in_band(m, v, widen)` as `lo <= v < hi`."""
+    lo = m.min_value if m.min_value is not None else -math.inf
+    hi = m.max_value if m.max_value is not None else math.inf
+    return lo - widen, hi + widen
