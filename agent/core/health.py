@@ -25,7 +25,6 @@ common practice, no source).
 from __future__ import annotations
 
 import math
-from collections.abc import Sequence
 from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import NamedTuple
@@ -33,7 +32,6 @@ from typing import NamedTuple
 import numpy as np
 
 RECOVER_WINDOWS = 2
-_SHORT_ROW = 64  # samples: `judge_rows` reduces rows up to this long samples-major
 
 
 class Reason(StrEnum):
@@ -160,105 +158,36 @@ def window_stats(values: np.ndarray, ts: np.ndarray, rate_rows: np.ndarray
             if finite[i] else None for i in range(rows)]
 
 
-class RowLimits(NamedTuple):
-    """The health limits of many rows (each one channel's window), as arrays for
-    `judge_rows`: lowest and highest value allowed (-inf / inf when off), whether a
-    flat row counts, and the rows with a rate-of-change limit with their limits."""
+class HealthTable:
+    """Per slot (one channel each), what the tick reads of many channels at once as
+    arrays: whether the channel is calm (`ChannelHealth.calm`) and its last finite
+    sample (`ChannelHealth._last`; NaN time: none). A `ChannelHealth` keeps these here,
+    in a table of its own until one gathering many channels adopts it (`move_to`)."""
 
-    lo: np.ndarray
-    hi: np.ndarray
-    flat: np.ndarray  # bool
-    rate_rows: np.ndarray  # int64 positions of the rows with `max_rate_per_s`
-    rate_lim: np.ndarray  # their limits
+    def __init__(self, size: int = 1) -> None:
+        self.calm = np.ones(size, dtype=bool)
+        self.last_v = np.full(size, np.nan)
+        self.last_t = np.full(size, np.nan)
+        self.used = 0
+        self.moved_out = 0  # channels moved to another table since made
 
-    @classmethod
-    def of(cls, limits: Sequence[HealthLimits]) -> RowLimits:
-        inf = math.inf
-        rate = [i for i, lim in enumerate(limits) if lim.max_rate_per_s is not None]
-        return cls(
-            np.array([-inf if lim.min_value is None else lim.min_value for lim in limits],
-                     dtype=np.float64),
-            np.array([inf if lim.max_value is None else lim.max_value for lim in limits],
-                     dtype=np.float64),
-            np.array([lim.flatline_windows is not None for lim in limits], dtype=bool),
-            np.array(rate, dtype=np.int64),
-            np.array([limits[i].max_rate_per_s for i in rate], dtype=np.float64))
-
-
-class RowVerdicts:
-    """What `judge_rows` found of many rows: which are quiet, and each row's numbers."""
-
-    __slots__ = ("_rate", "_rate_has", "hi", "lo", "quiet", "ts", "values")
-
-    def __init__(self, values: np.ndarray, ts: np.ndarray, quiet: np.ndarray,
-                 lo: np.ndarray, hi: np.ndarray, rate: np.ndarray, rate_has: np.ndarray
-                 ) -> None:
-        self.values, self.ts = values, ts
-        self.quiet = quiet
-        self.lo, self.hi = lo, hi
-        self._rate, self._rate_has = rate, rate_has
-
-    def stats(self, i: int, rate_at: int) -> WindowStats | None:
-        """Row `i`'s `WindowStats` (None when it holds a non-finite sample), `rate_at`
-        its position among the rate rows (-1: none), as `window_stats` gives them."""
-        if not (math.isfinite(self.lo[i]) and math.isfinite(self.hi[i])):
-            return None
-        v, t = self.values[i], self.ts[i]
-        lo, hi = float(v.min()), float(v.max())
-        rate = float(self._rate[rate_at]) if rate_at >= 0 and self._rate_has[rate_at] \
-            else None
-        return WindowStats(v.shape[0], lo, hi, rate, float(v[0]), float(t[0]),
-                           float(v[-1]), float(t[-1]))
-
-
-def judge_rows(lim: RowLimits, values: np.ndarray, ts: np.ndarray, calm: np.ndarray | bool,
-               last_v: np.ndarray, last_t: np.ndarray) -> RowVerdicts:
-    """Which rows of `values` / `ts` [rows, n >= 1] (every row full, each one window of
-    one channel) are *quiet*: `ChannelHealth.check_stats` of the row would find no
-    reason and change nothing but `_last`, given the channel is `calm` and its `_last`
-    is (`last_v`, `last_t`) for the rate rows (NaN for None). A row holding a
-    non-finite sample is never quiet.
-
-    Short rows are reduced samples-major (one elementwise pass per sample across all
-    rows instead of a reduction call per row). The order of a min or max does not
-    change the comparisons made here; `RowVerdicts.stats` reads lowest and highest
-    value of its row again, as `window_stats` does, and the rates are the same
-    elementwise quotients either way (their maximum is exact)."""
-    n = values.shape[1]
-    short = n <= _SHORT_ROW
-    x = np.ascontiguousarray(values.T) if short else values
-    axis = 0 if short else 1
-    lo, hi = x.min(axis=axis), x.max(axis=axis)
-    quiet: np.ndarray = np.isfinite(lo) & np.isfinite(hi) & (lo >= lim.lo) & (hi <= lim.hi)
-    quiet &= calm
-    quiet &= ~(lim.flat & (hi == lo))
-    sel = lim.rate_rows
-    rate = np.zeros(sel.size)
-    has = np.zeros(sel.size, dtype=bool)
-    if sel.size:
-        if short:
-            vs, tsel = x[:, sel], np.ascontiguousarray(ts[sel].T)
-            fv, ft = vs[0], tsel[0]
-        else:
-            vs, tsel = values[sel], ts[sel]
-            fv, ft = vs[:, 0], tsel[:, 0]
-        if n > 1:
-            dv, dt = np.diff(vs, axis=axis), np.diff(tsel, axis=axis)
-            ok = dt > 0
-            rate = np.abs(np.divide(dv, dt, out=np.zeros_like(dv), where=ok)).max(axis=axis)
-            has = np.asarray(ok.any(axis=axis))
-        loud = has & (rate > lim.rate_lim)
-        fwd = ft > last_t  # False where there is no last sample (NaN)
-        gap = np.where(fwd, ft - last_t, 1.0)
-        loud |= fwd & (np.abs(fv - last_v) / gap > lim.rate_lim)
-        quiet[sel] &= ~loud
-    return RowVerdicts(values, ts, quiet, lo, hi, rate, has)
+    def add(self) -> int:
+        """A new slot (calm, no last sample)."""
+        if self.used == self.calm.size:
+            grow = max(self.used, 1)
+            self.calm = np.concatenate([self.calm, np.ones(grow, dtype=bool)])
+            self.last_v = np.concatenate([self.last_v, np.full(grow, np.nan)])
+            self.last_t = np.concatenate([self.last_t, np.full(grow, np.nan)])
+        self.used += 1
+        return self.used - 1
 
 
 class ChannelHealth:
     """The health state machine of one channel."""
 
-    def __init__(self, limits: HealthLimits) -> None:
+    def __init__(self, limits: HealthLimits, table: HealthTable | None = None) -> None:
+        self._table = table if table is not None else HealthTable()
+        self._slot = self._table.add()
         self.limits = limits
         self.faulty = False
         self.reasons: tuple[Reason, ...] = ()
@@ -266,12 +195,40 @@ class ChannelHealth:
         self.dead: Reason | None = None  # a death certificate's reason, until a birth
         self._flat_windows = 0
         self._clean = 0
-        # The last finite sample (value, time) of the previous window: a step that falls
-        # exactly on a window boundary has its two samples in different windows.
-        self._last: tuple[float, float] | None = None
-        # Not faulty, stale or dead, and no flat run counting: a window with no reason
-        # changes nothing but `_last` (what `judge_rows` lets the tick skip).
-        self.calm = True
+
+    @property
+    def table(self) -> tuple[HealthTable, int]:
+        """The table and slot holding `calm` and `_last`."""
+        return self._table, self._slot
+
+    def move_to(self, table: HealthTable) -> int:
+        """Keep `calm` and `_last` in `table` from now on; the new slot."""
+        old, i = self._table, self._slot
+        j = table.add()
+        table.calm[j], table.last_v[j], table.last_t[j] = \
+            old.calm[i], old.last_v[i], old.last_t[i]
+        old.moved_out += 1
+        self._table, self._slot = table, j
+        return j
+
+    @property
+    def calm(self) -> bool:
+        """Not faulty, stale or dead, and no flat run counting: a window with no reason
+        changes nothing but `_last` (what `judge_rows` lets the tick skip)."""
+        return bool(self._table.calm[self._slot])
+
+    @property
+    def _last(self) -> tuple[float, float] | None:
+        """The last finite sample (value, time) of the previous window: a step that
+        falls exactly on a window boundary has its two samples in different windows."""
+        t = float(self._table.last_t[self._slot])
+        return None if math.isnan(t) else (float(self._table.last_v[self._slot]), t)
+
+    @_last.setter
+    def _last(self, last: tuple[float, float] | None) -> None:
+        v, t = last if last is not None else (math.nan, math.nan)
+        self._table.last_v[self._slot] = v
+        self._table.last_t[self._slot] = t
 
     def check_window(self, values: np.ndarray, ts: np.ndarray) -> HealthChange | None:
         """Judge one closed window's samples of this channel."""
@@ -281,8 +238,9 @@ class ChannelHealth:
             finite = np.isfinite(values)
             if finite.any():
                 v, t = values[finite], ts[finite]
-                if self._last is not None and t[0] > self._last[1]:
-                    rate = abs(float(v[0]) - self._last[0]) / (float(t[0]) - self._last[1])
+                last = self._last
+                if last is not None and t[0] > last[1]:
+                    rate = abs(float(v[0]) - last[0]) / (float(t[0]) - last[1])
                     if rate > limit and Reason.RATE_OF_CHANGE not in reasons:
                         reasons.append(Reason.RATE_OF_CHANGE)
                         detail["max_rate_per_s"] = rate
@@ -360,7 +318,8 @@ class ChannelHealth:
         return None
 
     def _recalm(self) -> None:
-        self.calm = not (self.faulty or self.stale or self._flat_windows) and self.dead is None
+        self._table.calm[self._slot] = \
+            not (self.faulty or self.stale or self._flat_windows) and self.dead is None
 
     def _judge(self, reasons: list[Reason], detail: dict[str, float], *, clean_window: bool
                ) -> HealthChange | None:

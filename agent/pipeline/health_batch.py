@@ -22,7 +22,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from agent.core.health import ChannelHealth, RowLimits, WindowStats, judge_rows
+from agent.core.health import ChannelHealth, HealthTable, WindowStats
+from agent.core.health_rows import RowLimits, judge_rows
 from agent.core.windows.closed import ClosedWindow
 from agent.pipeline.runtime import AssetRuntime
 
@@ -37,7 +38,7 @@ class _Rows:
     offs: tuple[int, ...]  # rows of the checked ones in the block
     checked: tuple[int, ...]  # their channels
     health: tuple[ChannelHealth, ...]
-    mode_r: int  # row of the mode channel (mean-decided) in the block, -1: not here
+    slots: tuple[int, ...]  # theirs in the batch's `HealthTable`
 
 
 @dataclass(frozen=True, slots=True)
@@ -45,11 +46,15 @@ class AssetPlan:
     """What `prejudge` reads of one asset's windows, fixed by its layout."""
 
     rt: AssetRuntime
-    # (block index, rows) of the blocks with checked channels or the mode channel
-    blocks: tuple[tuple[int, _Rows], ...]
+    # (block index, rows, the block's channels, row of the mode channel if it is
+    # mean-decided and there, else -1) of the blocks with checked channels or the mode
+    # channel
+    blocks: tuple[tuple[int, _Rows, tuple[int, ...], int], ...]
+    n_blocks: int  # how many blocks a window has at least
 
     @classmethod
-    def of(cls, rt: AssetRuntime) -> AssetPlan:
+    def of(cls, rt: AssetRuntime, table: HealthTable) -> AssetPlan:
+        """The plan of `rt`, its checked channels moved into `table`."""
         lay = rt.layout
         by_block: dict[int, dict[int, int]] = {}
         for c, (b, r) in enumerate(lay.chan_at):
@@ -63,9 +68,12 @@ class AssetPlan:
             offs = tuple(r for r, c in enumerate(chans) if lay.is_checked[c])
             mode_r = mode_at[1] if mode_at[0] == b else -1
             if offs or mode_r >= 0:
-                blocks.append((b, _Rows(chans, offs, tuple(chans[r] for r in offs),
-                                        tuple(rt.health[chans[r]] for r in offs), mode_r)))
-        return cls(rt, tuple(blocks))
+                health = tuple(rt.health[chans[r]] for r in offs)
+                slots = tuple(h.table[1] if h.table[0] is table else h.move_to(table)
+                              for h in health)
+                blocks.append((b, _Rows(chans, offs, tuple(chans[r] for r in offs), health,
+                                        slots), chans, mode_r))
+        return cls(rt, tuple(blocks), max((b for b, *_ in blocks), default=-1) + 1)
 
 
 @dataclass(frozen=True, slots=True)
@@ -77,24 +85,24 @@ class _Layout:
     counts: np.ndarray  # rows per block
     seg: list[int]  # the block (position in the sequence) of each row
     chans: list[int]
-    health: list[ChannelHealth]
+    slots: np.ndarray  # in the `HealthTable`
     limits: RowLimits
     rate_at: list[int]  # position among the rate rows, -1 when none
-    rate_health: list[ChannelHealth]
+    rate_slots: np.ndarray
 
     @classmethod
     def of(cls, parts: Sequence[_Rows]) -> _Layout:
         offs = [o for p in parts for o in p.offs]
-        health = [h for p in parts for h in p.health]
-        lim = RowLimits.of([h.limits for h in health])
-        rate_at = [-1] * len(health)
+        lim = RowLimits.of([h.limits for p in parts for h in p.health])
+        slots = np.array([s for p in parts for s in p.slots], dtype=np.int64)
+        rate_at = [-1] * len(slots)
         for k, i in enumerate(lim.rate_rows.tolist()):
             rate_at[i] = k
         return cls(tuple(parts), np.array(offs, dtype=np.int64),
                    np.array([len(p.offs) for p in parts], dtype=np.int64),
                    [k for k, p in enumerate(parts) for _ in p.offs],
-                   [c for p in parts for c in p.checked], health, lim, rate_at,
-                   [health[i] for i in lim.rate_rows.tolist()])
+                   [c for p in parts for c in p.checked], slots, lim, rate_at,
+                   slots[lim.rate_rows])
 
 
 @dataclass(slots=True)
@@ -122,13 +130,16 @@ class HealthBatch:
     """`prejudge` with the asset plans and matrix layouts it keeps between ticks."""
 
     def __init__(self) -> None:
+        # `calm` and `_last` of every checked channel the batch has seen, by slot.
+        self.table = HealthTable(64)
+        self._moved = 0  # `table.moved_out` when the plans were made
         self._plans: dict[int, AssetPlan] = {}
         self._layouts: dict[tuple[int, ...], _Layout] = {}
 
     def plan(self, rt: AssetRuntime) -> AssetPlan:
         got = self._plans.get(id(rt))
         if got is None or got.rt is not rt:
-            got = self._plans[id(rt)] = AssetPlan.of(rt)
+            got = self._plans[id(rt)] = AssetPlan.of(rt, self.table)
         return got
 
     def prejudge(self, wins: Sequence[tuple[AssetRuntime, ClosedWindow]],
@@ -137,8 +148,12 @@ class HealthBatch:
         assets in `failed`. Nothing changes unless this returns."""
         n = len(wins)
         out = Prejudged([False] * n, [None] * n, [None] * n)
+        if self.table.moved_out != self._moved:  # a channel went to another batch's table
+            self._plans.clear()
+            self._layouts.clear()
+            self._moved = self.table.moved_out
         mats = self._gather(wins, failed, out.eligible)
-        writes: list[tuple[list[ChannelHealth], list[bool], list[float], list[float]]] = []
+        writes: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
         value = out.mode_value
         for m in mats.values():
             if m.parts:
@@ -149,10 +164,10 @@ class HealthBatch:
                 for wi, mean in zip(wis, means, strict=True):
                     if math.isfinite(mean):  # else a sample is not (or the sum overflowed)
                         value[wi] = mean
-        for hs, quiet, lv, lt in writes:
-            for h, q, v, t in zip(hs, quiet, lv, lt, strict=True):
-                if q:
-                    h._last = (v, t)
+        table = self.table
+        for slots, lv, lt in writes:  # the quiet rows' `_last`
+            table.last_v[slots] = lv
+            table.last_t[slots] = lt
         return out
 
     def _gather(self, wins: Sequence[tuple[AssetRuntime, ClosedWindow]], failed: set[str],
@@ -163,27 +178,31 @@ class HealthBatch:
         ids = [id(rt) for rt, _ in wins]
         many = None if len(set(ids)) == len(ids) else Counter(ids)  # assets with 2+ windows
         plans = self._plans
-        for wi, (rt, w) in enumerate(wins):
-            plan = plans.get(ids[wi])
+        for wi, (key, (rt, w)) in enumerate(zip(ids, wins, strict=True)):
+            plan = plans.get(key)
             if plan is None or plan.rt is not rt:
                 plan = self.plan(rt)
             if not plan.blocks or (failed and rt.cfg.name in failed):
                 continue
             blocks = w.blocks
-            ok = many is None or many[ids[wi]] == 1
-            for b, rows in plan.blocks:
-                blk = blocks[b] if b < len(blocks) else None
-                if blk is None or blk.base is None or not blk.uniform or (
-                        blk.chans is not rows.chans and blk.chans != rows.chans):
+            ok = many is None or many[key] == 1
+            if len(blocks) < plan.n_blocks:
+                eligible[wi] = False
+                continue
+            for b, rows, chans, mode_r in plan.blocks:
+                blk = blocks[b]
+                base = blk.base
+                if base is None or not blk.uniform or (
+                        blk.chans is not chans and blk.chans != chans):
                     ok = False
                     continue
-                m = mats.get(id(blk.base))
+                m = mats.get(id(base))
                 if m is None:
-                    m = mats[id(blk.base)] = _Matrix(blk.base, blk.tbase)
+                    m = mats[id(base)] = _Matrix(base, blk.tbase)
                 if rows.offs:
                     m.parts.append((rows, blk.row0, wi))
-                if rows.mode_r >= 0:
-                    m.modes.append((blk.row0 + rows.mode_r, wi))
+                if mode_r >= 0:
+                    m.modes.append((blk.row0 + mode_r, wi))
             eligible[wi] = ok
         for key, m in list(mats.items()):
             if m.base.shape[1] == 0 or (m.tbase is None and m.parts):  # nothing to judge
@@ -202,8 +221,7 @@ class HealthBatch:
         return got
 
     def _judge_matrix(self, m: _Matrix, out: Prejudged,
-                      writes: list[tuple[list[ChannelHealth], list[bool], list[float],
-                                         list[float]]]) -> None:
+                      writes: list[tuple[np.ndarray, np.ndarray, np.ndarray]]) -> None:
         parts, row0, wis = zip(*m.parts, strict=True)
         lay = self._layout(parts)
         rows = np.repeat(np.array(row0, dtype=np.int64), lay.counts) + lay.offs
@@ -213,21 +231,18 @@ class HealthBatch:
             vals, times = m.base, m.tbase  # every row, in order: no gather
         else:
             vals, times = m.base[rows], m.tbase[rows]
-        flags = [h.calm for h in lay.health]
-        calm: np.ndarray | bool = True if False not in flags else np.array(flags, dtype=bool)
+        table = self.table
+        calm = table.calm[lay.slots]
         eligible = [out.eligible[wi] for wi in wis]
         if False in eligible:
-            calm = calm & np.array(eligible, dtype=bool)[lay.seg]
-        lasts = [h._last for h in lay.rate_health]
-        nan = math.nan
-        last_v = np.array([nan if x is None else x[0] for x in lasts], dtype=np.float64)
-        last_t = np.array([nan if x is None else x[1] for x in lasts], dtype=np.float64)
-        verdict = judge_rows(lay.limits, vals, times, calm, last_v, last_t)
+            calm &= np.array(eligible, dtype=bool)[lay.seg]
+        rs = lay.rate_slots
+        verdict = judge_rows(lay.limits, vals, times, calm, table.last_v[rs], table.last_t[rs])
         quiet = verdict.quiet
         sel = lay.limits.rate_rows
         if sel.size:
-            writes.append((lay.rate_health, quiet[sel].tolist(), vals[sel, -1].tolist(),
-                           times[sel, -1].tolist()))
+            q = quiet[sel]
+            writes.append((rs[q], vals[sel, -1][q], times[sel, -1][q]))
         if quiet.all():
             return
         stats = out.stats

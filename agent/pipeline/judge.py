@@ -179,8 +179,8 @@ class Judge:
         """Velocity RMS gauges, static limits and ISO 10816-3 zones of one window, on
         channels without a sensor fault (a faulty sensor's value says nothing about the
         machine). Gauges are set when their value changes (children looked up once); a
-        monitor at rest whose value stays in its rest band (`rest_band`), with its
-        gauges shown at rest, is not stepped (it would change nothing)."""
+        monitor whose value is in its rest band (`rest_band`, as of its last step: no
+        band before the first) is not stepped, as that would change nothing."""
         rt = p.rt
         plan = self._limit_plans.get(id(rt))
         if plan is None or plan.rt is not rt:
@@ -192,21 +192,21 @@ class Judge:
                 rt.last_velocity_mm_s[cname] = v
                 # Prometheus wants base units: m/s (PITFALLS.md, promtool).
                 rec.set(v / 1000.0)
-        for ci, at, mon, shown, rest in plan.limits:
-            if ci in faulty:
+        for e in plan.limits:
+            if e.ci in faulty:
                 continue
-            value = float(row[at])
-            lo, hi = mon.rest_band
-            if lo <= value <= hi and shown[0].value == rest[0] and (
-                    len(shown) == 1 or shown[1].value == rest[1]):
-                continue  # at rest, stays at rest, shown at rest: nothing changes
+            value = float(row[e.at])
+            if e.lo <= value <= e.hi:
+                continue  # at rest and stays there: nothing changes
             if math.isfinite(value):
-                self._step_limit(p, ci, mon, value)
+                self._step_limit(p, e, value)
 
-    def _step_limit(self, p: Pending, ci: int, mon: FeatureLimits | ZoneLimits,
-                    value: float) -> None:
-        rt = p.rt
+    def _step_limit(self, p: Pending, e: _Watch, value: float) -> None:
+        rt, ci, mon = p.rt, e.ci, e.mon
         rises = mon.step(value)
+        # Only here do the monitor and its gauges change: after a step at rest, the
+        # gauges show the rest levels too.
+        e.lo, e.hi = mon.rest_band
         if isinstance(mon, ZoneLimits):
             self._zone_gauges(rt, ci, mon)
         else:
@@ -255,16 +255,25 @@ class Shown:
             self.value = value
 
 
+class _Watch:
+    """One limit or zone monitor of an asset, with the band of values that step it to
+    no change (`rest_band` after its last step; none before the first)."""
+
+    __slots__ = ("at", "ci", "hi", "lo", "mon")
+
+    def __init__(self, ci: int, at: int, mon: FeatureLimits | ZoneLimits) -> None:
+        self.ci, self.at, self.mon = ci, at, mon
+        self.lo, self.hi = math.inf, -math.inf
+
+
 @dataclass(frozen=True, slots=True)
 class _LimitPlan:
     """Per asset, what `Judge.limits` reads: (channel, row position, channel name,
-    gauge) of each velocity RMS; (channel, row position, monitor, its gauges, their
-    values at rest) of each limit and zone."""
+    gauge) of each velocity RMS, and each limit and zone monitor."""
 
     rt: AssetRuntime
     velocity: tuple[tuple[int, int, str, Shown], ...]
-    limits: tuple[tuple[int, int, FeatureLimits | ZoneLimits, tuple[Shown, ...],
-                        tuple[float, ...]], ...]
+    limits: tuple[_Watch, ...]
 
     @classmethod
     def of(cls, rt: AssetRuntime, judge: Judge) -> _LimitPlan:
@@ -272,16 +281,4 @@ class _LimitPlan:
         velocity = tuple((ci, at, chans[ci].name,
                           judge.shown(m.velocity_rms, (name, chans[ci].name)))
                          for ci, at in rt.layout.velocity_at)
-        limits = []
-        for ci, at, mon in rt.limits:
-            shown: tuple[Shown, ...]
-            if isinstance(mon, ZoneLimits):
-                shown = (judge.shown(m.vibration_zone, (name, chans[ci].name)),
-                         judge.shown(m.limit_level, (name, mon.feature, "operational")))
-                rest: tuple[float, ...] = (ZONES.index("A") + 1, 0)
-            else:
-                shown = (judge.shown(m.limit_level,
-                                     (name, f"{chans[ci].name}.{mon.cfg.feature}", "limit")),)
-                rest = (_LEVEL_VALUE["normal"],)
-            limits.append((ci, at, mon, shown, rest))
-        return cls(rt, velocity, tuple(limits))
+        return cls(rt, velocity, tuple(_Watch(ci, at, mon) for ci, at, mon in rt.limits))
