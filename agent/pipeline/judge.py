@@ -7,6 +7,11 @@ one attribute test per window here. A window's verdict is a `Pending`: the mode 
 in, the channels faulty at it, and why it is not scored (`reason`, None when it is).
 Skip reasons, first match wins: `sensor_fault`, `incomplete`, `unknown_mode`,
 `not_scored` (a mode marked `scored: false`), `settling`.
+
+Most windows change nothing, and are judged so in arrays: `prejudge` finds the quiet
+channels of all the tick's windows and the mode channel's means at once
+(`health_batch.py`), `window` runs the state machines of the rest; `limits` steps only
+the monitors whose value leaves their rest band.
 """
 
 from __future__ import annotations
