@@ -89,6 +89,8 @@ class _Layout:
     limits: RowLimits
     rate_at: list[int]  # position among the rate rows, -1 when none
     rate_slots: np.ndarray
+    # Where the blocks started when they were every row of their matrix in order.
+    whole_at: list[int] = field(default_factory=list)
 
     @classmethod
     def of(cls, parts: Sequence[_Rows]) -> _Layout:
@@ -111,7 +113,10 @@ class _Matrix:
 
     base: np.ndarray
     tbase: np.ndarray | None
-    parts: list[tuple[_Rows, int, int]] = field(default_factory=list)  # (rows, row0, window)
+    # Per block with checked channels: its rows, where it starts, its window.
+    parts: list[_Rows] = field(default_factory=list)
+    row0: list[int] = field(default_factory=list)
+    wi: list[int] = field(default_factory=list)
     modes: list[tuple[int, int]] = field(default_factory=list)  # (mode channel row, window)
 
 
@@ -200,13 +205,15 @@ class HealthBatch:
                 if m is None:
                     m = mats[id(base)] = _Matrix(base, blk.tbase)
                 if rows.offs:
-                    m.parts.append((rows, blk.row0, wi))
+                    m.parts.append(rows)
+                    m.row0.append(blk.row0)
+                    m.wi.append(wi)
                 if mode_r >= 0:
                     m.modes.append((blk.row0 + mode_r, wi))
             eligible[wi] = ok
         for key, m in list(mats.items()):
             if m.base.shape[1] == 0 or (m.tbase is None and m.parts):  # nothing to judge
-                for _, _, wi in m.parts:
+                for wi in m.wi:
                     eligible[wi] = False
                 del mats[key]
         return mats
@@ -222,15 +229,19 @@ class HealthBatch:
 
     def _judge_matrix(self, m: _Matrix, out: Prejudged,
                       writes: list[tuple[np.ndarray, np.ndarray, np.ndarray]]) -> None:
-        parts, row0, wis = zip(*m.parts, strict=True)
-        lay = self._layout(parts)
-        rows = np.repeat(np.array(row0, dtype=np.int64), lay.counts) + lay.offs
-        total = m.base.shape[0]
+        wis = m.wi
+        lay = self._layout(m.parts)
         assert m.tbase is not None  # `_gather` dropped matrices without times
-        if rows.size == total and bool((rows == np.arange(total)).all()):
-            vals, times = m.base, m.tbase  # every row, in order: no gather
+        if m.row0 == lay.whole_at and m.base.shape[0] == lay.offs.size:
+            vals, times = m.base, m.tbase  # every row, in order, as last time: no gather
         else:
-            vals, times = m.base[rows], m.tbase[rows]
+            rows = np.repeat(np.array(m.row0, dtype=np.int64), lay.counts) + lay.offs
+            total = m.base.shape[0]
+            if rows.size == total and bool((rows == np.arange(total)).all()):
+                vals, times = m.base, m.tbase  # every row, in order: no gather
+                lay.whole_at[:] = m.row0
+            else:
+                vals, times = m.base[rows], m.tbase[rows]
         table = self.table
         calm = table.calm[lay.slots]
         eligible = [out.eligible[wi] for wi in wis]

@@ -192,7 +192,7 @@ class Judge:
             plan = self._limit_plans[id(rt)] = _LimitPlan.of(rt, self)
         faulty = p.faulty
         for ci, at, cname, rec in plan.velocity:
-            v = float(row[at])
+            v = row.item(at)
             if math.isfinite(v) and ci not in faulty:
                 rt.last_velocity_mm_s[cname] = v
                 # Prometheus wants base units: m/s (PITFALLS.md, promtool).
@@ -200,7 +200,7 @@ class Judge:
         for e in plan.limits:
             if e.ci in faulty:
                 continue
-            value = float(row[e.at])
+            value = row.item(e.at)
             if e.lo <= value <= e.hi:
                 continue  # at rest and stays there: nothing changes
             if math.isfinite(value):
