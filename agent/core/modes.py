@@ -63,11 +63,10 @@ class ModeTracker:
         self.mode: str | None = None
         self.since: float | None = None  # start of the first window in this mode
         self.settle_until = -math.inf
-        # Per mode: its band widened by the hysteresis (`mode_for_value` keeps the
-        # current mode while the value stays inside it), and whether it is scored.
-        self._held = {m.name: (_widened(m, cfg.hysteresis), m.scored) for m in cfg.states}
-        # Decisions that keep the mode, by (mode, settling): values, shared.
-        self._kept: dict[tuple[str, bool], ModeDecision] = {}
+        # The current mode, its band widened by the hysteresis (`mode_for_value` keeps
+        # the mode while the value stays inside it) and the decisions that keep it (not
+        # settling, settling: values, shared); None while no mode with a band holds.
+        self._hold: tuple[str, float, float, ModeDecision, ModeDecision] | None = None
 
     def step(self, values: np.ndarray, window_start: float) -> ModeDecision:
         """Decide the mode of the window starting at `window_start` from the mode
@@ -81,16 +80,11 @@ class ModeTracker:
     def step_value(self, value: float | None, window_start: float) -> ModeDecision:
         """`step` given what it reads of the samples: the mean of the finite ones (the
         last one with `by_code`), None when there is none."""
-        if value is not None and not self.cfg.by_code and self.mode is not None:
-            held = self._held.get(self.mode)
-            if held is not None and held[0][0] <= value < held[0][1]:
-                # The current mode holds (hysteresis): nothing changes.
-                settling = window_start < self.settle_until
-                key = (self.mode, settling)
-                d = self._kept.get(key)
-                if d is None:
-                    d = self._kept[key] = ModeDecision(self.mode, False, settling, held[1])
-                return d
+        hold = self._hold
+        if hold is not None and value is not None and hold[0] is self.mode \
+                and hold[1] <= value < hold[2]:
+            # The current mode holds (hysteresis): nothing changes.
+            return hold[4] if window_start < self.settle_until else hold[3]
         if value is None:
             mode = self.mode or UNKNOWN_MODE
         else:
@@ -104,6 +98,11 @@ class ModeTracker:
             self.since = window_start
         self.mode = mode
         spec = self._specs.get(mode)
+        self._hold = None
+        if spec is not None and not self.cfg.by_code:
+            lo, hi = _widened(spec, self.cfg.hysteresis)
+            self._hold = (mode, lo, hi, ModeDecision(mode, False, False, spec.scored),
+                          ModeDecision(mode, False, True, spec.scored))
         return ModeDecision(mode, changed, window_start < self.settle_until,
                             spec is not None and spec.scored)
 

@@ -117,22 +117,27 @@ class Judge:
         """Sensor health of the window's checked channels, then its mode. With `pre`
         (`prejudge` of the tick's windows, this one at `wi`), the channels it judged
         quiet are skipped and the others judged from its stats where it has them."""
-        if not rt.layout.checked and rt.modes is None:  # nothing to judge but completeness
+        lay, modes = rt.layout, rt.modes
+        if not lay.checked and modes is None:  # nothing to judge but completeness
             return Pending(rt, w, rt.mode, (), None if w.complete else "incomplete")
-        stats, eligible, value = (pre.stats[wi], pre.eligible[wi], pre.mode_value[wi]) \
-            if pre is not None else (None, False, None)
-        if eligible and stats is None:
-            faulty: tuple[int, ...] = ()  # every checked channel quiet, so calm
+        value = None
+        if pre is None:
+            faulty = self._health(rt, w, None, False)
         else:
-            faulty = self._health(rt, w, stats, eligible)
+            stats = pre.stats[wi]
+            if stats is None and pre.eligible[wi]:
+                faulty = ()  # every checked channel quiet, so calm
+            else:
+                faulty = self._health(rt, w, stats, pre.eligible[wi])
+            value = pre.mode_value[wi]
         settling = False
         scored = True
-        if rt.modes is not None and rt.layout.mode_channel is not None:
+        if modes is not None and lay.mode_channel is not None:
             if value is not None:
-                d = rt.modes.step_value(value, w.start)
+                d = modes.step_value(value, w.start)
             else:
-                ch = rt.layout.mode_channel
-                d = rt.modes.step(w.channel(ch, rt.layout.chan_at[ch]), w.start)
+                ch = lay.mode_channel
+                d = modes.step(w.channel(ch, lay.chan_at[ch]), w.start)
             if d.mode != rt.mode:
                 self.set_mode(rt, d.mode)
             settling, scored = d.settling, d.scored
