@@ -24,6 +24,7 @@ common practice, no source).
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from enum import StrEnum
 from typing import NamedTuple
@@ -157,10 +158,36 @@ def window_stats(values: np.ndarray, ts: np.ndarray, rate_rows: np.ndarray
             if finite[i] else None for i in range(rows)]
 
 
+class HealthTable:
+    """Per slot (one channel each), what the tick reads of many channels at once as
+    arrays: whether the channel is calm (`ChannelHealth.calm`) and its last finite
+    sample (`ChannelHealth._last`; NaN time: none). A `ChannelHealth` keeps these here,
+    in a table of its own until one gathering many channels adopts it (`move_to`)."""
+
+    def __init__(self, size: int = 1) -> None:
+        self.calm = np.ones(size, dtype=bool)
+        self.last_v = np.full(size, np.nan)
+        self.last_t = np.full(size, np.nan)
+        self.used = 0
+        self.moved_out = 0  # channels moved to another table since made
+
+    def add(self) -> int:
+        """A new slot (calm, no last sample)."""
+        if self.used == self.calm.size:
+            grow = max(self.used, 1)
+            self.calm = np.concatenate([self.calm, np.ones(grow, dtype=bool)])
+            self.last_v = np.concatenate([self.last_v, np.full(grow, np.nan)])
+            self.last_t = np.concatenate([self.last_t, np.full(grow, np.nan)])
+        self.used += 1
+        return self.used - 1
+
+
 class ChannelHealth:
     """The health state machine of one channel."""
 
-    def __init__(self, limits: HealthLimits) -> None:
+    def __init__(self, limits: HealthLimits, table: HealthTable | None = None) -> None:
+        self._table = table if table is not None else HealthTable()
+        self._slot = self._table.add()
         self.limits = limits
         self.faulty = False
         self.reasons: tuple[Reason, ...] = ()
@@ -168,9 +195,40 @@ class ChannelHealth:
         self.dead: Reason | None = None  # a death certificate's reason, until a birth
         self._flat_windows = 0
         self._clean = 0
-        # The last finite sample (value, time) of the previous window: a step that falls
-        # exactly on a window boundary has its two samples in different windows.
-        self._last: tuple[float, float] | None = None
+
+    @property
+    def table(self) -> tuple[HealthTable, int]:
+        """The table and slot holding `calm` and `_last`."""
+        return self._table, self._slot
+
+    def move_to(self, table: HealthTable) -> int:
+        """Keep `calm` and `_last` in `table` from now on; the new slot."""
+        old, i = self._table, self._slot
+        j = table.add()
+        table.calm[j], table.last_v[j], table.last_t[j] = \
+            old.calm[i], old.last_v[i], old.last_t[i]
+        old.moved_out += 1
+        self._table, self._slot = table, j
+        return j
+
+    @property
+    def calm(self) -> bool:
+        """Not faulty, stale or dead, and no flat run counting: a window with no reason
+        changes nothing but `_last` (what `judge_rows` lets the tick skip)."""
+        return bool(self._table.calm[self._slot])
+
+    @property
+    def _last(self) -> tuple[float, float] | None:
+        """The last finite sample (value, time) of the previous window: a step that
+        falls exactly on a window boundary has its two samples in different windows."""
+        t = float(self._table.last_t[self._slot])
+        return None if math.isnan(t) else (float(self._table.last_v[self._slot]), t)
+
+    @_last.setter
+    def _last(self, last: tuple[float, float] | None) -> None:
+        v, t = last if last is not None else (math.nan, math.nan)
+        self._table.last_v[self._slot] = v
+        self._table.last_t[self._slot] = t
 
     def check_window(self, values: np.ndarray, ts: np.ndarray) -> HealthChange | None:
         """Judge one closed window's samples of this channel."""
@@ -180,8 +238,9 @@ class ChannelHealth:
             finite = np.isfinite(values)
             if finite.any():
                 v, t = values[finite], ts[finite]
-                if self._last is not None and t[0] > self._last[1]:
-                    rate = abs(float(v[0]) - self._last[0]) / (float(t[0]) - self._last[1])
+                last = self._last
+                if last is not None and t[0] > last[1]:
+                    rate = abs(float(v[0]) - last[0]) / (float(t[0]) - last[1])
                     if rate > limit and Reason.RATE_OF_CHANGE not in reasons:
                         reasons.append(Reason.RATE_OF_CHANGE)
                         detail["max_rate_per_s"] = rate
@@ -244,6 +303,7 @@ class ChannelHealth:
         faulty now; a birth (None) lets it recover through clean windows."""
         self.dead = death
         if death is None:
+            self._recalm()
             return None
         return self._judge([death], {"age_s": round(age_s, 3)}, clean_window=False)
 
@@ -254,10 +314,21 @@ class ChannelHealth:
         self.stale = age_s > self.limits.stale_s
         if self.stale and not self.faulty:
             return self._judge([Reason.STALE], {"age_s": round(age_s, 3)}, clean_window=False)
+        self._recalm()
         return None
+
+    def _recalm(self) -> None:
+        self._table.calm[self._slot] = \
+            not (self.faulty or self.stale or self._flat_windows) and self.dead is None
 
     def _judge(self, reasons: list[Reason], detail: dict[str, float], *, clean_window: bool
                ) -> HealthChange | None:
+        change = self._transition(reasons, detail, clean_window)
+        self._recalm()
+        return change
+
+    def _transition(self, reasons: list[Reason], detail: dict[str, float],
+                    clean_window: bool) -> HealthChange | None:
         if reasons:
             self._clean = 0
             if not self.faulty:

@@ -73,6 +73,15 @@ class LevelMonitor:
         self._rest = True
         self._lowest = min(self.thresholds, default=math.inf)
 
+    @property
+    def at_rest(self) -> bool:
+        """A value at or below `lowest` steps to no change."""
+        return self._rest
+
+    @property
+    def lowest(self) -> float:
+        return self._lowest
+
     def step(self, value: float) -> int | None:
         """Feed one window's value; return the new level when it rises, else None."""
         if self._rest and value <= self._lowest:
@@ -112,6 +121,14 @@ class FeatureLimits:
                 if v is not None]
         self._high = (LevelMonitor([v for _, v in highs], cfg.deadband, cfg.on_delay), highs)
         self._low = (LevelMonitor([-v for _, v in lows], cfg.deadband, cfg.on_delay), lows)
+        self.rest_band = self._rest_band()
+
+    def _rest_band(self) -> tuple[float, float]:
+        """The values [lo, hi] a step takes without a change (empty when not at rest)."""
+        (high, highs), (low, lows) = self._high, self._low
+        if (highs and not high.at_rest) or (lows and not low.at_rest):
+            return math.inf, -math.inf
+        return (-low.lowest if lows else -math.inf), (high.lowest if highs else math.inf)
 
     @property
     def level(self) -> str:
@@ -129,6 +146,7 @@ class FeatureLimits:
             if lv is not None:
                 name, thr = names[lv - 1]
                 out.append(LimitRise(self.cfg.feature, "limit", name, thr, value))
+        self.rest_band = self._rest_band()
         return out
 
 
@@ -142,6 +160,13 @@ class ZoneLimits:
         self.alarm, self.trip = operational_limits(cfg.group, cfg.support, cfg.baseline_mm_s)
         self._zone = LevelMonitor(self.boundaries, cfg.deadband_mm_s, cfg.on_delay)
         self._ops = LevelMonitor((self.alarm, self.trip), cfg.deadband_mm_s, cfg.on_delay)
+        self.rest_band = self._rest_band()
+
+    def _rest_band(self) -> tuple[float, float]:
+        """The values [lo, hi] a step takes without a change (empty when not at rest)."""
+        if not (self._zone.at_rest and self._ops.at_rest):
+            return math.inf, -math.inf
+        return -math.inf, min(self._zone.lowest, self._ops.lowest)
 
     @property
     def zone(self) -> str:
@@ -162,4 +187,5 @@ class ZoneLimits:
         if lv is not None:
             out.append(LimitRise(self.feature, "operational", ("alarm", "trip")[lv - 1],
                                  (self.alarm, self.trip)[lv - 1], value))
+        self.rest_band = self._rest_band()
         return out

@@ -63,17 +63,32 @@ class ModeTracker:
         self.mode: str | None = None
         self.since: float | None = None  # start of the first window in this mode
         self.settle_until = -math.inf
+        # The current mode, its band widened by the hysteresis (`mode_for_value` keeps
+        # the mode while the value stays inside it) and the decisions that keep it (not
+        # settling, settling: values, shared); None while no mode with a band holds.
+        self._hold: tuple[str, float, float, ModeDecision, ModeDecision] | None = None
 
     def step(self, values: np.ndarray, window_start: float) -> ModeDecision:
         """Decide the mode of the window starting at `window_start` from the mode
         channel's samples in it."""
         v = values[np.isfinite(values)] if values.size else values
         if v.size == 0:
+            return self.step_value(None, window_start)
+        return self.step_value(float(v[-1]) if self.cfg.by_code else float(v.mean()),
+                               window_start)
+
+    def step_value(self, value: float | None, window_start: float) -> ModeDecision:
+        """`step` given what it reads of the samples: the mean of the finite ones (the
+        last one with `by_code`), None when there is none."""
+        hold = self._hold
+        if hold is not None and value is not None and hold[0] is self.mode \
+                and hold[1] <= value < hold[2]:
+            # The current mode holds (hysteresis): nothing changes.
+            return hold[4] if window_start < self.settle_until else hold[3]
+        if value is None:
             mode = self.mode or UNKNOWN_MODE
-        elif self.cfg.by_code:
-            mode = mode_for_value(self.cfg, float(v[-1]), self.mode)
         else:
-            mode = mode_for_value(self.cfg, float(v.mean()), self.mode)
+            mode = mode_for_value(self.cfg, value, self.mode)
         changed = self.mode is not None and mode != self.mode
         if changed:
             spec = self._specs.get(mode)
@@ -83,5 +98,17 @@ class ModeTracker:
             self.since = window_start
         self.mode = mode
         spec = self._specs.get(mode)
+        self._hold = None
+        if spec is not None and not self.cfg.by_code:
+            lo, hi = _widened(spec, self.cfg.hysteresis)
+            self._hold = (mode, lo, hi, ModeDecision(mode, False, False, spec.scored),
+                          ModeDecision(mode, False, True, spec.scored))
         return ModeDecision(mode, changed, window_start < self.settle_until,
                             spec is not None and spec.scored)
+
+
+def _widened(m: ModeSpec, widen: float) -> tuple[float, float]:
+    """`_in_band(m, v, widen)` as `lo <= v < hi`."""
+    lo = m.min_value if m.min_value is not None else -math.inf
+    hi = m.max_value if m.max_value is not None else math.inf
+    return lo - widen, hi + widen

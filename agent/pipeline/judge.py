@@ -7,6 +7,11 @@ one attribute test per window here. A window's verdict is a `Pending`: the mode 
 in, the channels faulty at it, and why it is not scored (`reason`, None when it is).
 Skip reasons, first match wins: `sensor_fault`, `incomplete`, `unknown_mode`,
 `not_scored` (a mode marked `scored: false`), `settling`.
+
+Most windows change nothing, and are judged so in arrays: `prejudge` finds the quiet
+channels of all the tick's windows and the mode channel's means at once
+(`health_batch.py`), `window` runs the state machines of the rest; `limits` steps only
+the monitors whose value leaves their rest band.
 """
 
 from __future__ import annotations
@@ -15,21 +20,21 @@ import logging
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
-from itertools import pairwise
 from typing import Any
 
 import numpy as np
 from prometheus_client import Gauge
 
 from agent.core.health import Reason as HealthReason
-from agent.core.health import WindowStats, window_stats
-from agent.core.limits import ZONES, ZoneLimits, zone_of
+from agent.core.health import WindowStats
+from agent.core.limits import ZONES, FeatureLimits, ZoneLimits, zone_of
 from agent.core.modes import UNKNOWN_MODE
 from agent.core.windows.closed import ClosedWindow
 from agent.ingest.buffers import Buffers
 from agent.ops.logs import kv
 from agent.ops.metrics import Metrics
 from agent.pipeline.emit import Emitter, reset_detector
+from agent.pipeline.health_batch import HealthBatch, Prejudged
 from agent.pipeline.runtime import AssetRuntime
 
 _LEVEL_VALUE = {"normal": 0, "alert": 1, "alarm": 2, "alert_low": 1, "alarm_low": 2}
@@ -58,7 +63,9 @@ class Judge:
         self.emit = emit
         self.grace_s = startup_grace_s
         # Gauge children of limits and zones, with the value last set.
-        self._gauges: dict[tuple[int, tuple[str, ...]], list[Any]] = {}
+        self._gauges: dict[tuple[int, tuple[str, ...]], Shown] = {}
+        self._limit_plans: dict[int, _LimitPlan] = {}
+        self._batch = HealthBatch()
 
     def stale(self, rt: AssetRuntime, ai: int, now: float) -> float:
         """Staleness of the asset's channels with `stale_s`, judged at `now`. Returns
@@ -99,28 +106,38 @@ class Judge:
             if change is not None:
                 self.emit.sensor_event(rt, ci, change, t, f"{death}|{t:.3f}", None)
 
-    def window(self, rt: AssetRuntime, w: ClosedWindow,
-               stats: dict[int, WindowStats] | None = None) -> Pending:
-        """Sensor health of the window's checked channels (from `stats` where
-        `health_stats` had them), then its mode."""
-        if not rt.layout.checked and rt.modes is None:  # nothing to judge but completeness
+    def prejudge(self, wins: Sequence[tuple[AssetRuntime, ClosedWindow]],
+                 failed: set[str]) -> Prejudged:
+        """The quiet channels of every window judged together (`health_batch.py`);
+        `window` judges the rest."""
+        return self._batch.prejudge(wins, failed)
+
+    def window(self, rt: AssetRuntime, w: ClosedWindow, pre: Prejudged | None = None,
+               wi: int = 0) -> Pending:
+        """Sensor health of the window's checked channels, then its mode. With `pre`
+        (`prejudge` of the tick's windows, this one at `wi`), the channels it judged
+        quiet are skipped and the others judged from its stats where it has them."""
+        lay, modes = rt.layout, rt.modes
+        if not lay.checked and modes is None:  # nothing to judge but completeness
             return Pending(rt, w, rt.mode, (), None if w.complete else "incomplete")
-        health = rt.health
-        for ci in rt.layout.checked:  # passive channels: nothing to judge (decoders let no
-            # non-finite sample through), and they can never be faulty
-            st = stats.get(ci) if stats is not None else None
-            if st is not None:
-                change = health[ci].check_stats(st)
+        value = None
+        if pre is None:
+            faulty = self._health(rt, w, None, False)
+        else:
+            stats = pre.stats[wi]
+            if stats is None and pre.eligible[wi]:
+                faulty = ()  # every checked channel quiet, so calm
             else:
-                change = health[ci].check_window(w.values[ci], w.timestamps[ci])
-            if change is not None:
-                self.emit.sensor_event(rt, ci, change, w.end, f"{w.start:.3f}", w)
-        faulty = tuple(i for i in rt.layout.checked if health[i].faulty)
+                faulty = self._health(rt, w, stats, pre.eligible[wi])
+            value = pre.mode_value[wi]
         settling = False
         scored = True
-        if rt.modes is not None and rt.layout.mode_channel is not None:
-            ch = rt.layout.mode_channel
-            d = rt.modes.step(w.channel(ch, rt.layout.chan_at[ch]), w.start)
+        if modes is not None and lay.mode_channel is not None:
+            if value is not None:
+                d = modes.step_value(value, w.start)
+            else:
+                ch = lay.mode_channel
+                d = modes.step(w.channel(ch, lay.chan_at[ch]), w.start)
             if d.mode != rt.mode:
                 self.set_mode(rt, d.mode)
             settling, scored = d.settling, d.scored
@@ -138,51 +155,27 @@ class Judge:
             reason = "settling"
         return Pending(rt, w, rt.mode, faulty, reason)
 
-    @staticmethod
-    def health_stats(wins: Sequence[tuple[AssetRuntime, ClosedWindow]]
-                     ) -> list[dict[int, WindowStats] | None]:
-        """The statistics sensor health needs of every checked channel of every window,
-        computed together: one gather and a handful of row-wise reductions per matrix
-        the cut made (blocks of full rows cut for many assets at once). Channels outside
-        such blocks, or holding a non-finite sample, are left to `check_window`."""
-        out: list[dict[int, WindowStats] | None] = [None] * len(wins)
-        # Per cut matrix (by id): (values, timestamps, rows, (window, channel), rate?)
-        mats: dict[int, tuple[np.ndarray, np.ndarray, list[int], list[tuple[int, int]],
-                              list[bool]]] = {}
-        for wi, (rt, w) in enumerate(wins):
-            if not rt.layout.checked:
-                continue
-            is_checked, wants_rate = rt.layout.is_checked, rt.layout.wants_rate
-            for blk in w.blocks:
-                base, tbase = blk.base, blk.tbase
-                if base is None or tbase is None or not blk.uniform:
-                    continue
-                got = mats.get(id(base))
-                if got is None:
-                    got = mats[id(base)] = (base, tbase, [], [], [])
-                _, _, rows, where, rate = got
-                for r, c in enumerate(blk.chans):
-                    if is_checked[c]:
-                        rows.append(blk.row0 + r)
-                        where.append((wi, c))
-                        rate.append(wants_rate[c])
-        for base, tbase, rows, where, rate in mats.values():
-            if not rows or base.shape[1] == 0:
-                continue
-            if len(rows) == base.shape[0] and rows[0] == 0 and rows[-1] == len(rows) - 1 \
-                    and all(b - a == 1 for a, b in pairwise(rows)):
-                vals, times = base, tbase  # every row, in order: no gather
+    def _health(self, rt: AssetRuntime, w: ClosedWindow,
+                stats: dict[int, WindowStats | None] | None, eligible: bool
+                ) -> tuple[int, ...]:
+        """Judge the window's checked channels that `prejudge` did not (passive
+        channels: nothing to judge, as decoders let no non-finite sample through, and
+        they can never be faulty); the faulty ones after."""
+        health = rt.health
+        for ci in rt.layout.checked:
+            if stats is not None and ci in stats:
+                st = stats[ci]
+            elif eligible:
+                continue  # quiet: judged by prejudge
             else:
-                idx = np.asarray(rows, dtype=np.int64)
-                vals, times = base[idx], tbase[idx]
-            stats = window_stats(vals, times, np.asarray(rate, dtype=bool))
-            for (wi, c), st in zip(where, stats, strict=True):
-                if st is not None:
-                    d = out[wi]
-                    if d is None:
-                        d = out[wi] = {}
-                    d[c] = st
-        return out
+                st = None
+            if st is not None:
+                change = health[ci].check_stats(st)
+            else:
+                change = health[ci].check_window(w.values[ci], w.timestamps[ci])
+            if change is not None:
+                self.emit.sensor_event(rt, ci, change, w.end, f"{w.start:.3f}", w)
+        return tuple(i for i in rt.layout.checked if health[i].faulty)
 
     def set_mode(self, rt: AssetRuntime, mode: str) -> None:
         gauge = self.metrics.mode
@@ -195,31 +188,44 @@ class Judge:
     def limits(self, p: Pending, row: np.ndarray) -> None:
         """Velocity RMS gauges, static limits and ISO 10816-3 zones of one window, on
         channels without a sensor fault (a faulty sensor's value says nothing about the
-        machine). Gauges are set when their value changes (children looked up once)."""
-        rt, w = p.rt, p.w
-        for ci, at in rt.layout.velocity_at:
-            v = float(row[at])
-            if ci not in p.faulty and np.isfinite(v):
-                cname = rt.cfg.channels[ci].name
+        machine). Gauges are set when their value changes (children looked up once); a
+        monitor whose value is in its rest band (`rest_band`, as of its last step: no
+        band before the first) is not stepped, as that would change nothing."""
+        rt = p.rt
+        plan = self._limit_plans.get(id(rt))
+        if plan is None or plan.rt is not rt:
+            plan = self._limit_plans[id(rt)] = _LimitPlan.of(rt, self)
+        faulty = p.faulty
+        for ci, at, cname, rec in plan.velocity:
+            v = row.item(at)
+            if math.isfinite(v) and ci not in faulty:
                 rt.last_velocity_mm_s[cname] = v
                 # Prometheus wants base units: m/s (PITFALLS.md, promtool).
-                self._gauge(self.metrics.velocity_rms, (rt.cfg.name, cname), v / 1000.0)
-        for ci, at, mon in rt.limits:
-            if ci in p.faulty:
+                rec.set(v / 1000.0)
+        for e in plan.limits:
+            if e.ci in faulty:
                 continue
-            value = float(row[at])
-            if not np.isfinite(value):
-                continue
-            rises = mon.step(value)
-            if isinstance(mon, ZoneLimits):
-                self._zone_gauges(rt, ci, mon)
-            else:
-                self._gauge(self.metrics.limit_level,
-                            (rt.cfg.name, f"{rt.cfg.channels[ci].name}.{mon.cfg.feature}",
-                             "limit"), _LEVEL_VALUE[mon.level])
-            for rise in rises:
-                zone = zone_of(value, mon.boundaries) if isinstance(mon, ZoneLimits) else None
-                self.emit.limit_event(rt, rt.cfg.channels[ci].name, rise, zone, mon, w)
+            value = row.item(e.at)
+            if e.lo <= value <= e.hi:
+                continue  # at rest and stays there: nothing changes
+            if math.isfinite(value):
+                self._step_limit(p, e, value)
+
+    def _step_limit(self, p: Pending, e: _Watch, value: float) -> None:
+        rt, ci, mon = p.rt, e.ci, e.mon
+        rises = mon.step(value)
+        # Only here do the monitor and its gauges change: after a step at rest, the
+        # gauges show the rest levels too.
+        e.lo, e.hi = mon.rest_band
+        if isinstance(mon, ZoneLimits):
+            self._zone_gauges(rt, ci, mon)
+        else:
+            self._gauge(self.metrics.limit_level,
+                        (rt.cfg.name, f"{rt.cfg.channels[ci].name}.{mon.cfg.feature}",
+                         "limit"), _LEVEL_VALUE[mon.level])
+        for rise in rises:
+            zone = zone_of(value, mon.boundaries) if isinstance(mon, ZoneLimits) else None
+            self.emit.limit_event(rt, rt.cfg.channels[ci].name, rise, zone, mon, p.w)
 
     def _zone_gauges(self, rt: AssetRuntime, ci: int, mon: ZoneLimits) -> None:
         name = rt.cfg.name
@@ -230,9 +236,59 @@ class Judge:
 
     def _gauge(self, family: Gauge, labels: tuple[str, ...], value: float) -> None:
         """Set a gauge child to `value` unless it holds it already."""
+        self.shown(family, labels).set(value)
+
+    def shown(self, family: Gauge, labels: tuple[str, ...]) -> Shown:
+        """The one `Shown` of a gauge child."""
         got = self._gauges.get((id(family), labels))
         if got is None:
-            got = self._gauges[(id(family), labels)] = [family.labels(*labels), None]
-        if got[1] != value:
-            got[0].set(value)
-            got[1] = value
+            got = self._gauges[(id(family), labels)] = Shown(family, labels)
+        return got
+
+
+class Shown:
+    """A gauge child and the value last set on it (None: never set); the child is made
+    when first set (a child that exists is exported)."""
+
+    __slots__ = ("child", "family", "labels", "value")
+
+    def __init__(self, family: Gauge, labels: tuple[str, ...]) -> None:
+        self.family, self.labels = family, labels
+        self.child: Any = None
+        self.value: float | None = None
+
+    def set(self, value: float) -> None:
+        if self.value != value:
+            if self.child is None:
+                self.child = self.family.labels(*self.labels)
+            self.child.set(value)
+            self.value = value
+
+
+class _Watch:
+    """One limit or zone monitor of an asset, with the band of values that step it to
+    no change (`rest_band` after its last step; none before the first)."""
+
+    __slots__ = ("at", "ci", "hi", "lo", "mon")
+
+    def __init__(self, ci: int, at: int, mon: FeatureLimits | ZoneLimits) -> None:
+        self.ci, self.at, self.mon = ci, at, mon
+        self.lo, self.hi = math.inf, -math.inf
+
+
+@dataclass(frozen=True, slots=True)
+class _LimitPlan:
+    """Per asset, what `Judge.limits` reads: (channel, row position, channel name,
+    gauge) of each velocity RMS, and each limit and zone monitor."""
+
+    rt: AssetRuntime
+    velocity: tuple[tuple[int, int, str, Shown], ...]
+    limits: tuple[_Watch, ...]
+
+    @classmethod
+    def of(cls, rt: AssetRuntime, judge: Judge) -> _LimitPlan:
+        m, name, chans = judge.metrics, rt.cfg.name, rt.cfg.channels
+        velocity = tuple((ci, at, chans[ci].name,
+                          judge.shown(m.velocity_rms, (name, chans[ci].name)))
+                         for ci, at in rt.layout.velocity_at)
+        return cls(rt, velocity, tuple(_Watch(ci, at, mon) for ci, at, mon in rt.limits))

@@ -52,6 +52,7 @@ from agent.ops.logs import RateLimited, kv
 from agent.ops.metrics import Metrics
 from agent.pipeline.emit import AssetMetrics, Emitter, TickStats
 from agent.pipeline.featurize import feature_rows
+from agent.pipeline.health_batch import Prejudged
 from agent.pipeline.infer import Item, Result, Scorer
 from agent.pipeline.judge import Judge, Pending
 from agent.pipeline.messages import OutMessage
@@ -292,15 +293,16 @@ class Pipeline:
         return self._judge_windows(wins)
 
     def _judge_windows(self, wins: list[tuple[AssetRuntime, ClosedWindow]]) -> list[Pending]:
-        """Sensor health (batch statistics first) and modes of every closed window."""
+        """Sensor health (quiet channels judged together first) and modes of every
+        closed window."""
         judge = self.judge
         pending: list[Pending] = []
-        try:
-            health = judge.health_stats(wins)
-        except Exception:  # each window's own check_window decides which asset fails
-            health = [None] * len(wins)
         failed = self._failed_now
-        for (rt, w), hs in zip(wins, health, strict=True):
+        try:
+            pre: Prejudged | None = judge.prejudge(wins, failed)
+        except Exception:  # each window's own check_window decides which asset fails
+            pre = None
+        for wi, (rt, w) in enumerate(wins):
             if failed and rt.cfg.name in failed:
                 continue
             rt.empty_streak = 0
@@ -314,7 +316,7 @@ class Pipeline:
                                        else "incomplete"))
                 continue
             try:
-                pending.append(judge.window(rt, w, hs))
+                pending.append(judge.window(rt, w, pre, wi))
             except Exception as exc:
                 self._failed(rt, "health", exc)
         if failed:  # an asset failing at its second window drops its first too

@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from agent.config.load import IsoConfig, LimitConfig, Support
 from agent.core.limits import FeatureLimits, LevelMonitor, ZoneLimits
@@ -52,3 +55,36 @@ def test_zone_limits_rise_through_zones_and_alarm() -> None:
     seen = [(r.kind, r.level) for v in (1.0, 1.5, 1.8, 2.9, 2.9) for r in z.step(v)]
     assert seen == [("zone", "B"), ("operational", "alarm"), ("zone", "C")]
     assert z.zone == "C" and z.operational == "alarm"
+
+
+def _state(m: FeatureLimits | ZoneLimits) -> list[tuple[object, ...]]:
+    mons = [m._high[0], m._low[0]] if isinstance(m, FeatureLimits) else [m._zone, m._ops]
+    return [(x.level, tuple(x._beyond), x.at_rest) for x in mons]
+
+
+@settings(max_examples=150, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), zone=st.booleans())
+def test_a_value_in_the_rest_band_steps_to_no_change(seed: int, zone: bool) -> None:
+    """`rest_band`, as left by the last step: a value inside it makes `step` return
+    nothing and change nothing (the tick skips such steps); limits high, low or both,
+    and ISO zones, with on-delay and deadband."""
+    rng = np.random.default_rng(seed)
+    if zone:
+        mon: FeatureLimits | ZoneLimits = ZoneLimits(
+            "vib.velocity_rms_mm_s", IsoConfig(2, Support.RIGID, 1.0, ("vib",), 0.1,
+                                               int(rng.integers(1, 3))))
+    else:
+        highs = rng.choice([(None, None), (10.0, 20.0), (10.0, None)])
+        lows = rng.choice([(None, None), (2.0, 1.0), (None, 1.0)])
+        mon = FeatureLimits(LimitConfig("mean", alert=highs[0], alarm=highs[1],
+                                        alert_low=lows[0], alarm_low=lows[1],
+                                        deadband=0.5, on_delay=int(rng.integers(1, 3))))
+    for _ in range(30):
+        value = float(rng.choice([rng.uniform(-5, 25), rng.uniform(0, 8), 10.0, 1.0]))
+        lo, hi = mon.rest_band
+        if lo <= value <= hi:
+            before = _state(mon)
+            assert mon.step(value) == []
+            assert _state(mon) == before
+        else:
+            mon.step(value)

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from agent.config.load import ModesConfig, ModeSpec
 from agent.core.modes import UNKNOWN_MODE, ModeTracker, mode_for_value
@@ -43,3 +45,51 @@ def test_settling_after_a_change_but_not_at_start() -> None:
     assert tr.step(np.empty(0), 30.0).mode == "reduced"     # no samples: keeps the mode
     d = tr.step(np.zeros(5), 35.0)
     assert (d.mode, d.scored) == ("stopped", False)
+
+
+def _reference_step(tr: dict[str, object], cfg: ModesConfig, values: np.ndarray,
+                    start: float) -> tuple[str, bool, bool, bool]:
+    """`ModeTracker.step` as it was written before its fast path (state in `tr`)."""
+    v = values[np.isfinite(values)] if values.size else values
+    cur = tr["mode"]
+    assert cur is None or isinstance(cur, str)
+    if v.size == 0:
+        mode = cur or UNKNOWN_MODE
+    elif cfg.by_code:
+        mode = mode_for_value(cfg, float(v[-1]), cur)
+    else:
+        mode = mode_for_value(cfg, float(v.mean()), cur)
+    changed = cur is not None and mode != cur
+    spec = cfg.spec(mode)
+    if changed:
+        tr["until"] = start + (spec.settling_s if spec is not None else 0.0)
+    tr["mode"] = mode
+    until = tr["until"]
+    assert isinstance(until, float)
+    return mode, changed, start < until, spec is not None and spec.scored
+
+
+@settings(max_examples=150, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), by_code=st.booleans())
+def test_step_keeps_to_the_rules_window_after_window(seed: int, by_code: bool) -> None:
+    """`step` (with its shortcut for a value inside the current mode's hysteresis band)
+    against the rules written out plainly: the same decisions, window after window, over
+    values hovering on band edges, non-finite samples and empty windows."""
+    rng = np.random.default_rng(seed)
+    cfg = ModesConfig("state", (ModeSpec("off", code=0), ModeSpec("run", code=2)),
+                      by_code=True) if by_code else BANDS
+    tr = ModeTracker(cfg)
+    ref: dict[str, object] = {"mode": None, "until": -np.inf}
+    edges = [0.0, 300.0, 2700.0, 1e308]
+    for k in range(40):
+        n = int(rng.integers(0, 6))
+        base = float(rng.choice(edges)) + float(rng.normal(0, 60))
+        vals = np.round(base + rng.normal(0, 5, n)) if not by_code else \
+            rng.choice([0.0, 2.0, 1.0], n)
+        if n and rng.random() < 0.1:
+            vals[int(rng.integers(n))] = rng.choice([np.nan, np.inf, -np.inf])
+        with np.errstate(over="ignore"):  # the mean of values near 1e308
+            d = tr.step(vals, float(k))
+            want = _reference_step(ref, cfg, vals, float(k))
+        assert (d.mode, d.changed, d.settling, d.scored) == want
+        assert tr.mode == ref["mode"]

@@ -1,0 +1,265 @@
+"""Sensor health and mode values of all the tick's windows, judged together.
+
+Most windows change nothing: every checked channel is calm (`ChannelHealth.calm`) and
+its window gives no reason, and the mode channel's mean stays in the current mode's
+band. `prejudge` finds those with array operations, one pass per matrix the joint cut
+made (`Block.base` / `Block.tbase`), and leaves to the channels' state machines only
+the rest (`judge_rows` says which rows are quiet; a quiet row changes nothing but the
+channel's `_last`, which is written here).
+
+A window is *eligible* when its asset has no other window in the tick, is not failing,
+and every checked channel of it is a full row of such a matrix: for it, a channel
+absent from its `stats` is quiet (judged already). Otherwise every checked channel is
+judged by `Judge.window` in order, from its `stats` where they are here.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import Counter
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from agent.core.health import ChannelHealth, HealthTable, WindowStats
+from agent.core.health_rows import RowLimits, judge_rows
+from agent.core.windows.closed import ClosedWindow
+from agent.pipeline.runtime import AssetRuntime
+
+_CACHE_MAX = 64  # matrix layouts kept (`_Layouts`)
+
+
+@dataclass(frozen=True, slots=True)
+class _Rows:
+    """The checked channels of one of an asset's blocks."""
+
+    chans: tuple[int, ...]  # the block's channels, as the cut lays them out
+    offs: tuple[int, ...]  # rows of the checked ones in the block
+    checked: tuple[int, ...]  # their channels
+    health: tuple[ChannelHealth, ...]
+    slots: tuple[int, ...]  # theirs in the batch's `HealthTable`
+
+
+@dataclass(frozen=True, slots=True)
+class AssetPlan:
+    """What `prejudge` reads of one asset's windows, fixed by its layout."""
+
+    rt: AssetRuntime
+    # (block index, rows, the block's channels, row of the mode channel if it is
+    # mean-decided and there, else -1) of the blocks with checked channels or the mode
+    # channel
+    blocks: tuple[tuple[int, _Rows, tuple[int, ...], int], ...]
+    n_blocks: int  # how many blocks a window has at least
+
+    @classmethod
+    def of(cls, rt: AssetRuntime, table: HealthTable) -> AssetPlan:
+        """The plan of `rt`, its checked channels moved into `table`."""
+        lay = rt.layout
+        by_block: dict[int, dict[int, int]] = {}
+        for c, (b, r) in enumerate(lay.chan_at):
+            by_block.setdefault(b, {})[r] = c
+        mode_at = (-1, -1)
+        if rt.modes is not None and lay.mode_channel is not None and not rt.modes.cfg.by_code:
+            mode_at = lay.chan_at[lay.mode_channel]
+        blocks = []
+        for b, rows in sorted(by_block.items()):
+            chans = tuple(rows[r] for r in sorted(rows))
+            offs = tuple(r for r, c in enumerate(chans) if lay.is_checked[c])
+            mode_r = mode_at[1] if mode_at[0] == b else -1
+            if offs or mode_r >= 0:
+                health = tuple(rt.health[chans[r]] for r in offs)
+                slots = tuple(h.table[1] if h.table[0] is table else h.move_to(table)
+                              for h in health)
+                blocks.append((b, _Rows(chans, offs, tuple(chans[r] for r in offs), health,
+                                        slots), chans, mode_r))
+        return cls(rt, tuple(blocks), max((b for b, *_ in blocks), default=-1) + 1)
+
+
+@dataclass(frozen=True, slots=True)
+class _Layout:
+    """One matrix's rows as a sequence of asset blocks lays them out (cached)."""
+
+    parts: tuple[_Rows, ...]  # kept, so that their ids (the cache key) stay theirs
+    offs: np.ndarray  # row within its block, per row
+    counts: np.ndarray  # rows per block
+    seg: list[int]  # the block (position in the sequence) of each row
+    chans: list[int]
+    slots: np.ndarray  # in the `HealthTable`
+    limits: RowLimits
+    rate_at: list[int]  # position among the rate rows, -1 when none
+    rate_slots: np.ndarray
+    # Where the blocks started when they were every row of their matrix in order.
+    whole_at: list[int] = field(default_factory=list)
+
+    @classmethod
+    def of(cls, parts: Sequence[_Rows]) -> _Layout:
+        offs = [o for p in parts for o in p.offs]
+        lim = RowLimits.of([h.limits for p in parts for h in p.health])
+        slots = np.array([s for p in parts for s in p.slots], dtype=np.int64)
+        rate_at = [-1] * len(slots)
+        for k, i in enumerate(lim.rate_rows.tolist()):
+            rate_at[i] = k
+        return cls(tuple(parts), np.array(offs, dtype=np.int64),
+                   np.array([len(p.offs) for p in parts], dtype=np.int64),
+                   [k for k, p in enumerate(parts) for _ in p.offs],
+                   [c for p in parts for c in p.checked], slots, lim, rate_at,
+                   slots[lim.rate_rows])
+
+
+@dataclass(slots=True)
+class _Matrix:
+    """What the tick's windows hold of one cut matrix."""
+
+    base: np.ndarray
+    tbase: np.ndarray | None
+    # Per block with checked channels: its rows, where it starts, its window.
+    parts: list[_Rows] = field(default_factory=list)
+    row0: list[int] = field(default_factory=list)
+    wi: list[int] = field(default_factory=list)
+    modes: list[tuple[int, int]] = field(default_factory=list)  # (mode channel row, window)
+
+
+@dataclass(slots=True)
+class Prejudged:
+    """Per window of the tick: whether it is eligible (module docstring), the stats of
+    the channels left to judge (None: `check_window`), the mode channel's mean (None:
+    not computed here)."""
+
+    eligible: list[bool]
+    stats: list[dict[int, WindowStats | None] | None]
+    mode_value: list[float | None]
+
+
+class HealthBatch:
+    """`prejudge` with the asset plans and matrix layouts it keeps between ticks."""
+
+    def __init__(self) -> None:
+        # `calm` and `_last` of every checked channel the batch has seen, by slot.
+        self.table = HealthTable(64)
+        self._moved = 0  # `table.moved_out` when the plans were made
+        self._plans: dict[int, AssetPlan] = {}
+        self._layouts: dict[tuple[int, ...], _Layout] = {}
+
+    def plan(self, rt: AssetRuntime) -> AssetPlan:
+        got = self._plans.get(id(rt))
+        if got is None or got.rt is not rt:
+            got = self._plans[id(rt)] = AssetPlan.of(rt, self.table)
+        return got
+
+    def prejudge(self, wins: Sequence[tuple[AssetRuntime, ClosedWindow]],
+                 failed: set[str]) -> Prejudged:
+        """Judge the quiet channels of `wins` (module docstring); skip the windows of
+        assets in `failed`. Nothing changes unless this returns."""
+        n = len(wins)
+        out = Prejudged([False] * n, [None] * n, [None] * n)
+        if self.table.moved_out != self._moved:  # a channel went to another batch's table
+            self._plans.clear()
+            self._layouts.clear()
+            self._moved = self.table.moved_out
+        mats = self._gather(wins, failed, out.eligible)
+        writes: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
+        value = out.mode_value
+        for m in mats.values():
+            if m.parts:
+                self._judge_matrix(m, out, writes)
+            if m.modes:
+                rows, wis = zip(*m.modes, strict=True)
+                means = m.base[np.array(rows, dtype=np.int64)].mean(axis=1).tolist()
+                for wi, mean in zip(wis, means, strict=True):
+                    if math.isfinite(mean):  # else a sample is not (or the sum overflowed)
+                        value[wi] = mean
+        table = self.table
+        for slots, lv, lt in writes:  # the quiet rows' `_last`
+            table.last_v[slots] = lv
+            table.last_t[slots] = lt
+        return out
+
+    def _gather(self, wins: Sequence[tuple[AssetRuntime, ClosedWindow]], failed: set[str],
+                eligible: list[bool]) -> dict[int, _Matrix]:
+        """The rows of every cut matrix the windows' checked channels and mode channels
+        are in; whether each window is eligible, into `eligible`."""
+        mats: dict[int, _Matrix] = {}
+        ids = [id(rt) for rt, _ in wins]
+        many = None if len(set(ids)) == len(ids) else Counter(ids)  # assets with 2+ windows
+        plans = self._plans
+        for wi, (key, (rt, w)) in enumerate(zip(ids, wins, strict=True)):
+            plan = plans.get(key)
+            if plan is None or plan.rt is not rt:
+                plan = self.plan(rt)
+            if not plan.blocks or (failed and rt.cfg.name in failed):
+                continue
+            blocks = w.blocks
+            ok = many is None or many[key] == 1
+            if len(blocks) < plan.n_blocks:
+                eligible[wi] = False
+                continue
+            for b, rows, chans, mode_r in plan.blocks:
+                blk = blocks[b]
+                base = blk.base
+                if base is None or not blk.uniform or (
+                        blk.chans is not chans and blk.chans != chans):
+                    ok = False
+                    continue
+                m = mats.get(id(base))
+                if m is None:
+                    m = mats[id(base)] = _Matrix(base, blk.tbase)
+                if rows.offs:
+                    m.parts.append(rows)
+                    m.row0.append(blk.row0)
+                    m.wi.append(wi)
+                if mode_r >= 0:
+                    m.modes.append((blk.row0 + mode_r, wi))
+            eligible[wi] = ok
+        for key, m in list(mats.items()):
+            if m.base.shape[1] == 0 or (m.tbase is None and m.parts):  # nothing to judge
+                for wi in m.wi:
+                    eligible[wi] = False
+                del mats[key]
+        return mats
+
+    def _layout(self, parts: Sequence[_Rows]) -> _Layout:
+        key = tuple(map(id, parts))  # the _Rows live as long as their plans
+        got = self._layouts.get(key)
+        if got is None:
+            if len(self._layouts) >= _CACHE_MAX:
+                self._layouts.clear()
+            got = self._layouts[key] = _Layout.of(parts)
+        return got
+
+    def _judge_matrix(self, m: _Matrix, out: Prejudged,
+                      writes: list[tuple[np.ndarray, np.ndarray, np.ndarray]]) -> None:
+        wis = m.wi
+        lay = self._layout(m.parts)
+        assert m.tbase is not None  # `_gather` dropped matrices without times
+        if m.row0 == lay.whole_at and m.base.shape[0] == lay.offs.size:
+            vals, times = m.base, m.tbase  # every row, in order, as last time: no gather
+        else:
+            rows = np.repeat(np.array(m.row0, dtype=np.int64), lay.counts) + lay.offs
+            total = m.base.shape[0]
+            if rows.size == total and bool((rows == np.arange(total)).all()):
+                vals, times = m.base, m.tbase  # every row, in order: no gather
+                lay.whole_at[:] = m.row0
+            else:
+                vals, times = m.base[rows], m.tbase[rows]
+        table = self.table
+        calm = table.calm[lay.slots]
+        eligible = [out.eligible[wi] for wi in wis]
+        if False in eligible:
+            calm &= np.array(eligible, dtype=bool)[lay.seg]
+        rs = lay.rate_slots
+        verdict = judge_rows(lay.limits, vals, times, calm, table.last_v[rs], table.last_t[rs])
+        quiet = verdict.quiet
+        sel = lay.limits.rate_rows
+        if sel.size:
+            q = quiet[sel]
+            writes.append((rs[q], vals[sel, -1][q], times[sel, -1][q]))
+        if quiet.all():
+            return
+        stats = out.stats
+        for i in np.flatnonzero(~quiet).tolist():
+            wi = wis[lay.seg[i]]
+            d = stats[wi]
+            if d is None:
+                d = stats[wi] = {}
+            d[lay.chans[i]] = verdict.stats(i, lay.rate_at[i])
