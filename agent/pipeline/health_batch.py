@@ -39,6 +39,7 @@ class _Rows:
     checked: tuple[int, ...]  # their channels
     health: tuple[ChannelHealth, ...]
     slots: tuple[int, ...]  # theirs in the batch's `HealthTable`
+    timed: bool  # one of them has a rate-of-change check: it reads the samples' times
 
 
 @dataclass(frozen=True, slots=True)
@@ -71,8 +72,9 @@ class AssetPlan:
                 health = tuple(rt.health[chans[r]] for r in offs)
                 slots = tuple(h.table[1] if h.table[0] is table else h.move_to(table)
                               for h in health)
+                timed = any(h.limits.max_rate_per_s is not None for h in health)
                 blocks.append((b, _Rows(chans, offs, tuple(chans[r] for r in offs), health,
-                                        slots), chans, mode_r))
+                                        slots, timed), chans, mode_r))
         return cls(rt, tuple(blocks), max((b for b, *_ in blocks), default=-1) + 1)
 
 
@@ -212,7 +214,8 @@ class HealthBatch:
                     m.modes.append((blk.row0 + mode_r, wi))
             eligible[wi] = ok
         for key, m in list(mats.items()):
-            if m.base.shape[1] == 0 or (m.tbase is None and m.parts):  # nothing to judge
+            # Nothing to judge, or no times where a rate-of-change check reads them.
+            if m.base.shape[1] == 0 or (m.tbase is None and any(p.timed for p in m.parts)):
                 for wi in m.wi:
                     eligible[wi] = False
                 del mats[key]
@@ -231,17 +234,18 @@ class HealthBatch:
                       writes: list[tuple[np.ndarray, np.ndarray, np.ndarray]]) -> None:
         wis = m.wi
         lay = self._layout(m.parts)
-        assert m.tbase is not None  # `_gather` dropped matrices without times
+        # Without times (`_gather` let only matrices whose rows read none through), NaN.
+        tbase = m.tbase if m.tbase is not None else np.broadcast_to(np.nan, m.base.shape)
         if m.row0 == lay.whole_at and m.base.shape[0] == lay.offs.size:
-            vals, times = m.base, m.tbase  # every row, in order, as last time: no gather
+            vals, times = m.base, tbase  # every row, in order, as last time: no gather
         else:
             rows = np.repeat(np.array(m.row0, dtype=np.int64), lay.counts) + lay.offs
             total = m.base.shape[0]
             if rows.size == total and bool((rows == np.arange(total)).all()):
-                vals, times = m.base, m.tbase  # every row, in order: no gather
+                vals, times = m.base, tbase  # every row, in order: no gather
                 lay.whole_at[:] = m.row0
             else:
-                vals, times = m.base[rows], m.tbase[rows]
+                vals, times = m.base[rows], tbase[rows]
         table = self.table
         calm = table.calm[lay.slots]
         eligible = [out.eligible[wi] for wi in wis]

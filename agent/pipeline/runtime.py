@@ -249,7 +249,7 @@ class AssetRuntime:
         """A fresh runtime. The per-mode bundles are loaded from the config unless given."""
         assembler = WindowAssembler(cfg.window, tuple(c.rate_hz for c in cfg.channels))
         layout = AssetLayout.of(cfg, assembler.channel_rows())
-        assembler.keep_times = bool(layout.checked)  # only sensor health reads them
+        assembler.keep_times_of(layout.wants_rate)  # only a rate-of-change check reads them
         by_mode, errors = mode_bundles if mode_bundles is not None else load_mode_bundles(cfg)
         det = cfg.window_detector
         rt = cls(layout=layout,

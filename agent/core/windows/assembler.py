@@ -56,7 +56,7 @@ class _Group:
     and the store doubles when that is not enough room.
     """
 
-    __slots__ = ("bound", "chans", "expected", "hi", "lo", "rows", "ts", "vals")
+    __slots__ = ("bound", "chans", "expected", "hi", "keep_times", "lo", "rows", "ts", "vals")
 
     def __init__(self, chans: tuple[int, ...], expected: float) -> None:
         k = len(chans)
@@ -69,6 +69,9 @@ class _Group:
         self.vals = np.empty((k, cap))
         self.lo = [0] * k
         self.hi = [0] * k
+        # Whether windows cut together with others (`close_many`) carry these samples'
+        # timestamps (`WindowAssembler.keep_times_of`).
+        self.keep_times = True
         self.rows = np.arange(k, dtype=np.int64)[:, None]
 
     def room(self, r: int, n: int) -> int:
@@ -183,10 +186,6 @@ class WindowAssembler:
     def __init__(self, window: WindowConfig, rates_hz: tuple[float, ...]) -> None:
         self.cfg = window
         self.rates_hz = rates_hz
-        # Whether windows cut together with others (`close_many`) carry their samples'
-        # timestamps; the pipeline turns it off for assets that never read them (no
-        # sensor-health check), whose windows then show NaN times.
-        self.keep_times = True
         self._next_k: int | None = None  # index of the earliest open window (`_set_next`)
         # What `due` compares with: the newest sample time that makes the earliest open
         # window due, and the `_reach` that does (its end plus lateness / timeout). Before
@@ -214,6 +213,14 @@ class WindowAssembler:
         # When a window spans a whole number of hops its end is computed as the start of
         # a later window, so a sample on a boundary falls in exactly one tumbling window.
         self._span_k = round(span) if abs(span - round(span)) < 1e-9 else None
+
+    def keep_times_of(self, wanted: Sequence[bool]) -> None:
+        """Keep the samples' timestamps in windows cut together with others
+        (`close_many`) only for the rate groups holding a channel whose `wanted` is
+        true; the others' windows show NaN times (the pipeline: only a rate-of-change
+        check reads them)."""
+        for g in self._groups:
+            g.keep_times = any(wanted[c] for c in g.chans)
 
     def channel_rows(self) -> tuple[tuple[int, int], ...]:
         """Per channel: (its block's index in a closed window's `blocks`, its row there)."""

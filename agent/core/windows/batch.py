@@ -128,18 +128,20 @@ def _cut_blocks(fast: list[_Item], results: list[AssembleResult | None]
         blocks.append([None] * len(spans))
         # The newest sample of any channel before the end: every pending one is in.
         full = a._max_ts < end
-        keep = a.keep_times or not full
         alone = len(spans) == 1
         for gi, (g, lo0, m) in enumerate(spans):
             if m:
                 got = by_width.get(m)
                 if got is None:
                     got = by_width[m] = []
-                got.append((fi, gi, g, lo0, end, full, keep, alone))
+                got.append((fi, gi, g, lo0, end, full, g.keep_times or not full, alone))
     for m, members in by_width.items():
         v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
         kept = [mb for mb in members if mb[6]]
         t = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in kept]) if kept else None
+        # The blocks' times as rows of one matrix, row for row with `v`: only when every
+        # member kept its times.
+        tb = t if len(kept) == len(members) else None
         off = t_off = 0
         no_times = None
         for fi, gi, g, lo0, end, full, keep, alone in members:
@@ -151,8 +153,7 @@ def _cut_blocks(fast: list[_Item], results: list[AssembleResult | None]
                 ts = no_times if no_times is not None and n == no_times.shape[0] \
                     else (no_times := _no_times(n, m))
             if full:
-                blk = Block(g.chans, ts, v[off:off + n], [m] * n, True, v, off,
-                            t if keep else None)
+                blk = Block(g.chans, ts, v[off:off + n], [m] * n, True, v, off, tb)
                 if alone:
                     _finish_one(fast[fi], blk, lo0, m, results)
                 else:
