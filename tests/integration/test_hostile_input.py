@@ -154,7 +154,13 @@ def test_an_asset_whose_windows_raise_fails_alone_and_recovers(plant: Any) -> No
 
 
 class _Broken(Detector):
+    """A detector raising at every window, by either of its ways in (`step`, and `quiet`
+    for a window that cannot raise)."""
+
     def step(self, *a: Any, **k: Any) -> Any:
+        raise RuntimeError("detector broken for the test")
+
+    def quiet(self) -> None:
         raise RuntimeError("detector broken for the test")
 
 
