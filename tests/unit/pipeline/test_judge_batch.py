@@ -5,6 +5,7 @@ judge's table; the tick's output goes on exactly as if nothing had been swapped.
 from __future__ import annotations
 
 import logging
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -16,28 +17,40 @@ from agent.pipeline.tick import Pipeline
 from tests.unit.pipeline.tick_fleet import T0, build
 
 
+def _feed(buffers: Any, docs: dict[str, Any], rng: np.random.Generator, tick: int, *,
+          speed: Callable[[int], float], spike: tuple[int, int, int],
+          flat: tuple[int, int], burst: tuple[int, int, float]) -> None:
+    """One window of every channel of the fleet at `tick`: noise around each channel's
+    level (`speed(tick)` on the third), an out-of-range spike on the second every
+    spike[0] ticks (phase spike[1], at sample r // spike[2]), the last channel flat in
+    [flat[0], flat[1]), and a burst on the first every burst[0] ticks (phase burst[1],
+    times burst[2]): faults, recoveries, limits and zones."""
+    t = T0 + tick
+    for ai, name in enumerate(docs):
+        chans = list(docs[name]["channels"].values())
+        for ci, c in enumerate(chans):
+            r = c["rate_hz"]
+            ts = t + np.arange(r) / r
+            vals = rng.normal(0, 1, r) + (speed(tick) if ci == 2 else 20.0 if ci else 0.0)
+            if tick % spike[0] == spike[1] and ci == 1:
+                vals[r // spike[2]] = 1e4
+            if flat[0] <= tick < flat[1] and ci == len(chans) - 1:
+                vals[:] = 3.0
+            if tick % burst[0] == burst[1] and ci == 0:
+                vals *= burst[2]
+            buffers.by_asset[ai][ci].append_block(ts, vals, t + 1.0)
+
+
 def _run(tmp: Path, swap_at: int | None, ticks: int = 24) -> tuple[list[Any], Any]:
     pipe, buffers, sink, docs = build(tmp)
     rng = np.random.default_rng(7)
-    names = list(docs)
     for tick in range(ticks):
-        t = T0 + tick
-        for ai, name in enumerate(names):
-            for ci, c in enumerate(docs[name]["channels"].values()):
-                r = c["rate_hz"]
-                ts = t + np.arange(r) / r
-                vals = rng.normal(0, 1, r) + (1200.0 if ci == 2 else 20.0 if ci else 0.0)
-                if tick % 7 == 3 and ci == 1:
-                    vals[r // 2] = 1e4  # out of range: a fault, then a recovery
-                if 10 <= tick < 15 and ci == len(docs[name]["channels"]) - 1:
-                    vals[:] = 3.0  # flat
-                if tick % 5 == 0 and ci == 0:
-                    vals *= 8.0  # a burst: limits and zones
-                buffers.by_asset[ai][ci].append_block(ts, vals, t + 1.0)
+        _feed(buffers, docs, rng, tick, speed=lambda _: 1200.0, spike=(7, 3, 2),
+              flat=(10, 15), burst=(5, 0, 8.0))
         if tick == swap_at:
             pipe = Pipeline(pipe.cfg, buffers, sink, pipe.metrics,
                             logging.getLogger("swap"), pipe.runtimes)
-        pipe.tick(t + 1.0)
+        pipe.tick(T0 + tick + 1.0)
     return sink.ticks, pipe.status()
 
 
@@ -58,25 +71,11 @@ def _run_batched(tmp: Path, per_tick: int, ticks: int = 30) -> tuple[list[Any], 
     tick closes several windows of each asset (a tick loop that lagged)."""
     pipe, buffers, sink, docs = build(tmp)
     rng = np.random.default_rng(11)
-    names = list(docs)
     for tick in range(ticks):
-        t = T0 + tick
-        for ai, name in enumerate(names):
-            chans = list(docs[name]["channels"].values())
-            for ci, c in enumerate(chans):
-                r = c["rate_hz"]
-                ts = t + np.arange(r) / r
-                vals = rng.normal(0, 1, r) + (100.0 * (tick % 20) if ci == 2 else
-                                              20.0 if ci else 0.0)
-                if tick % 6 == 2 and ci == 1:
-                    vals[r // 3] = 1e4
-                if 8 <= tick < 13 and ci == len(chans) - 1:
-                    vals[:] = 3.0
-                if tick % 4 == 1 and ci == 0:
-                    vals *= 9.0
-                buffers.by_asset[ai][ci].append_block(ts, vals, t + 1.0)
+        _feed(buffers, docs, rng, tick, speed=lambda k: 100.0 * (k % 20), spike=(6, 2, 3),
+              flat=(8, 13), burst=(4, 1, 9.0))
         if tick % per_tick == per_tick - 1:
-            pipe.tick(t + 1.0)
+            pipe.tick(T0 + tick + 1.0)
     return sink.ticks, pipe.status()
 
 
