@@ -29,9 +29,8 @@ UNKNOWN_MODE = "unknown"
 
 
 def _in_band(m: ModeSpec, v: float, widen: float = 0.0) -> bool:
-    lo = m.min_value if m.min_value is not None else -math.inf
-    hi = m.max_value if m.max_value is not None else math.inf
-    return lo - widen <= v < hi + widen
+    lo, hi = _widened(m, widen)
+    return lo <= v < hi
 
 
 def mode_for_value(cfg: ModesConfig, value: float, current: str | None) -> str:
@@ -108,7 +107,7 @@ class ModeTracker:
 
 
 def _widened(m: ModeSpec, widen: float) -> tuple[float, float]:
-    """`_in_band(m, v, widen)` as `lo <= v < hi`."""
+    """The mode's band [lo, hi) widened by `widen` on both sides (`_in_band`)."""
     lo = m.min_value if m.min_value is not None else -math.inf
     hi = m.max_value if m.max_value is not None else math.inf
     return lo - widen, hi + widen
