@@ -67,6 +67,9 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     """
     results: list[AssembleResult | None] = [None] * len(assemblers)
     fast: list[_Item] = []
+    # The simplest items by segment length: one rate group, every pending sample in
+    # the window, no timestamps kept (`_close_simple`).
+    simple: dict[int, list[_Simple]] = {}
     for i, a in enumerate(assemblers):
         try:
             plan = _plan(a, now)
@@ -75,22 +78,78 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
             elif plan is False:
                 results[i] = AssembleResult()
             else:
-                assert a._next_k is not None
+                k = a._next_k
+                assert k is not None
                 hop = a.cfg.hop_s
-                fast.append((i, a, a._next_k * hop, (a._next_k + 1) * hop, plan))
+                end = (k + 1) * hop
+                if len(plan) == 1:
+                    g, lo0, m = plan[0]
+                    if m and not g.keep_times and a._max_ts < end:
+                        got = simple.get(m)
+                        if got is None:
+                            got = simple[m] = []
+                        got.append((i, a, g, lo0, k * hop, end))
+                        continue
+                fast.append((i, a, k * hop, end, plan))
         except Exception as exc:
             results[i] = AssembleResult(exc)
     try:
+        if simple:
+            _close_simple(simple, results)
         _close_fast(fast, results, now)
     except Exception:
         # The joint cut failed before it changed any assembler: each alone, contained.
-        for i, a, *_ in fast:
+        left = [(it[0], it[1]) for it in fast]
+        left += [(it[0], it[1]) for items in simple.values() for it in items]
+        for i, a in left:
             if results[i] is None:
                 try:
                     results[i] = a.close_due(now)
                 except Exception as exc:
                     results[i] = AssembleResult(exc)
     return [r if r is not None else AssembleResult() for r in results]
+
+
+# An item of `_close_simple`: (position in `close_many`'s list, the assembler, its one
+# rate group, the group's first pending index, the window's start and end).
+_Simple = tuple[int, WindowAssembler, _Group, int, float, float]
+
+
+def _close_simple(simple: dict[int, list[_Simple]],
+                  results: list[AssembleResult | None]) -> None:
+    """The joint cut of the simplest items (`close_many`): one rate group whose rows
+    are in step, every pending sample (m per row) before the window's end, no
+    timestamps kept. Per segment length one copy; each item is finished as its block
+    is made (what `_cut_blocks` + `_finish_one` do for such an item, with less on the
+    way)."""
+    for m, members in simple.items():
+        v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
+        off = 0
+        for i, a, g, lo0, start, end in members:
+            chans = g.chans
+            n = len(chans)
+            blk = Block(chans, _no_times(n, m), v[off:off + n], _full(n, m), True, v, off)
+            off += n
+            exp = g.expected
+            cov = m / exp if exp else 1.0
+            w = ClosedWindow.of_blocks(start, end, not (exp and cov < a.cfg.min_coverage),
+                                       (blk,), a._expected, cov)
+            a._set_next(a._next_k + 1)  # type: ignore[operator]
+            g.lo = [lo0 + m] * n  # rows in step stay in step
+            results[i] = AssembleResult(None, [w])
+
+
+_FULL: dict[tuple[int, int], tuple[int, ...]] = {}
+
+
+def _full(n: int, m: int) -> tuple[int, ...]:
+    """The counts of a block of n rows each holding m samples (shared: read-only)."""
+    got = _FULL.get((n, m))
+    if got is None:
+        if len(_FULL) > 64:
+            _FULL.clear()
+        got = _FULL[(n, m)] = (m,) * n
+    return got
 
 
 _NO_TIMES: dict[tuple[int, int], np.ndarray] = {}

@@ -20,7 +20,7 @@ class Block:
     __slots__ = ("base", "chans", "counts", "row0", "tbase", "timestamps", "uniform", "values")
 
     def __init__(self, chans: tuple[int, ...], timestamps: np.ndarray, values: np.ndarray,
-                 counts: list[int], uniform: bool | None = None,
+                 counts: Sequence[int], uniform: bool | None = None,
                  base: np.ndarray | None = None, row0: int = 0,
                  tbase: np.ndarray | None = None) -> None:
         self.chans = chans

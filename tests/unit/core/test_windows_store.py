@@ -99,7 +99,11 @@ def fleets(draw):
             chans = np.asarray(draw(st.lists(st.integers(0, 2), min_size=n, max_size=n)))
         assets.append((ts, chans))
     ticks = sorted(draw(st.lists(st.floats(0.0, 60.0), min_size=1, max_size=30)))
-    return hop, span, assets, ticks
+    # Rates of two stores, or of one (every channel in one rate group); timestamps kept
+    # in jointly cut windows, or not (the pipeline keeps them only for rate checks).
+    rates = draw(st.sampled_from([RATES, (10.0, 10.0, 10.0)]))
+    keep = draw(st.booleans())
+    return hop, span, assets, ticks, rates, keep
 
 
 @settings(max_examples=150, deadline=None)
@@ -107,13 +111,16 @@ def fleets(draw):
 def test_close_many_cuts_what_close_due_cuts(fleet) -> None:
     from agent.core.windows.batch import close_many
 
-    hop, span, assets, ticks = fleet
+    hop, span, assets, ticks, rates, keep = fleet
     cfg = WindowConfig(hop * span, hop, 0.0, 1.0, 0.5)
 
     def make() -> list[WindowAssembler]:
-        return [WindowAssembler(cfg, RATES) for _ in assets]
+        return [WindowAssembler(cfg, rates) for _ in assets]
 
     one, many = make(), make()
+    if not keep:
+        for a in many:
+            a.keep_times_of([False] * len(rates))
     fed = [0] * len(assets)
     for tick in ticks:
         now = T0 + tick
@@ -122,7 +129,7 @@ def test_close_many_cuts_what_close_due_cuts(fleet) -> None:
             lo, fed[ai] = fed[ai], hi
             if hi <= lo:
                 continue
-            for c in range(len(RATES)):
+            for c in range(len(rates)):
                 sel = np.arange(lo, hi) if chans is None else \
                     np.flatnonzero(chans[lo:hi] == c) + lo
                 if sel.size:
@@ -136,9 +143,14 @@ def test_close_many_cuts_what_close_due_cuts(fleet) -> None:
             for w, g in zip(w_res.windows, g_res.windows, strict=True):
                 assert (g.start, g.end, g.complete, g.coverage) == \
                     (w.start, w.end, w.complete, w.coverage)
-                for c in range(len(RATES)):
+                for c in range(len(rates)):
                     np.testing.assert_array_equal(g.values[c], w.values[c])
-                    np.testing.assert_array_equal(g.timestamps[c], w.timestamps[c])
+                    # Not kept: NaN where the window was cut jointly, else the times.
+                    gt = g.timestamps[c]
+                    if keep or not np.isnan(gt).all():
+                        np.testing.assert_array_equal(gt, w.timestamps[c])
+                    else:
+                        assert gt.shape == w.timestamps[c].shape
         for a, b in zip(one, many, strict=True):
             assert (a.next_start, a.pending_samples()) == (b.next_start, b.pending_samples())
 
@@ -174,3 +186,37 @@ def test_close_many_with_a_silent_rate_group_and_an_empty_window() -> None:
         got = close_many(many, now)
         _same(want, got)
     assert one[0].next_start == many[0].next_start
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 3), st.booleans()), min_size=1, max_size=6),
+       st.sampled_from([0.5, 1.5, 2.0, 3.5]))
+def test_close_many_windows_closed_by_the_timeout(assets, late) -> None:
+    """The bench's and a quiet sensor's case: a window's samples all in, closed by the
+    timeout (nothing after its end), one rate group, times not kept (`_close_simple`);
+    beside assets out of step or keeping times. As close_due cuts them."""
+    from agent.core.windows.batch import close_many
+
+    cfg = WindowConfig(1.0, 1.0, 0.0, 1.0, 0.5)
+    rates = (10.0, 10.0)
+    one = [WindowAssembler(cfg, rates) for _ in assets]
+    many = [WindowAssembler(cfg, rates) for _ in assets]
+    for a, (_, keep) in zip(many, assets, strict=True):
+        a.keep_times_of([keep, False])
+    for k in range(4):
+        ts = T0 + k + np.arange(10) / 10.0
+        for ai, (skew, _) in enumerate(assets):
+            for c in (0, 1):
+                part = ts[: 10 - skew] if c else ts  # skew > 0: rows out of step
+                for a in (one[ai], many[ai]):
+                    a.add(c, part, part - T0, float(ts[-1]), presorted=True)
+        now = T0 + k + late + 0.9
+        want = [a.close_due(now) for a in one]
+        got = close_many(many, now)
+        _same(want, got)
+        for w_res, g_res in zip(want, got, strict=True):
+            for w, g in zip(w_res.windows, g_res.windows, strict=True):
+                for c in (0, 1):
+                    np.testing.assert_array_equal(g.values[c], w.values[c])
+    assert [a.next_start for a in one] == [a.next_start for a in many]
+    assert [a.pending_samples() for a in one] == [a.pending_samples() for a in many]
