@@ -60,13 +60,14 @@ def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
     (`AssembleResult.error`). `notes`, when given, gets per inbox (ahead messages,
     clock steps) taken since the last call."""
     held = []
+    late = []
+    assemblers = []
     try:
         for ib in inboxes:
-            ib.lock.acquire()
-            held.append(ib.lock)
-        results = close_many([ib.assembler for ib in inboxes], now)
-        late = []
-        for ib in inboxes:
+            lock = ib.lock
+            lock.acquire()
+            held.append(lock)
+            assemblers.append(ib.assembler)
             n = ib.late
             late.append(n)
             if n:
@@ -76,6 +77,7 @@ def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
                 if ib.ahead or ib.steps:
                     ib.ahead = 0
                     ib.steps = []
+        results = close_many(assemblers, now)
     finally:
         for lock in held:
             lock.release()

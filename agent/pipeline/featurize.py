@@ -162,6 +162,14 @@ def _place_all(todo: Sequence[Pending]) -> _Placed:
 def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None) -> list[np.ndarray]:
     """The full feature row of each window (module docstring), the passes in `work`'s
     reusable arrays. Rows are views of one array per class of windows."""
+    one = _one_matrix(todo)
+    if one is not None:
+        x, t, needed = one
+        f = block_features(x, needed, work=work).reshape(-1)
+        nch = len(t.chan_at)
+        row = np.asarray([r for _, r in t.chan_at], dtype=np.int64)
+        row0 = np.arange(0, nch * len(todo), nch, dtype=np.int64)
+        return list(f[((row0[:, None] + row) * NF)[:, t.slot] + t.const])
     needed = frozenset().union(*{p.rt.layout.td_needed for p in todo})
     pl = _place_all(todo)
     flats: list[np.ndarray] = []
@@ -186,6 +194,45 @@ def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None) -> lis
     flats.append(spec_flat)
     flat = np.concatenate(flats) if len(flats) > 1 else flats[0]
     return _gather(flat, starts, spec_starts, first, tmpls, pl)
+
+
+def _one_matrix(todo: Sequence[Pending]
+                ) -> tuple[np.ndarray, _Template, frozenset[str]] | None:
+    """The usual tick's windows in one step: when each is one full block, the blocks
+    are the rows of one matrix cut for all of them in order (the joint cut's), and
+    their assets share one `_Template` without spectra, (that matrix, the template,
+    the time-domain features any of them needs); else None."""
+    base = None
+    at = 0
+    tmpl = None
+    last = None
+    needs: set[frozenset[str]] = set()
+    for p in todo:
+        blocks = p.w.blocks
+        if len(blocks) != 1:
+            return None
+        blk = blocks[0]
+        if blk.row0 != at or not blk.uniform:
+            return None
+        if at == 0:
+            base = blk.base
+            if base is None:
+                return None
+        elif blk.base is not base:
+            return None
+        at += len(blk.chans)
+        lay = p.rt.layout
+        if lay is not last:
+            t = template(lay)
+            if t is not tmpl:
+                if tmpl is not None or t.n_spec:
+                    return None
+                tmpl = t
+            needs.add(lay.td_needed)
+            last = lay
+    if base is None or tmpl is None or at != base.shape[0]:
+        return None
+    return base, tmpl, frozenset().union(*needs)
 
 
 def _gather(flat: np.ndarray, starts: dict[int, int], spec_starts: np.ndarray,

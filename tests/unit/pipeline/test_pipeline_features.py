@@ -31,13 +31,32 @@ class _Sink:
 
 
 def test_feature_rows_match_segment_features_on_every_path(tmp_path: Path) -> None:
-    rates = {"A": (20.0, 20.0, 20.0), "B": (20.0, 20.0, 20.0), "C": (20.0, 5.0),
-             "D": (20.0, 20.0, 20.0)}
+    _check(tmp_path, {"A": (20.0, 20.0, 20.0), "B": (20.0, 20.0, 20.0), "C": (20.0, 5.0),
+                      "D": (20.0, 20.0, 20.0)})
+
+
+def test_feature_rows_of_one_matrix(tmp_path: Path, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """The usual tick (featurize._one_matrix): every window one full block, rows of one
+    matrix, assets laid out alike though wanting different features."""
+    from agent.pipeline import featurize
+
+    taken: list[bool] = []
+    real = featurize._one_matrix
+    monkeypatch.setattr(featurize, "_one_matrix",
+                        lambda todo: taken.append(real(todo) is not None) or real(todo))
+    _check(tmp_path, {"A": (20.0, 20.0, 20.0), "B": (20.0, 20.0, 20.0),
+                      "E": (20.0, 20.0, 20.0)}, {"B": ["kurtosis", "min"]})
+    assert taken.count(True) >= 4  # every tick after the first (which places the windows)
+
+
+def _check(tmp_path: Path, rates: dict[str, tuple[float, ...]],
+           feats: dict[str, list[str]] | None = None) -> None:
+    feats = feats or {}
     doc = {"site": "s", "gateway": "g", "state_dir": str(tmp_path / "state"),
            "assets": [{"name": a, "window": {"length_s": 1.0, "lateness_s": 0.0,
                                              "timeout_s": 0.5, "min_coverage": 0.5},
                        "channels": {f"c{i}": {"topic": f"t/{a}/{i}", "decoder": "json-batch",
-                                              "rate_hz": r, "features": FEATS}
+                                              "rate_hz": r, "features": feats.get(a, FEATS)}
                                     for i, r in enumerate(rs)}}
                       for a, rs in rates.items()]}
     cfg = parse_config(doc, tmp_path)
