@@ -21,6 +21,7 @@ from agent.core.windows.assembler import (
     WindowAssembler,
     _Group,
 )
+from agent.core.windows.closed import _no_times
 
 # One item of the joint cut: (position in `close_many`'s list, the assembler, the
 # window's start and end, per rate group (the group, its first pending index, how many
@@ -128,7 +129,7 @@ def _close_simple(simple: dict[int, list[_Simple]],
         for i, a, g, lo0, start, end in members:
             chans = g.chans
             n = len(chans)
-            blk = Block(chans, _no_times(n, m), v[off:off + n], _full(n, m), True, v, off)
+            blk = Block.rows_of(v, off, chans, _full(n, m))
             off += n
             exp = g.expected
             cov = m / exp if exp else 1.0
@@ -149,19 +150,6 @@ def _full(n: int, m: int) -> tuple[int, ...]:
         if len(_FULL) > 64:
             _FULL.clear()
         got = _FULL[(n, m)] = (m,) * n
-    return got
-
-
-_NO_TIMES: dict[tuple[int, int], np.ndarray] = {}
-
-
-def _no_times(n: int, m: int) -> np.ndarray:
-    """The timestamps of a block whose assembler does not keep them: NaN (read-only)."""
-    got = _NO_TIMES.get((n, m))
-    if got is None:
-        if len(_NO_TIMES) > 64:
-            _NO_TIMES.clear()
-        got = _NO_TIMES[(n, m)] = np.broadcast_to(np.nan, (n, m))
     return got
 
 

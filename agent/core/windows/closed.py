@@ -17,15 +17,16 @@ class Block:
     """The samples of one rate group of channels in one window: row r holds channel
     `chans[r]`, its first `counts[r]` entries valid (the rest is padding)."""
 
-    __slots__ = ("base", "chans", "counts", "row0", "tbase", "timestamps", "uniform", "values")
+    __slots__ = ("_timestamps", "_values", "base", "chans", "counts", "row0", "tbase",
+                 "uniform")
 
     def __init__(self, chans: tuple[int, ...], timestamps: np.ndarray, values: np.ndarray,
                  counts: Sequence[int], uniform: bool | None = None,
                  base: np.ndarray | None = None, row0: int = 0,
                  tbase: np.ndarray | None = None) -> None:
         self.chans = chans
-        self.timestamps = timestamps
-        self.values = values
+        self._timestamps: np.ndarray | None = timestamps
+        self._values: np.ndarray | None = values
         self.counts = counts
         # When `values` is rows row0.. of a matrix cut for many assets at once: that
         # matrix (the feature pass takes it whole instead of stacking the blocks again).
@@ -35,6 +36,48 @@ class Block:
         # Every row full: the block is a plain [rows, samples] matrix.
         self.uniform = (not counts or min(counts) == values.shape[1]) if uniform is None \
             else uniform
+
+    @classmethod
+    def rows_of(cls, base: np.ndarray, row0: int, chans: tuple[int, ...],
+                counts: Sequence[int]) -> Block:
+        """Rows row0.. of `base` (one per channel), every row full, timestamps not kept
+        (NaN): the joint cut's usual block, its views made when first read."""
+        b = cls.__new__(cls)
+        b.chans = chans
+        b._timestamps = b._values = b.tbase = None
+        b.counts = counts
+        b.base = base
+        b.row0 = row0
+        b.uniform = True
+        return b
+
+    @property
+    def values(self) -> np.ndarray:
+        v = self._values
+        if v is None:
+            assert self.base is not None
+            v = self._values = self.base[self.row0:self.row0 + len(self.chans)]
+        return v
+
+    @property
+    def timestamps(self) -> np.ndarray:
+        t = self._timestamps
+        if t is None:
+            t = self._timestamps = _no_times(len(self.chans), self.values.shape[1])
+        return t
+
+
+_NO_TIMES: dict[tuple[int, int], np.ndarray] = {}
+
+
+def _no_times(n: int, m: int) -> np.ndarray:
+    """The timestamps of a block whose assembler does not keep them: NaN (read-only)."""
+    got = _NO_TIMES.get((n, m))
+    if got is None:
+        if len(_NO_TIMES) > 64:
+            _NO_TIMES.clear()
+        got = _NO_TIMES[(n, m)] = np.broadcast_to(np.nan, (n, m))
+    return got
 
 
 class ClosedWindow:
