@@ -67,10 +67,10 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     exception (`AssembleResult.error`); the others' windows are cut as usual.
     """
     results: list[AssembleResult | None] = [None] * len(assemblers)
-    fast: list[_Item] = []
-    # The simplest items by segment length: one rate group, every pending sample in
-    # the window, no timestamps kept (`_close_simple`).
-    simple: dict[int, list[_Simple]] = {}
+    # Items whose every rate group has samples, all of them before the window's end
+    # (`_close_whole`), and the others (`_close_rest`).
+    whole: list[_Item] = []
+    rest: list[_Item] = []
     for i, a in enumerate(assemblers):
         try:
             plan = _plan(a, now)
@@ -83,26 +83,24 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
                 assert k is not None
                 hop = a.cfg.hop_s
                 end = (k + 1) * hop
-                if len(plan) == 1:
-                    g, lo0, m = plan[0]
-                    if m and not g.keep_times and a._max_ts < end:
-                        got = simple.get(m)
-                        if got is None:
-                            got = simple[m] = []
-                        got.append((i, a, g, lo0, k * hop, end))
-                        continue
-                fast.append((i, a, k * hop, end, plan))
+                item = (i, a, k * hop, end, plan)
+                # The newest sample of any channel is in, and every group has some.
+                if a._max_ts < end and (plan[0][2] if len(plan) == 1
+                                        else all(m for _, _, m in plan)):
+                    whole.append(item)
+                else:
+                    rest.append(item)
         except Exception as exc:
             results[i] = AssembleResult(exc)
     try:
-        if simple:
-            _close_simple(simple, results)
-        _close_fast(fast, results, now)
+        if whole:
+            _close_whole(whole, results)
+        if rest:
+            _finish(rest, _cut_blocks(rest), results, now)
     except Exception:
-        # The joint cut failed before it changed any assembler: each alone, contained.
-        left = [(it[0], it[1]) for it in fast]
-        left += [(it[0], it[1]) for items in simple.values() for it in items]
-        for i, a in left:
+        # The joint cut failed before it changed any assembler, or after finishing some
+        # of them: the others each alone, contained.
+        for i, a, *_ in [*whole, *rest]:
             if results[i] is None:
                 try:
                     results[i] = a.close_due(now)
@@ -111,33 +109,81 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     return [r if r is not None else AssembleResult() for r in results]
 
 
-# An item of `_close_simple`: (position in `close_many`'s list, the assembler, its one
-# rate group, the group's first pending index, the window's start and end).
-_Simple = tuple[int, WindowAssembler, _Group, int, float, float]
-
-
-def _close_simple(simple: dict[int, list[_Simple]],
-                  results: list[AssembleResult | None]) -> None:
-    """The joint cut of the simplest items (`close_many`): one rate group whose rows
-    are in step, every pending sample (m per row) before the window's end, no
-    timestamps kept. Per segment length one copy; each item is finished as its block
-    is made (what `_cut_blocks` + `_finish_one` do for such an item, with less on the
-    way)."""
-    for m, members in simple.items():
-        v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
-        off = 0
-        for i, a, g, lo0, start, end in members:
-            chans = g.chans
-            n = len(chans)
-            blk = Block.rows_of(v, off, chans, _full(n, m))
+def _close_whole(whole: list[_Item], results: list[AssembleResult | None]) -> None:
+    """The joint cut of items whose every rate group's rows are in step with m > 0
+    pending samples, all before the window's end: one copy per segment length, every
+    block rows of that copy. An item of one rate group is finished as its block is
+    made, the others once all copies are made."""
+    # Per segment length: (the item's blocks, None for an item of one group; the group's
+    # index; the item; the group; its first pending index).
+    by_width: dict[int, list[tuple[list[Block | None] | None, int, _Item, _Group, int]]] = {}
+    several: list[tuple[_Item, list[Block | None]]] = []
+    for item in whole:
+        spans = item[4]
+        if len(spans) == 1:
+            g, lo0, m = spans[0]
+            got = by_width.get(m)
+            if got is None:
+                got = by_width[m] = []
+            got.append((None, 0, item, g, lo0))
+            continue
+        blocks: list[Block | None] = [None] * len(spans)
+        several.append((item, blocks))
+        for gi, (g, lo0, m) in enumerate(spans):
+            got = by_width.get(m)
+            if got is None:
+                got = by_width[m] = []
+            got.append((blocks, gi, item, g, lo0))
+    for m, members in by_width.items():
+        v = np.concatenate([mb[3].vals[:, mb[4]:mb[4] + m] for mb in members])
+        kept = [mb for mb in members if mb[3].keep_times]
+        t = np.concatenate([mb[3].ts[:, mb[4]:mb[4] + m] for mb in kept]) if kept else None
+        # The blocks' times as rows of one matrix, row for row with `v`: only when every
+        # member kept its times.
+        tb = t if len(kept) == len(members) else None
+        off = t_off = 0
+        for bl, gi, item, g, lo0 in members:
+            n = len(g.chans)
+            if t is not None and g.keep_times:
+                blk = Block(g.chans, t[t_off:t_off + n], v[off:off + n], _full(n, m), True,
+                            v, off, tb)
+                t_off += n
+            else:
+                blk = Block.rows_of(v, off, g.chans, _full(n, m))
             off += n
+            if bl is not None:
+                bl[gi] = blk
+                continue
+            # `_done` of an item of one group, written out (the usual window of a tick).
+            i, a, start, end, _ = item
             exp = g.expected
             cov = m / exp if exp else 1.0
-            w = ClosedWindow.of_blocks(start, end, not (exp and cov < a.cfg.min_coverage),
-                                       (blk,), a._expected, cov)
+            g.lo = [lo0 + m] * n
             a._set_next(a._next_k + 1)  # type: ignore[operator]
-            g.lo = [lo0 + m] * n  # rows in step stay in step
-            results[i] = AssembleResult(None, [w])
+            results[i] = AssembleResult(None, [ClosedWindow.of_blocks(
+                start, end, not (exp and cov < a.cfg.min_coverage), (blk,), a._expected, cov)])
+    for item, bl in several:
+        _done(item, tuple(bl), results)  # type: ignore[arg-type]
+
+
+def _done(item: _Item, blocks: tuple[Block, ...], results: list[AssembleResult | None]
+          ) -> None:
+    """`_close_whole`'s window of `item` from its blocks (group g's coverage m /
+    expected), and its assembler moved past it."""
+    i, a, start, end, spans = item
+    min_cov = a.cfg.min_coverage
+    complete = True
+    cov = 1.0
+    for gi, (g, lo0, m) in enumerate(spans):
+        exp = g.expected
+        c = m / exp if exp else 1.0
+        cov = min(cov, c) if gi else c
+        if exp and c < min_cov:
+            complete = False
+        g.lo = [lo0 + m] * len(g.chans)  # rows in step stay in step
+    a._set_next(a._next_k + 1)  # type: ignore[operator]
+    results[i] = AssembleResult(None, [ClosedWindow.of_blocks(start, end, complete, blocks,
+                                                              a._expected, cov)])
 
 
 _FULL: dict[tuple[int, int], tuple[int, ...]] = {}
@@ -153,45 +199,31 @@ def _full(n: int, m: int) -> tuple[int, ...]:
     return got
 
 
-def _close_fast(fast: list[_Item], results: list[AssembleResult | None], now: float) -> None:
-    """`close_many`'s joint cut of the items in `fast`, results into `results`. An
-    item is finished (its result set, its assembler moved past the window) as soon as
-    its blocks are cut; should a later copy fail, only the unfinished ones are left."""
-    blocks = _cut_blocks(fast, results)
-    _finish(fast, blocks, results, now)
-
-
-def _cut_blocks(fast: list[_Item], results: list[AssembleResult | None]
-                ) -> list[list[Block | None]]:
-    """The blocks of every (item, group) with samples, cut per segment length at once.
-    An item of one rate group cut whole is finished here (`_finish_one`)."""
+def _cut_blocks(fast: list[_Item]) -> list[list[Block | None]]:
+    """The blocks of every (item, group) with samples, cut per segment length at once."""
     # Every (item, group) with samples, by how many each of its rows holds: (item,
     # group index, the group, its first pending index, the window's end, whether all its
-    # pending samples are before the end, whether its timestamps are wanted, whether
-    # it is the item's only group).
-    by_width: dict[int, list[tuple[int, int, _Group, int, float, bool, bool, bool]]] = {}
+    # pending samples are before the end, whether its timestamps are wanted).
+    by_width: dict[int, list[tuple[int, int, _Group, int, float, bool, bool]]] = {}
     blocks: list[list[Block | None]] = []
     for fi, (_, a, _, end, spans) in enumerate(fast):
         blocks.append([None] * len(spans))
         # The newest sample of any channel before the end: every pending one is in.
         full = a._max_ts < end
-        alone = len(spans) == 1
         for gi, (g, lo0, m) in enumerate(spans):
             if m:
                 got = by_width.get(m)
                 if got is None:
                     got = by_width[m] = []
-                got.append((fi, gi, g, lo0, end, full, g.keep_times or not full, alone))
+                got.append((fi, gi, g, lo0, end, full, g.keep_times or not full))
     for m, members in by_width.items():
         v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
         kept = [mb for mb in members if mb[6]]
         t = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in kept]) if kept else None
-        # The blocks' times as rows of one matrix, row for row with `v`: only when every
-        # member kept its times.
-        tb = t if len(kept) == len(members) else None
+        tb = t if len(kept) == len(members) else None  # as in `_close_whole`
         off = t_off = 0
         no_times = None
-        for fi, gi, g, lo0, end, full, keep, alone in members:
+        for fi, gi, g, _, end, full, keep in members:
             n = len(g.chans)
             if keep and t is not None:
                 ts = t[t_off:t_off + n]
@@ -200,11 +232,7 @@ def _cut_blocks(fast: list[_Item], results: list[AssembleResult | None]
                 ts = no_times if no_times is not None and n == no_times.shape[0] \
                     else (no_times := _no_times(n, m))
             if full:
-                blk = Block(g.chans, ts, v[off:off + n], [m] * n, True, v, off, tb)
-                if alone:
-                    _finish_one(fast[fi], blk, lo0, m, results)
-                else:
-                    blocks[fi][gi] = blk
+                blocks[fi][gi] = Block(g.chans, ts, v[off:off + n], [m] * n, True, v, off, tb)
             else:
                 counts = (ts < end).sum(axis=1).tolist()
                 mc = max(counts)
@@ -213,27 +241,10 @@ def _cut_blocks(fast: list[_Item], results: list[AssembleResult | None]
     return blocks
 
 
-def _finish_one(item: _Item, blk: Block, lo0: int, m: int,
-                results: list[AssembleResult | None]) -> None:
-    """`_finish` of an item of one rate group whose block is cut whole (`blk`, every row
-    holding its m pending samples from `lo0`)."""
-    i, a, start, end, spans = item
-    g = spans[0][0]
-    cov = m / g.expected if g.expected else 1.0
-    complete = not (g.expected and cov < a.cfg.min_coverage)
-    w = ClosedWindow.of_blocks(start, end, complete, (blk,), a._expected, cov)
-    assert a._next_k is not None
-    a._set_next(a._next_k + 1)
-    g.lo = [lo0 + m] * len(g.chans)  # rows in step stay in step
-    results[i] = AssembleResult(None, [w])
-
-
 def _finish(fast: list[_Item], blocks: list[list[Block | None]],
             results: list[AssembleResult | None], now: float) -> None:
     """Each item's window from its blocks, and its assembler moved past it."""
     for (i, a, start, end, spans), bl in zip(fast, blocks, strict=True):
-        if results[i] is not None:  # finished by `_cut_blocks`
-            continue
         complete = True
         total = 0
         cov = 1.0
