@@ -98,7 +98,9 @@ def template(lay: AssetLayout) -> _Template:
             _BY_LAYOUT.clear()
             _BY_SHAPE.clear()
         t = _template_of(lay)
-        shape = (t.chan_at, t.spectra, len(t.slot))
+        # The slots say where in the row each channel's features go: layouts alike in
+        # blocks and spectra can still order their channels differently.
+        shape = (t.chan_at, t.spectra, t.slot.tobytes(), t.const.tobytes())
         t = _BY_SHAPE.setdefault(shape, t)
         got = _BY_LAYOUT[id(lay)] = (lay, t)
     return got[1]
