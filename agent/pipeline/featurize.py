@@ -164,14 +164,9 @@ def _place_all(todo: Sequence[Pending]) -> _Placed:
 def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None) -> list[np.ndarray]:
     """The full feature row of each window (module docstring), the passes in `work`'s
     reusable arrays. Rows are views of one array per class of windows."""
-    one = _one_matrix(todo)
-    if one is not None:
-        x, t, needed = one
-        f = block_features(x, needed, work=work).reshape(-1)
-        nch = len(t.chan_at)
-        row = np.asarray([r for _, r in t.chan_at], dtype=np.int64)
-        row0 = np.arange(0, nch * len(todo), nch, dtype=np.int64)
-        return list(f[((row0[:, None] + row) * NF)[:, t.slot] + t.const])
+    al = _aligned(todo)
+    if al is not None:
+        return _aligned_rows(al, len(todo), work)
     needed = frozenset().union(*{p.rt.layout.td_needed for p in todo})
     pl = _place_all(todo)
     flats: list[np.ndarray] = []
@@ -198,43 +193,90 @@ def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None) -> lis
     return _gather(flat, starts, spec_starts, first, tmpls, pl)
 
 
-def _one_matrix(todo: Sequence[Pending]
-                ) -> tuple[np.ndarray, _Template, frozenset[str]] | None:
-    """The usual tick's windows in one step: when each is one full block, the blocks
-    are the rows of one matrix cut for all of them in order (the joint cut's), and
-    their assets share one `_Template` without spectra, (that matrix, the template,
-    the time-domain features any of them needs); else None."""
-    base = None
-    at = 0
-    tmpl = None
+@dataclass(frozen=True, slots=True)
+class _Aligned:
+    """The usual tick's windows (`_aligned`): per block of a window, the matrix whose
+    rows those blocks are (window j's block b is rows j * rows[b].. of bases[b]), the
+    template their assets share, one of their layouts, the time-domain features any of
+    them needs."""
+
+    bases: tuple[np.ndarray, ...]
+    rows: tuple[int, ...]
+    tmpl: _Template
+    lay: AssetLayout
+    needed: frozenset[str]
+
+
+def _aligned(todo: Sequence[Pending]) -> _Aligned | None:
+    """The windows as `_Aligned` when every block of each is full and, block by block,
+    the windows' blocks are the rows of one matrix in window order (the joint cut's),
+    and their assets share one `_Template` (and speed channel); else None."""
+    first = todo[0].w.blocks
+    bases = [b.base for b in first if b.base is not None]
+    if not first or len(bases) != len(first):
+        return None
+    rows = [len(b.chans) for b in first]
+    at = [0] * len(first)
+    lay0 = todo[0].rt.layout
+    tmpl = template(lay0)
     last = None
     needs: set[frozenset[str]] = set()
     for p in todo:
         blocks = p.w.blocks
-        if len(blocks) != 1:
+        if len(blocks) != len(at):
             return None
-        blk = blocks[0]
-        if blk.row0 != at or not blk.uniform:
-            return None
-        if at == 0:
-            base = blk.base
-            if base is None:
+        for b, blk in enumerate(blocks):
+            if blk.base is not bases[b] or blk.row0 != at[b] or not blk.uniform:
                 return None
-        elif blk.base is not base:
-            return None
-        at += len(blk.chans)
+            at[b] += rows[b]
         lay = p.rt.layout
         if lay is not last:
-            t = template(lay)
-            if t is not tmpl:
-                if tmpl is not None or t.n_spec:
-                    return None
-                tmpl = t
+            if template(lay) is not tmpl or lay.speed_index != lay0.speed_index:
+                return None
             needs.add(lay.td_needed)
             last = lay
-    if base is None or tmpl is None or at != base.shape[0]:
+    if any(a != base.shape[0] for a, base in zip(at, bases, strict=True)):
         return None
-    return base, tmpl, frozenset().union(*needs)
+    return _Aligned(tuple(bases), tuple(rows), tmpl, lay0, frozenset().union(*needs))
+
+
+def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None) -> list[np.ndarray]:
+    """`feature_rows` of the n windows of `al`: one time-domain pass per block matrix,
+    the spectra of its rows, every row gathered in one step."""
+    flats: list[np.ndarray] = []
+    starts: list[int] = []
+    pos = 0
+    for base in al.bases:
+        f = block_features(base, al.needed, work=work)
+        starts.append(pos)
+        flats.append(f.reshape(-1))
+        pos += f.size
+    t, lay = al.tmpl, al.lay
+    j = np.arange(n, dtype=np.int64)[:, None]
+    # Per window, where each channel's time-domain features start.
+    td = np.asarray([starts[b] for b, _ in t.chan_at], dtype=np.int64) + \
+        (j * np.asarray([al.rows[b] for b, _ in t.chan_at], dtype=np.int64)
+         + np.asarray([r for _, r in t.chan_at], dtype=np.int64)) * NF
+    if t.n_spec:
+        speeds = np.full(n, np.nan)
+        if t.wants_speed and lay.speed_index is not None:
+            b, r = lay.chan_at[lay.speed_index]
+            # As `_spectral` reads it: each window's speed samples' mean, in rev/min.
+            speeds = al.bases[b][r::al.rows[b]].mean(axis=1) / 60.0
+        segs: list[Segment] = []
+        for jj in range(n):
+            for ci in lay.spectral:
+                b, r = lay.chan_at[ci]
+                segs.append((al.bases[b], jj * al.rows[b] + r))
+        rates = [fs for _, fs in t.spectra] * n
+        cfgs = [sp for sp, _ in t.spectra] * n
+        spec_flat, spec_starts = spectral_flat(segs, rates, cfgs,
+                                               np.repeat(speeds, t.n_spec).tolist(), work)
+        flats.append(spec_flat)
+        sp = spec_starts.reshape(n, t.n_spec) + pos
+        td = np.concatenate([td, sp], axis=1)
+    flat = np.concatenate(flats) if len(flats) > 1 else flats[0]
+    return list(flat[td[:, t.slot] + t.const])
 
 
 def _gather(flat: np.ndarray, starts: dict[int, int], spec_starts: np.ndarray,

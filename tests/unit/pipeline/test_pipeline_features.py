@@ -35,14 +35,14 @@ def test_feature_rows_match_segment_features_on_every_path(tmp_path: Path) -> No
                       "D": (20.0, 20.0, 20.0)})
 
 
-def test_feature_rows_of_one_matrix(tmp_path: Path, monkeypatch) -> None:  # type: ignore[no-untyped-def]
-    """The usual tick (featurize._one_matrix): every window one full block, rows of one
+def test_feature_rows_of_aligned(tmp_path: Path, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """The usual tick (featurize._aligned): every window one full block, rows of one
     matrix, assets laid out alike though wanting different features."""
     from agent.pipeline import featurize
 
     taken: list[bool] = []
-    real = featurize._one_matrix
-    monkeypatch.setattr(featurize, "_one_matrix",
+    real = featurize._aligned
+    monkeypatch.setattr(featurize, "_aligned",
                         lambda todo: taken.append(real(todo) is not None) or real(todo))
     _check(tmp_path, {"A": (20.0, 20.0, 20.0), "B": (20.0, 20.0, 20.0),
                       "E": (20.0, 20.0, 20.0)}, {"B": ["kurtosis", "min"]})
@@ -135,3 +135,55 @@ def test_assets_with_their_channels_in_another_order_keep_their_own_rows(
         for got, want in zip(both[a], alone[a], strict=True):
             # Equal to rounding: the FFT of two segments at once may differ in the last bit.
             np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-300)
+
+
+def _full_rows(tmp_path: Path, aligned: bool, monkeypatch) -> list[np.ndarray]:  # type: ignore[no-untyped-def]
+    """Rows of four assets, each two 256 Hz waveforms with spectra (orders of the
+    running speed, envelope) and three 8 Hz channels, one of them the speed, as the
+    aligned path (`_aligned`) or the general one gives them."""
+    from agent.pipeline import featurize
+
+    taken: list[bool] = []
+    real = featurize._aligned
+    monkeypatch.setattr(featurize, "_aligned", (lambda todo: taken.append(
+        (got := real(todo)) is not None) or got) if aligned else (lambda todo: None))
+    spec = {"bands_hz": [[5.0, 40.0], [40.0, 120.0]], "orders": [1.0, 2.0],
+            "envelope_hz": [20.0, 100.0], "velocity_rms": True}
+    chans = [("v1", 256.0, spec), ("t", 8.0, None), ("v2", 256.0, spec),
+             ("speed", 8.0, None), ("i", 8.0, None)]
+    doc = {"site": "s", "gateway": "g", "state_dir": str(tmp_path / "state"),
+           "assets": [{"name": f"A{a}", "speed_channel": "speed",
+                       "window": {"length_s": 1.0, "lateness_s": 0.0, "timeout_s": 0.5},
+                       "channels": {c: {"topic": f"t/{a}/{c}", "decoder": "json-batch",
+                                        "rate_hz": r, "features": FEATS,
+                                        **({"spectrum": sp, "unit": "m/s2"} if sp else {})}
+                                    for c, r, sp in chans}}
+                      for a in range(4)]}
+    cfg = parse_config(doc, tmp_path)
+    buffers = Buffers(cfg)
+    rows: list[np.ndarray] = []
+    pipe = Pipeline(cfg, buffers, _Sink(), Metrics(CollectorRegistry()),
+                    logging.getLogger("test"), [AssetRuntime.build(a, None, None)
+                                               for a in cfg.assets],
+                    observer=lambda asset, mode, w, row, _: rows.append(row.copy()))
+    rng = np.random.default_rng(11)
+    for k in range(5):
+        for ai in range(4):
+            for ci, (c, r, _) in enumerate(chans):
+                ts = k + np.arange(int(r)) / r
+                vals = 1500.0 + 100 * ai + rng.normal(0, 5, ts.size) if c == "speed" else \
+                    np.sin(2 * np.pi * (25.0 + ai) * ts) + rng.normal(0, 0.3, ts.size)
+                buffers.by_asset[ai][ci].append_block(ts, vals, k + 1.0)
+        pipe.tick(k + 2.0)
+    assert not aligned or taken.count(True) >= 4
+    return rows
+
+
+def test_aligned_rows_equal_the_general_paths(tmp_path: Path, monkeypatch) -> None:  # type: ignore[no-untyped-def]
+    """The aligned path (several blocks per window, spectra with orders of the speed
+    channel) gives the general path's rows bit for bit."""
+    got = _full_rows(tmp_path / "a", True, monkeypatch)
+    want = _full_rows(tmp_path / "g", False, monkeypatch)
+    assert len(got) == len(want) >= 16
+    for g, w in zip(got, want, strict=True):
+        np.testing.assert_array_equal(g, w)
