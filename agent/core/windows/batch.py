@@ -21,7 +21,6 @@ from agent.core.windows.assembler import (
     WindowAssembler,
     _Group,
 )
-from agent.core.windows.closed import _no_times
 
 # One item of the joint cut: (position in `close_many`'s list, the assembler, the
 # window's start and end, per rate group (the group, its first pending index, how many
@@ -200,45 +199,73 @@ def _full(n: int, m: int) -> tuple[int, ...]:
 
 
 def _cut_blocks(fast: list[_Item]) -> list[list[Block | None]]:
-    """The blocks of every (item, group) with samples, cut per segment length at once."""
-    # Every (item, group) with samples, by how many each of its rows holds: (item,
-    # group index, the group, its first pending index, the window's end, whether all its
-    # pending samples are before the end, whether its timestamps are wanted).
-    by_width: dict[int, list[tuple[int, int, _Group, int, float, bool, bool]]] = {}
-    blocks: list[list[Block | None]] = []
+    """The blocks of every (item, group) with samples. A group whose rows all hold the
+    same number c of samples before the window's end (all its pending ones when the
+    item is full; else counted, for all such groups of one pending width at once) is
+    cut with every other such group of that c as rows of one copy, its block a row
+    range of it (`Block.base`) whatever its pending width: windows cut as samples of
+    the next one arrive come out as the tick's full ones do. The others (rows holding
+    different counts) each get a block of their own."""
+    blocks: list[list[Block | None]] = [[None] * len(it[4]) for it in fast]
+    # Per (item, group): c, 0 for none to cut here.
+    cs: list[list[int]] = []
+    # By pending width, the groups whose counts are to be found: (item, group index, the
+    # group, its first pending index, the window's end).
+    counting: dict[int, list[tuple[int, int, _Group, int, float]]] = {}
     for fi, (_, a, _, end, spans) in enumerate(fast):
-        blocks.append([None] * len(spans))
-        # The newest sample of any channel before the end: every pending one is in.
-        full = a._max_ts < end
-        for gi, (g, lo0, m) in enumerate(spans):
-            if m:
-                got = by_width.get(m)
-                if got is None:
-                    got = by_width[m] = []
-                got.append((fi, gi, g, lo0, end, full, g.keep_times or not full))
-    for m, members in by_width.items():
-        v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
-        kept = [mb for mb in members if mb[6]]
-        t = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in kept]) if kept else None
-        tb = t if len(kept) == len(members) else None  # as in `_close_whole`
+        full = a._max_ts < end  # the newest sample of any channel is before the end
+        cs.append([m if full else 0 for _, _, m in spans])
+        if not full:
+            for gi, (g, lo0, m) in enumerate(spans):
+                if m:
+                    counting.setdefault(m, []).append((fi, gi, g, lo0, end))
+    _count(counting, cs, blocks)
+    # By c, in item order (the feature pass takes rows of one copy in window order):
+    # (item, group index, the group, its first pending index).
+    by_c: dict[int, list[tuple[int, int, _Group, int]]] = {}
+    for fi, (item, cf) in enumerate(zip(fast, cs, strict=True)):
+        for gi, ((g, lo0, _), c) in enumerate(zip(item[4], cf, strict=True)):
+            if c:
+                by_c.setdefault(c, []).append((fi, gi, g, lo0))
+    for c, cut in by_c.items():
+        v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + c] for mb in cut])
+        kept = [mb for mb in cut if mb[2].keep_times]
+        t = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + c] for mb in kept]) if kept else None
+        tb = t if len(kept) == len(cut) else None  # as in `_close_whole`
         off = t_off = 0
-        no_times = None
-        for fi, gi, g, _, end, full, keep in members:
+        for fi, gi, g, _ in cut:
             n = len(g.chans)
-            if keep and t is not None:
-                ts = t[t_off:t_off + n]
+            if t is not None and g.keep_times:
+                blocks[fi][gi] = Block(g.chans, t[t_off:t_off + n], v[off:off + n],
+                                       _full(n, c), True, v, off, tb)
                 t_off += n
             else:
-                ts = no_times if no_times is not None and n == no_times.shape[0] \
-                    else (no_times := _no_times(n, m))
-            if full:
-                blocks[fi][gi] = Block(g.chans, ts, v[off:off + n], [m] * n, True, v, off, tb)
-            else:
-                counts = (ts < end).sum(axis=1).tolist()
-                mc = max(counts)
-                blocks[fi][gi] = Block(g.chans, ts[:, :mc], v[off:off + n, :mc], counts)
+                blocks[fi][gi] = Block.rows_of(v, off, g.chans, _full(n, c))
             off += n
     return blocks
+
+
+def _count(counting: dict[int, list[tuple[int, int, _Group, int, float]]],
+           cs: list[list[int]], blocks: list[list[Block | None]]) -> None:
+    """`_cut_blocks`' counts of the samples before each window's end, one step per
+    pending width: a group whose rows all hold c gets c in `cs`; one whose rows hold
+    different counts its block of its own in `blocks`."""
+    for m, members in counting.items():
+        tm = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in members])
+        ends = np.repeat([mb[4] for mb in members], [len(mb[2].chans) for mb in members])
+        below = (tm < ends[:, None]).sum(axis=1).tolist()
+        off = 0
+        for fi, gi, g, lo0, _ in members:
+            n = len(g.chans)
+            counts = below[off:off + n]
+            c = counts[0]
+            if counts.count(c) == n:
+                cs[fi][gi] = c
+            else:  # rows out of step in time: a block of its own
+                mc = max(counts)
+                blocks[fi][gi] = Block(g.chans, tm[off:off + n, :mc],
+                                       g.vals[:, lo0:lo0 + mc].copy(), counts)
+            off += n
 
 
 def _finish(fast: list[_Item], blocks: list[list[Block | None]],
@@ -249,14 +276,14 @@ def _finish(fast: list[_Item], blocks: list[list[Block | None]],
         total = 0
         cov = 1.0
         min_cov = a.cfg.min_coverage
-        for gi, (g, _, m) in enumerate(spans):
+        for gi, (g, _, _) in enumerate(spans):
             blk = bl[gi]
             if blk is None:
                 empty = np.empty((len(g.chans), 0))
                 blk = bl[gi] = Block(g.chans, empty, empty, [0] * len(g.chans))
-            if blk.base is not None:  # cut whole: every row holds its m pending samples
-                low = m
-                total += m
+            if blk.base is not None:  # a row range of one copy: every row holds c samples
+                low = blk.counts[0]
+                total += low
             else:
                 low = min(blk.counts)
                 total += sum(blk.counts)
@@ -274,10 +301,10 @@ def _finish(fast: list[_Item], blocks: list[list[Block | None]],
                                    cov)
         assert a._next_k is not None
         a._set_next(a._next_k + 1)
-        for (g, lo0, m), blk in zip(spans, bl, strict=True):
+        for (g, lo0, _), blk in zip(spans, bl, strict=True):
             assert blk is not None
             if blk.base is not None:  # rows in step stay in step
-                g.lo = [lo0 + m] * len(g.chans)
+                g.lo = [lo0 + blk.counts[0]] * len(g.chans)
             elif blk.uniform:
                 g.lo = [lo0 + blk.values.shape[1]] * len(g.chans)
             else:
