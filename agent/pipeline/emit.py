@@ -9,26 +9,48 @@ from __future__ import annotations
 
 import json
 import logging
+import math
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Protocol
 
 import numpy as np
 import orjson
 from prometheus_client import Counter, Gauge
 
 from agent.config.load import Config
-from agent.core.detector import Detector, State, Transition
-from agent.core.escalation import Escalated, leading_channels
-from agent.core.events import EventType, Source, make_event, rfc3339, severity_for, top_contributors
+from agent.core.detector import Detector, State
+from agent.core.events import EventType, Source, make_event, rfc3339
 from agent.core.health import Change, HealthChange
 from agent.core.limits import FeatureLimits, LimitRise, ZoneLimits
-from agent.core.suspect import ALONE_SHARE, dominant_channel, drifting_channel
 from agent.core.windows.closed import ClosedWindow
-from agent.models.bundle import Bundle, BundleMeta
+from agent.models.bundle import Bundle
 from agent.ops.logs import kv
 from agent.ops.metrics import Metrics, PlainSeries
-from agent.pipeline.messages import Kind, OutMessage, StatePayload, round_to
+from agent.pipeline.anomaly import AnomalyStep
+from agent.pipeline.infer import Scored
+from agent.pipeline.messages import (
+    Kind,
+    OutMessage,
+    StatePayload,
+    dumps_each,
+    ratio,
+    round_many,
+)
 from agent.pipeline.runtime import AssetRuntime
+
+
+class ScoredWindow(Protocol):
+    """A scored window on its way through the tick: whose, its bounds, its mode."""
+
+    @property
+    def rt(self) -> AssetRuntime: ...
+
+    @property
+    def w(self) -> ClosedWindow: ...
+
+    @property
+    def mode(self) -> str: ...
 
 
 @dataclass
@@ -55,11 +77,6 @@ class AssetMetrics:
         return cls(m.windows_closed.labels(asset), m.windows_scored.labels(asset),
                    m.late_samples.labels(asset), m.score.labels(asset),
                    m.threshold.labels(asset), m.anomalous.labels(asset))
-
-
-def ratio(score: float, threshold: float) -> float | None:
-    """The score relative to the threshold, as people read it (1.0 = at the threshold)."""
-    return round(score / threshold, 3) if threshold > 0 else None
 
 
 def finite(v: float) -> float | None:
@@ -98,10 +115,12 @@ class _AssetSlot:
         self.payload: StatePayload | None = None
 
     def serve(self, bundle: Bundle) -> None:
-        """The window is scored by `bundle` (not the last window's)."""
+        """The window is scored by `bundle` (not the last window's); the payload made
+        for the last one's model and threshold goes."""
         self.bundle = bundle
         self.threshold = bundle.meta.threshold
         self.model = bundle.model_ref
+        self.payload = None
 
 
 class Emitter:
@@ -123,6 +142,7 @@ class Emitter:
         self._topic_cache: dict[str, tuple[str, str, str]] = {}
         self.out: list[OutMessage] = []
         self.stats = TickStats()
+        self._anomaly = AnomalyStep(self)
 
     def start_tick(self) -> tuple[list[OutMessage], TickStats]:
         """A fresh message list and stats for a tick."""
@@ -225,60 +245,97 @@ class Emitter:
         key = f"{feature}|{rise.kind}|{rise.level}|{w.start:.3f}"
         self.event(rt, EventType.LIMIT_EXCEEDED, w.end, data, Kind.EVENT, id_key=key)
 
-    # -- the detector step of a scored window ------------------------------------------
+    # -- the detector step of the scored windows --------------------------------------
 
-    def step(self, rt: AssetRuntime, start: float, end: float, mode: str, bundle: Bundle,
-             score: float, sq: np.ndarray) -> None:
-        """Count and publish one scored window, step the asset's detector and say what
-        changed (raised, escalated, cleared; a drifting sensor instead of a raise)."""
-        slot = self._slots.get(id(rt))
-        if slot is None or slot.rt is not rt:
-            slot = self._slot(rt)
-        if slot.bundle is not bundle:
-            slot.serve(bundle)
-        threshold = slot.threshold
-        slot.scored.inc()
-        slot.score.set(score)
-        if threshold != rt.shown_threshold:
-            slot.m.threshold.set(threshold)
-            rt.shown_threshold = threshold
-        self.stats.windows_scored += 1
-        rt.last_score = score
-        rt.last_window_end = end
-        rt.sq_history.append(sq)
-        det = rt.detector
-        if det.state is State.NORMAL and not score > threshold and threshold > 0 \
-                and not rt.suspects:
-            # The usual window: nothing can change. The detector cannot raise on a
-            # window not above the threshold, no suspect waits to recover, and the
-            # window's severity band is the lowest (its score is under the threshold).
-            det.quiet()
-            rt.escalation.observe_quiet()
-            state = State.NORMAL
-        else:
-            self._detect(rt, start, end, mode, bundle, score, sq)
-            state = rt.detector.state  # a StrEnum: it serialises as its value
-        anomalous = 1 if state is State.ANOMALOUS else 0
-        if anomalous != rt.shown_anomalous:
-            slot.m.anomalous.set(anomalous)
-            rt.shown_anomalous = anomalous
-        self._state_message(slot, rt, end, mode, state, score)
+    def scored(self, wins: Sequence[ScoredWindow], bundles: Sequence[Bundle], got: Scored,
+               failed: set[str], on_skip: Callable[[AssetRuntime], None],
+               on_error: Callable[[AssetRuntime, Exception], None]) -> None:
+        """Count and publish each scored window (`got[j]` by `bundles[j]`), step its
+        asset's detector and say what changed (raised, escalated, cleared; a drifting
+        sensor instead of a raise), in order (an asset's windows are in time order).
+        Left out: windows whose model failed, assets in `failed` (which `on_error`
+        adds to), and non-finite scores (`on_skip`). A quiet window (NORMAL, not above
+        a positive threshold, no suspect sensor) changes nothing but the history of
+        its detector and escalation tracker; the rest take `AnomalyStep.step`."""
+        score, sqs, ok = got.score, got.sq, got.ok
+        numbers = self._numbers(score, got.threshold)
+        get, isfinite, normal = self._slots.get, math.isfinite, State.NORMAL
+        counted = 0
+        for j, p in enumerate(wins):
+            if ok is not None and not ok[j]:
+                continue
+            rt = p.rt
+            if failed and rt.cfg.name in failed:
+                continue
+            s = score[j]
+            if not isfinite(s):
+                on_skip(rt)
+                continue
+            try:
+                slot = get(id(rt))
+                if slot is None or slot.rt is not rt:
+                    slot = self._slot(rt)
+                if slot.bundle is not bundles[j]:
+                    slot.serve(bundles[j])
+                threshold = slot.threshold
+                slot.scored.value += 1.0
+                slot.score.value = s
+                if threshold != rt.shown_threshold:
+                    slot.m.threshold.set(threshold)
+                    rt.shown_threshold = threshold
+                counted += 1
+                w = p.w
+                rt.last_score = s
+                rt.last_window_end = end = w.end
+                rt.sq_history.append(sqs[j])
+                det = rt.detector
+                if det.state is normal and not s > threshold and threshold > 0 \
+                        and not rt.suspects:
+                    # Nothing can change: the detector cannot raise on a window not
+                    # above the threshold, no suspect waits to recover, and the window's
+                    # severity band is the lowest (its score is under the threshold).
+                    det.quiet()
+                    rt.escalation.observe_quiet()
+                    state = normal
+                else:
+                    self._anomaly.step(rt, w.start, end, p.mode, bundles[j], s, sqs[j])
+                    state = rt.detector.state  # a StrEnum: it serialises as its value
+                anomalous = 1 if state is State.ANOMALOUS else 0
+                if anomalous != rt.shown_anomalous:
+                    slot.m.anomalous.set(anomalous)
+                    rt.shown_anomalous = anomalous
+                self._state_message(slot, rt, end, p.mode, state, s, numbers, j)
+            except Exception as exc:
+                on_error(rt, exc)
+        self.stats.windows_scored += counted
+
+    @staticmethod
+    def _numbers(score: list[float], threshold: np.ndarray
+                 ) -> tuple[list[float], list[bytes], list[bytes]]:
+        """Per window: its score rounded to 6 digits, that as JSON, and the JSON of its
+        ratio to the threshold rounded to 3 (null unless the threshold is positive)."""
+        x = np.asarray(score, dtype=np.float64)
+        pos = threshold > 0
+        r = np.divide(x, threshold, out=np.full(x.shape, math.nan), where=pos)
+        rounded = round_many(x, 6)
+        ratios = round_many(r, 3)
+        return rounded, dumps_each(rounded), dumps_each(ratios)
 
     def _state_message(self, slot: _AssetSlot, rt: AssetRuntime, end: float, mode: str,
-                       state: State, score: float) -> None:
+                       state: State, score: float,
+                       numbers: tuple[list[float], list[bytes], list[bytes]], j: int) -> None:
         """The retained state message of a scored window (and its score telemetry)."""
         threshold = slot.threshold
-        rounded = round_to(score, 6)
+        rounded = numbers[0][j]
         tpl = slot.payload
         last_event = rt.last_event
-        if tpl is None or not tpl.fits(state, mode, threshold, slot.model, last_event):
+        # `serve` drops the payload: the model and threshold it was made for still serve.
+        if tpl is None or tpl.state is not state or tpl.last_event is not last_event or (
+                tpl.mode is not mode and tpl.mode != mode):
             tpl = slot.payload = StatePayload(slot.name, state, mode, threshold, slot.model,
                                               last_event)
         if tpl.ok:
-            payload = tpl.render(
-                orjson.dumps(rounded),
-                orjson.dumps(round_to(score / threshold, 3)) if threshold > 0 else b"null",
-                self.time_json(end))
+            payload = tpl.render(numbers[1][j], numbers[2][j], self.time_json(end))
         else:
             payload = to_json({"asset": slot.name, "state": state, "mode": mode,
                                "score": rounded, "score_ratio": ratio(score, threshold),
@@ -302,124 +359,6 @@ class Emitter:
                                                 scores_topic)
         self._slot_ids[name] = id(rt)
         return slot
-
-    def _detect(self, rt: AssetRuntime, start: float, end: float, mode: str, bundle: Bundle,
-                score: float, sq: np.ndarray) -> None:
-        """The detector step of a window that can change something, and its events."""
-        meta = bundle.meta
-        tr = rt.detector.step(score, meta.threshold, meta.clear_threshold)
-        if rt.suspects:
-            self._suspects_recover(rt, score, meta.clear_threshold, end)
-        if tr is Transition.RAISED and self._drifting(rt, start, end, score, meta, sq):
-            tr = None
-        state = rt.detector.state
-        # The escalation tracker sees every window's band (the raise rule's evidence);
-        # the leading channels are worked out only while raised.
-        lead = leading_channels(meta.feature_names, sq) \
-            if tr is not None or state is State.ANOMALOUS else frozenset()
-        rt.escalation.observe(severity_for(score, meta.threshold), lead)
-        if tr is not None:
-            self._transition(rt, tr, start, end, mode, bundle, score, sq, lead)
-        elif state is State.ANOMALOUS:
-            esc = rt.escalation.step()
-            if esc is not None:
-                self._escalated(rt, esc, start, end, mode, score, meta, bundle.model_ref, sq)
-
-    def _drifting(self, rt: AssetRuntime, start: float, end: float, score: float,
-                  meta: BundleMeta, sq: np.ndarray) -> bool:
-        """A raise that one drifting channel alone explains: the signature of a sensor,
-        not of the machine. Say so once, and do not raise the machine for it."""
-        hist = rt.sq_history
-        earlier = hist[0] if len(hist) == hist.maxlen else None
-        top, share = dominant_channel(meta.feature_names, sq)
-        drift = top if top in rt.suspects and share >= ALONE_SHARE else \
-            drifting_channel(meta.feature_names, sq, meta.clear_threshold, earlier,
-                             rt.cfg.level_channels)
-        if drift is None:
-            return False
-        rt.detector.reset()
-        if drift not in rt.suspects:
-            self._suspect_event(rt, drift, True, start, end, score, meta, sq)
-        rt.suspects[drift] = 0
-        return True
-
-    def _transition(self, rt: AssetRuntime, tr: Transition, start: float, end: float,
-                    mode: str, bundle: Bundle, score: float, sq: np.ndarray,
-                    lead: frozenset[str]) -> None:
-        meta = bundle.meta
-        base = {"asset": rt.cfg.name, "mode": mode,
-                "window": {"start": self.time(start), "end": self.time(end)},
-                "score": round(score, 6), "threshold": meta.threshold,
-                "score_ratio": ratio(score, meta.threshold),
-                "clear_threshold": meta.clear_threshold, "model": bundle.model_ref}
-        if tr is Transition.RAISED:
-            rt.raised_at = end
-            rt.raised_window = (start, end)
-            sev = rt.escalation.start(lead)
-            data = {**base, "severity": sev.value,
-                    "contributors": top_contributors(meta.feature_names, sq),
-                    "sequence": None}
-            self.event(rt, EventType.ANOMALY_RAISED, end, data, Kind.ANOMALY,
-                       id_key=f"{start:.3f}")
-        elif tr is Transition.CLEARED:
-            data = {**base, "peak_score": round(rt.detector.peak_score, 6),
-                    "raised_at": rfc3339(rt.raised_at) if rt.raised_at else None,
-                    "duration_s": round(end - rt.raised_at, 3) if rt.raised_at else None,
-                    "sequence": None}
-            self.event(rt, EventType.ANOMALY_CLEARED, end, data, Kind.ANOMALY,
-                       id_key=f"{start:.3f}")
-            rt.raised_at = None
-            rt.escalation.stop()
-
-    def _suspects_recover(self, rt: AssetRuntime, score: float, clear_threshold: float,
-                          end: float) -> None:
-        """Suspect channels recover after `clear_m` consecutive normal windows."""
-        if score >= clear_threshold:
-            for ch in rt.suspects:
-                rt.suspects[ch] = 0
-            return
-        for ch in list(rt.suspects):
-            rt.suspects[ch] += 1
-            if rt.suspects[ch] >= rt.cfg.detector.clear_m:
-                del rt.suspects[ch]
-                self._suspect_event(rt, ch, False, end, end, score, None, None)
-
-    def _suspect_event(self, rt: AssetRuntime, channel: str, suspect: bool, start: float,
-                       end: float, score: float, meta: BundleMeta | None,
-                       sq: np.ndarray | None) -> None:
-        """`sensor.fault` (reason `suspect_drift`) for a channel whose drift alone explains
-        the anomaly, `sensor.recovered` when the asset is back to normal."""
-        unit = next((c.unit for c in rt.cfg.channels if c.name == channel), "")
-        data: dict[str, Any] = {"asset": rt.cfg.name, "channel": channel, "mode": rt.mode,
-                                "reasons": ["suspect_drift"], "unit": unit,
-                                "sequence": None,
-                                "window": {"start": self.time(start), "end": self.time(end)}}
-        if meta is not None and sq is not None:
-            data["detail"] = {"score": round(score, 6), "threshold": meta.threshold,
-                              "contributors": top_contributors(meta.feature_names, sq)}
-        self.metrics.sensor_fault.labels(rt.cfg.name, channel).set(1 if suspect else 0)
-        etype = EventType.SENSOR_FAULT if suspect else EventType.SENSOR_RECOVERED
-        self.event(rt, etype, end, data, Kind.EVENT, id_key=f"{channel}|suspect|{start:.3f}")
-
-    def _escalated(self, rt: AssetRuntime, esc: Escalated, start: float, end: float,
-                   mode: str, score: float, meta: BundleMeta, model: dict[str, Any],
-                   sq: np.ndarray) -> None:
-        """`anomaly.escalated`: a raised asset got worse or changed character."""
-        data = {"asset": rt.cfg.name, "mode": mode,
-                "window": {"start": self.time(start), "end": self.time(end)},
-                "score": round(score, 6), "threshold": meta.threshold,
-                "score_ratio": ratio(score, meta.threshold),
-                "clear_threshold": meta.clear_threshold, "model": model,
-                "reason": esc.reason.value, "severity": esc.severity.value,
-                "previous_severity": esc.previous_severity.value,
-                "channels": sorted(esc.channels),
-                "previous_channels": sorted(esc.previous_channels),
-                "contributors": top_contributors(meta.feature_names, sq),
-                "raised_at": rfc3339(rt.raised_at) if rt.raised_at else None,
-                "sequence": None}
-        self.event(rt, EventType.ANOMALY_ESCALATED, end, data, Kind.ANOMALY,
-                   id_key=f"{start:.3f}")
-
 
 def reset_detector(rt: AssetRuntime) -> None:
     """Windows scored in an old mode must not count toward a raise in the new one."""

@@ -3,19 +3,21 @@
 `Scorer.scores(items)` scores every window handed to it: the feature rows gathered into
 each model's inputs, standardised by each model's scaler, reconstructed (models in a
 batched group in one onnxruntime call per group, the rest one by one), and the squared
-errors and their mean returned per window. What the gathering, the scalers and the runs
-need is planned once per sequence of (model, feature positions) and kept while the
-models stay (the same assets close windows tick after tick). A batched call that
-raises falls back to each model's own run; a model that raises fails its windows only.
-The arithmetic is `Bundle.score`'s, row by row.
+errors and their mean returned by position (`Scored`), beside each model's threshold.
+What the gathering, the scalers and the runs need is planned once per sequence of
+(model, feature positions) and kept while the models stay (the same assets close
+windows tick after tick). A batched call that raises falls back to each model's own
+run; a model that raises fails its windows only. The arithmetic is `Bundle.score`'s, row by row.
 """
 
 from __future__ import annotations
 
 import logging
+import math
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from operator import itemgetter
 
 import numpy as np
 
@@ -24,10 +26,41 @@ from agent.ops.logs import kv
 from agent.ops.metrics import Metrics
 from agent.pipeline.batched import BatchedModels
 
+_ROW, _BUNDLE, _INDEX = itemgetter(1), itemgetter(2), itemgetter(3)
+
 # One window to score: (its key, its full feature row, the model, the model's positions
-# in the row). Results come back by key.
+# in the row). Results come back by the item's position (`Scored`).
 Item = tuple[int, np.ndarray, Bundle, np.ndarray]
-Result = tuple[float, np.ndarray, Bundle]
+
+
+@dataclass(eq=False, slots=True)
+class Scored:
+    """What the scorer found for a sequence of items, by position in it: each window's
+    score (the mean squared error), its squared errors (a row of one matrix per group)
+    and its model's threshold; `ok` is None when every item was scored, else False at
+    the items whose model failed (their score and errors are placeholders)."""
+
+    score: list[float]
+    sq: list[np.ndarray]
+    threshold: np.ndarray
+    ok: list[bool] | None = None
+
+    @classmethod
+    def empty(cls, n: int) -> Scored:
+        """n items, none scored yet (`put` fills them)."""
+        return cls([math.nan] * n, [_NO_ERRORS] * n, np.full(n, math.nan), [False] * n)
+
+    def put(self, at: Sequence[int], part: Scored) -> None:
+        """`part`, the answer for the items at positions `at`, into this."""
+        assert self.ok is not None
+        for j, i in enumerate(at):
+            self.score[i] = part.score[j]
+            self.sq[i] = part.sq[j]
+            self.threshold[i] = part.threshold[j]
+            self.ok[i] = part.ok is None or part.ok[j]
+
+
+_NO_ERRORS = np.empty(0)
 
 
 @dataclass(eq=False, slots=True)
@@ -42,6 +75,7 @@ class _Plan:
     index: np.ndarray | None
     mean: np.ndarray
     scale: np.ndarray
+    threshold: np.ndarray  # each row's model's
     runs: list[tuple[int, slice | np.ndarray, np.ndarray]]
     alone: list[int]
 
@@ -54,7 +88,8 @@ class Scorer:
         self.metrics = metrics
         self.log = logger
         self._all_bundles = all_bundles
-        self._plans: dict[tuple[int, ...], _Plan] = {}
+        # Per sequence of (model, positions): the positions of each width and its plan.
+        self._groups: dict[tuple[int, ...], list[tuple[list[int], _Plan]]] = {}
         self.batched: BatchedModels
         self._stale = False
         self.rebuild()
@@ -64,49 +99,58 @@ class Scorer:
         bundles = self._all_bundles()
         self.batched = BatchedModels(bundles, self.log)
         self._stale = False
-        self._plans.clear()
+        self._groups.clear()
         if self.batched.n_models:
             self.log.info(kv("batched inference", models=self.batched.n_models,
                              groups=len(self.batched.groups), of=len(bundles)))
 
-    def scores(self, items: Sequence[Item], on_error: Callable[[int, str], None]
-               ) -> dict[int, Result]:
-        """(score, squared errors, model) of every item, by key. `on_error(key, detail)`
-        is told of each window whose model failed (left out of the result); `detail` is
-        the error for a model's first failed window of the tick, "" for the rest."""
+    def scores(self, items: Sequence[Item], on_error: Callable[[int, str], None]) -> Scored:
+        """Score, squared errors and threshold of every item, by position. `on_error(key,
+        detail)` is told of each window whose model failed (`ok` False there); `detail`
+        is the error for a model's first failed window of the tick, "" for the rest."""
         t1 = time.perf_counter()
-        results: dict[int, Result] = {}
-        by_width: dict[int, list[Item]] = {}
-        for it in items:
-            by_width.setdefault(it[3].size, []).append(it)
-        for group in by_width.values():
-            plan = self._plan(group)
-            if plan.index is not None:
-                x = np.stack([it[1] for it in group])[:, plan.index]
-            else:
-                x = np.stack([it[1][it[3]] for it in group])
-            z = ((x - plan.mean) / plan.scale).astype(np.float32)
-            recon = np.empty_like(z)
-            alone = list(plan.alone)
-            for gi, pos, slots in plan.runs:
-                try:
-                    recon[pos] = self.batched.groups[gi].run(z[pos], slots)
-                except Exception as exc:  # the models' own runs decide which asset fails
-                    self.log.error(kv("batched inference failed; running the models one by "
-                                      "one", n=len(slots), error=str(exc)[:200]))
-                    alone.extend(np.arange(len(group))[pos].tolist())
-            ok = np.ones(len(group), dtype=bool)
-            if alone:
-                self._run_alone(sorted(alone), plan.bundles, group, z, recon, ok, on_error)
-            err = (z - recon).astype(np.float64) ** 2
-            scores = err.mean(axis=1).tolist()
-            for j, it in enumerate(group):
-                if ok[j]:
-                    results[it[0]] = (scores[j], err[j], it[2])
+        bundles = list(map(_BUNDLE, items))
+        indices = list(map(_INDEX, items))
+        key = (*map(id, bundles), *map(id, indices))
+        groups = self._groups.get(key)
+        if groups is None:
+            groups = self._group(key, items, bundles, indices)
+        if len(groups) == 1:
+            out = self._score(groups[0][1], items, on_error)
+        else:
+            out = Scored.empty(len(items))
+            for at, plan in groups:
+                out.put(at, self._score(plan, [items[j] for j in at], on_error))
         self.metrics.inference_seconds.observe(time.perf_counter() - t1)
         if self._stale:  # after the timing: a rebuild is not this tick's inference
             self.rebuild()
-        return results
+        return out
+
+    def _score(self, plan: _Plan, group: Sequence[Item],
+               on_error: Callable[[int, str], None]) -> Scored:
+        """The items of one width, as `plan` says."""
+        if plan.index is not None:  # rows of one size: np.array stacks them fastest
+            x = np.array(list(map(_ROW, group)))[:, plan.index]
+        else:
+            x = np.stack([it[1][it[3]] for it in group])
+        z = ((x - plan.mean) / plan.scale).astype(np.float32)
+        recon = np.empty_like(z)
+        alone = list(plan.alone)
+        for gi, pos, slots in plan.runs:
+            try:
+                recon[pos] = self.batched.groups[gi].run(z[pos], slots)
+            except Exception as exc:  # the models' own runs decide which asset fails
+                self.log.error(kv("batched inference failed; running the models one by "
+                                  "one", n=len(slots), error=str(exc)[:200]))
+                alone.extend(np.arange(len(group))[pos].tolist())
+        ok = None
+        if alone:
+            okm = np.ones(len(group), dtype=bool)
+            self._run_alone(sorted(alone), plan.bundles, group, z, recon, okm, on_error)
+            if not okm.all():
+                ok = okm.tolist()
+        err = (z - recon).astype(np.float64) ** 2
+        return Scored(err.mean(axis=1).tolist(), list(err), plan.threshold, ok)
 
     def _run_alone(self, alone: Sequence[int], bundles: Sequence[Bundle], group: Sequence[Item],
                    z: np.ndarray, recon: np.ndarray, ok: np.ndarray,
@@ -127,14 +171,25 @@ class Scorer:
                 ok[j] = False
                 on_error(group[j][0], failed[id(b)])
 
-    def _plan(self, group: Sequence[Item]) -> _Plan:
-        """How to score `group`'s rows together, remembered while their models stay."""
-        key = tuple([id(it[2]) for it in group] + [id(it[3]) for it in group])
-        plan = self._plans.get(key)
-        if plan is not None:
-            return plan
-        bs = [it[2] for it in group]
-        indices = [it[3] for it in group]
+    def _group(self, key: tuple[int, ...], items: Sequence[Item], bundles: list[Bundle],
+               indices: list[np.ndarray]) -> list[tuple[list[int], _Plan]]:
+        """The items' positions by how many features their models take, each with its
+        plan, remembered while their models stay (`key`: the items' models and
+        positions)."""
+        by_width: dict[int, list[int]] = {}
+        for j, ix in enumerate(indices):
+            by_width.setdefault(ix.size, []).append(j)
+        groups = [(at, self._plan([items[j] for j in at], [bundles[j] for j in at],
+                                  [indices[j] for j in at]))
+                  for at in by_width.values()]
+        if len(self._groups) > 16:
+            self._groups.clear()
+        self._groups[key] = groups
+        return groups
+
+    def _plan(self, group: Sequence[Item], bs: list[Bundle], indices: list[np.ndarray]
+              ) -> _Plan:
+        """How to score `group`'s rows together (one width of features)."""
         first = indices[0].tobytes()
         size = group[0][1].size
         same = all(i.tobytes() == first for i in indices[1:]) and \
@@ -151,13 +206,10 @@ class Scorer:
                 js, slots = runs.setdefault(got[0], ([], []))
                 js.append(j)
                 slots.append(got[1])
-        plan = _Plan(bs, indices, indices[0] if same else None,
+        return _Plan(bs, indices, indices[0] if same else None,
                      np.stack([b.meta.scaler_mean for b in bs]),
                      np.stack([b.meta.scaler_scale for b in bs]),
+                     np.array([b.meta.threshold for b in bs], dtype=np.float64),
                      [(gi, slice(None) if len(js) == len(bs) else np.asarray(js, np.int64),
                        np.asarray(slots, np.int64)) for gi, (js, slots) in runs.items()],
                      alone)
-        if len(self._plans) > 16:
-            self._plans.clear()
-        self._plans[key] = plan
-        return plan

@@ -3,10 +3,12 @@
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from enum import IntEnum
 from typing import Any
 
+import numpy as np
 import orjson
 
 from agent.core.events import EventType
@@ -82,6 +84,37 @@ def round_to(x: float, ndigits: int) -> float:
         if d < -err:
             return f / scale
     return round(x, ndigits)
+
+
+def round_many(x: np.ndarray, ndigits: int) -> list[float]:
+    """`[round_to(v, ndigits) for v in x]` (so `round(v, ndigits)`) for a float64 array,
+    the sure cases in array operations (IEEE arithmetic, the same as Python's floats)."""
+    scale = _POW10[ndigits]
+    with np.errstate(all="ignore"):  # NaN and infinities go to `round` below
+        y = x * scale
+        f = np.floor(y)
+        d = (y - f) - 0.5
+        err = y * _REL_ERR
+        up = d > err
+        out = (np.where(up, f + 1.0, f) / scale).tolist()
+        unsure = ~((y > 0.0) & (y < _EXACT_BELOW) & (up | (d < -err)))
+    if unsure.any():
+        for i in np.flatnonzero(unsure).tolist():
+            out[i] = round(float(x[i]), ndigits)
+    return out
+
+
+def dumps_each(values: Sequence[float]) -> list[bytes]:
+    """`[orjson.dumps(v) for v in values]` for floats (and None), in one call: orjson
+    writes a float in a list as it writes it alone, and none has a comma."""
+    if not values:
+        return []
+    return orjson.dumps(values)[1:-1].split(b",")
+
+
+def ratio(score: float, threshold: float) -> float | None:
+    """The score relative to the threshold, as people read it (1.0 = at the threshold)."""
+    return round(score / threshold, 3) if threshold > 0 else None
 
 
 class StatePayload:

@@ -32,7 +32,6 @@ asset that has had work fails).
 from __future__ import annotations
 
 import logging
-import math
 import time
 from collections.abc import Callable, Mapping, Sequence
 from typing import Any, Protocol, TypeVar
@@ -53,7 +52,7 @@ from agent.ops.metrics import Metrics
 from agent.pipeline.emit import AssetMetrics, Emitter, TickStats
 from agent.pipeline.featurize import feature_rows
 from agent.pipeline.health_batch import Prejudged
-from agent.pipeline.infer import Item, Result, Scorer
+from agent.pipeline.infer import Item, Scored, Scorer
 from agent.pipeline.judge import Judge, Pending
 from agent.pipeline.messages import OutMessage
 from agent.pipeline.runtime import AssetRuntime
@@ -384,29 +383,15 @@ class Pipeline:
                 self._failed(rt, "features", exc)
         return items
 
-    def _detect(self, items: list[Item], pending: list[Pending],
-                results: dict[int, Result]) -> None:
+    def _detect(self, items: list[Item], pending: list[Pending], got: Scored) -> None:
         """Step detectors in window order, so an asset's windows are judged in time
-        order."""
-        failed = self._failed_now
-        step = self.emit.step
-        for key, *_ in items:
-            got = results.get(key)
-            if got is None:
-                continue
-            p = pending[key]
-            rt = p.rt
-            if failed and rt.cfg.name in failed:
-                continue
-            score, sq, bundle = got
-            if not math.isfinite(score):
-                self._skip(rt, "model_error")
-                continue
-            try:
-                w = p.w
-                step(rt, w.start, w.end, p.mode, bundle, score, sq)
-            except Exception as exc:
-                self._failed(rt, "detector", exc)
+        order (`Emitter.scored`)."""
+        self.emit.scored([pending[it[0]] for it in items], [it[2] for it in items], got,
+                         self._failed_now, self._model_error,
+                         lambda rt, exc: self._failed(rt, "detector", exc))
+
+    def _model_error(self, rt: AssetRuntime) -> None:
+        self._skip(rt, "model_error")
 
     def _contained(self, todo: Sequence[T], rt_of: Callable[[T], AssetRuntime], stage: str,
                    work: Callable[[Sequence[T]], None]) -> None:
@@ -439,18 +424,26 @@ class Pipeline:
 
         self._contained(todo, lambda p: p.rt, "features", work)
 
-    def _scores(self, items: list[Item], pending: list[Pending]) -> dict[int, Result]:
-        """The scorer's results by key (position in `pending`), contained per asset."""
+    def _scores(self, items: list[Item], pending: list[Pending]) -> Scored:
+        """The scorer's answer for `items`, contained per asset: the items of an asset
+        whose inference raised are not `ok`."""
         def model_error(key: int, detail: str) -> None:
             rt = pending[key].rt
             if detail:
                 self.log.error(kv("model failed", asset=rt.cfg.name, error=detail))
-            self._skip(rt, "model_error")
+            self._model_error(rt)
 
-        results: dict[int, Result] = {}
+        parts: list[tuple[Sequence[Item], Scored]] = []
         self._contained(items, lambda it: pending[it[0]].rt, "inference",
-                        lambda part: results.update(self.scorer.scores(part, model_error)))
-        return results
+                        lambda part: parts.append((part, self.scorer.scores(part,
+                                                                            model_error))))
+        if len(parts) == 1 and parts[0][0] is items:
+            return parts[0][1]
+        out = Scored.empty(len(items))  # asset by asset: each part to its positions
+        at = {it[0]: j for j, it in enumerate(items)}
+        for part, got in parts:
+            out.put([at[it[0]] for it in part], got)
+        return out
 
     def status(self) -> dict[str, Any]:
         """Per-asset status for `/status` and `watchkeep status`."""
