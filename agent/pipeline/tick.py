@@ -44,6 +44,7 @@ from agent.core.events import rfc3339
 from agent.core.features import WorkArrays
 from agent.core.limits import ZoneLimits
 from agent.core.timebase import Step
+from agent.core.windows.assembler import AssembleResult
 from agent.core.windows.closed import ClosedWindow
 from agent.ingest.buffers import AssetInbox, Buffers, close_inboxes
 from agent.models.bundle import Bundle
@@ -95,6 +96,11 @@ class Pipeline:
         self.observes = observes
         self._m = {rt.cfg.name: AssetMetrics.of(metrics, rt.cfg.name) for rt in runtimes}
         self._m_at = [self._m[rt.cfg.name] for rt in runtimes]
+        self._closed_at = [m.closed for m in self._m_at]
+        # Per asset, fixed by its layout: whether its windows have health or modes to
+        # judge (`_judge_windows`), and whether it has channels that can go stale.
+        self._judged = [bool(rt.layout.checked) or rt.modes is not None for rt in runtimes]
+        self._stale_at = [bool(rt.layout.stale_channels) for rt in runtimes]
         self.emit = Emitter(cfg, metrics, logger, self._m)
         self._work = WorkArrays()  # the feature passes' reusable arrays (pipeline thread)
         self.judge = Judge(metrics, logger, buffers, self.emit, cfg.ingest.startup_grace_s)
@@ -244,58 +250,91 @@ class Pipeline:
 
     def _cut_and_judge(self, due: list[int], now: float, stats: TickStats) -> list[Pending]:
         """Cut every due window (one call for all assets), count what the cut found, and
-        judge each window's health and mode."""
-        runtimes = self.runtimes
+        judge each window's health and mode: here for an asset with nothing to judge but
+        completeness, in `_judge_windows` for the rest (their places kept in order)."""
+        runtimes, judged, closed = self.runtimes, self._judged, self._closed_at
         notes: list[tuple[int, list[tuple[int, Step]]]] = []
         results, lates = close_inboxes([self._inboxes[ai] for ai in due], now, notes)
-        judge = self.judge
+        failed = self._failed_now
+        pending: list[Pending | None] = []
         wins: list[tuple[AssetRuntime, ClosedWindow]] = []
+        at: list[int] = []  # where each of `wins` goes in `pending`
+        n_closed = 0
         for ai, res, late, (ahead, steps) in zip(due, results, lates, notes, strict=True):
-            if late:
-                self._m_at[ai].late.inc(late)
-            if ahead:
-                self._ahead.inc(ahead)
             rt = runtimes[ai]
-            if steps:
-                self._clock_steps(rt, steps)
-            if res.error is not None:
-                self._failed(rt, "windows", res.error)
-                with self._inboxes[ai].lock:  # start afresh on the next samples
-                    rt.assembler.reset()
-                continue
-            try:
-                if rt.layout.stale_channels and self.judge_stale and (
-                        self._stale_held[ai]
-                        or self._stale_wake[ai] <= now + STALE_MARGIN_S):
-                    # Before the wake time no channel can have turned stale: judging
-                    # then would change nothing (`Judge.stale`).
-                    self._stale_wake[ai] = judge.stale(rt, ai, now)
-                    bufs = self.buffers.by_asset[ai]
-                    self._stale_held[ai] = any(rt.health[ci].stale or not bufs[ci].last_arrival
-                                               for ci in rt.layout.stale_channels)
-                if res.empty_skipped:
-                    self._skip(rt, "no_data", res.empty_skipped)
-                    rt.empty_streak += res.empty_skipped
-                    if not res.windows:
-                        self._set_coverage(rt, 0.0)
-            except Exception as exc:
-                self._failed(rt, "health", exc)
+            if (late or ahead or steps or res.error is not None or res.empty_skipped
+                    or self._stale_at[ai]) and not self._cut_notes(ai, rt, res, late, ahead,
+                                                                   steps, now):
                 continue
             windows = res.windows
-            if windows:
-                self._m_at[ai].closed.inc(len(windows))
-                if len(windows) == 1:
-                    wins.append((rt, windows[0]))
-                else:
-                    wins.extend((rt, w) for w in windows)
-        stats.windows_closed += len(wins)
-        return self._judge_windows(wins)
+            if not windows:
+                continue
+            n_closed += len(windows)
+            closed[ai].inc(len(windows))
+            if judged[ai]:
+                for w in windows:
+                    wins.append((rt, w))
+                    at.append(len(pending))
+                    pending.append(None)
+            elif not (failed and rt.cfg.name in failed):
+                for w in windows:
+                    rt.empty_streak = 0
+                    cov = w.min_coverage
+                    if cov != rt.shown_coverage:
+                        self._set_coverage(rt, cov)
+                    else:
+                        rt.coverage = cov
+                    pending.append(Pending(rt, w, rt.mode, (), None if w.complete
+                                           else "incomplete"))
+        stats.windows_closed += n_closed
+        if wins:
+            self._judge_windows(wins, pending, at)
+        if failed or wins:  # an asset failing at its second window drops its first too
+            return [p for p in pending
+                    if p is not None and not (failed and p.rt.cfg.name in failed)]
+        return pending  # type: ignore[return-value]  # no place left empty
 
-    def _judge_windows(self, wins: list[tuple[AssetRuntime, ClosedWindow]]) -> list[Pending]:
-        """Sensor health (quiet channels judged together first) and modes of every
-        closed window."""
+    def _cut_notes(self, ai: int, rt: AssetRuntime, res: AssembleResult, late: int, ahead: int,
+                   steps: list[tuple[int, Step]], now: float) -> bool:
+        """What the cut found besides windows (late and refused samples, clock steps, an
+        error, windows without data) and the asset's staleness; whether its windows go
+        on through the tick."""
+        if late:
+            self._m_at[ai].late.inc(late)
+        if ahead:
+            self._ahead.inc(ahead)
+        if steps:
+            self._clock_steps(rt, steps)
+        if res.error is not None:
+            self._failed(rt, "windows", res.error)
+            with self._inboxes[ai].lock:  # start afresh on the next samples
+                rt.assembler.reset()
+            return False
+        try:
+            if self._stale_at[ai] and self.judge_stale and (
+                    self._stale_held[ai] or self._stale_wake[ai] <= now + STALE_MARGIN_S):
+                # Before the wake time no channel can have turned stale: judging
+                # then would change nothing (`Judge.stale`).
+                self._stale_wake[ai] = self.judge.stale(rt, ai, now)
+                bufs = self.buffers.by_asset[ai]
+                self._stale_held[ai] = any(rt.health[ci].stale or not bufs[ci].last_arrival
+                                           for ci in rt.layout.stale_channels)
+            if res.empty_skipped:
+                self._skip(rt, "no_data", res.empty_skipped)
+                rt.empty_streak += res.empty_skipped
+                if not res.windows:
+                    self._set_coverage(rt, 0.0)
+        except Exception as exc:
+            self._failed(rt, "health", exc)
+            return False
+        return True
+
+    def _judge_windows(self, wins: list[tuple[AssetRuntime, ClosedWindow]],
+                       pending: list[Pending | None], at: list[int]) -> None:
+        """Sensor health (quiet channels judged together first) and modes of the closed
+        windows of assets with checks or modes, each into its place `at` in `pending`
+        (left None when its asset fails)."""
         judge = self.judge
-        pending: list[Pending] = []
         failed = self._failed_now
         try:
             pre: Prejudged | None = judge.prejudge(wins, failed)
@@ -310,17 +349,10 @@ class Pipeline:
                 self._set_coverage(rt, cov)
             else:
                 rt.coverage = cov
-            if not rt.layout.checked and rt.modes is None:  # nothing to judge but completeness
-                pending.append(Pending(rt, w, rt.mode, (), None if w.complete
-                                       else "incomplete"))
-                continue
             try:
-                pending.append(judge.window(rt, w, pre, wi))
+                pending[at[wi]] = judge.window(rt, w, pre, wi)
             except Exception as exc:
                 self._failed(rt, "health", exc)
-        if failed:  # an asset failing at its second window drops its first too
-            pending = [p for p in pending if p.rt.cfg.name not in failed]
-        return pending
 
     def _account(self, due: list[int]) -> None:
         """After the tick's work: which assets work again, and whether all fail."""
