@@ -33,7 +33,7 @@ class Detector:
     """One asset's detector; `step` is called once per scored window, in time order."""
 
     __slots__ = ("_below", "_n_above", "_quiet_run", "_recent", "_span", "_stride", "params",
-                 "peak_score", "state")
+                 "peak_score", "settled", "state")
 
     def __init__(self, params: DetectorParams) -> None:
         self.params = params
@@ -46,8 +46,10 @@ class Detector:
         self._below = 0
         self.peak_score = 0.0
         # How many windows in a row went through `quiet` since `_recent` last changed
-        # otherwise: once it is full of them, another changes nothing.
+        # otherwise: once it is full of them, another changes nothing, and `settled`
+        # says so (a caller may leave out `quiet` then).
         self._quiet_run = 0
+        self.settled = False
 
     def _rises(self, above: bool) -> bool:
         """Append this window's verdict; whether k of the last n (strided) are above."""
@@ -69,6 +71,7 @@ class Detector:
         """Feed one window's score; return the transition it causes, if any."""
         above = score > threshold
         self._quiet_run = 0
+        self.settled = False
         if self.state is State.NORMAL:
             if self._rises(above):
                 self.state = State.ANOMALOUS
@@ -96,6 +99,7 @@ class Detector:
         if self._quiet_run == self._span:
             return  # `_recent` is all False and full: as it was
         self._quiet_run += 1
+        self.settled = self._quiet_run == self._span
         recent = self._recent
         if self._n_above and len(recent) == recent.maxlen and recent[0]:
             self._n_above -= 1  # strided, `_n_above` stays 0 (`_rises` sums instead)
@@ -109,6 +113,7 @@ class Detector:
         self._below = 0
         self.peak_score = 0.0
         self._quiet_run = 0
+        self.settled = False
 
 
 def run_detector(scores: np.ndarray, threshold: float, clear_threshold: float,

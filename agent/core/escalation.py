@@ -73,8 +73,8 @@ class Escalated:
 class EscalationTracker:
     """One asset's reference (what was last reported) and the recent windows."""
 
-    __slots__ = ("_quiet_run", "_recent", "_span", "channels", "k", "n", "seen", "severity",
-                 "stride")
+    __slots__ = ("_quiet_run", "_recent", "_span", "channels", "k", "n", "seen", "settled",
+                 "severity", "stride")
 
     def __init__(self, raise_k: int = 1, raise_n: int = 1, stride: int = 1) -> None:
         self.k = raise_k
@@ -83,8 +83,10 @@ class EscalationTracker:
         self._span = (raise_n - 1) * stride + 1
         self._recent: deque[tuple[int, frozenset[str]]] = deque(maxlen=self._span)
         # How many windows in a row went through `observe_quiet`: once `_recent` is full
-        # of them, another changes nothing.
+        # of them, another changes nothing, and `settled` says so (a caller may leave
+        # out `observe_quiet` then).
         self._quiet_run = 0
+        self.settled = False
         self.severity: Severity | None = None
         self.channels: frozenset[str] = frozenset()
         self.seen: frozenset[str] = frozenset()
@@ -98,6 +100,7 @@ class EscalationTracker:
         """Every scored window, raised or not (the raise rule's evidence)."""
         self._recent.append((_RANK[severity], channels))
         self._quiet_run = 0
+        self.settled = False
 
     def observe_quiet(self) -> None:
         """`observe` of a window in the lowest band with no leading channels (a score
@@ -105,6 +108,7 @@ class EscalationTracker:
         if self._quiet_run == self._span:
             return  # `_recent` is all _QUIET and full: as it was
         self._quiet_run += 1
+        self.settled = self._quiet_run == self._span
         self._recent.append(_QUIET)
 
     def start(self, channels: frozenset[str]) -> Severity:

@@ -66,7 +66,7 @@ class AnomalyStep:
         """A raise that one drifting channel alone explains: the signature of a sensor,
         not of the machine. Say so once, and do not raise the machine for it."""
         hist = rt.sq_history
-        earlier = hist[0] if len(hist) == hist.maxlen else None
+        earlier = hist[0][0][hist[0][1]] if len(hist) == hist.maxlen else None
         top, share = dominant_channel(meta.feature_names, sq)
         drift = top if top in rt.suspects and share >= ALONE_SHARE else \
             drifting_channel(meta.feature_names, sq, meta.clear_threshold, earlier,

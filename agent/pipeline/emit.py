@@ -28,8 +28,9 @@ from agent.models.bundle import Bundle
 from agent.ops.logs import kv
 from agent.ops.metrics import Metrics, PlainSeries
 from agent.pipeline.anomaly import AnomalyStep
-from agent.pipeline.infer import Scored
+from agent.pipeline.infer import Scored, SqRow
 from agent.pipeline.messages import (
+    SCORE_RATIO,
     Kind,
     OutMessage,
     StatePayload,
@@ -38,6 +39,11 @@ from agent.pipeline.messages import (
     round_many,
 )
 from agent.pipeline.runtime import AssetRuntime
+
+# Per window of a tick, the scores rounded to 6 digits and then their ratios to the
+# thresholds rounded to 3 (NaN: null), and each of those as JSON (`Emitter._numbers`).
+_Numbers = tuple[list[float], list[bytes]]
+_DIGITS = np.array([6, 3], dtype=np.int64)  # of the score, of its ratio
 
 
 class ScoredWindow(Protocol):
@@ -259,8 +265,12 @@ class Emitter:
         its detector and escalation tracker; the rest take `AnomalyStep.step`."""
         score, sqs, ok = got.score, got.sq, got.ok
         numbers = self._numbers(score, got.threshold)
-        get, isfinite, normal = self._slots.get, math.isfinite, State.NORMAL
+        get, normal = self._slots.get, State.NORMAL
+        plain = not self.publish_scores
+        rounded, js = numbers
+        n = len(score)
         counted = 0
+        last_end, end_json = math.nan, b""
         for j, p in enumerate(wins):
             if ok is not None and not ok[j]:
                 continue
@@ -268,15 +278,13 @@ class Emitter:
             if failed and rt.cfg.name in failed:
                 continue
             s = score[j]
-            if not isfinite(s):
+            if s - s != 0.0:  # not finite
                 on_skip(rt)
                 continue
             try:
                 slot = get(id(rt))
-                if slot is None or slot.rt is not rt:
-                    slot = self._slot(rt)
-                if slot.bundle is not bundles[j]:
-                    slot.serve(bundles[j])
+                if slot is None or slot.rt is not rt or slot.bundle is not bundles[j]:
+                    slot = self._serve(rt, bundles[j])
                 threshold = slot.threshold
                 slot.scored.value += 1.0
                 slot.score.value = s
@@ -289,41 +297,72 @@ class Emitter:
                 rt.last_window_end = end = w.end
                 rt.sq_history.append(sqs[j])
                 det = rt.detector
-                if det.state is normal and not s > threshold and threshold > 0 \
-                        and not rt.suspects:
-                    # Nothing can change: the detector cannot raise on a window not
-                    # above the threshold, no suspect waits to recover, and the window's
-                    # severity band is the lowest (its score is under the threshold).
+                if not (det.state is normal and not s > threshold and threshold > 0
+                        and not rt.suspects):
+                    self._loud(slot, rt, p, bundles[j], s, sqs[j], numbers, j)
+                    continue
+                # Nothing can change: the detector cannot raise on a window not above
+                # the threshold, no suspect waits to recover, and the window's severity
+                # band is the lowest (its score is under the threshold).
+                if not det.settled:  # once settled, `quiet` would change nothing
                     det.quiet()
-                    rt.escalation.observe_quiet()
-                    state = normal
+                esc = rt.escalation
+                if not esc.settled:
+                    esc.observe_quiet()
+                if rt.shown_anomalous != 0:
+                    slot.m.anomalous.set(0)
+                    rt.shown_anomalous = 0
+                tpl = slot.payload
+                if plain and tpl is not None and tpl.ok and tpl.state is normal and \
+                        tpl.last_event is rt.last_event and tpl.mode == p.mode:
+                    if end != last_end:  # windows of a tick mostly end together
+                        last_end, end_json = end, self.time_json(end)
+                    topic = slot.state_topic
+                    self.out.append(OutMessage(topic, b"".join((
+                        tpl.head, js[j], SCORE_RATIO, js[n + j], tpl.mid, end_json,
+                        tpl.tail)), Kind.STATE, 1, True, topic, slot.name, None, None,
+                        rounded[j], threshold))
                 else:
-                    self._anomaly.step(rt, w.start, end, p.mode, bundles[j], s, sqs[j])
-                    state = rt.detector.state  # a StrEnum: it serialises as its value
-                anomalous = 1 if state is State.ANOMALOUS else 0
-                if anomalous != rt.shown_anomalous:
-                    slot.m.anomalous.set(anomalous)
-                    rt.shown_anomalous = anomalous
-                self._state_message(slot, rt, end, p.mode, state, s, numbers, j)
+                    self._state_message(slot, rt, end, p.mode, normal, s, numbers, j)
             except Exception as exc:
                 on_error(rt, exc)
         self.stats.windows_scored += counted
 
+    def _serve(self, rt: AssetRuntime, bundle: Bundle) -> _AssetSlot:
+        """The asset's slot (made for a runtime not seen yet), serving `bundle`."""
+        slot = self._slots.get(id(rt))
+        if slot is None or slot.rt is not rt:
+            slot = self._slot(rt)
+        if slot.bundle is not bundle:
+            slot.serve(bundle)
+        return slot
+
+    def _loud(self, slot: _AssetSlot, rt: AssetRuntime, p: ScoredWindow, bundle: Bundle,
+              score: float, sq: SqRow, numbers: _Numbers, j: int) -> None:
+        """A window that can change something: the detector step and its events, then
+        its state message."""
+        w = p.w
+        self._anomaly.step(rt, w.start, w.end, p.mode, bundle, score, sq[0][sq[1]])
+        state = rt.detector.state  # a StrEnum: it serialises as its value
+        anomalous = 1 if state is State.ANOMALOUS else 0
+        if anomalous != rt.shown_anomalous:
+            slot.m.anomalous.set(anomalous)
+            rt.shown_anomalous = anomalous
+        self._state_message(slot, rt, w.end, p.mode, state, score, numbers, j)
+
     @staticmethod
-    def _numbers(score: list[float], threshold: np.ndarray
-                 ) -> tuple[list[float], list[bytes], list[bytes]]:
-        """Per window: its score rounded to 6 digits, that as JSON, and the JSON of its
-        ratio to the threshold rounded to 3 (null unless the threshold is positive)."""
+    def _numbers(score: list[float], threshold: np.ndarray) -> _Numbers:
+        """The windows' scores rounded to 6 digits, then their ratios to the thresholds
+        rounded to 3 (NaN, written as null, unless the threshold is positive); and each
+        as JSON."""
+        n = len(score)
         x = np.asarray(score, dtype=np.float64)
-        pos = threshold > 0
-        r = np.divide(x, threshold, out=np.full(x.shape, math.nan), where=pos)
-        rounded = round_many(x, 6)
-        ratios = round_many(r, 3)
-        return rounded, dumps_each(rounded), dumps_each(ratios)
+        r = np.divide(x, threshold, out=np.full(n, math.nan), where=threshold > 0)
+        rounded = round_many(np.concatenate((x, r)), np.repeat(_DIGITS, n))
+        return rounded, dumps_each(rounded)
 
     def _state_message(self, slot: _AssetSlot, rt: AssetRuntime, end: float, mode: str,
-                       state: State, score: float,
-                       numbers: tuple[list[float], list[bytes], list[bytes]], j: int) -> None:
+                       state: State, score: float, numbers: _Numbers, j: int) -> None:
         """The retained state message of a scored window (and its score telemetry)."""
         threshold = slot.threshold
         rounded = numbers[0][j]
@@ -335,7 +374,9 @@ class Emitter:
             tpl = slot.payload = StatePayload(slot.name, state, mode, threshold, slot.model,
                                               last_event)
         if tpl.ok:
-            payload = tpl.render(numbers[1][j], numbers[2][j], self.time_json(end))
+            js = numbers[1]
+            payload = b"".join((tpl.head, js[j], SCORE_RATIO, js[j + len(js) // 2], tpl.mid,
+                                self.time_json(end), tpl.tail))
         else:
             payload = to_json({"asset": slot.name, "state": state, "mode": mode,
                                "score": rounded, "score_ratio": ratio(score, threshold),

@@ -17,6 +17,7 @@ import math
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from itertools import repeat
 from operator import itemgetter
 
 import numpy as np
@@ -31,24 +32,26 @@ _ROW, _BUNDLE, _INDEX = itemgetter(1), itemgetter(2), itemgetter(3)
 # One window to score: (its key, its full feature row, the model, the model's positions
 # in the row). Results come back by the item's position (`Scored`).
 Item = tuple[int, np.ndarray, Bundle, np.ndarray]
+# One window's squared errors: row [1] of the matrix [0] (no array view made per window).
+SqRow = tuple[np.ndarray, int]
 
 
 @dataclass(eq=False, slots=True)
 class Scored:
     """What the scorer found for a sequence of items, by position in it: each window's
-    score (the mean squared error), its squared errors (a row of one matrix per group)
-    and its model's threshold; `ok` is None when every item was scored, else False at
+    score (the mean squared error), its squared errors (`SqRow`) and its model's
+    threshold; `ok` is None when every item was scored, else False at
     the items whose model failed (their score and errors are placeholders)."""
 
     score: list[float]
-    sq: list[np.ndarray]
+    sq: list[SqRow]
     threshold: np.ndarray
     ok: list[bool] | None = None
 
     @classmethod
     def empty(cls, n: int) -> Scored:
         """n items, none scored yet (`put` fills them)."""
-        return cls([math.nan] * n, [_NO_ERRORS] * n, np.full(n, math.nan), [False] * n)
+        return cls([math.nan] * n, [(_NO_ERRORS, 0)] * n, np.full(n, math.nan), [False] * n)
 
     def put(self, at: Sequence[int], part: Scored) -> None:
         """`part`, the answer for the items at positions `at`, into this."""
@@ -60,7 +63,7 @@ class Scored:
             self.ok[i] = part.ok is None or part.ok[j]
 
 
-_NO_ERRORS = np.empty(0)
+_NO_ERRORS = np.empty((1, 0))
 
 
 @dataclass(eq=False, slots=True)
@@ -150,7 +153,8 @@ class Scorer:
             if not okm.all():
                 ok = okm.tolist()
         err = (z - recon).astype(np.float64) ** 2
-        return Scored(err.mean(axis=1).tolist(), list(err), plan.threshold, ok)
+        return Scored(err.mean(axis=1).tolist(), list(zip(repeat(err), range(len(err)))),
+                      plan.threshold, ok)
 
     def _run_alone(self, alone: Sequence[int], bundles: Sequence[Bundle], group: Sequence[Item],
                    z: np.ndarray, recon: np.ndarray, ok: np.ndarray,

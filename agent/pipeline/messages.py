@@ -86,10 +86,14 @@ def round_to(x: float, ndigits: int) -> float:
     return round(x, ndigits)
 
 
-def round_many(x: np.ndarray, ndigits: int) -> list[float]:
-    """`[round_to(v, ndigits) for v in x]` (so `round(v, ndigits)`) for a float64 array,
-    the sure cases in array operations (IEEE arithmetic, the same as Python's floats)."""
-    scale = _POW10[ndigits]
+def round_many(x: np.ndarray, ndigits: int | np.ndarray) -> list[float]:
+    """`[round_to(v, n) ...]` (so `round(v, n)`) for each float64 `v` of `x` and `n` of
+    `ndigits` (3 or 6: one for all, or one per element), the sure cases in array
+    operations (IEEE arithmetic, the same as Python's floats)."""
+    nd = np.broadcast_to(np.asarray(ndigits, dtype=np.int64), x.shape)
+    if not ((nd == 6) | (nd == 3)).all():
+        raise ValueError("ndigits must be 3 or 6")
+    scale = np.where(nd == 6, 1e6, 1e3)
     with np.errstate(all="ignore"):  # NaN and infinities go to `round` below
         y = x * scale
         f = np.floor(y)
@@ -100,7 +104,7 @@ def round_many(x: np.ndarray, ndigits: int) -> list[float]:
         unsure = ~((y > 0.0) & (y < _EXACT_BELOW) & (up | (d < -err)))
     if unsure.any():
         for i in np.flatnonzero(unsure).tolist():
-            out[i] = round(float(x[i]), ndigits)
+            out[i] = round(float(x[i]), int(nd[i]))
     return out
 
 
@@ -110,6 +114,9 @@ def dumps_each(values: Sequence[float]) -> list[bytes]:
     if not values:
         return []
     return orjson.dumps(values)[1:-1].split(b",")
+
+
+SCORE_RATIO = b',"score_ratio":'  # what `StatePayload` writes between score and ratio
 
 
 def ratio(score: float, threshold: float) -> float | None:
@@ -161,5 +168,5 @@ class StatePayload:
 
     def render(self, score: bytes, ratio: bytes, window_end: bytes) -> bytes:
         """The payload for a window: its rounded score, ratio and end, each as JSON."""
-        return b"".join((self.head, score, b',"score_ratio":', ratio, self.mid, window_end,
+        return b"".join((self.head, score, SCORE_RATIO, ratio, self.mid, window_end,
                          self.tail))

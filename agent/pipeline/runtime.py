@@ -223,7 +223,7 @@ class AssetRuntime:
     # Per-feature squared errors of the last windows, as far back as the raise rule looks
     # (the drifting-sensor check compares the oldest with the newest); channels reported
     # as drifting sensors -> consecutive normal windows since.
-    sq_history: deque[np.ndarray] = field(default_factory=lambda: deque(maxlen=1))
+    sq_history: deque[tuple[np.ndarray, int]] = field(default_factory=lambda: deque(maxlen=1))
     suspects: dict[str, int] = field(default_factory=dict)
     sequence: int = 0  # moved only by `Emitter.message`
     last_score: float | None = None
