@@ -7,6 +7,8 @@ from __future__ import annotations
 import math
 from typing import Any
 
+import numpy as np
+import orjson
 from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
@@ -14,7 +16,7 @@ from agent.core.detector import Detector, DetectorParams, State
 from agent.core.escalation import EscalationTracker
 from agent.core.events import rfc3339, severity_for
 from agent.pipeline.emit import ratio, to_json
-from agent.pipeline.messages import StatePayload, round_to
+from agent.pipeline.messages import StatePayload, dumps_each, round_many, round_to
 
 
 def same(a: float, b: float) -> bool:
@@ -123,3 +125,76 @@ def test_quiet_windows_leave_what_step_and_observe_leave(levels: list[float], k:
             seen.append((tr, got, det.state, det._n_above, list(det._recent),
                          det.peak_score, list(esc._recent), esc.severity))
         assert seen[0] == seen[1]
+
+
+@settings(max_examples=400, deadline=None)
+@given(levels=st.lists(st.sampled_from([0.1, 0.9, 1.5, 3.0, 6.0]), max_size=60),
+       k=st.integers(1, 3), extra=st.integers(0, 3), m=st.integers(1, 3),
+       stride=st.integers(1, 3))
+def test_quiet_steps_left_out_once_settled_leave_what_step_and_observe_leave(
+        levels: list[float], k: int, extra: int, m: int, stride: int) -> None:
+    """As the emitter does: `quiet` / `observe_quiet` not called while `settled`, the
+    rest through `step` / `observe`: the same transitions, escalations and history as
+    every window through `step` / `observe`."""
+    thr, clear = 1.0, 0.8
+    params = DetectorParams(k, k + extra, m, stride)
+    dets = Detector(params), Detector(params)
+    escs = (EscalationTracker(k, k + extra, stride), EscalationTracker(k, k + extra, stride))
+    for score in levels:
+        seen = []
+        for quick, det, esc in zip((False, True), dets, escs, strict=True):
+            if quick and det.state is State.NORMAL and not score > thr:
+                if not det.settled:
+                    det.quiet()
+                if not esc.settled:
+                    esc.observe_quiet()
+                tr = None
+            else:
+                tr = det.step(score, thr, clear)
+                esc.observe(severity_for(score, thr), frozenset())
+            if tr is not None:
+                got: Any = esc.start(frozenset()) if det.state is State.ANOMALOUS else esc.stop()
+            else:
+                got = esc.step() if det.state is State.ANOMALOUS else None
+            seen.append((tr, got, det.state, det._n_above, list(det._recent),
+                         det.peak_score, list(esc._recent), esc.severity))
+        assert seen[0] == seen[1]
+
+
+def test_settled_means_a_quiet_step_changes_nothing() -> None:
+    """`settled` turns on once the history is all quiet, off at any other step."""
+    det, esc = Detector(DetectorParams(2, 3, 2, 2)), EscalationTracker(2, 3, 2)
+    for _ in range(5):  # a span of (3 - 1) * 2 + 1 windows
+        assert not det.settled and not esc.settled
+        det.quiet()
+        esc.observe_quiet()
+    assert det.settled and esc.settled
+    before = (list(det._recent), det._n_above, list(esc._recent))
+    det.quiet()
+    esc.observe_quiet()
+    assert (list(det._recent), det._n_above, list(esc._recent)) == before
+    det.step(0.1, 1.0, 0.8)
+    esc.observe(severity_for(0.1, 1.0), frozenset())
+    assert not det.settled and not esc.settled
+    det.reset()
+    assert not det.settled
+
+
+@settings(max_examples=500, deadline=None)
+@given(xs=st.lists(st.floats() | halfway(6) | halfway(3), max_size=40),
+       digits=st.lists(st.sampled_from([3, 6]), min_size=40, max_size=40))
+def test_round_many_is_round_of_each(xs: list[float], digits: list[int]) -> None:
+    """`round_many` of an array, one digit count for all or one per element: the same
+    floats as `round` of each."""
+    x = np.array(xs, dtype=np.float64)
+    nd = digits[:len(xs)]
+    assert all(same(a, round(v, n)) for a, v, n in zip(round_many(x, np.array(nd, np.int64)),
+                                                         xs, nd, strict=True))
+    assert all(same(a, round(v, 6)) for a, v in zip(round_many(x, 6), xs, strict=True))
+
+
+@settings(max_examples=300, deadline=None)
+@given(xs=st.lists(st.none() | st.floats() | halfway(6), max_size=30))
+def test_dumps_each_is_orjson_of_each(xs: list[float | None]) -> None:
+    """One orjson call split up: each value's bytes as orjson writes it alone."""
+    assert dumps_each(xs) == [orjson.dumps(v) for v in xs]
