@@ -30,7 +30,6 @@ from agent.ops.metrics import Metrics, PlainSeries
 from agent.pipeline.anomaly import AnomalyStep
 from agent.pipeline.infer import Scored, SqRow
 from agent.pipeline.messages import (
-    SCORE_RATIO,
     Kind,
     OutMessage,
     StatePayload,
@@ -318,10 +317,9 @@ class Emitter:
                     if end != last_end:  # windows of a tick mostly end together
                         last_end, end_json = end, self.time_json(end)
                     topic = slot.state_topic
-                    self.out.append(OutMessage(topic, b"".join((
-                        tpl.head, js[j], SCORE_RATIO, js[n + j], tpl.mid, end_json,
-                        tpl.tail)), Kind.STATE, 1, True, topic, slot.name, None, None,
-                        rounded[j], threshold))
+                    self.out.append(OutMessage(
+                        topic, tpl.fmt % (js[j], js[n + j], end_json), Kind.STATE, 1, True,
+                        topic, slot.name, None, None, rounded[j], threshold))
                 else:
                     self._state_message(slot, rt, end, p.mode, normal, s, numbers, j)
             except Exception as exc:
@@ -375,8 +373,7 @@ class Emitter:
                                               last_event)
         if tpl.ok:
             js = numbers[1]
-            payload = b"".join((tpl.head, js[j], SCORE_RATIO, js[j + len(js) // 2], tpl.mid,
-                                self.time_json(end), tpl.tail))
+            payload = tpl.render(js[j], js[j + len(js) // 2], self.time_json(end))
         else:
             payload = to_json({"asset": slot.name, "state": state, "mode": mode,
                                "score": rounded, "score_ratio": ratio(score, threshold),

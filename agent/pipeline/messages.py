@@ -126,17 +126,16 @@ def ratio(score: float, threshold: float) -> float | None:
 
 class StatePayload:
     """The retained state message of one asset as bytes, for one set of what changes
-    rarely (name, state, mode, threshold, model, last event): the JSON before the
-    score, between score and ratio, and after them up to and after the window's end,
-    rendered once; a window splices its score, ratio and end in (`render`). The bytes
+    rarely (name, state, mode, threshold, model, last event): the JSON around the
+    score, the ratio and the window's end, rendered once into one bytes format (`fmt`,
+    one object to read per window) into which a window puts those (`render`). The bytes
     are those of `orjson.dumps` of the state document (keys in the same order):
     orjson writes a dict as `{"key":value,...}`, each value as it writes it alone.
 
     `ok` is False when orjson cannot write one of the fixed parts (the document then
     goes through the json module, and so must the whole of it)."""
 
-    __slots__ = ("head", "last_event", "mid", "mode", "model", "ok", "state", "tail",
-                 "threshold")
+    __slots__ = ("fmt", "last_event", "mode", "model", "ok", "state", "threshold")
 
     def __init__(self, name: str, state: str, mode: str, threshold: float,
                  model: dict[str, Any], last_event: dict[str, Any] | None) -> None:
@@ -147,14 +146,15 @@ class StatePayload:
         self.last_event = last_event
         try:
             dumps = orjson.dumps
-            self.head = (b'{"asset":' + dumps(name) + b',"state":' + dumps(state)
-                         + b',"mode":' + dumps(mode) + b',"score":')
-            self.mid = b',"threshold":' + dumps(threshold) + b',"window_end":'
-            self.tail = (b',"model":' + dumps(model) + b',"last_event":' + dumps(last_event)
-                         + b"}")
+            head = (b'{"asset":' + dumps(name) + b',"state":' + dumps(state)
+                    + b',"mode":' + dumps(mode) + b',"score":')
+            mid = b',"threshold":' + dumps(threshold) + b',"window_end":'
+            tail = b',"model":' + dumps(model) + b',"last_event":' + dumps(last_event) + b"}"
+            self.fmt = b"%b".join(part.replace(b"%", b"%%")
+                                  for part in (head, SCORE_RATIO, mid, tail))
             self.ok = True
         except TypeError:
-            self.head = self.mid = self.tail = b""
+            self.fmt = b""
             self.ok = False
 
     def fits(self, state: str, mode: str, threshold: float, model: dict[str, Any],
@@ -168,5 +168,4 @@ class StatePayload:
 
     def render(self, score: bytes, ratio: bytes, window_end: bytes) -> bytes:
         """The payload for a window: its rounded score, ratio and end, each as JSON."""
-        return b"".join((self.head, score, SCORE_RATIO, ratio, self.mid, window_end,
-                         self.tail))
+        return self.fmt % (score, ratio, window_end)

@@ -198,3 +198,13 @@ def test_round_many_is_round_of_each(xs: list[float], digits: list[int]) -> None
 def test_dumps_each_is_orjson_of_each(xs: list[float | None]) -> None:
     """One orjson call split up: each value's bytes as orjson writes it alone."""
     assert dumps_each(xs) == [orjson.dumps(v) for v in xs]
+
+
+def test_a_percent_sign_in_the_fixed_parts_is_written_as_it_is() -> None:
+    """The payload's format escapes `%` in the name, mode and model."""
+    model = {"id": "m%s%b%%", "version": 1}
+    tpl = StatePayload("a%d", State.NORMAL, "run%", 1.5, model, None)
+    doc = {"asset": "a%d", "state": State.NORMAL, "mode": "run%", "score": 0.5,
+           "score_ratio": 0.333, "threshold": 1.5, "window_end": "t", "model": model,
+           "last_event": None}
+    assert tpl.render(b"0.5", b"0.333", b'"t"') == to_json(doc)
