@@ -18,7 +18,7 @@ import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from itertools import repeat
-from operator import itemgetter
+from operator import is_, itemgetter
 
 import numpy as np
 
@@ -91,8 +91,11 @@ class Scorer:
         self.metrics = metrics
         self.log = logger
         self._all_bundles = all_bundles
-        # Per sequence of (model, positions): the positions of each width and its plan.
+        # Per sequence of (model, positions): the positions of each width and its plan;
+        # the last sequence scored and its groups.
         self._groups: dict[tuple[int, ...], list[tuple[list[int], _Plan]]] = {}
+        self._last: tuple[list[Bundle], list[np.ndarray], list[tuple[list[int], _Plan]]] = \
+            ([], [], [])
         self.batched: BatchedModels
         self._stale = False
         self.rebuild()
@@ -103,6 +106,7 @@ class Scorer:
         self.batched = BatchedModels(bundles, self.log)
         self._stale = False
         self._groups.clear()
+        self._last = ([], [], [])
         if self.batched.n_models:
             self.log.info(kv("batched inference", models=self.batched.n_models,
                              groups=len(self.batched.groups), of=len(bundles)))
@@ -114,10 +118,14 @@ class Scorer:
         t1 = time.perf_counter()
         bundles = list(map(_BUNDLE, items))
         indices = list(map(_INDEX, items))
-        key = (*map(id, bundles), *map(id, indices))
-        groups = self._groups.get(key)
-        if groups is None:
-            groups = self._group(key, items, bundles, indices)
+        last_b, last_i, groups = self._last
+        # The same models and positions as last time (the usual tick): no key to build.
+        if not (len(bundles) == len(last_b) and all(map(is_, bundles, last_b))
+                and all(map(is_, indices, last_i))):
+            key = (*map(id, bundles), *map(id, indices))
+            got = self._groups.get(key)
+            groups = got if got is not None else self._group(key, items, bundles, indices)
+            self._last = (bundles, indices, groups)
         if len(groups) == 1:
             out = self._score(groups[0][1], items, on_error)
         else:

@@ -50,6 +50,7 @@ class Pending:
     faulty: tuple[int, ...]  # channels with a sensor fault at this window
     reason: str | None  # why it is not scored, if it is not
     row: np.ndarray | None = None  # its full feature row, once computed
+    ai: int = -1  # its asset's position in the pipeline's runtimes (set by the tick)
 
 
 class Judge:

@@ -101,6 +101,11 @@ class Pipeline:
         # judge (`_judge_windows`), and whether it has channels that can go stale.
         self._judged = [bool(rt.layout.checked) or rt.modes is not None for rt in runtimes]
         self._stale_at = [bool(rt.layout.stale_channels) for rt in runtimes]
+        # Per asset, for the scoring stages: its name, and whether it has limits or
+        # velocity gauges (`Judge.limits`); each runtime's position.
+        self._names = [rt.cfg.name for rt in runtimes]
+        self._limited = [bool(rt.limits or rt.layout.velocity_at) for rt in runtimes]
+        self._index = {id(rt): ai for ai, rt in enumerate(runtimes)}
         self.emit = Emitter(cfg, metrics, logger, self._m)
         self._work = WorkArrays()  # the feature passes' reusable arrays (pipeline thread)
         self.judge = Judge(metrics, logger, buffers, self.emit, cfg.ingest.startup_grace_s)
@@ -285,7 +290,7 @@ class Pipeline:
                     else:
                         rt.coverage = cov
                     pending.append(Pending(rt, w, rt.mode, (), None if w.complete
-                                           else "incomplete"))
+                                           else "incomplete", None, ai))
         stats.windows_closed += n_closed
         if wins:
             self._judge_windows(wins, pending, at)
@@ -350,7 +355,8 @@ class Pipeline:
             else:
                 rt.coverage = cov
             try:
-                pending[at[wi]] = judge.window(rt, w, pre, wi)
+                p = pending[at[wi]] = judge.window(rt, w, pre, wi)
+                p.ai = self._index[id(rt)]
             except Exception as exc:
                 self._failed(rt, "health", exc)
 
@@ -391,21 +397,23 @@ class Pipeline:
         items: list[Item] = []
         observer, observes = self.observer, self.observes
         skip, limits = self._skip, self.judge.limits
+        names, limited = self._names, self._limited
         for key, p in enumerate(pending):
-            rt = p.rt
-            if failed and rt.cfg.name in failed:
+            ai = p.ai
+            if failed and names[ai] in failed:
                 continue
+            rt = p.rt
             try:
                 row = p.row
-                if row is not None and (rt.limits or rt.layout.velocity_at):
+                if row is not None and limited[ai]:
                     limits(p, row)
                 if p.reason is not None:
                     skip(rt, p.reason)
                     continue
                 assert row is not None
-                if observer is not None and (observes is None or observes(rt.cfg.name)):
+                if observer is not None and (observes is None or observes(names[ai])):
                     lay = rt.layout
-                    observer(rt.cfg.name, p.mode, p.w, row[lay.record_index], lay.record_names)
+                    observer(names[ai], p.mode, p.w, row[lay.record_index], lay.record_names)
                 bundle, index = rt.models.for_mode(p.mode)
                 if bundle is None:
                     skip(rt, "no_model")
