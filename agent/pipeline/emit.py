@@ -256,25 +256,18 @@ class Emitter:
                failed: set[str], on_skip: Callable[[AssetRuntime], None],
                on_error: Callable[[AssetRuntime, Exception], None]) -> None:
         """Count and publish each scored window (`got[j]` by `bundles[j]`), step its
-        asset's detector and say what changed (raised, escalated, cleared; a drifting
-        sensor instead of a raise), in order (an asset's windows are in time order).
-        Left out: windows whose model failed, assets in `failed` (which `on_error`
-        adds to), and non-finite scores (`on_skip`). A quiet window (NORMAL, not above
-        a positive threshold, no suspect sensor) changes nothing but the history of
-        its detector and escalation tracker; the rest take `AnomalyStep.step`."""
+        asset's detector and say what changed, in order (an asset's windows in time
+        order). Left out: windows whose model failed, assets in `failed` (which
+        `on_error` adds to), non-finite scores (`on_skip`). A quiet window (NORMAL, not
+        above a positive threshold, no suspect) changes nothing but the history of its
+        detector and escalation tracker; the rest take `AnomalyStep.step` (`_loud`)."""
         score, sqs, ok = got.score, got.sq, got.ok
-        numbers = self._numbers(score, got.threshold)
-        get, normal = self._slots.get, State.NORMAL
-        plain = not self.publish_scores
-        rounded, js = numbers
-        n = len(score)
-        counted = 0
-        last_end, end_json = math.nan, b""
+        rounded, js = numbers = self._numbers(score, got.threshold)
+        get, normal, plain, n = self._slots.get, State.NORMAL, not self.publish_scores, len(js)
+        counted, last_end, end_json = 0, math.nan, b""
         for j, p in enumerate(wins):
-            if ok is not None and not ok[j]:
-                continue
             rt = p.rt
-            if failed and rt.cfg.name in failed:
+            if (ok is not None and not ok[j]) or (failed and rt.cfg.name in failed):
                 continue
             s = score[j]
             if s - s != 0.0:  # not finite
@@ -291,37 +284,31 @@ class Emitter:
                     slot.m.threshold.set(threshold)
                     rt.shown_threshold = threshold
                 counted += 1
-                w = p.w
                 rt.last_score = s
-                rt.last_window_end = end = w.end
+                rt.last_window_end = end = p.w.end
                 rt.sq_history.append(sqs[j])
                 det = rt.detector
                 if not (det.state is normal and not s > threshold and threshold > 0
                         and not rt.suspects):
                     self._loud(slot, rt, p, bundles[j], s, sqs[j], numbers, j)
                     continue
-                # Nothing can change: the detector cannot raise on a window not above
-                # the threshold, no suspect waits to recover, and the window's severity
-                # band is the lowest (its score is under the threshold).
                 if not det.settled:  # once settled, `quiet` would change nothing
                     det.quiet()
-                esc = rt.escalation
-                if not esc.settled:
+                if not (esc := rt.escalation).settled:
                     esc.observe_quiet()
                 if rt.shown_anomalous != 0:
                     slot.m.anomalous.set(0)
                     rt.shown_anomalous = 0
                 tpl = slot.payload
-                if plain and tpl is not None and tpl.ok and tpl.state is normal and \
-                        tpl.last_event is rt.last_event and tpl.mode == p.mode:
-                    if end != last_end:  # windows of a tick mostly end together
-                        last_end, end_json = end, self.time_json(end)
-                    topic = slot.state_topic
-                    self.out.append(OutMessage(
-                        topic, tpl.fmt % (js[j], js[n + j], end_json), Kind.STATE, 1, True,
-                        topic, slot.name, None, None, rounded[j], threshold))
-                else:
+                if not (plain and tpl is not None and tpl.ok and tpl.state is normal
+                        and tpl.last_event is rt.last_event and tpl.mode == p.mode):
                     self._state_message(slot, rt, end, p.mode, normal, s, numbers, j)
+                    continue
+                if end != last_end:  # windows of a tick mostly end together
+                    last_end, end_json = end, self.time_json(end)
+                self.out.append(OutMessage(
+                    slot.state_topic, tpl.fmt % (js[j], js[n // 2 + j], end_json), Kind.STATE,
+                    1, True, slot.state_topic, slot.name, None, None, rounded[j], threshold))
             except Exception as exc:
                 on_error(rt, exc)
         self.stats.windows_scored += counted

@@ -34,15 +34,13 @@ from __future__ import annotations
 import logging
 import time
 from collections.abc import Callable, Mapping, Sequence
-from typing import Any, Protocol, TypeVar
+from typing import Any, Protocol, TypeVar, cast
 
 import numpy as np
 
 from agent.config.load import Config
 from agent.core.decode import Reason
-from agent.core.events import rfc3339
 from agent.core.features import WorkArrays
-from agent.core.limits import ZoneLimits
 from agent.core.timebase import Step
 from agent.core.windows.assembler import AssembleResult
 from agent.core.windows.closed import ClosedWindow
@@ -57,6 +55,7 @@ from agent.pipeline.infer import Item, Scored, Scorer
 from agent.pipeline.judge import Judge, Pending
 from agent.pipeline.messages import OutMessage
 from agent.pipeline.runtime import AssetRuntime
+from agent.pipeline.status import asset_status
 
 T = TypeVar("T")
 STALE_MARGIN_S = 1e-6
@@ -96,16 +95,7 @@ class Pipeline:
         self.observes = observes
         self._m = {rt.cfg.name: AssetMetrics.of(metrics, rt.cfg.name) for rt in runtimes}
         self._m_at = [self._m[rt.cfg.name] for rt in runtimes]
-        self._closed_at = [m.closed for m in self._m_at]
-        # Per asset, fixed by its layout: whether its windows have health or modes to
-        # judge (`_judge_windows`), and whether it has channels that can go stale.
-        self._judged = [bool(rt.layout.checked) or rt.modes is not None for rt in runtimes]
-        self._stale_at = [bool(rt.layout.stale_channels) for rt in runtimes]
-        # Per asset, for the scoring stages: its name, and whether it has limits or
-        # velocity gauges (`Judge.limits`); each runtime's position.
-        self._names = [rt.cfg.name for rt in runtimes]
-        self._limited = [bool(rt.limits or rt.layout.velocity_at) for rt in runtimes]
-        self._index = {id(rt): ai for ai, rt in enumerate(runtimes)}
+        self._per_asset(runtimes)
         self.emit = Emitter(cfg, metrics, logger, self._m)
         self._work = WorkArrays()  # the feature passes' reusable arrays (pipeline thread)
         self.judge = Judge(metrics, logger, buffers, self.emit, cfg.ingest.startup_grace_s)
@@ -149,6 +139,19 @@ class Pipeline:
             rt.shown_threshold = rt.shown_anomalous = None
             self._publish_model_gauges(rt)
         self.scorer = Scorer(metrics, logger, self._all_bundles)
+
+    def _per_asset(self, runtimes: list[AssetRuntime]) -> None:
+        """What the stages read of each asset by its position, fixed with its runtime."""
+        self._closed_at = [m.closed for m in self._m_at]
+        # Whether its windows have health or modes to judge (`_judge_windows`), and
+        # whether it has channels that can go stale.
+        self._judged = [bool(rt.layout.checked) or rt.modes is not None for rt in runtimes]
+        self._stale_at = [bool(rt.layout.stale_channels) for rt in runtimes]
+        # For the scoring stages: its name, and whether it has limits or velocity
+        # gauges (`Judge.limits`); each runtime's position.
+        self._names = [rt.cfg.name for rt in runtimes]
+        self._limited = [bool(rt.limits or rt.layout.velocity_at) for rt in runtimes]
+        self._index = {id(rt): ai for ai, rt in enumerate(runtimes)}
 
     def _all_bundles(self) -> list[Bundle]:
         return [b for rt in self.runtimes
@@ -297,7 +300,7 @@ class Pipeline:
         if failed or wins:  # an asset failing at its second window drops its first too
             return [p for p in pending
                     if p is not None and not (failed and p.rt.cfg.name in failed)]
-        return pending  # type: ignore[return-value]  # no place left empty
+        return cast(list[Pending], pending)  # no place left empty
 
     def _cut_notes(self, ai: int, rt: AssetRuntime, res: AssembleResult, late: int, ahead: int,
                    steps: list[tuple[int, Step]], now: float) -> bool:
@@ -487,40 +490,5 @@ class Pipeline:
 
     def status(self) -> dict[str, Any]:
         """Per-asset status for `/status` and `watchkeep status`."""
-        assets = []
-        for rt in self.runtimes:
-            meta = rt.models.shown.meta if rt.models.shown else None
-            serving, _ = rt.models.for_mode(rt.mode)
-            if serving is not None:
-                meta = serving.meta
-            limits = {}
-            for ci, _at, mon in rt.limits:
-                ch = rt.cfg.channels[ci]
-                if isinstance(mon, ZoneLimits):
-                    limits[mon.feature] = {"zone": mon.zone, "operational": mon.operational}
-                else:
-                    limits[f"{ch.name}.{mon.cfg.feature}"] = {"level": mon.level}
-            assets.append({
-                "asset": rt.cfg.name, "mode": rt.mode, "state": rt.state.value,
-                "settling": rt.settling,
-                "score": rt.last_score, "threshold": meta.threshold if meta else None,
-                "last_window_end": rfc3339(rt.last_window_end) if rt.last_window_end else None,
-                "last_event": rt.last_event,
-                "model": ({"id": meta.model_id, "version": meta.version} if meta else None),
-                "model_error": rt.models.error,
-                "mode_models": {m: b.meta.model_id for m, b in rt.models.mode_bundles.items()},
-                "mode_model_errors": dict(rt.models.mode_errors),
-                "sensor_faults": {c.name: [r.value for r in h.reasons]
-                                  for c, h in zip(rt.cfg.channels, rt.health, strict=True)
-                                  if h.faulty},
-                "velocity_rms_mm_s": {k: round(v, 4) for k, v in rt.last_velocity_mm_s.items()},
-                "limits": limits,
-                # Containment (issue 20): the stage and error of the asset's failing work,
-                # None while it works; failures in all.
-                "error": ({"stage": rt.error[0], "detail": rt.error[1]}
-                          if rt.error is not None else None),
-                "errors": rt.errors,
-                "coverage": None if rt.coverage is None else round(rt.coverage, 4),
-                "empty_windows": rt.empty_streak,
-            })
-        return {"site": self.cfg.site, "gateway": self.cfg.gateway, "assets": assets}
+        return {"site": self.cfg.site, "gateway": self.cfg.gateway,
+                "assets": [asset_status(rt) for rt in self.runtimes]}
