@@ -264,7 +264,7 @@ class Emitter:
         score, sqs, ok = got.score, got.sq, got.ok
         rounded, js = numbers = self._numbers(score, got.threshold)
         get, normal, plain, n = self._slots.get, State.NORMAL, not self.publish_scores, len(js)
-        counted, last_end, end_json = 0, math.nan, b""
+        counted, last_end, end_json, retained = 0, math.nan, b"", Kind.STATE  # read once
         for j, p in enumerate(wins):
             rt = p.rt
             if (ok is not None and not ok[j]) or (failed and rt.cfg.name in failed):
@@ -292,7 +292,7 @@ class Emitter:
                         and not rt.suspects):
                     self._loud(slot, rt, p, bundles[j], s, sqs[j], numbers, j)
                     continue
-                if not det.settled:  # once settled, `quiet` would change nothing
+                if not det.settled:  # quiet: once settled, `quiet` changes nothing
                     det.quiet()
                 if not (esc := rt.escalation).settled:
                     esc.observe_quiet()
@@ -307,7 +307,7 @@ class Emitter:
                 if end != last_end:  # windows of a tick mostly end together
                     last_end, end_json = end, self.time_json(end)
                 self.out.append(OutMessage(
-                    slot.state_topic, tpl.fmt % (js[j], js[n // 2 + j], end_json), Kind.STATE,
+                    slot.state_topic, tpl.fmt % (js[j], js[n // 2 + j], end_json), retained,
                     1, True, slot.state_topic, slot.name, None, None, rounded[j], threshold))
             except Exception as exc:
                 on_error(rt, exc)
