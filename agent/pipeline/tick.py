@@ -143,8 +143,7 @@ class Pipeline:
     def _per_asset(self, runtimes: list[AssetRuntime]) -> None:
         """What the stages read of each asset by its position, fixed with its runtime."""
         self._closed_at = [m.closed for m in self._m_at]
-        # Whether its windows have health or modes to judge (`_judge_windows`), and
-        # whether it has channels that can go stale.
+        # Whether it has health or modes to judge (`_judge_windows`), channels to go stale.
         self._judged = [bool(rt.layout.checked) or rt.modes is not None for rt in runtimes]
         self._stale_at = [bool(rt.layout.stale_channels) for rt in runtimes]
         # For the scoring stages: its name, and whether it has limits or velocity
@@ -152,6 +151,8 @@ class Pipeline:
         self._names = [rt.cfg.name for rt in runtimes]
         self._limited = [bool(rt.limits or rt.layout.velocity_at) for rt in runtimes]
         self._index = {id(rt): ai for ai, rt in enumerate(runtimes)}
+        # (models, mode, bundle, positions) of its last window (`Models` is replaced whole)
+        self._serving: list[tuple[Any, ...]] = [(None, "")] * len(runtimes)
 
     def _all_bundles(self) -> list[Bundle]:
         return [b for rt in self.runtimes
@@ -400,7 +401,7 @@ class Pipeline:
         items: list[Item] = []
         observer, observes = self.observer, self.observes
         skip, limits = self._skip, self.judge.limits
-        names, limited = self._names, self._limited
+        names, limited, serving = self._names, self._limited, self._serving
         for key, p in enumerate(pending):
             ai = p.ai
             if failed and names[ai] in failed:
@@ -417,7 +418,12 @@ class Pipeline:
                 if observer is not None and (observes is None or observes(names[ai])):
                     lay = rt.layout
                     observer(names[ai], p.mode, p.w, row[lay.record_index], lay.record_names)
-                bundle, index = rt.models.for_mode(p.mode)
+                models, got = rt.models, serving[ai]
+                if got[0] is models and got[1] == p.mode:
+                    bundle, index = got[2], got[3]
+                else:
+                    bundle, index = models.for_mode(p.mode)
+                    serving[ai] = (models, p.mode, bundle, index)
                 if bundle is None:
                     skip(rt, "no_model")
                     continue
