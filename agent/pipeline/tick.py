@@ -211,7 +211,7 @@ class Pipeline:
         the sample arriving just after this tick (the next tick, which ingest wakes,
         takes it); what is closed is decided again under the locks."""
         due = [ai for ai, (asm, ib) in enumerate(self._screen)
-               if ib.late or ib.liveness or ib.ahead or ib.steps or asm.due(now)]
+               if asm.due(now) or ib.late or ib.liveness or ib.ahead or ib.steps]
         if self.judge_stale:
             # A margin for rounding: a visit a little early changes nothing.
             stale = np.flatnonzero(self._stale_wake <= now + STALE_MARGIN_S)
