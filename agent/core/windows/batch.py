@@ -66,10 +66,9 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     exception (`AssembleResult.error`); the others' windows are cut as usual.
     """
     results: list[AssembleResult | None] = [None] * len(assemblers)
-    # Items whose every rate group has samples, all of them before the window's end
-    # (`_close_whole`), and the others (`_close_rest`).
-    whole: list[_Item] = []
-    rest: list[_Item] = []
+    # The items (exactly the next tumbling window, rows in step), and whether each has
+    # every pending sample of every group before the window's end, some in each.
+    items: list[tuple[_Item, bool]] = []
     for i, a in enumerate(assemblers):
         try:
             plan = _plan(a, now)
@@ -82,24 +81,20 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
                 assert k is not None
                 hop = a.cfg.hop_s
                 end = (k + 1) * hop
-                item = (i, a, k * hop, end, plan)
-                # The newest sample of any channel is in, and every group has some.
-                if a._max_ts < end and (plan[0][2] if len(plan) == 1
-                                        else all(m for _, _, m in plan)):
-                    whole.append(item)
-                else:
-                    rest.append(item)
+                items.append(((i, a, k * hop, end, plan), a._max_ts < end and (
+                    plan[0][2] > 0 if len(plan) == 1 else all(m for _, _, m in plan))))
         except Exception as exc:
             results[i] = AssembleResult(exc)
     try:
+        whole, rest, counts = _split(items)
         if whole:
             _close_whole(whole, results)
         if rest:
-            _finish(rest, _cut_blocks(rest), results, now)
+            _finish(rest, _cut_blocks(rest, counts), results, now)
     except Exception:
         # The joint cut failed before it changed any assembler, or after finishing some
         # of them: the others each alone, contained.
-        for i, a, *_ in [*whole, *rest]:
+        for (i, a, *_), _ in items:
             if results[i] is None:
                 try:
                     results[i] = a.close_due(now)
@@ -108,11 +103,60 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     return [r if r is not None else AssembleResult() for r in results]
 
 
+def _split(items: list[tuple[_Item, bool]]
+           ) -> tuple[list[_Item], list[_Item], dict[int, list[list[int]]]]:
+    """`close_many`'s items (each with whether it is full) as those cut together by
+    `_close_whole`: the full ones, and those whose every group's rows all hold the
+    same number c > 0 of samples before the end (the next window's samples are
+    pending: counted first, `_row_counts`), as if c were all they held; and the rest
+    (a group without samples in the window, rows holding different counts), for
+    `_cut_blocks` + `_finish`, with the counts."""
+    counts = _row_counts([it for it, full in items if not full])
+    whole: list[_Item] = []
+    rest: list[_Item] = []
+    for item, full in items:
+        if full:
+            whole.append(item)
+            continue
+        cs = [c[0] if c and c.count(c[0]) == len(c) else 0 for c in counts[item[0]]]
+        if 0 in cs:
+            rest.append(item)
+        else:
+            whole.append((*item[:4], [(g, lo0, c) for (g, lo0, _), c in zip(item[4], cs,
+                                                                              strict=True)]))
+    return whole, rest, counts
+
+
+def _row_counts(items: list[_Item]) -> dict[int, list[list[int]]]:
+    """Per item (by position): per group, how many samples each of its rows holds
+    before the window's end ([] for a group without pending samples). Counted for all
+    groups of one pending width in one step."""
+    # By pending width: (item position, group index, the group, its first pending
+    # index, the window's end).
+    by_m: dict[int, list[tuple[int, int, _Group, int, float]]] = {}
+    out: dict[int, list[list[int]]] = {}
+    for i, _, _, end, spans in items:
+        out[i] = [[] for _ in spans]
+        for gi, (g, lo0, m) in enumerate(spans):
+            if m:
+                by_m.setdefault(m, []).append((i, gi, g, lo0, end))
+    for m, members in by_m.items():
+        tm = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in members])
+        ends = np.repeat([mb[4] for mb in members], [len(mb[2].chans) for mb in members])
+        below = (tm < ends[:, None]).sum(axis=1).tolist()
+        off = 0
+        for i, gi, g, _, _ in members:
+            n = len(g.chans)
+            out[i][gi] = below[off:off + n]
+            off += n
+    return out
+
+
 def _close_whole(whole: list[_Item], results: list[AssembleResult | None]) -> None:
     """The joint cut of items whose every rate group's rows are in step with m > 0
-    pending samples, all before the window's end: one copy per segment length, every
-    block rows of that copy. An item of one rate group is finished as its block is
-    made, the others once all copies are made."""
+    samples before the window's end (all it cuts: the spans' m): one copy per segment
+    length, every block rows of that copy. An item of one rate group is finished as
+    its block is made, the others once all copies are made."""
     # Per segment length: (the item's blocks, None for an item of one group; the group's
     # index; the item; the group; its first pending index).
     by_width: dict[int, list[tuple[list[Block | None] | None, int, _Item, _Group, int]]] = {}
@@ -198,33 +242,31 @@ def _full(n: int, m: int) -> tuple[int, ...]:
     return got
 
 
-def _cut_blocks(fast: list[_Item]) -> list[list[Block | None]]:
-    """The blocks of every (item, group) with samples. A group whose rows all hold the
-    same number c of samples before the window's end (all its pending ones when the
-    item is full; else counted, for all such groups of one pending width at once) is
-    cut with every other such group of that c as rows of one copy, its block a row
-    range of it (`Block.base`) whatever its pending width: windows cut as samples of
-    the next one arrive come out as the tick's full ones do. The others (rows holding
-    different counts) each get a block of their own."""
+def _cut_blocks(fast: list[_Item], counts: dict[int, list[list[int]]]
+                ) -> list[list[Block | None]]:
+    """The blocks of every (item, group) with samples, `counts` the rows' counts before
+    the window's end of the items not full (`_row_counts`). A group whose rows all hold
+    the same number c of samples before the end (all its pending ones when the item is
+    full) is cut with every other such group of that c as rows of one copy, its block
+    a row range of it (`Block.base`); one whose rows hold different counts gets a
+    block of its own."""
     blocks: list[list[Block | None]] = [[None] * len(it[4]) for it in fast]
-    # Per (item, group): c, 0 for none to cut here.
-    cs: list[list[int]] = []
-    # By pending width, the groups whose counts are to be found: (item, group index, the
-    # group, its first pending index, the window's end).
-    counting: dict[int, list[tuple[int, int, _Group, int, float]]] = {}
-    for fi, (_, a, _, end, spans) in enumerate(fast):
-        full = a._max_ts < end  # the newest sample of any channel is before the end
-        cs.append([m if full else 0 for _, _, m in spans])
-        if not full:
-            for gi, (g, lo0, m) in enumerate(spans):
-                if m:
-                    counting.setdefault(m, []).append((fi, gi, g, lo0, end))
-    _count(counting, cs, blocks)
-    # By c, in item order (the feature pass takes rows of one copy in window order):
-    # (item, group index, the group, its first pending index).
+    # By c, in item order: (item, group index, the group, its first pending index).
     by_c: dict[int, list[tuple[int, int, _Group, int]]] = {}
-    for fi, (item, cf) in enumerate(zip(fast, cs, strict=True)):
-        for gi, ((g, lo0, _), c) in enumerate(zip(item[4], cf, strict=True)):
+    for fi, (i, a, _, end, spans) in enumerate(fast):
+        full = a._max_ts < end  # the newest sample of any channel is before the end
+        for gi, (g, lo0, m) in enumerate(spans):
+            if not m:
+                continue
+            c = m
+            if not full:
+                cl = counts[i][gi]
+                c = cl[0]
+                if cl.count(c) != len(cl):  # rows out of step in time
+                    mc = max(cl)
+                    blocks[fi][gi] = Block(g.chans, g.ts[:, lo0:lo0 + mc].copy(),
+                                           g.vals[:, lo0:lo0 + mc].copy(), cl)
+                    continue
             if c:
                 by_c.setdefault(c, []).append((fi, gi, g, lo0))
     for c, cut in by_c.items():
@@ -243,29 +285,6 @@ def _cut_blocks(fast: list[_Item]) -> list[list[Block | None]]:
                 blocks[fi][gi] = Block.rows_of(v, off, g.chans, _full(n, c))
             off += n
     return blocks
-
-
-def _count(counting: dict[int, list[tuple[int, int, _Group, int, float]]],
-           cs: list[list[int]], blocks: list[list[Block | None]]) -> None:
-    """`_cut_blocks`' counts of the samples before each window's end, one step per
-    pending width: a group whose rows all hold c gets c in `cs`; one whose rows hold
-    different counts its block of its own in `blocks`."""
-    for m, members in counting.items():
-        tm = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in members])
-        ends = np.repeat([mb[4] for mb in members], [len(mb[2].chans) for mb in members])
-        below = (tm < ends[:, None]).sum(axis=1).tolist()
-        off = 0
-        for fi, gi, g, lo0, _ in members:
-            n = len(g.chans)
-            counts = below[off:off + n]
-            c = counts[0]
-            if counts.count(c) == n:
-                cs[fi][gi] = c
-            else:  # rows out of step in time: a block of its own
-                mc = max(counts)
-                blocks[fi][gi] = Block(g.chans, tm[off:off + n, :mc],
-                                       g.vals[:, lo0:lo0 + mc].copy(), counts)
-            off += n
 
 
 def _finish(fast: list[_Item], blocks: list[list[Block | None]],

@@ -9,6 +9,7 @@ the samples of its channel in [start, end), in time order.
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -220,3 +221,31 @@ def test_close_many_windows_closed_by_the_timeout(assets, late) -> None:
                     np.testing.assert_array_equal(g.values[c], w.values[c])
     assert [a.next_start for a in one] == [a.next_start for a in many]
     assert [a.pending_samples() for a in one] == [a.pending_samples() for a in many]
+
+
+@pytest.mark.parametrize("late", [1.5, 0.2])
+def test_close_many_when_the_joint_cut_raises_fails_that_assembler_alone(late) -> None:
+    """One assembler's store broken: the joint cut raises, every assembler is cut
+    alone (`close_due`), and only the broken one's result carries the error. `late`
+    1.5: windows closed by the timeout, all their samples in; 0.2: closed as the
+    next window's samples arrive (counted first)."""
+    from agent.core.windows.batch import close_many
+
+    cfg = WindowConfig(1.0, 1.0, 0.0, 1.0, 0.5)
+    one = [WindowAssembler(cfg, (10.0, 10.0)) for _ in range(3)]
+    many = [WindowAssembler(cfg, (10.0, 10.0)) for _ in range(3)]
+    for k in range(3):
+        ts = T0 + k + late % 1.0 + np.arange(10) / 10.0
+        for a in (*one, *many):
+            for c in (0, 1):
+                a.add(c, ts, ts - T0, float(ts[-1]), presorted=True)
+        now = float(ts[-1]) + (late if late > 1 else 0.0)
+        if k == 2:
+            many[1]._groups[0].vals = None  # type: ignore[assignment]
+            got = close_many(many, now)
+            want = [a.close_due(now) for a in one]
+            assert isinstance(got[1].error, TypeError) and not got[1].windows
+            _same([want[0], want[2]], [got[0], got[2]])
+            assert got[0].windows and got[0].error is None is got[2].error
+        else:
+            _same([a.close_due(now) for a in one], close_many(many, now))
