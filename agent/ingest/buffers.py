@@ -49,6 +49,11 @@ class AssetInbox:
         return notes
 
 
+# What `close_inboxes` notes for an inbox with no refused messages and no clock steps
+# (shared: read only).
+_NO_NOTES: tuple[int, list[tuple[int, Step]]] = (0, [])
+
+
 def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
                   notes: list[tuple[int, list[tuple[int, Step]]]] | None = None
                   ) -> tuple[list[AssembleResult], list[int]]:
@@ -73,10 +78,12 @@ def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
             if n:
                 ib.late = 0
             if notes is not None:
-                notes.append((ib.ahead, ib.steps))
                 if ib.ahead or ib.steps:
+                    notes.append((ib.ahead, ib.steps))
                     ib.ahead = 0
                     ib.steps = []
+                else:
+                    notes.append(_NO_NOTES)
         results = close_many(assemblers, now)
     finally:
         for lock in held:

@@ -279,7 +279,7 @@ class Pipeline:
             if not windows:
                 continue
             n_closed += len(windows)
-            closed[ai].inc(len(windows))
+            closed[ai].value += len(windows)  # PlainSeries.inc, without the call
             if judged[ai]:
                 for w in windows:
                     wins.append((rt, w))
