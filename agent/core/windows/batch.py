@@ -29,12 +29,13 @@ _Item = tuple[int, WindowAssembler, float, float, list[tuple[_Group, int, int]]]
 
 
 def _plan(a: WindowAssembler, now: float) -> list[tuple[_Group, int, int]] | bool:
-    """Whether `a` has nothing due at `now` (False), exactly its next tumbling window
-    with every rate group's rows in step (per group: the group, its first pending index
-    and how many are pending), or anything else (True: `close_due`). Reads only what
-    the assembler keeps for it (`_set_next`: when its next window and the one after are
-    due), as `_due(end, _reach(now))` would compute them."""
-    if a._next_k is None or a._span_k != 1 or a._any_unsorted:
+    """Whether `a` has nothing due at `now` (False), exactly its next window (tumbling,
+    or hopping a whole number of hops long) with every rate group's rows in step (per
+    group: the group, its first pending index and how many are pending), or anything
+    else (True: `close_due`). Reads only what the assembler keeps for it (`_set_next`:
+    when its next window and the one after are due), as `_due(end, _reach(now))` would
+    compute them."""
+    if a._next_k is None or a._span_k is None or a._any_unsorted:
         return True
     max_ts = a._max_ts
     idle = now - a._last_arrival
@@ -77,18 +78,23 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
             elif plan is False:
                 results[i] = AssembleResult()
             else:
-                k = a._next_k
-                assert k is not None
+                k, span = a._next_k, a._span_k
+                assert k is not None and span is not None
                 hop = a.cfg.hop_s
-                end = (k + 1) * hop
-                items.append(((i, a, k * hop, end, plan), a._max_ts < end and (
+                end = (k + span) * hop  # as `_bounds`
+                items.append(((i, a, k * hop, end, plan), span == 1 and a._max_ts < end and (
                     plan[0][2] > 0 if len(plan) == 1 else all(m for _, _, m in plan))))
         except Exception as exc:
             results[i] = AssembleResult(exc)
     try:
-        whole, rest, counts = _split(items)
+        whole, rest, alone, counts, drops = _split(items)
+        for i, a in alone:  # hopping windows that do not fit the joint cut
+            try:
+                results[i] = a.close_due(now)
+            except Exception as exc:
+                results[i] = AssembleResult(exc)
         if whole:
-            _close_whole(whole, results)
+            _close_whole(whole, results, drops)
         if rest:
             _finish(rest, _cut_blocks(rest, counts), results, now)
     except Exception:
@@ -103,60 +109,91 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     return [r if r is not None else AssembleResult() for r in results]
 
 
-def _split(items: list[tuple[_Item, bool]]
-           ) -> tuple[list[_Item], list[_Item], dict[int, list[list[int]]]]:
+# Per hopping item (by position): per group, how many samples its rows drop once the
+# window is out (those before the next window's start).
+_Drops = dict[int, list[int]]
+
+
+def _split(items: list[tuple[_Item, bool]]) -> tuple[
+        list[_Item], list[_Item], list[tuple[int, WindowAssembler]],
+        dict[int, list[list[int]]], _Drops]:
     """`close_many`'s items (each with whether it is full) as those cut together by
     `_close_whole`: the full ones, and those whose every group's rows all hold the
     same number c > 0 of samples before the end (the next window's samples are
-    pending: counted first, `_row_counts`), as if c were all they held; and the rest
-    (a group without samples in the window, rows holding different counts), for
-    `_cut_blocks` + `_finish`, with the counts."""
-    counts = _row_counts([it for it, full in items if not full])
+    pending, or the window hops: counted first, `_row_counts`), as if c were all they
+    held (a hopping window's rows also dropping alike, `drops`); the rest of the
+    tumbling ones (a group without samples in the window, rows holding different
+    counts), for `_cut_blocks` + `_finish`, with the counts; the rest of the hopping
+    ones, for `close_due`."""
+    counts, nexts = _row_counts([it for it, full in items if not full])
     whole: list[_Item] = []
     rest: list[_Item] = []
+    alone: list[tuple[int, WindowAssembler]] = []
+    drops: _Drops = {}
     for item, full in items:
         if full:
             whole.append(item)
             continue
-        cs = [c[0] if c and c.count(c[0]) == len(c) else 0 for c in counts[item[0]]]
-        if 0 in cs:
+        i = item[0]
+        cs = [c[0] if c and c.count(c[0]) == len(c) else 0 for c in counts[i]]
+        hop = nexts.get(i)
+        if hop is not None:
+            ds = [d[0] if d and d.count(d[0]) == len(d) else -1 for d in hop]
+            if 0 in cs or -1 in ds:
+                alone.append((i, item[1]))
+                continue
+            drops[i] = ds
+        elif 0 in cs:
             rest.append(item)
-        else:
-            whole.append((*item[:4], [(g, lo0, c) for (g, lo0, _), c in zip(item[4], cs,
-                                                                              strict=True)]))
-    return whole, rest, counts
+            continue
+        whole.append((*item[:4], [(g, lo0, c) for (g, lo0, _), c in zip(item[4], cs,
+                                                                          strict=True)]))
+    return whole, rest, alone, counts, drops
 
 
-def _row_counts(items: list[_Item]) -> dict[int, list[list[int]]]:
+def _row_counts(items: list[_Item]
+                ) -> tuple[dict[int, list[list[int]]], dict[int, list[list[int]]]]:
     """Per item (by position): per group, how many samples each of its rows holds
-    before the window's end ([] for a group without pending samples). Counted for all
-    groups of one pending width in one step."""
+    before the window's end ([] for a group without pending samples); and for a
+    hopping window the same before the next window's start. Counted for all groups
+    of one pending width in one step."""
     # By pending width: (item position, group index, the group, its first pending
-    # index, the window's end).
-    by_m: dict[int, list[tuple[int, int, _Group, int, float]]] = {}
+    # index, the window's end, the next window's start: the end when tumbling).
+    by_m: dict[int, list[tuple[int, int, _Group, int, float, float]]] = {}
     out: dict[int, list[list[int]]] = {}
-    for i, _, _, end, spans in items:
+    nxt: dict[int, list[list[int]]] = {}
+    for i, a, _, end, spans in items:
         out[i] = [[] for _ in spans]
+        after = end
+        if a._span_k != 1:
+            nxt[i] = [[] for _ in spans]
+            after = (a._next_k + 1) * a.cfg.hop_s  # type: ignore[operator]
         for gi, (g, lo0, m) in enumerate(spans):
             if m:
-                by_m.setdefault(m, []).append((i, gi, g, lo0, end))
+                by_m.setdefault(m, []).append((i, gi, g, lo0, end, after))
     for m, members in by_m.items():
         tm = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in members])
-        ends = np.repeat([mb[4] for mb in members], [len(mb[2].chans) for mb in members])
-        below = (tm < ends[:, None]).sum(axis=1).tolist()
+        rows = [len(mb[2].chans) for mb in members]
+        below = (tm < np.repeat([mb[4] for mb in members], rows)[:, None]).sum(axis=1).tolist()
+        before = below if not nxt else (
+            tm < np.repeat([mb[5] for mb in members], rows)[:, None]).sum(axis=1).tolist()
         off = 0
-        for i, gi, g, _, _ in members:
+        for i, gi, g, _, _, _ in members:
             n = len(g.chans)
             out[i][gi] = below[off:off + n]
+            if i in nxt:
+                nxt[i][gi] = before[off:off + n]
             off += n
-    return out
+    return out, nxt
 
 
-def _close_whole(whole: list[_Item], results: list[AssembleResult | None]) -> None:
+def _close_whole(whole: list[_Item], results: list[AssembleResult | None],
+                 drops: _Drops) -> None:
     """The joint cut of items whose every rate group's rows are in step with m > 0
     samples before the window's end (all it cuts: the spans' m): one copy per segment
     length, every block rows of that copy. An item of one rate group is finished as
-    its block is made, the others once all copies are made."""
+    its block is made, the others once all copies are made. Each group's rows then
+    drop those m samples, or for a hopping window what `drops` says."""
     # Per segment length: (the item's blocks, None for an item of one group; the group's
     # index; the item; the group; its first pending index).
     by_width: dict[int, list[tuple[list[Block | None] | None, int, _Item, _Group, int]]] = {}
@@ -201,18 +238,19 @@ def _close_whole(whole: list[_Item], results: list[AssembleResult | None]) -> No
             i, a, start, end, _ = item
             exp = g.expected
             cov = m / exp if exp else 1.0
-            g.lo = [lo0 + m] * n
+            g.lo = [lo0 + (drops[i][0] if drops and i in drops else m)] * n
             a._set_next(a._next_k + 1)  # type: ignore[operator]
             results[i] = AssembleResult(None, [ClosedWindow.of_blocks(
                 start, end, not (exp and cov < a.cfg.min_coverage), (blk,), a._expected, cov)])
     for item, bl in several:
-        _done(item, tuple(bl), results)  # type: ignore[arg-type]
+        _done(item, tuple(bl), results, drops.get(item[0]))  # type: ignore[arg-type]
 
 
-def _done(item: _Item, blocks: tuple[Block, ...], results: list[AssembleResult | None]
-          ) -> None:
+def _done(item: _Item, blocks: tuple[Block, ...], results: list[AssembleResult | None],
+          drop: list[int] | None) -> None:
     """`_close_whole`'s window of `item` from its blocks (group g's coverage m /
-    expected), and its assembler moved past it."""
+    expected), and its assembler moved past it (each group's rows dropping m samples,
+    or `drop[g]` for a hopping window)."""
     i, a, start, end, spans = item
     min_cov = a.cfg.min_coverage
     complete = True
@@ -223,7 +261,7 @@ def _done(item: _Item, blocks: tuple[Block, ...], results: list[AssembleResult |
         cov = min(cov, c) if gi else c
         if exp and c < min_cov:
             complete = False
-        g.lo = [lo0 + m] * len(g.chans)  # rows in step stay in step
+        g.lo = [lo0 + (m if drop is None else drop[gi])] * len(g.chans)  # still in step
     a._set_next(a._next_k + 1)  # type: ignore[operator]
     results[i] = AssembleResult(None, [ClosedWindow.of_blocks(start, end, complete, blocks,
                                                               a._expected, cov)])

@@ -249,3 +249,39 @@ def test_close_many_when_the_joint_cut_raises_fails_that_assembler_alone(late) -
             assert got[0].windows and got[0].error is None is got[2].error
         else:
             _same([a.close_due(now) for a in one], close_many(many, now))
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.integers(0, 3), st.booleans(), st.sampled_from([0.0, 0.25, 0.5])),
+                min_size=1, max_size=5),
+       st.sampled_from([2, 3]), st.sampled_from([0.0, 0.3, 1.5]))
+def test_close_many_cuts_hopping_windows_as_close_due(assets, span, late) -> None:
+    """Hopping windows (`span` hops long) cut together: each window holds its samples,
+    the rows drop only those before the next window's start, whatever the assets'
+    phases, rows out of step (skew) or times kept. As close_due cuts them."""
+    from agent.core.windows.batch import close_many
+
+    cfg = WindowConfig(float(span), 1.0, 0.0, 1.0, 0.5)
+    rates = (10.0, 10.0)
+    one = [WindowAssembler(cfg, rates) for _ in assets]
+    many = [WindowAssembler(cfg, rates) for _ in assets]
+    for a, (_, keep, _) in zip(many, assets, strict=True):
+        a.keep_times_of([keep, False])
+    for k in range(7):
+        for ai, (skew, _, phase) in enumerate(assets):
+            ts = T0 + k + phase + np.arange(10) / 10.0
+            for c in (0, 1):
+                part = ts[: 10 - skew] if c else ts
+                for a in (one[ai], many[ai]):
+                    a.add(c, part, part - T0, T0 + k + 1.0, presorted=True)
+        now = T0 + k + 1.0 + late
+        want = [a.close_due(now) for a in one]
+        got = close_many(many, now)
+        _same(want, got)
+        for w_res, g_res in zip(want, got, strict=True):
+            for w, g in zip(w_res.windows, g_res.windows, strict=True):
+                assert (g.start, g.end) == (w.start, w.end)
+                for c in (0, 1):
+                    np.testing.assert_array_equal(g.values[c], w.values[c])
+        assert [a.pending_samples() for a in one] == [a.pending_samples() for a in many]
+        assert [a.next_start for a in one] == [a.next_start for a in many]
