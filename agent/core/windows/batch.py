@@ -222,7 +222,7 @@ def _close_whole(whole: list[_Item], results: list[AssembleResult | None],
         # member kept its times.
         tb = t if len(kept) == len(members) else None
         off = t_off = 0
-        for bl, gi, item, g, lo0 in members:
+        for bl, gi, item, g, _ in members:
             n = len(g.chans)
             if t is not None and g.keep_times:
                 blk = Block(g.chans, t[t_off:t_off + n], v[off:off + n], _full(n, m), True,
@@ -231,17 +231,10 @@ def _close_whole(whole: list[_Item], results: list[AssembleResult | None],
             else:
                 blk = Block.rows_of(v, off, g.chans, _full(n, m))
             off += n
-            if bl is not None:
+            if bl is None:  # an item of one group: finished now
+                _done(item, (blk,), results, drops.get(item[0]) if drops else None)
+            else:
                 bl[gi] = blk
-                continue
-            # `_done` of an item of one group, written out (the usual window of a tick).
-            i, a, start, end, _ = item
-            exp = g.expected
-            cov = m / exp if exp else 1.0
-            g.lo = [lo0 + (drops[i][0] if drops and i in drops else m)] * n
-            a._set_next(a._next_k + 1)  # type: ignore[operator]
-            results[i] = AssembleResult(None, [ClosedWindow.of_blocks(
-                start, end, not (exp and cov < a.cfg.min_coverage), (blk,), a._expected, cov)])
     for item, bl in several:
         _done(item, tuple(bl), results, drops.get(item[0]))  # type: ignore[arg-type]
 
