@@ -64,30 +64,27 @@ def close_inboxes(inboxes: Sequence[AssetInbox], now: float,
     An assembler that raises fails alone: its result carries the error
     (`AssembleResult.error`). `notes`, when given, gets per inbox (ahead messages,
     clock steps) taken since the last call."""
-    held = []
-    late = []
-    assemblers = []
+    n = len(inboxes)
+    late = [0] * n
+    base = 0
+    if notes is not None:  # the usual note, replaced below where an inbox has one
+        base = len(notes)
+        notes.extend([_NO_NOTES] * n)
+    held = 0
     try:
-        for ib in inboxes:
-            lock = ib.lock
-            lock.acquire()
-            held.append(lock)
-            assemblers.append(ib.assembler)
-            n = ib.late
-            late.append(n)
-            if n:
-                ib.late = 0
-            if notes is not None:
-                if ib.ahead or ib.steps:
-                    notes.append((ib.ahead, ib.steps))
-                    ib.ahead = 0
-                    ib.steps = []
-                else:
-                    notes.append(_NO_NOTES)
-        results = close_many(assemblers, now)
+        for i, ib in enumerate(inboxes):
+            ib.lock.acquire()
+            held += 1
+            if ib.late:
+                late[i], ib.late = ib.late, 0
+            if notes is not None and (ib.ahead or ib.steps):
+                notes[base + i] = (ib.ahead, ib.steps)
+                ib.ahead = 0
+                ib.steps = []
+        results = close_many([ib.assembler for ib in inboxes], now)
     finally:
-        for lock in held:
-            lock.release()
+        for ib in inboxes[:held]:
+            ib.lock.release()
     return results, late
 
 

@@ -251,6 +251,18 @@ class WindowAssembler:
         self._due2_ts = after + cfg.lateness_s
         self._due2_reach = after + cfg.timeout_s
 
+    def _step_next(self) -> None:
+        """`_set_next(next_k + 1)` for a window of a whole number of hops (the joint
+        cut's): window k + 1's due times are those kept for it as the window after k,
+        the same numbers `_set_next` computes."""
+        k = self._next_k + 1  # type: ignore[operator]
+        self._next_k = k
+        self._due_ts, self._due_reach = self._due2_ts, self._due2_reach
+        cfg = self.cfg
+        after = (k + 1 + self._span_k) * cfg.hop_s  # type: ignore[operator]
+        self._due2_ts = after + cfg.lateness_s
+        self._due2_reach = after + cfg.timeout_s
+
     def due(self, now: float) -> bool:
         """Whether `close_due(now)` has anything to do: a window due, or samples held
         before the first close. Looks at no store (two float comparisons), so it is

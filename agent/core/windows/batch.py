@@ -28,31 +28,46 @@ from agent.core.windows.assembler import (
 _Item = tuple[int, WindowAssembler, float, float, list[tuple[_Group, int, int]]]
 
 
-def _plan(a: WindowAssembler, now: float) -> list[tuple[_Group, int, int]] | bool:
-    """Whether `a` has nothing due at `now` (False), exactly its next window (tumbling,
-    or hopping a whole number of hops long) with every rate group's rows in step (per
-    group: the group, its first pending index and how many are pending), or anything
-    else (True: `close_due`). Reads only what the assembler keeps for it (`_set_next`:
-    when its next window and the one after are due), as `_due(end, _reach(now))` would
-    compute them."""
-    if a._next_k is None or a._span_k is None or a._any_unsorted:
-        return True
+# What `_plan` found for an assembler.
+_NOTHING, _PLACED, _ALONE = 0, 1, 2
+
+
+def _plan(a: WindowAssembler, now: float, i: int, full: list[_Item],
+          rest: list[_Item]) -> int:
+    """Whether `a` (position i) has nothing due at `now` (`_NOTHING`), exactly its next
+    window (tumbling, or hopping a whole number of hops long) with every rate group's
+    rows in step (`_PLACED`: its item put in `full` when tumbling with every pending
+    sample of every group before the end, some in each, else in `rest`), or anything
+    else (`_ALONE`: `close_due`). Reads only what the assembler keeps for it
+    (`_set_next`: when its next window and the one after are due), as
+    `_due(end, _reach(now))` would compute them."""
+    k, span = a._next_k, a._span_k
+    if k is None or span is None or a._any_unsorted:
+        return _ALONE
     max_ts = a._max_ts
     idle = now - a._last_arrival
     reach = (max_ts + idle if idle != math.inf else -math.inf) if idle > 0.0 else max_ts
     if not (max_ts >= a._due_ts or reach >= a._due_reach):
-        return False
+        return _NOTHING
     if max_ts >= a._due2_ts or reach >= a._due2_reach:
-        return True
+        return _ALONE
     spans = []
+    some = True  # every group has samples pending
     for g in a._groups:
         lo, hi = g.lo, g.hi
         lo0, hi0 = lo[0], hi[0]
+        m = hi0 - lo0
         n = len(lo)
-        if lo.count(lo0) != n or hi.count(hi0) != n or hi0 - lo0 > g.bound:
-            return True
-        spans.append((g, lo0, hi0 - lo0))
-    return spans
+        if lo.count(lo0) != n or hi.count(hi0) != n or m > g.bound:
+            return _ALONE
+        spans.append((g, lo0, m))
+        if not m:
+            some = False
+    hop = a.cfg.hop_s
+    end = (k + span) * hop  # as `_bounds`
+    (full if span == 1 and some and max_ts < end else rest).append(
+        (i, a, k * hop, end, spans))
+    return _PLACED
 
 
 def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[AssembleResult]:
@@ -67,40 +82,34 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     exception (`AssembleResult.error`); the others' windows are cut as usual.
     """
     results: list[AssembleResult | None] = [None] * len(assemblers)
-    # The items (exactly the next tumbling window, rows in step), and whether each has
-    # every pending sample of every group before the window's end, some in each.
-    items: list[tuple[_Item, bool]] = []
+    # The joint cut's items: those with every pending sample before the window's end
+    # (`full`), the others (counted first, `_split`).
+    full: list[_Item] = []
+    others: list[_Item] = []
     for i, a in enumerate(assemblers):
         try:
-            plan = _plan(a, now)
-            if plan is True:
+            got = _plan(a, now, i, full, others)
+            if got == _ALONE:
                 results[i] = a.close_due(now)
-            elif plan is False:
+            elif got == _NOTHING:
                 results[i] = AssembleResult()
-            else:
-                k, span = a._next_k, a._span_k
-                assert k is not None and span is not None
-                hop = a.cfg.hop_s
-                end = (k + span) * hop  # as `_bounds`
-                items.append(((i, a, k * hop, end, plan), span == 1 and a._max_ts < end and (
-                    plan[0][2] > 0 if len(plan) == 1 else all(m for _, _, m in plan))))
         except Exception as exc:
             results[i] = AssembleResult(exc)
     try:
-        whole, rest, alone, counts, drops = _split(items)
+        whole, rest, alone, counts, drops = _split(others)
         for i, a in alone:  # hopping windows that do not fit the joint cut
             try:
                 results[i] = a.close_due(now)
             except Exception as exc:
                 results[i] = AssembleResult(exc)
-        if whole:
-            _close_whole(whole, results, drops)
+        if full or whole:
+            _close_whole(full + whole if whole else full, results, drops)
         if rest:
             _finish(rest, _cut_blocks(rest, counts), results, now)
     except Exception:
         # The joint cut failed before it changed any assembler, or after finishing some
         # of them: the others each alone, contained.
-        for (i, a, *_), _ in items:
+        for i, a, *_ in (*full, *others):
             if results[i] is None:
                 try:
                     results[i] = a.close_due(now)
@@ -114,26 +123,23 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
 _Drops = dict[int, list[int]]
 
 
-def _split(items: list[tuple[_Item, bool]]) -> tuple[
+def _split(items: list[_Item]) -> tuple[
         list[_Item], list[_Item], list[tuple[int, WindowAssembler]],
         dict[int, list[list[int]]], _Drops]:
-    """`close_many`'s items (each with whether it is full) as those cut together by
-    `_close_whole`: the full ones, and those whose every group's rows all hold the
+    """`close_many`'s items that are not full as those cut together by
+    `_close_whole`: those whose every group's rows all hold the
     same number c > 0 of samples before the end (the next window's samples are
     pending, or the window hops: counted first, `_row_counts`), as if c were all they
     held (a hopping window's rows also dropping alike, `drops`); the rest of the
     tumbling ones (a group without samples in the window, rows holding different
     counts), for `_cut_blocks` + `_finish`, with the counts; the rest of the hopping
     ones, for `close_due`."""
-    counts, nexts = _row_counts([it for it, full in items if not full])
+    counts, nexts = _row_counts(items)
     whole: list[_Item] = []
     rest: list[_Item] = []
     alone: list[tuple[int, WindowAssembler]] = []
     drops: _Drops = {}
-    for item, full in items:
-        if full:
-            whole.append(item)
-            continue
+    for item in items:
         i = item[0]
         cs = [c[0] if c and c.count(c[0]) == len(c) else 0 for c in counts[i]]
         hop = nexts.get(i)
@@ -221,15 +227,18 @@ def _close_whole(whole: list[_Item], results: list[AssembleResult | None],
         # The blocks' times as rows of one matrix, row for row with `v`: only when every
         # member kept its times.
         tb = t if len(kept) == len(members) else None
-        off = t_off = 0
+        off = t_off = n_last = 0
+        full: tuple[int, ...] = ()
         for bl, gi, item, g, _ in members:
             n = len(g.chans)
+            if n != n_last:
+                full, n_last = _full(n, m), n
             if t is not None and g.keep_times:
-                blk = Block(g.chans, t[t_off:t_off + n], v[off:off + n], _full(n, m), True,
-                            v, off, tb)
+                blk = Block(g.chans, t[t_off:t_off + n], v[off:off + n], full, True, v, off,
+                            tb)
                 t_off += n
             else:
-                blk = Block.rows_of(v, off, g.chans, _full(n, m))
+                blk = Block.rows_of(v, off, g.chans, full)
             off += n
             if bl is None:  # an item of one group: finished now
                 _done(item, (blk,), results, drops.get(item[0]) if drops else None)
@@ -255,7 +264,7 @@ def _done(item: _Item, blocks: tuple[Block, ...], results: list[AssembleResult |
         if exp and c < min_cov:
             complete = False
         g.lo = [lo0 + (m if drop is None else drop[gi])] * len(g.chans)  # still in step
-    a._set_next(a._next_k + 1)  # type: ignore[operator]
+    a._step_next()
     results[i] = AssembleResult(None, [ClosedWindow.of_blocks(start, end, complete, blocks,
                                                               a._expected, cov)])
 

@@ -100,3 +100,22 @@ def test_close_many_keeps_due_in_step_with_close_due(run) -> None:
         close_many([many], now)
         assert one.due(now) == many.due(now)
         assert _state(one) == _state(many)
+
+
+@settings(max_examples=200, deadline=None)
+@given(hop=st.sampled_from([0.1, 0.25, 1.0, 2.5, 0.3]), span=st.integers(1, 4),
+       lateness=st.sampled_from([0.0, 0.05, 1.0, 7.3]),
+       timeout=st.sampled_from([0.5, 3.0, 11.1]), k=st.integers(0, 2 ** 33))
+def test_step_next_sets_what_set_next_sets(hop, span, lateness, timeout, k) -> None:
+    """The joint cut's `_step_next` (the due times of window k + 1 taken from those
+    kept for it as the window after k) leaves the same numbers, bit for bit, as
+    `_set_next(k + 1)` computes (Unix-time window indices included)."""
+    def fields(a: WindowAssembler) -> tuple[object, ...]:
+        return (a._next_k, a._due_ts, a._due_reach, a._due2_ts, a._due2_reach)
+
+    cfg = WindowConfig(hop * span, hop, lateness, timeout, 0.5)
+    stepped, set_ = WindowAssembler(cfg, RATES), WindowAssembler(cfg, RATES)
+    stepped._set_next(k)
+    stepped._step_next()
+    set_._set_next(k + 1)
+    assert fields(stepped) == fields(set_)
