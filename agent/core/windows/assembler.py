@@ -63,7 +63,8 @@ class _Group:
         cap = max(16, int(2 * expected) + 16)
         self.chans = chans
         self.expected = expected
-        # How many samples per row one gather looks at before falling back to a search.
+        # How many samples per row one gather looks at before falling back to a search
+        # (`close_due`), and the joint cut counts at most (`batch._row_counts`).
         self.bound = int(1.25 * expected) + 16
         self.ts = np.empty((k, cap))
         self.vals = np.empty((k, cap))

@@ -58,7 +58,7 @@ def _plan(a: WindowAssembler, now: float, i: int, full: list[_Item],
         lo0, hi0 = lo[0], hi[0]
         m = hi0 - lo0
         n = len(lo)
-        if lo.count(lo0) != n or hi.count(hi0) != n or m > g.bound:
+        if lo.count(lo0) != n or hi.count(hi0) != n:
             return _ALONE
         spans.append((g, lo0, m))
         if not m:
@@ -132,15 +132,18 @@ def _split(items: list[_Item]) -> tuple[
     pending, or the window hops: counted first, `_row_counts`), as if c were all they
     held (a hopping window's rows also dropping alike, `drops`); the rest of the
     tumbling ones (a group without samples in the window, rows holding different
-    counts), for `_cut_blocks` + `_finish`, with the counts; the rest of the hopping
-    ones, for `close_due`."""
-    counts, nexts = _row_counts(items)
+    counts), for `_cut_blocks` + `_finish`, with the counts; those `_row_counts` could
+    not count and the rest of the hopping ones, for `close_due`."""
+    counts, nexts, unsure = _row_counts(items)
     whole: list[_Item] = []
     rest: list[_Item] = []
     alone: list[tuple[int, WindowAssembler]] = []
     drops: _Drops = {}
     for item in items:
         i = item[0]
+        if unsure and i in unsure:
+            alone.append((i, item[1]))
+            continue
         cs = [c[0] if c and c.count(c[0]) == len(c) else 0 for c in counts[i]]
         hop = nexts.get(i)
         if hop is not None:
@@ -157,40 +160,68 @@ def _split(items: list[_Item]) -> tuple[
     return whole, rest, alone, counts, drops
 
 
-def _row_counts(items: list[_Item]
-                ) -> tuple[dict[int, list[list[int]]], dict[int, list[list[int]]]]:
+def _band(g: _Group, m: int, hopping: bool) -> tuple[int, int]:
+    """Where `_row_counts` looks in a group's m pending samples per row: [s0, top).
+    A tumbling window of a sensor at its rate ends near `expected` samples in, so a
+    band of a sixteenth of that (and 8 samples) either side holds the end; a hopping
+    one also needs the next window's start, so it looks from the first sample, at
+    most `bound` samples (a whole window with room for a faster sensor)."""
+    if hopping:
+        return 0, min(m, g.bound)
+    e = int(g.expected)
+    slack = 8 + e // 16
+    return max(0, min(m, e) - slack), min(m, e + slack)
+
+
+def _row_counts(items: list[_Item]) -> tuple[
+        dict[int, list[list[int]]], dict[int, list[list[int]]], set[int]]:
     """Per item (by position): per group, how many samples each of its rows holds
     before the window's end ([] for a group without pending samples); and for a
     hopping window the same before the next window's start. Counted for all groups
-    of one pending width in one step."""
-    # By pending width: (item position, group index, the group, its first pending
-    # index, the window's end, the next window's start: the end when tumbling).
-    by_m: dict[int, list[tuple[int, int, _Group, int, float, float]]] = {}
+    of one band width in one step, within a band of each row (`_band`): the items
+    whose count the band cannot tell (a row's end outside it: samples missing, a
+    sensor far off its rate) come back in the set, uncounted, for `close_due`."""
+    # By band width: (item position, group index, the group, where its band starts in
+    # the store, the window's end, the next window's start (the end when tumbling),
+    # the band's start in the pending samples, whether the band ends with them).
+    by_w: dict[int, list[tuple[int, int, _Group, int, float, float, int, bool]]] = {}
     out: dict[int, list[list[int]]] = {}
     nxt: dict[int, list[list[int]]] = {}
+    unsure: set[int] = set()
     for i, a, _, end, spans in items:
         out[i] = [[] for _ in spans]
         after = end
-        if a._span_k != 1:
+        hopping = a._span_k != 1
+        if hopping:
             nxt[i] = [[] for _ in spans]
             after = (a._next_k + 1) * a.cfg.hop_s  # type: ignore[operator]
         for gi, (g, lo0, m) in enumerate(spans):
             if m:
-                by_m.setdefault(m, []).append((i, gi, g, lo0, end, after))
-    for m, members in by_m.items():
-        tm = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in members])
+                s0, top = _band(g, m, hopping)
+                by_w.setdefault(top - s0, []).append(
+                    (i, gi, g, lo0 + s0, end, after, s0, top == m))
+    for w, members in by_w.items():
+        tm = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + w] for mb in members])
         rows = [len(mb[2].chans) for mb in members]
-        below = (tm < np.repeat([mb[4] for mb in members], rows)[:, None]).sum(axis=1).tolist()
+        s0s = np.repeat([mb[6] for mb in members], rows)
+        b = (tm < np.repeat([mb[4] for mb in members], rows)[:, None]).sum(axis=1)
+        # A row's count is known when its band holds its end: some of the band before
+        # the end unless the band starts with the pending samples, some at or after it
+        # unless the band ends with them.
+        known = ((b > 0) | (s0s == 0)).tolist()
+        below = (b + s0s).tolist()
         before = below if not nxt else (
             tm < np.repeat([mb[5] for mb in members], rows)[:, None]).sum(axis=1).tolist()
         off = 0
-        for i, gi, g, _, _, _ in members:
+        for i, gi, g, _, _, _, s0, to_end in members:
             n = len(g.chans)
-            out[i][gi] = below[off:off + n]
+            got = out[i][gi] = below[off:off + n]
+            if (not to_end and s0 + w in got) or (s0 and False in known[off:off + n]):
+                unsure.add(i)
             if i in nxt:
                 nxt[i][gi] = before[off:off + n]
             off += n
-    return out, nxt
+    return out, nxt, unsure
 
 
 def _close_whole(whole: list[_Item], results: list[AssembleResult | None],

@@ -285,3 +285,45 @@ def test_close_many_cuts_hopping_windows_as_close_due(assets, span, late) -> Non
                     np.testing.assert_array_equal(g.values[c], w.values[c])
         assert [a.pending_samples() for a in one] == [a.pending_samples() for a in many]
         assert [a.next_start for a in one] == [a.next_start for a in many]
+
+
+@settings(max_examples=80, deadline=None)
+@given(block=st.sampled_from([0.25, 0.5, 1.0, 1.5]),
+       pace=st.sampled_from([1.0, 1.0, 1.09, 0.8, 1.6]),
+       lost=st.lists(st.integers(0, 40), max_size=3), phase=st.floats(0.0, 0.99))
+def test_close_many_with_blocks_of_part_of_a_window(block, pace, lost, phase) -> None:
+    """Sensors sending blocks of a quarter to one and a half windows, closed as each
+    block arrives (lateness 0: the next window's samples are pending), at their rate or
+    off it, some blocks lost: close_many cuts what close_due cuts. Steady sensors'
+    windows are cut jointly (rows of one copy), counted in a band around the end,
+    unless a block makes two windows due at once (close_due's)."""
+    from agent.core.windows.batch import close_many
+
+    rates = (20.0, 20.0, 20.0)
+    cfg = WindowConfig(1.0, 1.0, 0.0, 1.0, 0.5)
+    one = [WindowAssembler(cfg, rates) for _ in range(3)]
+    many = [WindowAssembler(cfg, rates) for _ in range(3)]
+    per = round(20 * block * pace)  # samples per block, at `pace` times the rate
+    joint = total = 0
+    for b in range(40):
+        now = T0 + phase + (b + 1) * block
+        if b in lost:
+            continue
+        ts = T0 + phase + b * block + np.arange(per) / (20.0 * pace)
+        for a1, a2 in zip(one, many, strict=True):
+            for c in range(3):
+                for a in (a1, a2):
+                    a.add(c, ts, ts - T0, now, presorted=True)
+        want = [a.close_due(now) for a in one]
+        got = close_many(many, now)
+        _same(want, got)
+        for w_res, g_res in zip(want, got, strict=True):
+            for w, g in zip(w_res.windows, g_res.windows, strict=True):
+                total += 1
+                joint += g.blocks[0].base is not None
+                for c in range(3):
+                    np.testing.assert_array_equal(g.values[c], w.values[c])
+        assert [(a.next_start, a.pending_samples()) for a in one] == \
+            [(a.next_start, a.pending_samples()) for a in many]
+    if pace == 1.0 and not lost and block <= 1.0 and total:
+        assert joint == total
