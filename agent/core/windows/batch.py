@@ -135,6 +135,10 @@ def _split(items: list[_Item]) -> tuple[
     counts), for `_cut_blocks` + `_finish`, with the counts; those `_row_counts` could
     not count and the rest of the hopping ones, for `close_due`."""
     counts, nexts, unsure = _row_counts(items)
+    if unsure:  # counted again from the first sample on (samples lost, say)
+        c2, n2, unsure = _row_counts([it for it in items if it[0] in unsure], wide=True)
+        counts.update(c2)
+        nexts.update(n2)
     whole: list[_Item] = []
     rest: list[_Item] = []
     alone: list[tuple[int, WindowAssembler]] = []
@@ -160,27 +164,29 @@ def _split(items: list[_Item]) -> tuple[
     return whole, rest, alone, counts, drops
 
 
-def _band(g: _Group, m: int, hopping: bool) -> tuple[int, int]:
+def _band(g: _Group, m: int, wide: bool) -> tuple[int, int]:
     """Where `_row_counts` looks in a group's m pending samples per row: [s0, top).
     A tumbling window of a sensor at its rate ends near `expected` samples in, so a
     band of a sixteenth of that (and 8 samples) either side holds the end; a hopping
-    one also needs the next window's start, so it looks from the first sample, at
-    most `bound` samples (a whole window with room for a faster sensor)."""
-    if hopping:
+    one also needs the next window's start, and a window whose end the band missed
+    is counted again (`wide`): from the first sample, at most `bound` samples (a whole
+    window with room for a faster sensor)."""
+    if wide:
         return 0, min(m, g.bound)
     e = int(g.expected)
     slack = 8 + e // 16
     return max(0, min(m, e) - slack), min(m, e + slack)
 
 
-def _row_counts(items: list[_Item]) -> tuple[
+def _row_counts(items: list[_Item], wide: bool = False) -> tuple[
         dict[int, list[list[int]]], dict[int, list[list[int]]], set[int]]:
     """Per item (by position): per group, how many samples each of its rows holds
     before the window's end ([] for a group without pending samples); and for a
     hopping window the same before the next window's start. Counted for all groups
-    of one band width in one step, within a band of each row (`_band`): the items
-    whose count the band cannot tell (a row's end outside it: samples missing, a
-    sensor far off its rate) come back in the set, uncounted, for `close_due`."""
+    of one band width in one step, within a band of each row (`_band`; `wide`: from
+    the first sample): the items whose count the band cannot tell (a row's end
+    outside it: samples missing, a sensor far off its rate) come back in the set,
+    their counts not to be used."""
     # By band width: (item position, group index, the group, where its band starts in
     # the store, the window's end, the next window's start (the end when tumbling),
     # the band's start in the pending samples, whether the band ends with them).
@@ -197,7 +203,7 @@ def _row_counts(items: list[_Item]) -> tuple[
             after = (a._next_k + 1) * a.cfg.hop_s  # type: ignore[operator]
         for gi, (g, lo0, m) in enumerate(spans):
             if m:
-                s0, top = _band(g, m, hopping)
+                s0, top = _band(g, m, wide or hopping)
                 by_w.setdefault(top - s0, []).append(
                     (i, gi, g, lo0 + s0, end, after, s0, top == m))
     for w, members in by_w.items():
