@@ -56,7 +56,8 @@ class _Group:
     and the store doubles when that is not enough room.
     """
 
-    __slots__ = ("bound", "chans", "expected", "hi", "keep_times", "lo", "rows", "ts", "vals")
+    __slots__ = ("bound", "chans", "expected", "hi", "keep_times", "lo", "near", "rows", "ts",
+                 "vals")
 
     def __init__(self, chans: tuple[int, ...], expected: float) -> None:
         k = len(chans)
@@ -66,6 +67,10 @@ class _Group:
         # How many samples per row one gather looks at before falling back to a search
         # (`close_due`), and the joint cut counts at most (`batch._row_counts`).
         self.bound = int(1.25 * expected) + 16
+        # Where the joint cut looks for a window's end in a row of a sensor at its rate
+        # (`batch._band`): a sixteenth of a window and 8 samples either side.
+        e = int(expected)
+        self.near = (max(0, e - 8 - e // 16), e + 8 + e // 16)
         self.ts = np.empty((k, cap))
         self.vals = np.empty((k, cap))
         self.lo = [0] * k

@@ -167,15 +167,21 @@ def _split(items: list[_Item]) -> tuple[
 def _band(g: _Group, m: int, wide: bool) -> tuple[int, int]:
     """Where `_row_counts` looks in a group's m pending samples per row: [s0, top).
     A tumbling window of a sensor at its rate ends near `expected` samples in, so a
-    band of a sixteenth of that (and 8 samples) either side holds the end; a hopping
-    one also needs the next window's start, and a window whose end the band missed
-    is counted again (`wide`): from the first sample, at most `bound` samples (a whole
-    window with room for a faster sensor)."""
+    band around that holds the end (`_Group.near`); a hopping one also needs the next
+    window's start, and a window whose end the band missed is counted again (`wide`):
+    from the first sample, at most `bound` samples (a whole window with room for a
+    faster sensor)."""
     if wide:
         return 0, min(m, g.bound)
-    e = int(g.expected)
-    slack = 8 + e // 16
-    return max(0, min(m, e) - slack), min(m, e + slack)
+    s0, top = g.near
+    if m >= top:
+        return s0, top
+    e = int(g.expected)  # fewer pending than the band's top
+    return max(0, min(m, e) - 8 - e // 16), m
+
+
+# A group's counts while it has no pending samples (`_row_counts`; shared: read only).
+_NONE: list[int] = []
 
 
 def _row_counts(items: list[_Item], wide: bool = False) -> tuple[
@@ -195,11 +201,11 @@ def _row_counts(items: list[_Item], wide: bool = False) -> tuple[
     nxt: dict[int, list[list[int]]] = {}
     unsure: set[int] = set()
     for i, a, _, end, spans in items:
-        out[i] = [[] for _ in spans]
+        out[i] = [_NONE] * len(spans)
         after = end
         hopping = a._span_k != 1
         if hopping:
-            nxt[i] = [[] for _ in spans]
+            nxt[i] = [_NONE] * len(spans)
             after = (a._next_k + 1) * a.cfg.hop_s  # type: ignore[operator]
         for gi, (g, lo0, m) in enumerate(spans):
             if m:
