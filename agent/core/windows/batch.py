@@ -19,6 +19,7 @@ from agent.core.windows.assembler import (
     Block,
     ClosedWindow,
     WindowAssembler,
+    _arange,
     _Group,
 )
 
@@ -36,9 +37,10 @@ def _plan(a: WindowAssembler, now: float, i: int, full: list[_Item],
           rest: list[_Item]) -> int:
     """Whether `a` (position i) has nothing due at `now` (`_NOTHING`), exactly its next
     window (tumbling, or hopping a whole number of hops long) with every rate group's
-    rows in step (`_PLACED`: its item put in `full` when tumbling with every pending
-    sample of every group before the end, some in each, else in `rest`), or anything
-    else (`_ALONE`: `close_due`). Reads only what the assembler keeps for it
+    rows starting in step (`_PLACED`: its item put in `full` when tumbling with every
+    pending sample of every group before the end, some in each and as many in each
+    row, else in `rest`, with each group's most pending in a row), or anything else
+    (`_ALONE`: `close_due`). Reads only what the assembler keeps for it
     (`_set_next`: when its next window and the one after are due), as
     `_due(end, _reach(now))` would compute them."""
     k, span = a._next_k, a._span_k
@@ -52,14 +54,17 @@ def _plan(a: WindowAssembler, now: float, i: int, full: list[_Item],
     if max_ts >= a._due2_ts or reach >= a._due2_reach:
         return _ALONE
     spans = []
-    some = True  # every group has samples pending
+    some = True  # every group has samples pending, as many in each of its rows
     for g in a._groups:
         lo, hi = g.lo, g.hi
         lo0, hi0 = lo[0], hi[0]
         m = hi0 - lo0
         n = len(lo)
-        if lo.count(lo0) != n or hi.count(hi0) != n:
+        if lo.count(lo0) != n:
             return _ALONE
+        if hi.count(hi0) != n:  # rows holding different numbers: m the most
+            m = max(hi) - lo0
+            some = False
         spans.append((g, lo0, m))
         if not m:
             some = False
@@ -195,7 +200,8 @@ def _row_counts(items: list[_Item], wide: bool = False) -> tuple[
     their counts not to be used."""
     # By band width: (item position, group index, the group, where its band starts in
     # the store, the window's end, the next window's start (the end when tumbling),
-    # the band's start in the pending samples, whether the band ends with them).
+    # the band's start in the pending samples, whether the band ends with the most
+    # pending in a row).
     by_w: dict[int, list[tuple[int, int, _Group, int, float, float, int, bool]]] = {}
     out: dict[int, list[list[int]]] = {}
     nxt: dict[int, list[list[int]]] = {}
@@ -216,14 +222,20 @@ def _row_counts(items: list[_Item], wide: bool = False) -> tuple[
         tm = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + w] for mb in members])
         rows = [len(mb[2].chans) for mb in members]
         s0s = np.repeat([mb[6] for mb in members], rows)
-        b = (tm < np.repeat([mb[4] for mb in members], rows)[:, None]).sum(axis=1)
+        # Rows holding fewer samples than their group's most: their band ends early.
+        held = _held(members, rows, w)
+        lt = tm < np.repeat([mb[4] for mb in members], rows)[:, None]
+        b = (lt if held is None else lt & held).sum(axis=1)
         # A row's count is known when its band holds its end: some of the band before
         # the end unless the band starts with the pending samples, some at or after it
         # unless the band ends with them.
         known = ((b > 0) | (s0s == 0)).tolist()
         below = (b + s0s).tolist()
-        before = below if not nxt else (
-            tm < np.repeat([mb[5] for mb in members], rows)[:, None]).sum(axis=1).tolist()
+        if nxt:
+            lt = tm < np.repeat([mb[5] for mb in members], rows)[:, None]
+            before = (lt if held is None else lt & held).sum(axis=1).tolist()
+        else:
+            before = below
         off = 0
         for i, gi, g, _, _, _, s0, to_end in members:
             n = len(g.chans)
@@ -234,6 +246,17 @@ def _row_counts(items: list[_Item], wide: bool = False) -> tuple[
                 nxt[i][gi] = before[off:off + n]
             off += n
     return out, nxt, unsure
+
+
+def _held(members: list[tuple[int, int, _Group, int, float, float, int, bool]],
+          rows: list[int], w: int) -> np.ndarray | None:
+    """Which places of `_row_counts`' bands (w wide, one row per group row) hold a
+    pending sample, when a group's rows hold different numbers; else None (all do)."""
+    if all(g.hi.count(g.hi[0]) == len(g.hi) for _, _, g, *_ in members):
+        return None
+    ends = np.array([h for mb in members for h in mb[2].hi], dtype=np.int64)
+    ends -= np.repeat([mb[3] for mb in members], rows)  # from each band's start
+    return _arange(w)[None, :] < ends[:, None]
 
 
 def _close_whole(whole: list[_Item], results: list[AssembleResult | None],
@@ -328,28 +351,25 @@ def _full(n: int, m: int) -> tuple[int, ...]:
 def _cut_blocks(fast: list[_Item], counts: dict[int, list[list[int]]]
                 ) -> list[list[Block | None]]:
     """The blocks of every (item, group) with samples, `counts` the rows' counts before
-    the window's end of the items not full (`_row_counts`). A group whose rows all hold
-    the same number c of samples before the end (all its pending ones when the item is
-    full) is cut with every other such group of that c as rows of one copy, its block
+    the window's end (`_row_counts`). A group whose rows all hold the same number c of
+    samples before the end is cut with every other such group of that c as rows of one
+    copy, its block
     a row range of it (`Block.base`); one whose rows hold different counts gets a
     block of its own."""
     blocks: list[list[Block | None]] = [[None] * len(it[4]) for it in fast]
     # By c, in item order: (item, group index, the group, its first pending index).
     by_c: dict[int, list[tuple[int, int, _Group, int]]] = {}
-    for fi, (i, a, _, end, spans) in enumerate(fast):
-        full = a._max_ts < end  # the newest sample of any channel is before the end
+    for fi, (i, _, _, _, spans) in enumerate(fast):
         for gi, (g, lo0, m) in enumerate(spans):
             if not m:
                 continue
-            c = m
-            if not full:
-                cl = counts[i][gi]
-                c = cl[0]
-                if cl.count(c) != len(cl):  # rows out of step in time
-                    mc = max(cl)
-                    blocks[fi][gi] = Block(g.chans, g.ts[:, lo0:lo0 + mc].copy(),
-                                           g.vals[:, lo0:lo0 + mc].copy(), cl)
-                    continue
+            cl = counts[i][gi]
+            c = cl[0]
+            if cl.count(c) != len(cl):  # rows out of step in time
+                mc = max(cl)
+                blocks[fi][gi] = Block(g.chans, g.ts[:, lo0:lo0 + mc].copy(),
+                                       g.vals[:, lo0:lo0 + mc].copy(), cl)
+                continue
             if c:
                 by_c.setdefault(c, []).append((fi, gi, g, lo0))
     for c, cut in by_c.items():

@@ -327,3 +327,41 @@ def test_close_many_with_blocks_of_part_of_a_window(block, pace, lost, phase) ->
             [(a.next_start, a.pending_samples()) for a in many]
     if pace == 1.0 and not lost and block <= 1.0 and total:
         assert joint == total
+
+
+@settings(max_examples=60, deadline=None)
+@given(phases=st.lists(st.floats(0.0, 0.099), min_size=3, max_size=3),
+       lost=st.lists(st.integers(0, 300), max_size=4), keep=st.booleans())
+def test_close_many_with_one_reading_per_message(phases, lost, keep) -> None:
+    """Sensors sending one reading per message, each channel at its own phase, a tick
+    after every message (lateness 0): a window closes when the first channel's next
+    reading arrives, the other rows holding fewer samples. close_many cuts what
+    close_due cuts; with no reading lost, every window is cut jointly once the rows
+    start in step (after the store's first compaction: the first readings, before the
+    first window, were dropped row by row)."""
+    from agent.core.windows.batch import close_many
+
+    rates = (10.0, 10.0, 10.0)
+    cfg = WindowConfig(1.0, 1.0, 0.0, 1.0, 0.5)
+    one, many = WindowAssembler(cfg, rates), WindowAssembler(cfg, rates)
+    if not keep:
+        many.keep_times_of([False] * 3)
+    msgs = sorted((T0 + j / 10.0 + phases[c], c) for j in range(100) for c in range(3))
+    joint = total = 0
+    for n, (t, c) in enumerate(msgs):
+        if n in lost:
+            continue
+        for a in (one, many):
+            a.add(c, np.array([t]), np.array([t - T0]), t, presorted=True)
+        want, got = one.close_due(t), close_many([many], t)[0]
+        _same([want], [got])
+        for w, g in zip(want.windows, got.windows, strict=True):
+            total += 1
+            joint += g.blocks[0].base is not None
+            for ch in range(3):
+                np.testing.assert_array_equal(g.values[ch], w.values[ch])
+        assert (one.next_start, one.pending_samples()) == \
+            (many.next_start, many.pending_samples())
+    assert total >= 8
+    if not lost:
+        assert joint >= total - 3
