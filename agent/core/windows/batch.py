@@ -1,10 +1,14 @@
 """The joint cut: every due window of many assemblers at once (`close_many`).
 
-The usual case of a tick (exactly the next tumbling window of an asset due, its rows
-in step) is cut for all such assets together: one copy per segment length over the
+The usual case of a tick (exactly the next window of an asset due, its rows starting
+in step) is cut for all such assets together: one copy per sample count over the
 stacked rows of every asset, instead of a handful of numpy calls per asset; the
 blocks of the cut are rows of one matrix (`Block.base`), which the feature pass takes
-whole. Everything else goes through `WindowAssembler.close_due`. Pure.
+whole. When samples past the window's end are pending (a block straddling it, one
+channel's next reading in, a hopping window), the rows are first counted for all
+such assets at once, in a band around where a sensor at its rate puts the end
+(`_row_counts`). Several windows due, rows starting apart, and what the counting
+cannot tell go through `WindowAssembler.close_due`. Pure.
 """
 
 from __future__ import annotations
@@ -78,10 +82,9 @@ def _plan(a: WindowAssembler, now: float, i: int, full: list[_Item],
 def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[AssembleResult]:
     """`close_due(now)` of every assembler, the same windows in the same state after.
 
-    The usual case of a tick (exactly the next tumbling window of an asset due, its
-    rows in step) is cut for all such assets together: one copy per segment length
-    over the stacked rows of every asset, instead of a handful of numpy calls per
-    asset. Everything else goes through `close_due`.
+    The usual case of a tick (exactly the next window of an asset due, its rows
+    starting in step) is cut for all such assets together (module docstring);
+    everything else goes through `close_due`.
 
     An assembler that raises fails alone: its result is an empty one carrying the
     exception (`AssembleResult.error`); the others' windows are cut as usual.
