@@ -40,8 +40,8 @@ _NOTHING, _PLACED, _ALONE = 0, 1, 2
 def _plan(a: WindowAssembler, now: float, i: int, full: list[_Item],
           rest: list[_Item]) -> int:
     """Whether `a` (position i) has nothing due at `now` (`_NOTHING`), exactly its next
-    window (tumbling, or hopping a whole number of hops long) with every rate group's
-    rows starting in step (`_PLACED`: its item put in `full` when tumbling with every
+    window (tumbling, or hopping a whole number of hops long; every rate group's rows
+    are made to start in step) (`_PLACED`: its item put in `full` when tumbling with every
     pending sample of every group before the end, some in each and as many in each
     row, else in `rest`, with each group's most pending in a row), or anything else
     (`_ALONE`: `close_due`). Reads only what the assembler keeps for it
@@ -61,11 +61,13 @@ def _plan(a: WindowAssembler, now: float, i: int, full: list[_Item],
     some = True  # every group has samples pending, as many in each of its rows
     for g in a._groups:
         lo, hi = g.lo, g.hi
-        lo0, hi0 = lo[0], hi[0]
-        m = hi0 - lo0
+        lo0 = lo[0]
         n = len(lo)
-        if lo.count(lo0) != n:
-            return _ALONE
+        if lo.count(lo0) != n:  # rows starting apart (each dropped its own count)
+            g.room(0, 0)  # compacted: every row from 0, the same samples
+            lo, hi, lo0 = g.lo, g.hi, 0
+        hi0 = hi[0]
+        m = hi0 - lo0
         if hi.count(hi0) != n:  # rows holding different numbers: m the most
             m = max(hi) - lo0
             some = False
