@@ -7,8 +7,8 @@ blocks of the cut are rows of one matrix (`Block.base`), which the feature pass 
 whole. When samples past the window's end are pending (a block straddling it, one
 channel's next reading in, a hopping window), the rows are first counted for all
 such assets at once, in a band around where a sensor at its rate puts the end
-(`_row_counts`). Several windows due, rows starting apart, and what the counting
-cannot tell go through `WindowAssembler.close_due`. Pure.
+(`_row_counts`). Rows starting apart are compacted first. Several windows due, and
+what the counting cannot tell, go through `WindowAssembler.close_due`. Pure.
 """
 
 from __future__ import annotations
