@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -144,34 +145,49 @@ def _split(items: list[_Item]) -> tuple[
     tumbling ones (a group without samples in the window, rows holding different
     counts), for `_cut_blocks` + `_finish`, with the counts; those `_row_counts` could
     not count and the rest of the hopping ones, for `close_due`."""
-    counts, nexts, unsure = _row_counts(items)
-    if unsure:  # counted again from the first sample on (samples lost, say)
-        c2, n2, unsure = _row_counts([it for it in items if it[0] in unsure], wide=True)
-        counts.update(c2)
-        nexts.update(n2)
+    got = _row_counts(items)
+    if got.unsure:  # counted again from the first sample on (samples lost, say)
+        again = _row_counts([it for it in items if it[0] in got.unsure], wide=True)
+        got.merge(again)
     whole: list[_Item] = []
     rest: list[_Item] = []
     alone: list[tuple[int, WindowAssembler]] = []
-    drops: _Drops = {}
+    unsure, uneven, cut, drops = got.unsure, got.uneven, got.cut, got.drops
     for item in items:
         i = item[0]
-        if unsure and i in unsure:
+        if (unsure and i in unsure) or (uneven and i in uneven and i in drops):
             alone.append((i, item[1]))
-            continue
-        cs = [c[0] if c and c.count(c[0]) == len(c) else 0 for c in counts[i]]
-        hop = nexts.get(i)
-        if hop is not None:
-            ds = [d[0] if d and d.count(d[0]) == len(d) else -1 for d in hop]
-            if 0 in cs or -1 in ds:
-                alone.append((i, item[1]))
-                continue
-            drops[i] = ds
-        elif 0 in cs:
+        elif uneven and i in uneven:
             rest.append(item)
-            continue
-        whole.append((*item[:4], [(g, lo0, c) for (g, lo0, _), c in zip(item[4], cs,
-                                                                          strict=True)]))
-    return whole, rest, alone, counts, drops
+        else:
+            whole.append((*item[:4], cut[i]))
+    return whole, rest, alone, got.rows, drops
+
+
+@dataclass(slots=True)
+class _Counted:
+    """What `_row_counts` found, per item by position: per group, how many samples
+    each row holds before the window's end (`rows`; `_NONE` for a group without pending
+    samples), the item's spans with that number when every row holds it, else 0
+    (`cut`); per hopping item, per group, how many each row drops (those before the
+    next window's start) when alike, else -1 (`drops`); the items with a 0 or -1 there
+    (`uneven`), and those the band could not count (`unsure`: their counts are not to
+    be used)."""
+
+    rows: dict[int, list[list[int]]] = field(default_factory=dict)
+    cut: dict[int, list[tuple[_Group, int, int]]] = field(default_factory=dict)
+    drops: _Drops = field(default_factory=dict)
+    uneven: set[int] = field(default_factory=set)
+    unsure: set[int] = field(default_factory=set)
+
+    def merge(self, again: _Counted) -> None:
+        """`again`, a count of this one's unsure items, in place of theirs."""
+        self.uneven -= self.unsure
+        self.uneven |= again.uneven
+        self.unsure = again.unsure
+        self.rows.update(again.rows)
+        self.cut.update(again.cut)
+        self.drops.update(again.drops)
 
 
 def _band(g: _Group, m: int, wide: bool) -> tuple[int, int]:
@@ -194,73 +210,81 @@ def _band(g: _Group, m: int, wide: bool) -> tuple[int, int]:
 _NONE: list[int] = []
 
 
-def _row_counts(items: list[_Item], wide: bool = False) -> tuple[
-        dict[int, list[list[int]]], dict[int, list[list[int]]], set[int]]:
-    """Per item (by position): per group, how many samples each of its rows holds
-    before the window's end ([] for a group without pending samples); and for a
-    hopping window the same before the next window's start. Counted for all groups
-    of one band width in one step, within a band of each row (`_band`; `wide`: from
-    the first sample): the items whose count the band cannot tell (a row's end
-    outside it: samples missing, a sensor far off its rate) come back in the set,
-    their counts not to be used."""
-    # By band width: (item position, group index, the group, where its band starts in
-    # the store, the window's end, the next window's start (the end when tumbling),
-    # the band's start in the pending samples, whether the band ends with the most
+def _row_counts(items: list[_Item], wide: bool = False) -> _Counted:
+    """How many samples each row of each item holds before the window's end, and for
+    a hopping window before the next window's start (`_Counted`). Counted for all
+    groups of one band width in one step, within a band of each row (`_band`; `wide`:
+    from the first sample); an item whose count the band cannot tell (a row's end
+    outside it: samples missing, a sensor far off its rate) is `unsure`."""
+    # By band width: (item position, group index, the group, its first pending index,
+    # where its band starts in the pending samples, the window's end, the next
+    # window's start (the end when tumbling), whether the band ends with the most
     # pending in a row).
-    by_w: dict[int, list[tuple[int, int, _Group, int, float, float, int, bool]]] = {}
-    out: dict[int, list[list[int]]] = {}
-    nxt: dict[int, list[list[int]]] = {}
-    unsure: set[int] = set()
+    by_w: dict[int, list[tuple[int, int, _Group, int, int, float, float, bool]]] = {}
+    got = _Counted()
+    rows_of, cut, drops, uneven, unsure = got.rows, got.cut, got.drops, got.uneven, got.unsure
+    hopping = False
     for i, a, _, end, spans in items:
-        out[i] = [_NONE] * len(spans)
+        rows_of[i] = [_NONE] * len(spans)
+        cut[i] = list(spans)
         after = end
-        hopping = a._span_k != 1
-        if hopping:
-            nxt[i] = [_NONE] * len(spans)
+        if a._span_k != 1:
+            hopping = True
+            drops[i] = [-1] * len(spans)
             after = (a._next_k + 1) * a.cfg.hop_s  # type: ignore[operator]
         for gi, (g, lo0, m) in enumerate(spans):
             if m:
-                s0, top = _band(g, m, wide or hopping)
+                s0, top = _band(g, m, wide or i in drops)
                 by_w.setdefault(top - s0, []).append(
-                    (i, gi, g, lo0 + s0, end, after, s0, top == m))
+                    (i, gi, g, lo0, s0, end, after, top == m))
+            else:
+                uneven.add(i)
     for w, members in by_w.items():
-        tm = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + w] for mb in members])
+        tm = np.concatenate([mb[2].ts[:, mb[3] + mb[4]:mb[3] + mb[4] + w] for mb in members])
         rows = [len(mb[2].chans) for mb in members]
-        s0s = np.repeat([mb[6] for mb in members], rows)
+        s0s = np.repeat([mb[4] for mb in members], rows)
         # Rows holding fewer samples than their group's most: their band ends early.
         held = _held(members, rows, w)
-        lt = tm < np.repeat([mb[4] for mb in members], rows)[:, None]
+        lt = tm < np.repeat([mb[5] for mb in members], rows)[:, None]
         b = (lt if held is None else lt & held).sum(axis=1)
         # A row's count is known when its band holds its end: some of the band before
         # the end unless the band starts with the pending samples, some at or after it
         # unless the band ends with them.
         known = ((b > 0) | (s0s == 0)).tolist()
         below = (b + s0s).tolist()
-        if nxt:
-            lt = tm < np.repeat([mb[5] for mb in members], rows)[:, None]
+        before = below
+        if hopping:
+            lt = tm < np.repeat([mb[6] for mb in members], rows)[:, None]
             before = (lt if held is None else lt & held).sum(axis=1).tolist()
-        else:
-            before = below
         off = 0
-        for i, gi, g, _, _, _, s0, to_end in members:
+        for i, gi, g, lo0, s0, _, _, to_end in members:
             n = len(g.chans)
-            got = out[i][gi] = below[off:off + n]
-            if (not to_end and s0 + w in got) or (s0 and False in known[off:off + n]):
+            row = rows_of[i][gi] = below[off:off + n]
+            if (not to_end and s0 + w in row) or (s0 and False in known[off:off + n]):
                 unsure.add(i)
-            if i in nxt:
-                nxt[i][gi] = before[off:off + n]
+            c = row[0]
+            if c and row.count(c) == n:
+                cut[i][gi] = (g, lo0, c)
+            else:
+                uneven.add(i)
+            if i in drops:
+                d = before[off:off + n]
+                if d.count(d[0]) == n:
+                    drops[i][gi] = d[0]
+                else:
+                    uneven.add(i)
             off += n
-    return out, nxt, unsure
+    return got
 
 
-def _held(members: list[tuple[int, int, _Group, int, float, float, int, bool]],
+def _held(members: list[tuple[int, int, _Group, int, int, float, float, bool]],
           rows: list[int], w: int) -> np.ndarray | None:
     """Which places of `_row_counts`' bands (w wide, one row per group row) hold a
     pending sample, when a group's rows hold different numbers; else None (all do)."""
     if all(g.hi.count(g.hi[0]) == len(g.hi) for _, _, g, *_ in members):
         return None
     ends = np.array([h for mb in members for h in mb[2].hi], dtype=np.int64)
-    ends -= np.repeat([mb[3] for mb in members], rows)  # from each band's start
+    ends -= np.repeat([mb[3] + mb[4] for mb in members], rows)  # from each band's start
     return _arange(w)[None, :] < ends[:, None]
 
 
