@@ -164,6 +164,13 @@ def _split(items: list[_Item]) -> tuple[
     return whole, rest, alone, got.rows, drops
 
 
+# One group of an item to count (`_row_counts`): the item's position, the group's
+# index, the group, its first pending index, where its band starts in the pending
+# samples, the window's end, the next window's start (the end when tumbling), whether
+# the band ends with the most pending in a row.
+_Member = tuple[int, int, _Group, int, int, float, float, bool]
+
+
 @dataclass(slots=True)
 class _Counted:
     """What `_row_counts` found, per item by position: per group, how many samples
@@ -179,6 +186,31 @@ class _Counted:
     drops: _Drops = field(default_factory=dict)
     uneven: set[int] = field(default_factory=set)
     unsure: set[int] = field(default_factory=set)
+
+    def note(self, members: list[_Member], w: int, below: list[int], before: list[int],
+             known: list[bool]) -> None:
+        """The counts of `_row_counts`' members of band width w, row by row: `below`
+        (before the end), `before` (before the next window's start), whether `known`."""
+        rows_of, cut, drops, uneven, unsure = (self.rows, self.cut, self.drops,
+                                               self.uneven, self.unsure)
+        off = 0
+        for i, gi, g, lo0, s0, _, _, to_end in members:
+            n = len(g.chans)
+            row = rows_of[i][gi] = below[off:off + n]
+            if (not to_end and s0 + w in row) or (s0 and False in known[off:off + n]):
+                unsure.add(i)
+            c = row[0]
+            if c and row.count(c) == n:
+                cut[i][gi] = (g, lo0, c)
+            else:
+                uneven.add(i)
+            if i in drops:
+                d = before[off:off + n]
+                if d.count(d[0]) == n:
+                    drops[i][gi] = d[0]
+                else:
+                    uneven.add(i)
+            off += n
 
     def merge(self, again: _Counted) -> None:
         """`again`, a count of this one's unsure items, in place of theirs."""
@@ -216,13 +248,9 @@ def _row_counts(items: list[_Item], wide: bool = False) -> _Counted:
     groups of one band width in one step, within a band of each row (`_band`; `wide`:
     from the first sample); an item whose count the band cannot tell (a row's end
     outside it: samples missing, a sensor far off its rate) is `unsure`."""
-    # By band width: (item position, group index, the group, its first pending index,
-    # where its band starts in the pending samples, the window's end, the next
-    # window's start (the end when tumbling), whether the band ends with the most
-    # pending in a row).
-    by_w: dict[int, list[tuple[int, int, _Group, int, int, float, float, bool]]] = {}
+    by_w: dict[int, list[_Member]] = {}  # by band width
     got = _Counted()
-    rows_of, cut, drops, uneven, unsure = got.rows, got.cut, got.drops, got.uneven, got.unsure
+    rows_of, cut, drops, uneven = got.rows, got.cut, got.drops, got.uneven
     hopping = False
     for i, a, _, end, spans in items:
         rows_of[i] = [_NONE] * len(spans)
@@ -256,29 +284,11 @@ def _row_counts(items: list[_Item], wide: bool = False) -> _Counted:
         if hopping:
             lt = tm < np.repeat([mb[6] for mb in members], rows)[:, None]
             before = (lt if held is None else lt & held).sum(axis=1).tolist()
-        off = 0
-        for i, gi, g, lo0, s0, _, _, to_end in members:
-            n = len(g.chans)
-            row = rows_of[i][gi] = below[off:off + n]
-            if (not to_end and s0 + w in row) or (s0 and False in known[off:off + n]):
-                unsure.add(i)
-            c = row[0]
-            if c and row.count(c) == n:
-                cut[i][gi] = (g, lo0, c)
-            else:
-                uneven.add(i)
-            if i in drops:
-                d = before[off:off + n]
-                if d.count(d[0]) == n:
-                    drops[i][gi] = d[0]
-                else:
-                    uneven.add(i)
-            off += n
+        got.note(members, w, below, before, known)
     return got
 
 
-def _held(members: list[tuple[int, int, _Group, int, int, float, float, bool]],
-          rows: list[int], w: int) -> np.ndarray | None:
+def _held(members: list[_Member], rows: list[int], w: int) -> np.ndarray | None:
     """Which places of `_row_counts`' bands (w wide, one row per group row) hold a
     pending sample, when a group's rows hold different numbers; else None (all do)."""
     if all(g.hi.count(g.hi[0]) == len(g.hi) for _, _, g, *_ in members):
