@@ -7,8 +7,9 @@ blocks of the cut are rows of one matrix (`Block.base`), which the feature pass 
 whole. When samples past the window's end are pending (a block straddling it, one
 channel's next reading in, a hopping window), the rows are first counted for all
 such assets at once, in a band around where a sensor at its rate puts the end
-(`_row_counts`). Rows starting apart are compacted first. Several windows due, and
-what the counting cannot tell, go through `WindowAssembler.close_due`. Pure.
+(`_row_counts`). Rows starting apart are compacted first; an asset with several
+windows due has them cut one pass after another. The first window, gaps and what the
+counting cannot tell go through `WindowAssembler.close_due`. Pure.
 """
 
 from __future__ import annotations
@@ -34,20 +35,20 @@ from agent.core.windows.assembler import (
 _Item = tuple[int, WindowAssembler, float, float, list[tuple[_Group, int, int]]]
 
 
-# What `_plan` found for an assembler.
-_NOTHING, _PLACED, _ALONE = 0, 1, 2
+# What `_plan` found for an assembler (`_MORE`: placed, and a window after it is due).
+_NOTHING, _PLACED, _ALONE, _MORE = 0, 1, 2, 3
 
 
 def _plan(a: WindowAssembler, now: float, i: int, full: list[_Item],
           rest: list[_Item]) -> int:
-    """Whether `a` (position i) has nothing due at `now` (`_NOTHING`), exactly its next
-    window (tumbling, or hopping a whole number of hops long; every rate group's rows
-    are made to start in step) (`_PLACED`: its item put in `full` when tumbling with every
-    pending sample of every group before the end, some in each and as many in each
-    row, else in `rest`, with each group's most pending in a row), or anything else
-    (`_ALONE`: `close_due`). Reads only what the assembler keeps for it
-    (`_set_next`: when its next window and the one after are due), as
-    `_due(end, _reach(now))` would compute them."""
+    """Whether `a` (position i) has nothing due at `now` (`_NOTHING`), its next window
+    (tumbling, or hopping a whole number of hops long; every rate group's rows are
+    made to start in step) to cut (`_PLACED`, or `_MORE` when the window after it is
+    due too: its item put in `full` when tumbling with every pending sample of every
+    group before the end, some in each and as many in each row, else in `rest`, with
+    each group's most pending in a row), or anything else (`_ALONE`: `close_due`).
+    Reads only what the assembler keeps for it (`_set_next`: when its next window and
+    the one after are due), as `_due(end, _reach(now))` would compute them."""
     k, span = a._next_k, a._span_k
     if k is None or span is None or a._any_unsorted:
         return _ALONE
@@ -56,8 +57,7 @@ def _plan(a: WindowAssembler, now: float, i: int, full: list[_Item],
     reach = (max_ts + idle if idle != math.inf else -math.inf) if idle > 0.0 else max_ts
     if not (max_ts >= a._due_ts or reach >= a._due_reach):
         return _NOTHING
-    if max_ts >= a._due2_ts or reach >= a._due2_reach:
-        return _ALONE
+    more = max_ts >= a._due2_ts or reach >= a._due2_reach
     spans = []
     some = True  # every group has samples pending, as many in each of its rows
     for g in a._groups:
@@ -79,54 +79,82 @@ def _plan(a: WindowAssembler, now: float, i: int, full: list[_Item],
     end = (k + span) * hop  # as `_bounds`
     (full if span == 1 and some and max_ts < end else rest).append(
         (i, a, k * hop, end, spans))
-    return _PLACED
+    return _MORE if more else _PLACED
 
 
 def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[AssembleResult]:
     """`close_due(now)` of every assembler, the same windows in the same state after.
 
-    The usual case of a tick (exactly the next window of an asset due, its rows
-    starting in step) is cut for all such assets together (module docstring);
-    everything else goes through `close_due`.
+    The usual case of a tick (the next window of an asset due, its rows starting in
+    step) is cut for all such assets together (module docstring), window after window
+    while an asset has more due; everything else goes through `close_due`.
 
     An assembler that raises fails alone: its result is an empty one carrying the
     exception (`AssembleResult.error`); the others' windows are cut as usual.
     """
     results: list[AssembleResult | None] = [None] * len(assemblers)
+    todo: Sequence[int] = range(len(assemblers))
+    while todo:
+        more = _close_next(assemblers, todo, now, results)
+        todo = [i for i in more if results[i].error is None]  # type: ignore[union-attr]
+    return [r if r is not None else AssembleResult() for r in results]
+
+
+def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now: float,
+                results: list[AssembleResult | None]) -> list[int]:
+    """The next due window of each assembler at the positions `todo` (the joint cut
+    where it can, else `close_due`), added to `results`; the positions with a window
+    after it due too."""
+    got: list[AssembleResult | None] = [None] * len(assemblers)
     # The joint cut's items: those with every pending sample before the window's end
     # (`full`), the others (counted first, `_split`).
     full: list[_Item] = []
     others: list[_Item] = []
-    for i, a in enumerate(assemblers):
+    more: list[int] = []
+    for i in todo:
+        a = assemblers[i]
         try:
-            got = _plan(a, now, i, full, others)
-            if got == _ALONE:
-                results[i] = a.close_due(now)
-            elif got == _NOTHING:
-                results[i] = AssembleResult()
+            plan = _plan(a, now, i, full, others)
+            if plan == _ALONE:
+                got[i] = a.close_due(now)
+            elif plan == _NOTHING:
+                got[i] = AssembleResult()
+            elif plan == _MORE:
+                more.append(i)
         except Exception as exc:
-            results[i] = AssembleResult(exc)
+            got[i] = AssembleResult(exc)
     try:
         whole, rest, alone, counts, drops = _split(others)
         for i, a in alone:  # hopping windows that do not fit the joint cut
             try:
-                results[i] = a.close_due(now)
+                got[i] = a.close_due(now)
             except Exception as exc:
-                results[i] = AssembleResult(exc)
+                got[i] = AssembleResult(exc)
         if full or whole:
-            _close_whole(full + whole if whole else full, results, drops)
+            _close_whole(full + whole if whole else full, got, drops)
         if rest:
-            _finish(rest, _cut_blocks(rest, counts), results, now)
+            _finish(rest, _cut_blocks(rest, counts), got, now)
     except Exception:
         # The joint cut failed before it changed any assembler, or after finishing some
         # of them: the others each alone, contained.
         for i, a, *_ in (*full, *others):
-            if results[i] is None:
+            if got[i] is None:
                 try:
-                    results[i] = a.close_due(now)
+                    got[i] = a.close_due(now)
                 except Exception as exc:
-                    results[i] = AssembleResult(exc)
-    return [r if r is not None else AssembleResult() for r in results]
+                    got[i] = AssembleResult(exc)
+    for i in todo:
+        r, had = got[i], results[i]
+        if r is None:
+            r = got[i] = AssembleResult()
+        if had is None:
+            results[i] = r
+        else:  # an earlier window of this call
+            had.windows.extend(r.windows)
+            had.empty_skipped += r.empty_skipped
+            had.late_samples += r.late_samples
+            had.error = r.error
+    return more
 
 
 # Per hopping item (by position): per group, how many samples its rows drop once the

@@ -296,7 +296,8 @@ def test_close_many_with_blocks_of_part_of_a_window(block, pace, lost, phase) ->
     block arrives (lateness 0: the next window's samples are pending), at their rate or
     off it, some blocks lost: close_many cuts what close_due cuts. Steady sensors'
     windows are cut jointly (rows of one copy), counted in a band around the end,
-    unless a block makes two windows due at once (close_due's)."""
+    window after window when a block makes two due at once; close_due places each
+    asset's first."""
     from agent.core.windows.batch import close_many
 
     rates = (20.0, 20.0, 20.0)
@@ -325,8 +326,8 @@ def test_close_many_with_blocks_of_part_of_a_window(block, pace, lost, phase) ->
                     np.testing.assert_array_equal(g.values[c], w.values[c])
         assert [(a.next_start, a.pending_samples()) for a in one] == \
             [(a.next_start, a.pending_samples()) for a in many]
-    if pace == 1.0 and not lost and block <= 1.0 and total:
-        assert joint == total
+    if pace == 1.0 and not lost and total:  # all but each asset's first (close_due's)
+        assert joint >= total - 3
 
 
 @settings(max_examples=60, deadline=None)
