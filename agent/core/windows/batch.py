@@ -166,8 +166,8 @@ def _split(items: list[_Item]) -> tuple[
         list[_Item], list[_Item], list[tuple[int, WindowAssembler]],
         dict[int, list[list[int]]], _Drops]:
     """`close_many`'s items that are not full as those cut together by
-    `_close_whole`: those whose every group's rows all hold the
-    same number c > 0 of samples before the end (the next window's samples are
+    `_close_whole`: those whose every group's rows all hold the same number c > 0 of
+    samples before the end (the next window's samples are
     pending, or the window hops: counted first, `_row_counts`), as if c were all they
     held (a hopping window's rows also dropping alike, `drops`); the rest of the
     tumbling ones (a group without samples in the window, rows holding different
@@ -420,9 +420,8 @@ def _cut_blocks(fast: list[_Item], counts: dict[int, list[list[int]]]
     """The blocks of every (item, group) with samples, `counts` the rows' counts before
     the window's end (`_row_counts`). A group whose rows all hold the same number c of
     samples before the end is cut with every other such group of that c as rows of one
-    copy, its block
-    a row range of it (`Block.base`); one whose rows hold different counts gets a
-    block of its own."""
+    copy, its block a row range of it (`Block.base`); one whose rows hold different
+    counts gets a block of its own."""
     blocks: list[list[Block | None]] = [[None] * len(it[4]) for it in fast]
     # By c, in item order: (item, group index, the group, its first pending index).
     by_c: dict[int, list[tuple[int, int, _Group, int]]] = {}
