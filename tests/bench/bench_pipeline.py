@@ -69,6 +69,11 @@ class IdleLearning:
         return None
 
 
+# The bundles the first `build` of a run wrote: the other fleets load them too (each
+# its own sessions), instead of training 200 models again.
+_MADE: list = []
+
+
 def build(tmp: Path):
     rng = np.random.default_rng(0)
     names = [f"c{c}.{f}" for c in range(N_CHANNELS) for f in FEATS]
@@ -76,7 +81,9 @@ def build(tmp: Path):
     # inference across assets must not lean on models being shared.
     made = [quiet_bundle(tmp / f"bundle{i:03d}", names,
                          rng.normal(size=(500, len(names))) * rng.uniform(0.5, 2, len(names)),
-                         mean=0.0) for i in range(N_ASSETS)]
+                         mean=0.0) for i in range(N_ASSETS)] \
+        if not (_MADE and Path(_MADE[0][0]).exists()) else _MADE
+    _MADE[:] = made  # the other fleets of this run load the same bundles (same seed)
     doc = {"site": "bench", "gateway": "gw", "state_dir": str(tmp / "state"),
            "assets": [{"name": f"A{i:03d}", "bundle": str(made[i][0]),
                        "window": {"length_s": 1.0, "lateness_s": 0.0, "timeout_s": 0.5},
