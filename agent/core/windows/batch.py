@@ -130,8 +130,10 @@ def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now:
                 got[i] = a.close_due(now)
             except Exception as exc:
                 got[i] = AssembleResult(exc)
-        if full or whole:
-            _close_whole(full + whole if whole else full, got, drops)
+        if full and whole:  # in the assemblers' order: the feature pass's aligned path
+            _close_whole(sorted(full + whole, key=_position), got, drops)
+        elif full or whole:
+            _close_whole(full or whole, got, drops)
         if rest:
             _finish(rest, _cut_blocks(rest, counts), got, now)
     except Exception:
@@ -155,6 +157,10 @@ def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now:
             had.late_samples += r.late_samples
             had.error = r.error
     return more
+
+
+def _position(item: _Item) -> int:
+    return item[0]
 
 
 # Per hopping item (by position): per group, how many samples its rows drop once the

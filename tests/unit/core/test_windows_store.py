@@ -365,3 +365,27 @@ def test_close_many_with_one_reading_per_message(phases, lost, keep) -> None:
     assert total >= 8
     if not lost:
         assert joint >= total - 1
+
+
+def test_close_many_keeps_the_assemblers_order_in_the_cut_matrix() -> None:
+    """Assets whose window holds all their samples and assets whose next window's
+    samples are already pending, cut in one tick: their blocks are rows of one matrix
+    in the assemblers' order (what the feature pass's aligned path reads)."""
+    from agent.core.windows.batch import close_many
+
+    rates = (20.0, 20.0)
+    cfg = WindowConfig(1.0, 1.0, 0.0, 1.0, 0.5)
+    many = [WindowAssembler(cfg, rates) for _ in range(6)]
+    ts = T0 + np.arange(20) / 20.0
+    for k in range(3):
+        for ai, a in enumerate(many):
+            ahead = ai % 2  # odd assets: the next window's first sample already in
+            for c in range(2):
+                part = ts[1:] if ahead and k else ts
+                a.add(c, part + k, part + k, T0 + k + 1.0, presorted=True)
+                if ahead:
+                    a.add(c, ts[:1] + k + 1, ts[:1], T0 + k + 1.0, presorted=True)
+        got = close_many(many, T0 + k + 1.6)
+    blocks = [r.windows[0].blocks[0] for r in got]
+    assert len({id(b.base) for b in blocks}) == 1
+    assert [b.row0 for b in blocks] == [2 * ai for ai in range(6)]
