@@ -374,7 +374,8 @@ def test_close_many_keeps_the_assemblers_order_in_the_cut_matrix() -> None:
     from agent.core.windows.batch import close_many
 
     rates = (20.0, 20.0)
-    cfg = WindowConfig(1.0, 1.0, 0.0, 1.0, 0.5)
+    # Even assets: their windows close by the timeout (0.5 s) with all samples in.
+    cfg = WindowConfig(1.0, 1.0, 0.0, 0.5, 0.5)
     many = [WindowAssembler(cfg, rates) for _ in range(6)]
     ts = T0 + np.arange(20) / 20.0
     for k in range(3):
