@@ -18,6 +18,8 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from itertools import repeat
+from operator import attrgetter, is_, ne
 from typing import Protocol
 
 import numpy as np
@@ -35,6 +37,7 @@ from agent.core.windows.closed import ClosedWindow
 from agent.pipeline.runtime import AssetLayout, AssetRuntime
 
 NF = len(FEATURE_INDEX)
+_BASE, _ROW0, _UNIFORM = attrgetter("base"), attrgetter("row0"), attrgetter("uniform")
 
 
 class Pending(Protocol):
@@ -210,34 +213,57 @@ class _Aligned:
 def _aligned(todo: Sequence[Pending]) -> _Aligned | None:
     """The windows as `_Aligned` when every block of each is full and, block by block,
     the windows' blocks are the rows of one matrix in window order (the joint cut's),
-    and their assets share one `_Template` (and speed channel); else None."""
+    and their assets share one `_Template` (and speed channel); else None.
+
+    Asked once per tick of every window: each question is put to all the windows at
+    once (attribute reads mapped over them), not window by window."""
     first = todo[0].w.blocks
-    bases = [b.base for b in first if b.base is not None]
-    if not first or len(bases) != len(first):
+    if not first or any(b.base is None or not b.uniform for b in first):
         return None
-    rows = [len(b.chans) for b in first]
-    at = [0] * len(first)
-    lay0 = todo[0].rt.layout
-    tmpl = template(lay0)
-    last = None
-    needs: set[frozenset[str]] = set()
-    for p in todo:
-        blocks = p.w.blocks
-        if len(blocks) != len(at):
+    n = len(todo)
+    blocks = [p.w.blocks for p in todo]
+    if any(map(ne, map(len, blocks), repeat(len(first)))):
+        return None
+    bases: list[np.ndarray] = []
+    rows: list[int] = []
+    for b, blk in enumerate(first):
+        base, r = blk.base, len(blk.chans)
+        assert base is not None
+        of_b = [w[b] for w in blocks]
+        # Window j's block b is rows j * r.. of the one matrix, every row full.
+        if (base.shape[0] != n * r or not all(map(is_, map(_BASE, of_b), repeat(base)))
+                or list(map(_ROW0, of_b)) != list(range(0, n * r, r))
+                or not all(map(_UNIFORM, of_b))):
             return None
-        for b, blk in enumerate(blocks):
-            if blk.base is not bases[b] or blk.row0 != at[b] or not blk.uniform:
-                return None
-            at[b] += rows[b]
-        lay = p.rt.layout
-        if lay is not last:
-            if template(lay) is not tmpl or lay.speed_index != lay0.speed_index:
-                return None
-            needs.add(lay.td_needed)
-            last = lay
-    if any(a != base.shape[0] for a, base in zip(at, bases, strict=True)):
+        bases.append(base)
+        rows.append(r)
+    shared = _shared([p.rt.layout for p in todo])
+    if shared is None:
         return None
-    return _Aligned(tuple(bases), tuple(rows), tmpl, lay0, frozenset().union(*needs))
+    return _Aligned(tuple(bases), tuple(rows), *shared)
+
+
+# The layouts of the last windows `_shared` was asked about, and its answer: the same
+# assets close windows tick after tick (one entry, replaced whole).
+_LAST_SHARED: list[tuple[list[AssetLayout], tuple[_Template, AssetLayout,
+                                                  frozenset[str]] | None]] = [([], None)]
+
+
+def _shared(lays: list[AssetLayout]) -> tuple[_Template, AssetLayout, frozenset[str]] | None:
+    """The `_Template` every layout of `lays` has (with the first's speed channel), the
+    first layout, and the time-domain features any of them needs; None when they are
+    not all alike."""
+    last, got = _LAST_SHARED[0]
+    if len(last) == len(lays) and all(map(is_, lays, last)):
+        return got
+    lay0 = lays[0]
+    tmpl = template(lay0)
+    distinct = {id(lay): lay for lay in lays}.values()
+    got = None if any(template(lay) is not tmpl or lay.speed_index != lay0.speed_index
+                      for lay in distinct) else \
+        (tmpl, lay0, frozenset().union(*{lay.td_needed for lay in distinct}))
+    _LAST_SHARED[0] = (lays, got)
+    return got
 
 
 def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None) -> list[np.ndarray]:
