@@ -35,14 +35,14 @@ from agent.pipeline.messages import (
     StatePayload,
     dumps_each,
     ratio,
-    round_many,
+    round_scaled,
 )
 from agent.pipeline.runtime import AssetRuntime
 
 # Per window of a tick, the scores rounded to 6 digits and then their ratios to the
 # thresholds rounded to 3 (NaN: null), and each of those as JSON (`Emitter._numbers`).
 _Numbers = tuple[list[float], list[bytes]]
-_DIGITS = np.array([6, 3], dtype=np.int64)  # of the score, of its ratio
+_SCALES = np.array([1e6, 1e3])  # 10**digits of the score, of its ratio
 
 
 class ScoredWindow(Protocol):
@@ -343,7 +343,7 @@ class Emitter:
         n = len(score)
         x = np.asarray(score, dtype=np.float64)
         r = np.divide(x, threshold, out=np.full(n, math.nan), where=threshold > 0)
-        rounded = round_many(np.concatenate((x, r)), np.repeat(_DIGITS, n))
+        rounded = round_scaled(np.concatenate((x, r)), np.repeat(_SCALES, n))
         return rounded, dumps_each(rounded)
 
     def _state_message(self, slot: _AssetSlot, rt: AssetRuntime, end: float, mode: str,

@@ -93,18 +93,23 @@ def round_many(x: np.ndarray, ndigits: int | np.ndarray) -> list[float]:
     nd = np.broadcast_to(np.asarray(ndigits, dtype=np.int64), x.shape)
     if not ((nd == 6) | (nd == 3)).all():
         raise ValueError("ndigits must be 3 or 6")
-    scale = np.where(nd == 6, 1e6, 1e3)
+    return round_scaled(x, np.where(nd == 6, 1e6, 1e3))
+
+
+def round_scaled(x: np.ndarray, scale: np.ndarray) -> list[float]:
+    """`round_many` with each element's 10**ndigits given, 1e6 or 1e3 (nothing else),
+    by a caller that rounds to the same digits every time."""
     with np.errstate(all="ignore"):  # NaN and infinities go to `round` below
         y = x * scale
         f = np.floor(y)
         d = (y - f) - 0.5
-        err = y * _REL_ERR
-        up = d > err
+        up = d > y * _REL_ERR
         out = (np.where(up, f + 1.0, f) / scale).tolist()
-        unsure = ~((y > 0.0) & (y < _EXACT_BELOW) & (up | (d < -err)))
-    if unsure.any():
-        for i in np.flatnonzero(unsure).tolist():
-            out[i] = round(float(x[i]), int(nd[i]))
+        # Sure: y positive and exact, and further than its error from a half-integer.
+        sure = (np.abs(d) > y * _REL_ERR) & (y > 0.0) & (y < _EXACT_BELOW)
+    if not sure.all():
+        for i in np.flatnonzero(~sure).tolist():
+            out[i] = round(float(x[i]), 6 if scale[i] == 1e6 else 3)
     return out
 
 

@@ -16,7 +16,7 @@ from agent.core.detector import Detector, DetectorParams, State
 from agent.core.escalation import EscalationTracker
 from agent.core.events import rfc3339, severity_for
 from agent.pipeline.emit import ratio, to_json
-from agent.pipeline.messages import StatePayload, dumps_each, round_many, round_to
+from agent.pipeline.messages import StatePayload, dumps_each, round_many, round_scaled, round_to
 
 
 def same(a: float, b: float) -> bool:
@@ -196,3 +196,18 @@ def test_a_percent_sign_in_the_fixed_parts_is_written_as_it_is() -> None:
            "score_ratio": 0.333, "threshold": 1.5, "window_end": "t", "model": model,
            "last_event": None}
     assert tpl.render(b"0.5", b"0.333", b'"t"') == to_json(doc)
+
+
+@settings(max_examples=300)
+@given(st.lists(st.one_of(st.floats(allow_nan=True, allow_infinity=True),
+                          st.floats(0, 1e4), st.integers(0, 10**7).map(lambda k: k / 2e6)),
+                min_size=1, max_size=40))
+def test_round_scaled_is_round_to_its_digits(xs: list[float]) -> None:
+    """`round_scaled` (what the emitter rounds a tick's scores and ratios with: each
+    element's 10**digits given) is `round` of each, half-way cases included."""
+    x = np.asarray(xs * 2, dtype=np.float64)
+    scale = np.repeat([1e6, 1e3], len(xs))
+    want = [round(v, 6) for v in xs] + [round(v, 3) for v in xs]
+    got = round_scaled(x, scale)
+    assert all((a == b and math.copysign(1, a) == math.copysign(1, b)) or (a != a and b != b)
+               for a, b in zip(got, want, strict=True))
