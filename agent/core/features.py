@@ -154,8 +154,8 @@ def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES, *,
             m4 = np.einsum("ij,ij->i", d2, d2) * inv
             cols["kurtosis"] = np.where(flat, 0.0, m4 / (safe * safe))
     if needed & {"min", "max", "peak_to_peak", "crest_factor"}:
-        mn = x.min(axis=1)
-        mx = x.max(axis=1)
+        mn = row_extreme(x, np.minimum)
+        mx = row_extreme(x, np.maximum)
         cols["min"], cols["max"], cols["peak_to_peak"] = mn, mx, mx - mn
     if needed & {"rms", "crest_factor"}:
         rms = np.sqrt(np.einsum("ij,ij->i", x, x) * inv)
@@ -166,6 +166,25 @@ def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES, *,
     for name in needed:
         out[:, FEATURE_INDEX[name]] = cols[name]
     return out
+
+
+def row_extreme(x: np.ndarray, op: np.ufunc) -> np.ndarray:
+    """`op.reduce(x, axis=1)` (`np.minimum` or `np.maximum`: `x.min(axis=1)`,
+    `x.max(axis=1)`) of a matrix with rows, the same floats.
+
+    Along short rows numpy's row reduction pays its setup per row (a 100-sample row: about
+    60 ns, its work a few); `reduceat` over the flat samples runs the rows in one loop,
+    twice as fast for [1600, 100]. The extreme of a row is one of its samples whatever the
+    order it is found in, except the sign of a zero (-0.0 and 0.0 compare equal) and which
+    NaN: rows whose extreme is zero or NaN are reduced again the usual way."""
+    n, length = x.shape
+    if not x.flags.c_contiguous:
+        return op.reduce(x, axis=1)
+    got = op.reduceat(x.reshape(-1), np.arange(0, n * length, length))
+    again = np.flatnonzero(~(np.abs(got) > 0.0))
+    if again.size:
+        got[again] = op.reduce(x[again], axis=1)
+    return got
 
 
 def feature_names(channels: Sequence[tuple[str, Sequence[str]]]) -> tuple[str, ...]:

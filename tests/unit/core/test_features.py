@@ -9,7 +9,7 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
 from agent.config.load import FEATURES
-from agent.core.features import FEATURE_INDEX, feature_names, segment_features
+from agent.core.features import FEATURE_INDEX, feature_names, row_extreme, segment_features
 
 
 def col(row: np.ndarray, name: str) -> float:
@@ -171,3 +171,20 @@ def test_work_arrays_are_reused_and_change_nothing() -> None:
                                   block_features(np.vstack(parts)))
     again = stack_rows(parts[::-1], work=work)
     assert np.shares_memory(again, x)
+
+
+@settings(max_examples=300)
+@given(hnp.arrays(np.float64, st.tuples(st.integers(1, 12), st.integers(1, 140)),
+                  elements=st.one_of(st.sampled_from([0.0, -0.0, np.nan, np.inf, -np.inf, 1.0,
+                                                      -1.0]),
+                                     st.floats(-1e6, 1e6))),
+       st.booleans())
+def test_row_extreme_is_the_row_reduction_bit_for_bit(x: np.ndarray, strided: bool) -> None:
+    """`row_extreme` (block_features' min and max) gives `x.min(axis=1)` and
+    `x.max(axis=1)` to the bit: signed zeros, NaN and infinities included, on a matrix
+    with rows of its own and on a strided view."""
+    if strided:
+        x = np.repeat(x, 2, axis=1)[:, ::2]
+    for op, want in ((np.minimum, x.min(axis=1)), (np.maximum, x.max(axis=1))):
+        got = row_extreme(x, op)
+        assert got.tobytes() == want.tobytes()
