@@ -142,7 +142,10 @@ def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES, *,
     if needed & {"std", "skewness", "kurtosis"}:
         # Central moments from deviations about each row's own mean (see segment_features).
         d = np.subtract(x, mean[:, None], out=work_array(work, "d", x.shape))
-        d2 = np.multiply(d, d, out=work_array(work, "d2", x.shape))
+        # Squared in place unless skewness reads d again: one array less to go through
+        # the cache.
+        d2 = np.multiply(d, d, out=work_array(work, "d2", x.shape) if "skewness" in needed
+                         else d)
         m2 = d2.sum(axis=1) * inv
         flat = m2 <= (1e-12 * np.maximum(np.abs(mean), 1e-300)) ** 2
         safe = np.where(flat, 1.0, m2)
