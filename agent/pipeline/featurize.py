@@ -278,31 +278,59 @@ def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None) -> list[np.ndar
         flats.append(f.reshape(-1))
         pos += f.size
     t, lay = al.tmpl, al.lay
-    j = np.arange(n, dtype=np.int64)[:, None]
-    # Per window, where each channel's time-domain features start.
-    td = np.asarray([starts[b] for b, _ in t.chan_at], dtype=np.int64) + \
-        (j * np.asarray([al.rows[b] for b, _ in t.chan_at], dtype=np.int64)
-         + np.asarray([r for _, r in t.chan_at], dtype=np.int64)) * NF
-    if t.n_spec:
-        speeds = np.full(n, np.nan)
-        if t.wants_speed and lay.speed_index is not None:
-            b, r = lay.chan_at[lay.speed_index]
-            # As `_spectral` reads it: each window's speed samples' mean, in rev/min.
-            speeds = al.bases[b][r::al.rows[b]].mean(axis=1) / 60.0
-        segs: list[Segment] = []
-        for jj in range(n):
-            for ci in lay.spectral:
-                b, r = lay.chan_at[ci]
-                segs.append((al.bases[b], jj * al.rows[b] + r))
-        rates = [fs for _, fs in t.spectra] * n
-        cfgs = [sp for sp, _ in t.spectra] * n
-        spec_flat, spec_starts = spectral_flat(segs, rates, cfgs,
-                                               np.repeat(speeds, t.n_spec).tolist(), work)
-        flats.append(spec_flat)
-        sp = spec_starts.reshape(n, t.n_spec) + pos
-        td = np.concatenate([td, sp], axis=1)
+    if not t.n_spec:
+        flat = np.concatenate(flats) if len(flats) > 1 else flats[0]
+        return list(flat[_plain_index(t, n, al.rows, tuple(starts))])
+    td = _td_starts(t, n, al.rows, starts)
+    # The spectra of the spectral channels' rows, one FFT per group of segments.
+    speeds = np.full(n, np.nan)
+    if t.wants_speed and lay.speed_index is not None:
+        b, r = lay.chan_at[lay.speed_index]
+        # As `_spectral` reads it: each window's speed samples' mean, in rev/min.
+        speeds = al.bases[b][r::al.rows[b]].mean(axis=1) / 60.0
+    segs: list[Segment] = []
+    for jj in range(n):
+        for ci in lay.spectral:
+            b, r = lay.chan_at[ci]
+            segs.append((al.bases[b], jj * al.rows[b] + r))
+    rates = [fs for _, fs in t.spectra] * n
+    cfgs = [sp for sp, _ in t.spectra] * n
+    spec_flat, spec_starts = spectral_flat(segs, rates, cfgs,
+                                           np.repeat(speeds, t.n_spec).tolist(), work)
+    flats.append(spec_flat)
+    sp = spec_starts.reshape(n, t.n_spec) + pos
+    td = np.concatenate([td, sp], axis=1)
     flat = np.concatenate(flats) if len(flats) > 1 else flats[0]
     return list(flat[td[:, t.slot] + t.const])
+
+
+def _td_starts(t: _Template, n: int, rows: Sequence[int], starts: Sequence[int]
+               ) -> np.ndarray:
+    """Per window j of an aligned tick (`_aligned_rows`; its blocks rows j * rows[b]..
+    of the block matrices, whose features start at `starts[b]` in the passes' flat
+    array), where each channel's time-domain features start: [n, channels]."""
+    j = np.arange(n, dtype=np.int64)[:, None]
+    return np.asarray([starts[b] for b, _ in t.chan_at], dtype=np.int64) + \
+        (j * np.asarray([rows[b] for b, _ in t.chan_at], dtype=np.int64)
+         + np.asarray([r for _, r in t.chan_at], dtype=np.int64)) * NF
+
+
+# The last gather index `_plain_index` made and what for (one entry, replaced whole).
+_LAST_INDEX: list[tuple[_Template | None, tuple[object, ...], np.ndarray]] = [
+    (None, (), np.empty((0, 0), np.int64))]
+
+
+def _plain_index(t: _Template, n: int, rows: tuple[int, ...], starts: tuple[int, ...]
+                 ) -> np.ndarray:
+    """The index whose row j gathers window j's row out of the passes' flat array, for
+    an aligned tick without spectra; made again only when the template, the number of
+    windows or the passes' layout change (the same assets close windows tick after
+    tick)."""
+    tmpl, key, index = _LAST_INDEX[0]
+    if tmpl is not t or key != (n, rows, starts):
+        index = _td_starts(t, n, rows, starts)[:, t.slot] + t.const
+        _LAST_INDEX[0] = (t, (n, rows, starts), index)
+    return index
 
 
 def _gather(flat: np.ndarray, starts: dict[int, int], spec_starts: np.ndarray,

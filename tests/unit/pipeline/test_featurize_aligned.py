@@ -118,3 +118,28 @@ def test_aligned_answers_as_the_walk_through_every_window(
             _same(featurize._aligned(v), _walked(v))  # the layouts' answer remembered
         aligned += featurize._aligned(todo) is not None
     assert aligned >= (0 if "B" in rates and len(rates["B"]) != len(rates["A"]) else 4)
+
+
+def test_aligned_rows_without_spectra_are_the_general_paths(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """The aligned tick without spectra (its gather index kept from tick to tick while
+    the template and the number of windows stay) gives the general path's rows bit for
+    bit, ticks of two fleets of other sizes and layouts taken in turn."""
+    fleets = [_todos(tmp_path / "a", monkeypatch, {"A": (20.0, 20.0), "B": (20.0, 20.0),
+                                                   "C": (20.0, 20.0)}, {}),
+              _todos(tmp_path / "b", monkeypatch, {"A": (20.0, 8.0, 20.0),
+                                                   "B": (20.0, 8.0, 20.0)},
+                     {"B": ["kurtosis", "min", "skewness"]})]
+    real = featurize._aligned
+    taken = 0
+    for todos in zip(*fleets, strict=False):
+        for todo in (*todos, *todos[::-1]):
+            got = featurize.feature_rows(todo)
+            taken += real(todo) is not None
+            monkeypatch.setattr(featurize, "_aligned", lambda todo: None)
+            want = featurize.feature_rows(todo)
+            monkeypatch.setattr(featurize, "_aligned", real)
+            assert len(got) == len(want) == len(todo)
+            for g, w in zip(got, want, strict=True):
+                np.testing.assert_array_equal(g, w)
+    assert taken >= 12
