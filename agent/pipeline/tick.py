@@ -152,7 +152,7 @@ class Pipeline:
         self._limited = [bool(rt.limits or rt.layout.velocity_at) for rt in runtimes]
         self._index = {id(rt): ai for ai, rt in enumerate(runtimes)}
         # (models, mode, bundle, positions) of its last window (`Models` is replaced whole)
-        self._serving: list[tuple[Any, ...]] = [(None, "")] * len(runtimes)
+        self._serving: list[tuple[Any, ...]] = [(None, "", None, None)] * len(runtimes)
 
     def _all_bundles(self) -> list[Bundle]:
         return [b for rt in self.runtimes
@@ -414,12 +414,10 @@ class Pipeline:
                 if observer is not None and (observes is None or observes(names[ai])):
                     lay = rt.layout
                     observer(names[ai], p.mode, p.w, row[lay.record_index], lay.record_names)
-                models, got = rt.models, serving[ai]
-                if got[0] is models and got[1] == p.mode:
-                    bundle, index = got[2], got[3]
-                else:
-                    bundle, index = models.for_mode(p.mode)
-                    serving[ai] = (models, p.mode, bundle, index)
+                models, mode, bundle, index = serving[ai]
+                if models is not rt.models or mode != p.mode:
+                    bundle, index = rt.models.for_mode(p.mode)
+                    serving[ai] = (rt.models, p.mode, bundle, index)
                 if bundle is None:
                     skip(rt, "no_model")
                     continue
