@@ -149,3 +149,28 @@ def test_top_contributors_with_zero_error_have_zero_shares() -> None:
     top = top_contributors(("a", "b"), np.zeros(2))
     assert [c["share"] for c in top] == [0.0, 0.0]
     json.dumps(top, allow_nan=False)
+
+
+def _rfc3339_by_strftime(ts: float) -> str:
+    """rfc3339 as first written (strftime), the text it must keep."""
+    from datetime import UTC
+
+    dt = datetime.fromtimestamp(ts, tz=UTC)
+    return dt.strftime("%Y-%m-%dT%H:%M:%S.") + f"{dt.microsecond // 1000:03d}Z"
+
+
+@given(st.one_of(st.floats(-6e10, 2.5e11, allow_nan=False),
+                 st.integers(-6 * 10**10, 2 * 10**11).map(lambda s: s + 0.9995),
+                 st.integers(0, 4 * 10**9).map(float),
+                 st.sampled_from([0.0, -0.0005, 0.0005, 0.9999995, -30610224000.0,
+                                  -30610224000.001, 253402300799.999])))
+def test_rfc3339_is_the_strftime_text(ts: float) -> None:
+    """rfc3339 writes what strftime wrote, for every time datetime can hold: years
+    below 1000 and milliseconds rounded up to the next second included."""
+    try:
+        want = _rfc3339_by_strftime(ts)
+    except (OverflowError, OSError, ValueError):
+        with pytest.raises((OverflowError, OSError, ValueError)):
+            rfc3339(ts)
+        return
+    assert rfc3339(ts) == want
