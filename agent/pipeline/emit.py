@@ -264,7 +264,6 @@ class Emitter:
         score, sqs, ok = got.score, got.sq, got.ok
         rounded, js = numbers = self._numbers(score, got.threshold)
         get, normal, plain, n = self._slots.get, State.NORMAL, not self.publish_scores, len(js)
-        append = self.out.append
         counted, last_end, end_json, retained = 0, math.nan, b"", Kind.STATE  # read once
         for j, p in enumerate(wins):
             rt = p.rt
@@ -307,7 +306,7 @@ class Emitter:
                     continue
                 if end != last_end:  # windows of a tick mostly end together
                     last_end, end_json = end, self.time_json(end)
-                append(OutMessage(
+                self.out.append(OutMessage(
                     slot.state_topic, tpl.fmt % (js[j], js[n // 2 + j], end_json), retained,
                     1, True, slot.state_topic, slot.name, None, None, rounded[j], threshold))
             except Exception as exc:
