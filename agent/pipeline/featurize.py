@@ -164,9 +164,11 @@ def _place_all(todo: Sequence[Pending]) -> _Placed:
     return _Placed(by_len, n_by_len, whole, ragged, lens, offs)
 
 
-def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None) -> list[np.ndarray]:
+def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None
+                 ) -> list[np.ndarray] | np.ndarray:
     """The full feature row of each window (module docstring), the passes in `work`'s
-    reusable arrays. Rows are views of one array per class of windows."""
+    reusable arrays. Rows are views of one array per class of windows; the aligned
+    tick's (`_aligned`) come as that one [windows, features] matrix, row j window j's."""
     al = _aligned(todo)
     if al is not None:
         return _aligned_rows(al, len(todo), work)
@@ -266,7 +268,7 @@ def _shared(lays: list[AssetLayout]) -> tuple[_Template, AssetLayout, frozenset[
     return got
 
 
-def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None) -> list[np.ndarray]:
+def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None) -> np.ndarray:
     """`feature_rows` of the n windows of `al`: one time-domain pass per block matrix,
     the spectra of its rows, every row gathered in one step."""
     flats: list[np.ndarray] = []
@@ -280,7 +282,7 @@ def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None) -> list[np.ndar
     t, lay = al.tmpl, al.lay
     if not t.n_spec:
         flat = np.concatenate(flats) if len(flats) > 1 else flats[0]
-        return list(flat[_plain_index(t, n, al.rows, tuple(starts))])
+        return flat[_plain_index(t, n, al.rows, tuple(starts))]
     td = _td_starts(t, n, al.rows, starts)
     # The spectra of the spectral channels' rows, one FFT per group of segments.
     speeds = np.full(n, np.nan)
@@ -301,7 +303,7 @@ def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None) -> list[np.ndar
     sp = spec_starts.reshape(n, t.n_spec) + pos
     td = np.concatenate([td, sp], axis=1)
     flat = np.concatenate(flats) if len(flats) > 1 else flats[0]
-    return list(flat[td[:, t.slot] + t.const])
+    return flat[td[:, t.slot] + t.const]
 
 
 def _td_starts(t: _Template, n: int, rows: Sequence[int], starts: Sequence[int]

@@ -53,6 +53,19 @@ class Scored:
         """n items, none scored yet (`put` fills them)."""
         return cls([math.nan] * n, [(_NO_ERRORS, 0)] * n, np.full(n, math.nan), [False] * n)
 
+    @classmethod
+    def of_parts(cls, items: Sequence[Item], parts: Sequence[tuple[Sequence[Item], Scored]]
+                 ) -> Scored:
+        """The answer for `items` from the answers for parts of them (keyed alike; the
+        items of no part are not scored)."""
+        if len(parts) == 1 and parts[0][0] is items:
+            return parts[0][1]
+        out = cls.empty(len(items))
+        at = {it[0]: j for j, it in enumerate(items)}
+        for part, got in parts:
+            out.put([at[it[0]] for it in part], got)
+        return out
+
     def put(self, at: Sequence[int], part: Scored) -> None:
         """`part`, the answer for the items at positions `at`, into this."""
         assert self.ok is not None
@@ -111,10 +124,13 @@ class Scorer:
             self.log.info(kv("batched inference", models=self.batched.n_models,
                              groups=len(self.batched.groups), of=len(bundles)))
 
-    def scores(self, items: Sequence[Item], on_error: Callable[[int, str], None]) -> Scored:
+    def scores(self, items: Sequence[Item], on_error: Callable[[int, str], None], *,
+               rows: np.ndarray | None = None) -> Scored:
         """Score, squared errors and threshold of every item, by position. `on_error(key,
         detail)` is told of each window whose model failed (`ok` False there); `detail`
-        is the error for a model's first failed window of the tick, "" for the rest."""
+        is the error for a model's first failed window of the tick, "" for the rest.
+        `rows`: the items' rows as one matrix (row j item j's), when the caller has it
+        (the aligned tick's features are one): taken instead of stacking them again."""
         t1 = time.perf_counter()
         bundles = list(map(_BUNDLE, items))
         indices = list(map(_INDEX, items))
@@ -127,21 +143,22 @@ class Scorer:
             groups = got if got is not None else self._group(key, items, bundles, indices)
             self._last = (bundles, indices, groups)
         if len(groups) == 1:
-            out = self._score(groups[0][1], items, on_error)
+            out = self._score(groups[0][1], items, on_error, rows)
         else:
             out = Scored.empty(len(items))
             for at, plan in groups:
-                out.put(at, self._score(plan, [items[j] for j in at], on_error))
+                out.put(at, self._score(plan, [items[j] for j in at], on_error,
+                                        None if rows is None else rows[at]))
         self.metrics.inference_seconds.observe(time.perf_counter() - t1)
         if self._stale:  # after the timing: a rebuild is not this tick's inference
             self.rebuild()
         return out
 
-    def _score(self, plan: _Plan, group: Sequence[Item],
-               on_error: Callable[[int, str], None]) -> Scored:
-        """The items of one width, as `plan` says."""
+    def _score(self, plan: _Plan, group: Sequence[Item], on_error: Callable[[int, str], None],
+               rows: np.ndarray | None) -> Scored:
+        """The items of one width, as `plan` says (`rows`: their rows, or None)."""
         if plan.index is not None:  # rows of one size: np.array stacks them fastest
-            x = np.array(list(map(_ROW, group)))[:, plan.index]
+            x = (np.array(list(map(_ROW, group))) if rows is None else rows)[:, plan.index]
         else:
             x = np.stack([it[1][it[3]] for it in group])
         z = ((x - plan.mean) / plan.scale).astype(np.float32)

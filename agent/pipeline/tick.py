@@ -34,7 +34,8 @@ from __future__ import annotations
 import logging
 import time
 from collections.abc import Callable, Mapping, Sequence
-from typing import Any, Protocol, TypeVar, cast
+from operator import attrgetter, is_, itemgetter
+from typing import Any, Protocol, cast
 
 import numpy as np
 
@@ -48,6 +49,7 @@ from agent.ingest.buffers import AssetInbox, Buffers, close_inboxes
 from agent.models.bundle import Bundle
 from agent.ops.logs import RateLimited, kv
 from agent.ops.metrics import Metrics
+from agent.pipeline.contain import contained
 from agent.pipeline.emit import AssetMetrics, Emitter, TickStats
 from agent.pipeline.featurize import feature_rows
 from agent.pipeline.health_batch import Prejudged
@@ -57,7 +59,7 @@ from agent.pipeline.messages import OutMessage
 from agent.pipeline.runtime import AssetRuntime
 from agent.pipeline.status import asset_status
 
-T = TypeVar("T")
+_ITEM_ROW, _ROW = itemgetter(1), attrgetter("row")  # of an `Item`, of a `Pending`
 STALE_MARGIN_S = 1e-6
 
 __all__ = ["Pipeline", "Sink", "TickStats", "WindowObserver", "WindowWanted"]
@@ -384,11 +386,12 @@ class Pipeline:
         runs for all windows at once; when it raises, it runs again asset by asset and
         only the asset that raises fails (`_failed`), the others go on."""
         todo = [p for p in pending if p.w.complete]
-        if todo:
-            self._rows(todo)
+        table = self._rows(todo) if todo else None
         items = self._items(pending)
-        if items:
-            self._detect(items, pending, self._scores(items, pending))
+        if items:  # the rows as one matrix to the scorer if every one is scored, in order
+            whole = len(items) == len(todo) and all(map(is_, map(_ITEM_ROW, items),
+                                                        map(_ROW, todo)))
+            self._detect(items, pending, self._scores(items, pending, table if whole else None))
 
     def _items(self, pending: list[Pending]) -> list[Item]:
         """Limits of every window with a feature row; the windows to score, keyed by
@@ -436,40 +439,27 @@ class Pipeline:
     def _model_error(self, rt: AssetRuntime) -> None:
         self._skip(rt, "model_error")
 
-    def _contained(self, todo: Sequence[T], rt_of: Callable[[T], AssetRuntime], stage: str,
-                   work: Callable[[Sequence[T]], None]) -> None:
-        """`work(todo)` for all at once; when it raises, again asset by asset, and only
-        an asset whose own part raises fails (`_failed` at `stage`)."""
-        try:
-            work(todo)
-            return
-        except Exception as exc:
-            if len({id(rt_of(it)) for it in todo}) == 1:
-                self._failed(rt_of(todo[0]), stage, exc)
-                return
-        groups: dict[int, list[T]] = {}
-        for it in todo:
-            groups.setdefault(id(rt_of(it)), []).append(it)
-        for part in groups.values():
-            try:
-                work(part)
-            except Exception as exc:
-                self._failed(rt_of(part[0]), stage, exc)
+    def _rows(self, todo: list[Pending]) -> np.ndarray | None:
+        """Every window's feature row into its `row`; contained per asset. Returns the
+        matrix of them (row j todo[j]'s) when one pass made them as one."""
+        table: list[np.ndarray] = []
 
-    def _rows(self, todo: list[Pending]) -> None:
-        """Every window's feature row into its `row`; contained per asset."""
         def work(part: Sequence[Pending]) -> None:
             t0 = time.perf_counter()
             rows = feature_rows(part, self._work)
             self.metrics.feature_seconds.observe(time.perf_counter() - t0)
             for p, r in zip(part, rows, strict=True):
                 p.row = r
+            if part is todo and isinstance(rows, np.ndarray):
+                table.append(rows)
 
-        self._contained(todo, lambda p: p.rt, "features", work)
+        contained(todo, lambda p: p.rt, work, lambda rt, exc: self._failed(rt, "features", exc))
+        return table[0] if table else None
 
-    def _scores(self, items: list[Item], pending: list[Pending]) -> Scored:
-        """The scorer's answer for `items`, contained per asset: the items of an asset
-        whose inference raised are not `ok`."""
+    def _scores(self, items: list[Item], pending: list[Pending],
+                table: np.ndarray | None) -> Scored:
+        """The scorer's answer for `items` (`table`: their rows as one matrix, or None),
+        contained per asset: the items of an asset whose inference raised are not `ok`."""
         def model_error(key: int, detail: str) -> None:
             rt = pending[key].rt
             if detail:
@@ -477,16 +467,11 @@ class Pipeline:
             self._model_error(rt)
 
         parts: list[tuple[Sequence[Item], Scored]] = []
-        self._contained(items, lambda it: pending[it[0]].rt, "inference",
-                        lambda part: parts.append((part, self.scorer.scores(part,
-                                                                            model_error))))
-        if len(parts) == 1 and parts[0][0] is items:
-            return parts[0][1]
-        out = Scored.empty(len(items))  # asset by asset: each part to its positions
-        at = {it[0]: j for j, it in enumerate(items)}
-        for part, got in parts:
-            out.put([at[it[0]] for it in part], got)
-        return out
+        contained(items, lambda it: pending[it[0]].rt,
+                  lambda part: parts.append((part, self.scorer.scores(
+                      part, model_error, rows=table if part is items else None))),
+                  lambda rt, exc: self._failed(rt, "inference", exc))
+        return Scored.of_parts(items, parts)
 
     def status(self) -> dict[str, Any]:
         """Per-asset status for `/status` and `watchkeep status`."""

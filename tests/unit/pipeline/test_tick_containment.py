@@ -42,10 +42,10 @@ def _scores(tmp: Path, broken: str | None, stage: str,
     if broken is not None and stage == "inference":
         real_scores = pipe.scorer.scores
 
-        def scores(items: Any, on_error: Any) -> Any:
+        def scores(items: Any, on_error: Any, **given: Any) -> Any:
             if any(it[2].meta.asset == broken for it in items):
                 raise RuntimeError("inference broken for the test")
-            return real_scores(items, on_error)
+            return real_scores(items, on_error, **given)
 
         monkeypatch.setattr(pipe.scorer, "scores", scores)
     for k in range(8):
