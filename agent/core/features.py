@@ -124,14 +124,20 @@ def stack_rows(parts: Sequence[np.ndarray], buffer: str = "x", *,
 
 
 def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES, *,
-                   work: WorkArrays | None = None) -> np.ndarray:
+                   work: WorkArrays | None = None, out: np.ndarray | None = None
+                   ) -> np.ndarray:
     """The features of each row of `x` [segments, samples] (all rows full length):
-    [segments, len(FEATURES)] float64, NaN in the columns not in `needed`.
+    [segments, len(FEATURES)] float64, NaN in the columns not in `needed`; written into
+    `out` when given (of that shape: a caller's reusable array, not fresh memory the
+    first write into faults in each time), else into a new array.
 
     The same definitions as `segment_features` (agreement to rounding is tested).
     """
     n, length = x.shape
-    out = np.full((n, len(FEATURES)), np.nan)
+    if out is None:
+        out = np.full((n, len(FEATURES)), np.nan)
+    else:
+        out.fill(np.nan)
     if n == 0 or length == 0:
         return out
     x = np.asarray(x, dtype=np.float64)

@@ -31,6 +31,7 @@ from agent.core.features import (
     block_features,
     segment_features,
     stack_rows,
+    work_array,
 )
 from agent.core.spectral import Segment, spectral_flat
 from agent.core.windows.closed import ClosedWindow
@@ -274,8 +275,9 @@ def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None) -> np.ndarray:
     flats: list[np.ndarray] = []
     starts: list[int] = []
     pos = 0
-    for base in al.bases:
-        f = block_features(base, al.needed, work=work)
+    for b, base in enumerate(al.bases):
+        f = block_features(base, al.needed, work=work,
+                           out=work_array(work, f"td_{b}", (base.shape[0], NF)))
         starts.append(pos)
         flats.append(f.reshape(-1))
         pos += f.size

@@ -188,3 +188,16 @@ def test_row_extreme_is_the_row_reduction_bit_for_bit(x: np.ndarray, strided: bo
     for op, want in ((np.minimum, x.min(axis=1)), (np.maximum, x.max(axis=1))):
         got = row_extreme(x, op)
         assert got.tobytes() == want.tobytes()
+
+
+def test_block_features_into_a_given_array_are_the_same() -> None:
+    """`out=`: the same values written into the caller's array (whatever it held before:
+    NaN again in the columns not needed), and that array returned."""
+    from agent.core.features import block_features
+
+    x = np.random.default_rng(14).normal(size=(6, 40))
+    for needed in (frozenset({"mean", "kurtosis", "peak_to_peak"}), frozenset(FEATURES)):
+        out = np.full((6, len(FEATURES)), 123.0)
+        got = block_features(x, needed, out=out)
+        assert got is out
+        assert got.tobytes() == block_features(x, needed).tobytes()
