@@ -103,10 +103,10 @@ def round_scaled(x: np.ndarray, scale: np.ndarray) -> list[float]:
         y = x * scale
         f = np.floor(y)
         d = (y - f) - 0.5
-        up = d > y * _REL_ERR
-        out = (np.where(up, f + 1.0, f) / scale).tolist()
+        err = y * _REL_ERR
+        out = (np.where(d > err, f + 1.0, f) / scale).tolist()
         # Sure: y positive and exact, and further than its error from a half-integer.
-        sure = (np.abs(d) > y * _REL_ERR) & (y > 0.0) & (y < _EXACT_BELOW)
+        sure = (np.abs(d) > err) & (y > 0.0) & (y < _EXACT_BELOW)
     if not sure.all():
         for i in np.flatnonzero(~sure).tolist():
             out[i] = round(float(x[i]), 6 if scale[i] == 1e6 else 3)
