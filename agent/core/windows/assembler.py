@@ -65,10 +65,10 @@ class _Group:
         self.chans = chans
         self.expected = expected
         # How many samples per row one gather looks at before falling back to a search
-        # (`close_due`), and the joint cut counts at most (`batch._row_counts`).
+        # (`close_due`), and the joint cut counts at most (`counting.row_counts`).
         self.bound = int(1.25 * expected) + 16
         # Where the joint cut looks for a window's end in a row of a sensor at its rate
-        # (`batch._band`): a sixteenth of a window and 8 samples either side.
+        # (`counting.band`): a sixteenth of a window and 8 samples either side.
         e = int(expected)
         self.near = (max(0, e - 8 - e // 16), e + 8 + e // 16)
         self.ts = np.empty((k, cap))

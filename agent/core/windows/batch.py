@@ -7,7 +7,7 @@ blocks of the cut are rows of one matrix (`Block.base`), which the feature pass 
 whole. When samples past the window's end are pending (a block straddling it, one
 channel's next reading in, a hopping window), the rows are first counted for all
 such assets at once, in a band around where a sensor at its rate puts the end
-(`_row_counts`). Rows starting apart are compacted first; an asset with several
+(`row_counts`). Rows starting apart are compacted first; an asset with several
 windows due has them cut one pass after another. The first window, gaps and what the
 counting cannot tell go through `WindowAssembler.close_due`. Pure.
 """
@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -25,22 +24,16 @@ from agent.core.windows.assembler import (
     Block,
     ClosedWindow,
     WindowAssembler,
-    _arange,
     _Group,
 )
-
-# One item of the joint cut: (position in `close_many`'s list, the assembler, the
-# window's start and end, per rate group (the group, its first pending index, how many
-# samples each of its rows holds)).
-_Item = tuple[int, WindowAssembler, float, float, list[tuple[_Group, int, int]]]
-
+from agent.core.windows.counting import Drops, Item, row_counts
 
 # What `_plan` found for an assembler (`_MORE`: placed, and a window after it is due).
 _NOTHING, _PLACED, _ALONE, _MORE = 0, 1, 2, 3
 
 
-def _plan(a: WindowAssembler, now: float, i: int, full: list[_Item],
-          rest: list[_Item]) -> int:
+def _plan(a: WindowAssembler, now: float, i: int, full: list[Item],
+          rest: list[Item]) -> int:
     """Whether `a` (position i) has nothing due at `now` (`_NOTHING`), its next window
     (tumbling, or hopping a whole number of hops long; every rate group's rows are
     made to start in step) to cut (`_PLACED`, or `_MORE` when the window after it is
@@ -108,8 +101,8 @@ def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now:
     got: list[AssembleResult | None] = [None] * len(assemblers)
     # The joint cut's items: those with every pending sample before the window's end
     # (`full`), the others (counted first, `_split`).
-    full: list[_Item] = []
-    others: list[_Item] = []
+    full: list[Item] = []
+    others: list[Item] = []
     more: list[int] = []
     for i in todo:
         a = assemblers[i]
@@ -159,32 +152,27 @@ def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now:
     return more
 
 
-def _position(item: _Item) -> int:
+def _position(item: Item) -> int:
     return item[0]
 
 
-# Per hopping item (by position): per group, how many samples its rows drop once the
-# window is out (those before the next window's start).
-_Drops = dict[int, list[int]]
-
-
-def _split(items: list[_Item]) -> tuple[
-        list[_Item], list[_Item], list[tuple[int, WindowAssembler]],
-        dict[int, list[list[int]]], _Drops]:
+def _split(items: list[Item]) -> tuple[
+        list[Item], list[Item], list[tuple[int, WindowAssembler]],
+        dict[int, list[list[int]]], Drops]:
     """`close_many`'s items that are not full as those cut together by
     `_close_whole`: those whose every group's rows all hold the same number c > 0 of
     samples before the end (the next window's samples are
-    pending, or the window hops: counted first, `_row_counts`), as if c were all they
+    pending, or the window hops: counted first, `row_counts`), as if c were all they
     held (a hopping window's rows also dropping alike, `drops`); the rest of the
     tumbling ones (a group without samples in the window, rows holding different
-    counts), for `_cut_blocks` + `_finish`, with the counts; those `_row_counts` could
+    counts), for `_cut_blocks` + `_finish`, with the counts; those `row_counts` could
     not count and the rest of the hopping ones, for `close_due`."""
-    got = _row_counts(items)
+    got = row_counts(items)
     if got.unsure:  # counted again from the first sample on (samples lost, say)
-        again = _row_counts([it for it in items if it[0] in got.unsure], wide=True)
+        again = row_counts([it for it in items if it[0] in got.unsure], wide=True)
         got.merge(again)
-    whole: list[_Item] = []
-    rest: list[_Item] = []
+    whole: list[Item] = []
+    rest: list[Item] = []
     alone: list[tuple[int, WindowAssembler]] = []
     unsure, uneven, cut, drops = got.unsure, got.uneven, got.cut, got.drops
     for item in items:
@@ -198,142 +186,8 @@ def _split(items: list[_Item]) -> tuple[
     return whole, rest, alone, got.rows, drops
 
 
-# One group of an item to count (`_row_counts`): the item's position, the group's
-# index, the group, its first pending index, where its band starts in the pending
-# samples, the window's end, the next window's start (the end when tumbling), whether
-# the band ends with the most pending in a row.
-_Member = tuple[int, int, _Group, int, int, float, float, bool]
-
-
-@dataclass(slots=True)
-class _Counted:
-    """What `_row_counts` found, per item by position: per group, how many samples
-    each row holds before the window's end (`rows`; `_NONE` for a group without pending
-    samples), the item's spans with that number when every row holds it, else 0
-    (`cut`); per hopping item, per group, how many each row drops (those before the
-    next window's start) when alike, else -1 (`drops`); the items with a 0 or -1 there
-    (`uneven`), and those the band could not count (`unsure`: their counts are not to
-    be used)."""
-
-    rows: dict[int, list[list[int]]] = field(default_factory=dict)
-    cut: dict[int, list[tuple[_Group, int, int]]] = field(default_factory=dict)
-    drops: _Drops = field(default_factory=dict)
-    uneven: set[int] = field(default_factory=set)
-    unsure: set[int] = field(default_factory=set)
-
-    def note(self, members: list[_Member], w: int, below: list[int], before: list[int],
-             known: list[bool]) -> None:
-        """The counts of `_row_counts`' members of band width w, row by row: `below`
-        (before the end), `before` (before the next window's start), whether `known`."""
-        rows_of, cut, drops, uneven, unsure = (self.rows, self.cut, self.drops,
-                                               self.uneven, self.unsure)
-        off = 0
-        for i, gi, g, lo0, s0, _, _, to_end in members:
-            n = len(g.chans)
-            row = rows_of[i][gi] = below[off:off + n]
-            if (not to_end and s0 + w in row) or (s0 and False in known[off:off + n]):
-                unsure.add(i)
-            c = row[0]
-            if c and row.count(c) == n:
-                cut[i][gi] = (g, lo0, c)
-            else:
-                uneven.add(i)
-            if i in drops:
-                d = before[off:off + n]
-                if d.count(d[0]) == n:
-                    drops[i][gi] = d[0]
-                else:
-                    uneven.add(i)
-            off += n
-
-    def merge(self, again: _Counted) -> None:
-        """`again`, a count of this one's unsure items, in place of theirs."""
-        self.uneven -= self.unsure
-        self.uneven |= again.uneven
-        self.unsure = again.unsure
-        self.rows.update(again.rows)
-        self.cut.update(again.cut)
-        self.drops.update(again.drops)
-
-
-def _band(g: _Group, m: int, wide: bool) -> tuple[int, int]:
-    """Where `_row_counts` looks in a group's m pending samples per row: [s0, top).
-    A tumbling window of a sensor at its rate ends near `expected` samples in, so a
-    band around that holds the end (`_Group.near`); a hopping one also needs the next
-    window's start, and a window whose end the band missed is counted again (`wide`):
-    from the first sample, at most `bound` samples (a whole window with room for a
-    faster sensor)."""
-    if wide:
-        return 0, min(m, g.bound)
-    s0, top = g.near
-    if m >= top:
-        return s0, top
-    e = int(g.expected)  # fewer pending than the band's top
-    return max(0, min(m, e) - 8 - e // 16), m
-
-
-# A group's counts while it has no pending samples (`_row_counts`; shared: read only).
-_NONE: list[int] = []
-
-
-def _row_counts(items: list[_Item], wide: bool = False) -> _Counted:
-    """How many samples each row of each item holds before the window's end, and for
-    a hopping window before the next window's start (`_Counted`). Counted for all
-    groups of one band width in one step, within a band of each row (`_band`; `wide`:
-    from the first sample); an item whose count the band cannot tell (a row's end
-    outside it: samples missing, a sensor far off its rate) is `unsure`."""
-    by_w: dict[int, list[_Member]] = {}  # by band width
-    got = _Counted()
-    rows_of, cut, drops, uneven = got.rows, got.cut, got.drops, got.uneven
-    hopping = False
-    for i, a, _, end, spans in items:
-        rows_of[i] = [_NONE] * len(spans)
-        cut[i] = list(spans)
-        after = end
-        if a._span_k != 1:
-            hopping = True
-            drops[i] = [-1] * len(spans)
-            after = (a._next_k + 1) * a.cfg.hop_s  # type: ignore[operator]
-        for gi, (g, lo0, m) in enumerate(spans):
-            if m:
-                s0, top = _band(g, m, wide or i in drops)
-                by_w.setdefault(top - s0, []).append(
-                    (i, gi, g, lo0, s0, end, after, top == m))
-            else:
-                uneven.add(i)
-    for w, members in by_w.items():
-        tm = np.concatenate([mb[2].ts[:, mb[3] + mb[4]:mb[3] + mb[4] + w] for mb in members])
-        rows = [len(mb[2].chans) for mb in members]
-        s0s = np.repeat([mb[4] for mb in members], rows)
-        # Rows holding fewer samples than their group's most: their band ends early.
-        held = _held(members, rows, w)
-        lt = tm < np.repeat([mb[5] for mb in members], rows)[:, None]
-        b = (lt if held is None else lt & held).sum(axis=1)
-        # A row's count is known when its band holds its end: some of the band before
-        # the end unless the band starts with the pending samples, some at or after it
-        # unless the band ends with them.
-        known = ((b > 0) | (s0s == 0)).tolist()
-        below = (b + s0s).tolist()
-        before = below
-        if hopping:
-            lt = tm < np.repeat([mb[6] for mb in members], rows)[:, None]
-            before = (lt if held is None else lt & held).sum(axis=1).tolist()
-        got.note(members, w, below, before, known)
-    return got
-
-
-def _held(members: list[_Member], rows: list[int], w: int) -> np.ndarray | None:
-    """Which places of `_row_counts`' bands (w wide, one row per group row) hold a
-    pending sample, when a group's rows hold different numbers; else None (all do)."""
-    if all(g.hi.count(g.hi[0]) == len(g.hi) for _, _, g, *_ in members):
-        return None
-    ends = np.array([h for mb in members for h in mb[2].hi], dtype=np.int64)
-    ends -= np.repeat([mb[3] + mb[4] for mb in members], rows)  # from each band's start
-    return _arange(w)[None, :] < ends[:, None]
-
-
-def _close_whole(whole: list[_Item], results: list[AssembleResult | None],
-                 drops: _Drops) -> None:
+def _close_whole(whole: list[Item], results: list[AssembleResult | None],
+                 drops: Drops) -> None:
     """The joint cut of items whose every rate group's rows are in step with m > 0
     samples before the window's end (all it cuts: the spans' m): one copy per segment
     length, every block rows of that copy. An item of one rate group is finished as
@@ -341,8 +195,8 @@ def _close_whole(whole: list[_Item], results: list[AssembleResult | None],
     drop those m samples, or for a hopping window what `drops` says."""
     # Per segment length: (the item's blocks, None for an item of one group; the group's
     # index; the item; the group; its first pending index).
-    by_width: dict[int, list[tuple[list[Block | None] | None, int, _Item, _Group, int]]] = {}
-    several: list[tuple[_Item, list[Block | None]]] = []
+    by_width: dict[int, list[tuple[list[Block | None] | None, int, Item, _Group, int]]] = {}
+    several: list[tuple[Item, list[Block | None]]] = []
     for item in whole:
         spans = item[4]
         if len(spans) == 1:
@@ -387,7 +241,7 @@ def _close_whole(whole: list[_Item], results: list[AssembleResult | None],
         _done(item, tuple(bl), results, drops.get(item[0]))  # type: ignore[arg-type]
 
 
-def _done(item: _Item, blocks: tuple[Block, ...], results: list[AssembleResult | None],
+def _done(item: Item, blocks: tuple[Block, ...], results: list[AssembleResult | None],
           drop: list[int] | None) -> None:
     """`_close_whole`'s window of `item` from its blocks (group g's coverage m /
     expected), and its assembler moved past it (each group's rows dropping m samples,
@@ -421,10 +275,10 @@ def _full(n: int, m: int) -> tuple[int, ...]:
     return got
 
 
-def _cut_blocks(fast: list[_Item], counts: dict[int, list[list[int]]]
+def _cut_blocks(fast: list[Item], counts: dict[int, list[list[int]]]
                 ) -> list[list[Block | None]]:
     """The blocks of every (item, group) with samples, `counts` the rows' counts before
-    the window's end (`_row_counts`). A group whose rows all hold the same number c of
+    the window's end (`row_counts`). A group whose rows all hold the same number c of
     samples before the end is cut with every other such group of that c as rows of one
     copy, its block a row range of it (`Block.base`); one whose rows hold different
     counts gets a block of its own."""
@@ -462,7 +316,7 @@ def _cut_blocks(fast: list[_Item], counts: dict[int, list[list[int]]]
     return blocks
 
 
-def _finish(fast: list[_Item], blocks: list[list[Block | None]],
+def _finish(fast: list[Item], blocks: list[list[Block | None]],
             results: list[AssembleResult | None], now: float) -> None:
     """Each item's window from its blocks, and its assembler moved past it."""
     for (i, a, start, end, spans), bl in zip(fast, blocks, strict=True):
