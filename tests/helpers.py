@@ -89,6 +89,22 @@ def asset_doc(name: str, bundle: Path | None, *, prefix: str = "plant") -> dict[
     return doc
 
 
+def rates_doc(state_dir: Path, rates: dict[str, tuple[float, ...]],
+              feats: dict[str, list[str]], default: list[str], **window: float
+              ) -> dict[str, Any]:
+    """A config document of assets whose `json-batch` channels c0, c1, ... have the
+    rates `rates[asset]`, each wanting the features `feats.get(asset, default)`: 1 s
+    windows closing at once (lateness 0, timeout 0.5 s), with `window`'s other keys."""
+    return {"site": "s", "gateway": "g", "state_dir": str(state_dir),
+            "assets": [{"name": a, "window": {"length_s": 1.0, "lateness_s": 0.0,
+                                              "timeout_s": 0.5, **window},
+                        "channels": {f"c{i}": {"topic": f"t/{a}/{i}", "decoder": "json-batch",
+                                               "rate_hz": r,
+                                               "features": feats.get(a, default)}
+                                     for i, r in enumerate(rs)}}
+                       for a, rs in rates.items()]}
+
+
 def write_config(path: Path, local_port: int, upstream_port: int, assets: list[dict[str, Any]],
                  **extra: Any) -> Path:
     doc = {"site": "testworks", "gateway": "gw1", "state_dir": str(path.parent / "state"),

@@ -19,6 +19,7 @@ from agent.ops.metrics import Metrics
 from agent.pipeline import featurize
 from agent.pipeline.runtime import AssetRuntime
 from agent.pipeline.tick import Pipeline
+from tests.helpers import rates_doc
 
 FEATS = ["mean", "std", "rms", "kurtosis"]
 
@@ -60,14 +61,7 @@ def _todos(tmp_path: Path, monkeypatch: pytest.MonkeyPatch, rates: dict[str, tup
            feats: dict[str, list[str]]) -> list[list[Any]]:
     """The windows handed to `_aligned` by a few ticks of a fleet of `rates` (per asset
     its channels' rates), each asset's channels wanting `feats.get(asset, FEATS)`."""
-    doc = {"site": "s", "gateway": "g", "state_dir": str(tmp_path / "state"),
-           "assets": [{"name": a, "window": {"length_s": 1.0, "lateness_s": 0.0,
-                                             "timeout_s": 0.5},
-                       "channels": {f"c{i}": {"topic": f"t/{a}/{i}", "decoder": "json-batch",
-                                              "rate_hz": r, "features": feats.get(a, FEATS)}
-                                    for i, r in enumerate(rs)}}
-                      for a, rs in rates.items()]}
-    cfg = parse_config(doc, tmp_path)
+    cfg = parse_config(rates_doc(tmp_path / "state", rates, feats, FEATS), tmp_path)
     buffers = Buffers(cfg)
     pipe = Pipeline(cfg, buffers, _Sink(), Metrics(CollectorRegistry()),
                     logging.getLogger("test"), [AssetRuntime.build(a, None, None)

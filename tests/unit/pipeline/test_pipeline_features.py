@@ -21,6 +21,7 @@ from agent.ingest.buffers import Buffers
 from agent.ops.metrics import Metrics
 from agent.pipeline.runtime import AssetRuntime
 from agent.pipeline.tick import Pipeline
+from tests.helpers import rates_doc
 
 FEATS = ["mean", "std", "rms", "peak_to_peak", "kurtosis", "skewness"]
 
@@ -52,14 +53,8 @@ def test_feature_rows_of_aligned(tmp_path: Path, monkeypatch) -> None:  # type: 
 def _check(tmp_path: Path, rates: dict[str, tuple[float, ...]],
            feats: dict[str, list[str]] | None = None) -> None:
     feats = feats or {}
-    doc = {"site": "s", "gateway": "g", "state_dir": str(tmp_path / "state"),
-           "assets": [{"name": a, "window": {"length_s": 1.0, "lateness_s": 0.0,
-                                             "timeout_s": 0.5, "min_coverage": 0.5},
-                       "channels": {f"c{i}": {"topic": f"t/{a}/{i}", "decoder": "json-batch",
-                                              "rate_hz": r, "features": feats.get(a, FEATS)}
-                                    for i, r in enumerate(rs)}}
-                      for a, rs in rates.items()]}
-    cfg = parse_config(doc, tmp_path)
+    cfg = parse_config(rates_doc(tmp_path / "state", rates, feats, FEATS, min_coverage=0.5),
+                       tmp_path)
     buffers = Buffers(cfg)
     seen: list[tuple[str, ClosedWindow, np.ndarray, tuple[str, ...]]] = []
     pipe = Pipeline(cfg, buffers, _Sink(), Metrics(CollectorRegistry()),
