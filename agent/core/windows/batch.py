@@ -86,22 +86,112 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     exception (`AssembleResult.error`); the others' windows are cut as usual.
     """
     results: list[AssembleResult | None] = [None] * len(assemblers)
-    todo: Sequence[int] = range(len(assemblers))
+    todo, more, steady = _plan_steady(assemblers, now, results)
+    if not todo:
+        for m, members in steady.items():
+            try:
+                _cut_steady(m, members, results)
+            except Exception:  # each unfinished alone, contained
+                for i, a, *_ in members:
+                    if results[i] is None:
+                        results[i] = _alone(a, now)
+    else:  # cut with the others' (one matrix in the assemblers' order)
+        seed = [(i, a, k * a.cfg.hop_s, (k + 1) * a.cfg.hop_s, [(g, lo0, m)])
+                for m, members in steady.items() for i, a, g, lo0, k in members]
+        more = sorted((*more, *_close_next(assemblers, todo, now, results, seed)))
+    todo = [i for i in more if results[i].error is None]  # type: ignore[union-attr]
     while todo:
         more = _close_next(assemblers, todo, now, results)
         todo = [i for i in more if results[i].error is None]  # type: ignore[union-attr]
     return [r if r is not None else AssembleResult() for r in results]
 
 
+# What `_close_steady` keeps of an assembler whose window it cuts: its position, the
+# assembler, its one rate group, the group's first pending index, the window's index.
+_Steady = tuple[int, WindowAssembler, _Group, int, int]
+
+
+def _plan_steady(assemblers: Sequence[WindowAssembler], now: float,
+                 results: list[AssembleResult | None]
+                 ) -> tuple[list[int], list[int], dict[int, list[_Steady]]]:
+    """The first pass of `close_many` over the usual shape, in one loop: an assembler
+    of one rate group whose next tumbling window is due with every pending sample
+    before its end, the same number m > 0 in every row, rows starting in step (`_plan`'s
+    `full` item of one group), kept by m for `_cut_steady`; one with nothing due gets an
+    empty result. Returns the positions of every other shape (for `_close_next`), those
+    with a window after the kept one due too, and the kept."""
+    others: list[int] = []
+    more: list[int] = []
+    by_m: dict[int, list[_Steady]] = {}
+    for i, a in enumerate(assemblers):
+        k, groups = a._next_k, a._groups
+        if k is None or a._span_k != 1 or len(groups) != 1 or a._any_unsorted:
+            others.append(i)
+            continue
+        max_ts = a._max_ts
+        idle = now - a._last_arrival
+        reach = (max_ts + idle if idle != math.inf else -math.inf) if idle > 0.0 else max_ts
+        if not (max_ts >= a._due_ts or reach >= a._due_reach):
+            results[i] = AssembleResult()
+            continue
+        g = groups[0]
+        lo, hi = g.lo, g.hi
+        lo0, n = lo[0], len(lo)
+        m = hi[0] - lo0
+        if (m <= 0 or max_ts >= (k + 1) * a.cfg.hop_s or lo.count(lo0) != n
+                or hi.count(lo0 + m) != n):
+            others.append(i)
+            continue
+        if max_ts >= a._due2_ts or reach >= a._due2_reach:
+            more.append(i)
+        got = by_m.get(m)
+        if got is None:
+            got = by_m[m] = []
+        got.append((i, a, g, lo0, k))
+    return others, more, by_m
+
+
+def _cut_steady(m: int, members: list[_Steady], results: list[AssembleResult | None]) -> None:
+    """`_close_steady`'s windows of m samples per row: one copy of every member's rows,
+    each window's block a row range of it (`_close_whole` for such items)."""
+    v = np.concatenate([g.vals[:, lo0:lo0 + m] for _, _, g, lo0, _ in members])
+    kept = [mb for mb in members if mb[2].keep_times]
+    t = np.concatenate([g.ts[:, lo0:lo0 + m] for _, _, g, lo0, _ in kept]) if kept else None
+    tb = t if len(kept) == len(members) else None  # as in `_close_whole`
+    off = t_off = n_last = 0
+    full: tuple[int, ...] = ()
+    for i, a, g, lo0, k in members:
+        chans = g.chans
+        n = len(chans)
+        if n != n_last:
+            full, n_last = _full(n, m), n
+        if t is not None and g.keep_times:
+            blk = Block(chans, t[t_off:t_off + n], v[off:off + n], full, True, v, off, tb)
+            t_off += n
+        else:
+            blk = Block.rows_of(v, off, chans, full)
+        off += n
+        exp = g.expected
+        cov = m / exp if exp else 1.0
+        hop = a.cfg.hop_s
+        w = ClosedWindow.of_blocks(k * hop, (k + 1) * hop, not (exp and cov < a.cfg.min_coverage),
+                                   (blk,), a._expected, cov)
+        g.lo = [lo0 + m] * n  # still in step
+        a._step_next()
+        results[i] = AssembleResult(None, [w])
+
+
 def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now: float,
-                results: list[AssembleResult | None]) -> list[int]:
+                results: list[AssembleResult | None], seed: Sequence[Item] = ()
+                ) -> list[int]:
     """The next due window of each assembler at the positions `todo` (the joint cut
-    where it can, else `close_due`), added to `results`; the positions with a window
-    after it due too."""
+    where it can, else `close_due`), and of the items `seed` (planned already, with
+    every pending sample before the end), added to `results`; the positions with a
+    window after it due too."""
     got: list[AssembleResult | None] = [None] * len(assemblers)
     # The joint cut's items: those with every pending sample before the window's end
     # (`full`), the others (counted first, `_split`).
-    full: list[Item] = []
+    full: list[Item] = list(seed)
     others: list[Item] = []
     more: list[int] = []
     for i in todo:
@@ -123,7 +213,7 @@ def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now:
                 got[i] = a.close_due(now)
             except Exception as exc:
                 got[i] = AssembleResult(exc)
-        if full and whole:  # in the assemblers' order: the feature pass's aligned path
+        if full and (whole or seed):  # in the assemblers' order: the feature pass's aligned path
             _close_whole(sorted(full + whole, key=_position), got, drops)
         elif full or whole:
             _close_whole(full or whole, got, drops)
@@ -138,7 +228,7 @@ def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now:
                     got[i] = a.close_due(now)
                 except Exception as exc:
                     got[i] = AssembleResult(exc)
-    for i in todo:
+    for i in (*todo, *(it[0] for it in seed)) if seed else todo:
         r, had = got[i], results[i]
         if r is None:
             r = got[i] = AssembleResult()
@@ -150,6 +240,14 @@ def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now:
             had.late_samples += r.late_samples
             had.error = r.error
     return more
+
+
+def _alone(a: WindowAssembler, now: float) -> AssembleResult:
+    """`a.close_due(now)`, or the exception it raised as its result."""
+    try:
+        return a.close_due(now)
+    except Exception as exc:
+        return AssembleResult(exc)
 
 
 def _position(item: Item) -> int:

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 
 from agent.config.load import WindowConfig
@@ -390,3 +390,59 @@ def test_close_many_keeps_the_assemblers_order_in_the_cut_matrix() -> None:
     blocks = [r.windows[0].blocks[0] for r in got]
     assert len({id(b.base) for b in blocks}) == 1
     assert [b.row0 for b in blocks] == [2 * ai for ai in range(6)]
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.lists(st.tuples(st.sampled_from([10.0, 20.0, 0.0]), st.integers(1, 3), st.booleans(),
+                          st.booleans()), min_size=1, max_size=6),
+       st.sampled_from([0.0, 0.3]))
+@example([(0.0, 1, False, False), (10.0, 2, True, False), (20.0, 1, False, False)], 0.0)
+def test_close_many_steady_assets_of_several_sizes(assets, late) -> None:
+    """The usual shape (one rate group, the window holding every pending sample, rows
+    in step; `_plan_steady`) at two rates, with and without kept times, beside assets
+    whose next window's first sample is in and assets of two rate groups (rate 0.0
+    here: n channels at 10 Hz, n at 20 Hz): close_many cuts what close_due cuts, and
+    the blocks of windows holding all their samples are, size by size, rows of one
+    matrix in the assemblers' order."""
+    from agent.core.windows.batch import close_many
+
+    cfg = WindowConfig(1.0, 1.0, late, 0.5, 0.5)
+
+    def rates(rate: float, n: int) -> tuple[float, ...]:
+        return (rate,) * n if rate else (10.0,) * n + (20.0,) * n
+
+    def make() -> list[WindowAssembler]:
+        out = [WindowAssembler(cfg, rates(rate, n)) for rate, n, _, _ in assets]
+        for a, (rate, n, keep, _) in zip(out, assets, strict=True):
+            a.keep_times_of([keep] * len(rates(rate, n)))
+        return out
+
+    one, many = make(), make()
+    for k in range(4):
+        arrival = T0 + k + 1.0
+        now = arrival + 0.6 + late  # past the timeout: the windows holding all are due
+        for ai, (rate, n, _, ahead) in enumerate(assets):
+            for c, r in enumerate(rates(rate, n)):
+                ts = T0 + k + np.arange(int(r)) / r
+                extra = ts[:1] + 1.0 if ahead else ts[:0]
+                for a in (one[ai], many[ai]):
+                    part = ts[1:] if ahead and k else ts
+                    a.add(c, part, part - T0, arrival, presorted=True)
+                    if extra.size:
+                        a.add(c, extra, extra - T0, arrival, presorted=True)
+        want = [a.close_due(now) for a in one]
+        got = close_many(many, now)
+        for w_res, g_res in zip(want, got, strict=True):
+            assert [(w.start, w.end, w.complete, w.coverage) for w in g_res.windows] == \
+                [(w.start, w.end, w.complete, w.coverage) for w in w_res.windows]
+            for w, g in zip(w_res.windows, g_res.windows, strict=True):
+                for c in range(len(w.values)):
+                    np.testing.assert_array_equal(g.values[c], w.values[c])
+        if k:  # past each asset's first window: cut jointly, in order
+            for size in (10, 20):
+                blocks = [b for ai, r in enumerate(got) if r.windows and not assets[ai][3]
+                          for b in r.windows[0].blocks if b.counts[0] == size]
+                if len(blocks) > 1:
+                    assert len({id(b.base) for b in blocks}) == 1
+                    rows = [b.row0 for b in blocks]
+                    assert rows == sorted(rows)
