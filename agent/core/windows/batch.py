@@ -96,8 +96,8 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
                     if results[i] is None:
                         results[i] = _alone(a, now)
     else:  # cut with the others' (one matrix in the assemblers' order)
-        seed = [(i, a, k * a.cfg.hop_s, (k + 1) * a.cfg.hop_s, [(g, lo0, m)])
-                for m, members in steady.items() for i, a, g, lo0, k in members]
+        seed = [(i, a, start, end, [(g, lo0, m)])
+                for m, members in steady.items() for i, a, g, lo0, start, end in members]
         more = sorted((*more, *_close_next(assemblers, todo, now, results, seed)))
     todo = [i for i in more if results[i].error is None]  # type: ignore[union-attr]
     while todo:
@@ -106,9 +106,10 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     return [r if r is not None else AssembleResult() for r in results]
 
 
-# What `_close_steady` keeps of an assembler whose window it cuts: its position, the
-# assembler, its one rate group, the group's first pending index, the window's index.
-_Steady = tuple[int, WindowAssembler, _Group, int, int]
+# What `_plan_steady` keeps of an assembler whose window it cuts: its position, the
+# assembler, its one rate group, the group's first pending index, the window's start
+# and end.
+_Steady = tuple[int, WindowAssembler, _Group, int, float, float]
 
 
 def _plan_steady(assemblers: Sequence[WindowAssembler], now: float,
@@ -138,8 +139,9 @@ def _plan_steady(assemblers: Sequence[WindowAssembler], now: float,
         lo, hi = g.lo, g.hi
         lo0, n = lo[0], len(lo)
         m = hi[0] - lo0
-        if (m <= 0 or max_ts >= (k + 1) * a.cfg.hop_s or lo.count(lo0) != n
-                or hi.count(lo0 + m) != n):
+        hop = a.cfg.hop_s
+        end = (k + 1) * hop  # as `_bounds`
+        if m <= 0 or max_ts >= end or lo.count(lo0) != n or hi.count(lo0 + m) != n:
             others.append(i)
             continue
         if max_ts >= a._due2_ts or reach >= a._due2_reach:
@@ -147,20 +149,20 @@ def _plan_steady(assemblers: Sequence[WindowAssembler], now: float,
         got = by_m.get(m)
         if got is None:
             got = by_m[m] = []
-        got.append((i, a, g, lo0, k))
+        got.append((i, a, g, lo0, k * hop, end))
     return others, more, by_m
 
 
 def _cut_steady(m: int, members: list[_Steady], results: list[AssembleResult | None]) -> None:
     """`_close_steady`'s windows of m samples per row: one copy of every member's rows,
     each window's block a row range of it (`_close_whole` for such items)."""
-    v = np.concatenate([g.vals[:, lo0:lo0 + m] for _, _, g, lo0, _ in members])
+    v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
     kept = [mb for mb in members if mb[2].keep_times]
-    t = np.concatenate([g.ts[:, lo0:lo0 + m] for _, _, g, lo0, _ in kept]) if kept else None
+    t = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in kept]) if kept else None
     tb = t if len(kept) == len(members) else None  # as in `_close_whole`
     off = t_off = n_last = 0
     full: tuple[int, ...] = ()
-    for i, a, g, lo0, k in members:
+    for i, a, g, lo0, start, end in members:
         chans = g.chans
         n = len(chans)
         if n != n_last:
@@ -173,9 +175,8 @@ def _cut_steady(m: int, members: list[_Steady], results: list[AssembleResult | N
         off += n
         exp = g.expected
         cov = m / exp if exp else 1.0
-        hop = a.cfg.hop_s
-        w = ClosedWindow.of_blocks(k * hop, (k + 1) * hop, not (exp and cov < a.cfg.min_coverage),
-                                   (blk,), a._expected, cov)
+        w = ClosedWindow.of_blocks(start, end, not (exp and cov < a.cfg.min_coverage), (blk,),
+                                   a._expected, cov)
         g.lo = [lo0 + m] * n  # still in step
         a._step_next()
         results[i] = AssembleResult(None, [w])
