@@ -125,31 +125,36 @@ def _plan_steady(assemblers: Sequence[WindowAssembler], now: float,
     more: list[int] = []
     by_m: dict[int, list[_Steady]] = {}
     for i, a in enumerate(assemblers):
-        k, groups = a._next_k, a._groups
-        if k is None or a._span_k != 1 or len(groups) != 1 or a._any_unsorted:
+        try:
+            k, groups = a._next_k, a._groups
+            if k is None or a._span_k != 1 or len(groups) != 1 or a._any_unsorted:
+                others.append(i)
+                continue
+            max_ts = a._max_ts
+            idle = now - a._last_arrival
+            reach = (max_ts + idle if idle != math.inf else -math.inf) if idle > 0.0 \
+                else max_ts
+            if not (max_ts >= a._due_ts or reach >= a._due_reach):
+                results[i] = AssembleResult()
+                continue
+            g = groups[0]
+            lo, hi = g.lo, g.hi
+            lo0, n = lo[0], len(lo)
+            m = hi[0] - lo0
+            hop = a.cfg.hop_s
+            end = (k + 1) * hop  # as `_bounds`
+            if m <= 0 or max_ts >= end or lo.count(lo0) != n or hi.count(lo0 + m) != n:
+                others.append(i)
+                continue
+            after = max_ts >= a._due2_ts or reach >= a._due2_reach
+            got = by_m.get(m)
+            if got is None:
+                got = by_m[m] = []
+            got.append((i, a, g, lo0, k * hop, end))
+            if after:
+                more.append(i)
+        except Exception:  # `_close_next` plans it again, contained (its error its result)
             others.append(i)
-            continue
-        max_ts = a._max_ts
-        idle = now - a._last_arrival
-        reach = (max_ts + idle if idle != math.inf else -math.inf) if idle > 0.0 else max_ts
-        if not (max_ts >= a._due_ts or reach >= a._due_reach):
-            results[i] = AssembleResult()
-            continue
-        g = groups[0]
-        lo, hi = g.lo, g.hi
-        lo0, n = lo[0], len(lo)
-        m = hi[0] - lo0
-        hop = a.cfg.hop_s
-        end = (k + 1) * hop  # as `_bounds`
-        if m <= 0 or max_ts >= end or lo.count(lo0) != n or hi.count(lo0 + m) != n:
-            others.append(i)
-            continue
-        if max_ts >= a._due2_ts or reach >= a._due2_reach:
-            more.append(i)
-        got = by_m.get(m)
-        if got is None:
-            got = by_m[m] = []
-        got.append((i, a, g, lo0, k * hop, end))
     return others, more, by_m
 
 

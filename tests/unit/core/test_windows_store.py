@@ -446,3 +446,33 @@ def test_close_many_steady_assets_of_several_sizes(assets, late) -> None:
                     assert len({id(b.base) for b in blocks}) == 1
                     rows = [b.row0 for b in blocks]
                     assert rows == sorted(rows)
+
+
+@pytest.mark.parametrize("broken", ["lo", "hi", "groups"])
+def test_close_many_an_assembler_whose_plan_raises_fails_alone(broken) -> None:
+    """One assembler's bookkeeping broken so that reading it raises: its result carries
+    the error, the others' windows are cut as close_due cuts them (steady ones
+    jointly)."""
+    from agent.core.windows.batch import close_many
+
+    cfg = WindowConfig(1.0, 1.0, 0.0, 0.5, 0.5)
+    one = [WindowAssembler(cfg, (10.0, 10.0)) for _ in range(3)]
+    many = [WindowAssembler(cfg, (10.0, 10.0)) for _ in range(3)]
+    for k in range(3):
+        ts = T0 + k + np.arange(10) / 10.0
+        for a in (*one, *many):
+            for c in (0, 1):
+                a.add(c, ts, ts - T0, T0 + k + 1.0, presorted=True)
+        now = T0 + k + 1.6
+        if k == 2:
+            if broken == "groups":
+                many[1]._groups = None  # type: ignore[assignment]
+            else:
+                setattr(many[1]._groups[0], broken, None)
+            got = close_many(many, now)
+            want = [a.close_due(now) for a in one]
+            assert isinstance(got[1].error, TypeError) and not got[1].windows
+            _same([want[0], want[2]], [got[0], got[2]])
+            assert got[0].windows and got[0].error is None is got[2].error
+        else:
+            _same([a.close_due(now) for a in one], close_many(many, now))
