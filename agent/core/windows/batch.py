@@ -4,12 +4,14 @@ The usual case of a tick (exactly the next window of an asset due, its rows star
 in step) is cut for all such assets together: one copy per sample count over the
 stacked rows of every asset, instead of a handful of numpy calls per asset; the
 blocks of the cut are rows of one matrix (`Block.base`), which the feature pass takes
-whole. When samples past the window's end are pending (a block straddling it, one
-channel's next reading in, a hopping window), the rows are first counted for all
-such assets at once, in a band around where a sensor at its rate puts the end
-(`row_counts`). Rows starting apart are compacted first; an asset with several
-windows due has them cut one pass after another. The first window, gaps and what the
-counting cannot tell go through `WindowAssembler.close_due`. Pure.
+whole. Its commonest shape (one rate group, every pending sample in the window) is
+planned and cut in one loop over the assemblers first (`_plan_steady`). When samples
+past the window's end are pending (a block straddling it, one channel's next reading
+in, a hopping window), the rows are first counted for all such assets at once, in a
+band around where a sensor at its rate puts the end (`row_counts`). Rows starting
+apart are compacted first; an asset with several windows due has them cut one pass
+after another. The first window, gaps and what the counting cannot tell go through
+`WindowAssembler.close_due`. Pure.
 """
 
 from __future__ import annotations
@@ -159,7 +161,7 @@ def _plan_steady(assemblers: Sequence[WindowAssembler], now: float,
 
 
 def _cut_steady(m: int, members: list[_Steady], results: list[AssembleResult | None]) -> None:
-    """`_close_steady`'s windows of m samples per row: one copy of every member's rows,
+    """`_plan_steady`'s windows of m samples per row: one copy of every member's rows,
     each window's block a row range of it (`_close_whole` for such items)."""
     v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
     kept = [mb for mb in members if mb[2].keep_times]
@@ -215,11 +217,8 @@ def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now:
     try:
         whole, rest, alone, counts, drops = _split(others)
         for i, a in alone:  # hopping windows that do not fit the joint cut
-            try:
-                got[i] = a.close_due(now)
-            except Exception as exc:
-                got[i] = AssembleResult(exc)
-        if full and (whole or seed):  # in the assemblers' order: the feature pass's aligned path
+            got[i] = _alone(a, now)
+        if full and (whole or seed):  # the assemblers' order: the feature pass's aligned path
             _close_whole(sorted(full + whole, key=_position), got, drops)
         elif full or whole:
             _close_whole(full or whole, got, drops)
@@ -230,10 +229,7 @@ def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now:
         # of them: the others each alone, contained.
         for i, a, *_ in (*full, *others):
             if got[i] is None:
-                try:
-                    got[i] = a.close_due(now)
-                except Exception as exc:
-                    got[i] = AssembleResult(exc)
+                got[i] = _alone(a, now)
     for i in (*todo, *(it[0] for it in seed)) if seed else todo:
         r, had = got[i], results[i]
         if r is None:
@@ -444,10 +440,7 @@ def _finish(fast: list[Item], blocks: list[list[Block | None]],
             if g.expected and c < min_cov:
                 complete = False
         if total == 0:  # an empty window: the gap logic of close_due decides
-            try:
-                results[i] = a.close_due(now)
-            except Exception as exc:
-                results[i] = AssembleResult(exc)
+            results[i] = _alone(a, now)
             continue
         w = ClosedWindow.of_blocks(start, end, complete, tuple(bl), a._expected,  # type: ignore[arg-type]
                                    cov)
