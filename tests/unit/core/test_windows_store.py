@@ -223,12 +223,15 @@ def test_close_many_windows_closed_by_the_timeout(assets, late) -> None:
     assert [a.pending_samples() for a in one] == [a.pending_samples() for a in many]
 
 
+@pytest.mark.parametrize("broken", ["vals", "lo", "hi", "groups"])
 @pytest.mark.parametrize("late", [1.5, 0.2])
-def test_close_many_when_the_joint_cut_raises_fails_that_assembler_alone(late) -> None:
-    """One assembler's store broken: the joint cut raises, every assembler is cut
-    alone (`close_due`), and only the broken one's result carries the error. `late`
-    1.5: windows closed by the timeout, all their samples in; 0.2: closed as the
-    next window's samples arrive (counted first)."""
+def test_close_many_when_the_joint_cut_raises_fails_that_assembler_alone(late, broken) -> None:
+    """One assembler broken: its store (the joint cut raises, every assembler is cut
+    alone by `close_due`), or its bookkeeping (reading it to plan the cut raises), and
+    only the broken one's result carries the error; the others' windows are cut as
+    close_due cuts them. `late` 1.5: windows closed by the timeout, all their samples in
+    (the steady pass, `_plan_steady`); 0.2: closed as the next window's samples arrive
+    (counted first)."""
     from agent.core.windows.batch import close_many
 
     cfg = WindowConfig(1.0, 1.0, 0.0, 1.0, 0.5)
@@ -241,7 +244,10 @@ def test_close_many_when_the_joint_cut_raises_fails_that_assembler_alone(late) -
                 a.add(c, ts, ts - T0, float(ts[-1]), presorted=True)
         now = float(ts[-1]) + (late if late > 1 else 0.0)
         if k == 2:
-            many[1]._groups[0].vals = None  # type: ignore[assignment]
+            if broken == "groups":
+                many[1]._groups = None  # type: ignore[assignment]
+            else:
+                setattr(many[1]._groups[0], broken, None)
             got = close_many(many, now)
             want = [a.close_due(now) for a in one]
             assert isinstance(got[1].error, TypeError) and not got[1].windows
@@ -446,33 +452,3 @@ def test_close_many_steady_assets_of_several_sizes(assets, late) -> None:
                     assert len({id(b.base) for b in blocks}) == 1
                     rows = [b.row0 for b in blocks]
                     assert rows == sorted(rows)
-
-
-@pytest.mark.parametrize("broken", ["lo", "hi", "groups"])
-def test_close_many_an_assembler_whose_plan_raises_fails_alone(broken) -> None:
-    """One assembler's bookkeeping broken so that reading it raises: its result carries
-    the error, the others' windows are cut as close_due cuts them (steady ones
-    jointly)."""
-    from agent.core.windows.batch import close_many
-
-    cfg = WindowConfig(1.0, 1.0, 0.0, 0.5, 0.5)
-    one = [WindowAssembler(cfg, (10.0, 10.0)) for _ in range(3)]
-    many = [WindowAssembler(cfg, (10.0, 10.0)) for _ in range(3)]
-    for k in range(3):
-        ts = T0 + k + np.arange(10) / 10.0
-        for a in (*one, *many):
-            for c in (0, 1):
-                a.add(c, ts, ts - T0, T0 + k + 1.0, presorted=True)
-        now = T0 + k + 1.6
-        if k == 2:
-            if broken == "groups":
-                many[1]._groups = None  # type: ignore[assignment]
-            else:
-                setattr(many[1]._groups[0], broken, None)
-            got = close_many(many, now)
-            want = [a.close_due(now) for a in one]
-            assert isinstance(got[1].error, TypeError) and not got[1].windows
-            _same([want[0], want[2]], [got[0], got[2]])
-            assert got[0].windows and got[0].error is None is got[2].error
-        else:
-            _same([a.close_due(now) for a in one], close_many(many, now))
