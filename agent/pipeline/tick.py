@@ -294,11 +294,8 @@ class Pipeline:
                     at.append(len(pending))
                     pending.append(None)
             elif not (failed and rt.cfg.name in failed):
-                rt.empty_streak = 0  # `_covered`, written out: the usual window's way
                 for w in windows:
-                    cov = rt.coverage = w.min_coverage
-                    if cov != rt.shown_coverage:
-                        self._set_coverage(rt, cov)
+                    self._covered(rt, w)
                     pending.append(Pending(rt, w, rt.mode, (), None if w.complete
                                            else "incomplete", None, ai))
         stats.windows_closed += n_closed
