@@ -12,6 +12,7 @@ import sys
 import time
 
 import tests.bench as pkg
+from tests.bench.common import machine
 
 LONG = ("bench_soak",)  # 30 minutes of wall time: only when asked for by name
 
@@ -26,6 +27,9 @@ def main(argv: list[str]) -> int:
     else:
         names = [n for n in names if n not in LONG]
     failed = 0
+    m = machine()
+    print(f"machine: {m['cpu_model'] or m['machine']}, {m['cpu_count']} CPUs, "
+          f"Python {m['python']}, {m['date']}", flush=True)
     for name in names:
         t0 = time.monotonic()
         print(f"\n=== {name} ===", flush=True)

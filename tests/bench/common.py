@@ -31,10 +31,25 @@ def median(xs: list[float]) -> float:
     return float(statistics.median(xs))
 
 
+def cpu_model() -> str:
+    """The processor's name as Linux reports it (/proc/cpuinfo's first `model name`),
+    "" elsewhere: the pipeline's ratios depend on it (per-window Python and the caches
+    against onnxruntime's per-call cost), so a figure without it cannot be compared."""
+    try:
+        with open("/proc/cpuinfo", encoding="utf-8") as f:
+            for line in f:
+                key, _, value = line.partition(":")
+                if key.strip() == "model name":
+                    return value.strip()
+    except OSError:
+        pass
+    return ""
+
+
 def machine() -> dict[str, Any]:
-    return {"cpu_count": os.cpu_count(), "machine": platform.machine(),
-            "python": platform.python_version(), "system": platform.system(),
-            "date": datetime.now(UTC).strftime("%Y-%m-%d")}
+    return {"cpu_count": os.cpu_count(), "cpu_model": cpu_model(),
+            "machine": platform.machine(), "python": platform.python_version(),
+            "system": platform.system(), "date": datetime.now(UTC).strftime("%Y-%m-%d")}
 
 
 def table(rows: list[list[str]], header: list[str]) -> str:
