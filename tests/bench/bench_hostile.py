@@ -1,6 +1,7 @@
 """The hostile flood (issue 20): 100,000 mixed bad messages at full rate during the demo's
-fault scenario. `python -m tests.bench hostile` (about 3 minutes; the demo's models are
-trained on first use into the state dir, default /tmp/watchkeep-hostile-state).
+fault scenario, and more until one window and its timeout of plant time have passed.
+`python -m tests.bench hostile` (about 3 minutes; the demo's models are trained on first
+use into the state dir, default /tmp/watchkeep-hostile-state).
 
 The demo's plant (agent/cli/demo.py: Mosquitto, the simulator, the daemon on the simulated
 clock) runs its scenario; when P-101's bearing fault starts, a second process publishes
@@ -69,8 +70,9 @@ def bad_messages(topics: dict[str, str], now: float, rng: random.Random
 
 
 def flood(port: int, n: int, sim_now: float, wall: float, speed: float,
-          topics: dict[str, str]) -> None:
-    """Publish `n` bad messages as fast as paho sends them (the flooding process)."""
+          topics: dict[str, str], min_sim_s: float = 0.0) -> None:
+    """Publish bad messages as fast as paho sends them (the flooding process): `n` of
+    them, and on until `min_sim_s` of plant time have passed."""
     import paho.mqtt.client as mqtt
     from paho.mqtt.enums import CallbackAPIVersion
 
@@ -81,12 +83,15 @@ def flood(port: int, n: int, sim_now: float, wall: float, speed: float,
     rng = random.Random(20)
     sent = 0
     t0 = time.monotonic()
-    while sent < n:
+    until = sim_now + min_sim_s
+    while True:
         now = sim_now + (time.time() - wall) * speed
+        if sent >= n and now >= until:
+            break
         for topic, payload in bad_messages(topics, now, rng):
             c.publish(topic, payload, qos=0)
             sent += 1
-            if sent >= n:
+            if sent >= n and now >= until:
                 break
         if sent % 5000 < 60:  # let paho's queue drain now and then
             while c._out_messages and len(c._out_messages) > 2000:
@@ -163,9 +168,13 @@ def run(duration_s: float, n: int, state_dir: Path) -> dict[str, Any]:
             skip_before = skipped()
             rss_before = _vm("VmHWM")
             sim_t0 = clock()
+            # At least one window and its timeout of plant time, so every asset has a
+            # window due while the flood lasts (on a fast machine 100,000 messages take
+            # less plant time than one window).
+            cycle = max(a.window.length_s + a.window.timeout_s for a in cfg.assets)
             proc = subprocess.run(
                 [sys.executable, "-m", "tests.bench.bench_hostile", "--flood",
-                 json.dumps([broker.port, n, clock(), time.time(), speed, topics])],
+                 json.dumps([broker.port, n, clock(), time.time(), speed, topics, cycle])],
                 capture_output=True, text=True, check=True, timeout=600)
             flood_info = json.loads(proc.stdout.strip().splitlines()[-1])
             sim_t1 = clock()
@@ -249,8 +258,8 @@ def main() -> int:
     p.add_argument("--flood", help=argparse.SUPPRESS)
     a = p.parse_args()
     if a.flood:
-        port, n, sim_now, wall, speed, topics = json.loads(a.flood)
-        flood(port, n, sim_now, wall, speed, topics)
+        port, n, sim_now, wall, speed, topics, min_sim_s = json.loads(a.flood)
+        flood(port, n, sim_now, wall, speed, topics, min_sim_s)
         return 0
     res = run(a.duration, a.messages, a.state_dir)
     print(json.dumps(res, indent=2))
