@@ -46,6 +46,33 @@ def cpu_model() -> str:
     return ""
 
 
+# glibc's mallopt parameters (malloc.h) and the largest mmap threshold it takes on 64-bit.
+_M_TRIM_THRESHOLD, _M_MMAP_THRESHOLD = -1, -3
+_MMAP_MAX = 32 * 1024 * 1024
+
+
+def steady_allocator() -> bool:
+    """Keep freed memory in this process's heap (glibc: `mallopt`, fixed thresholds),
+    so that a block of fresh temporaries costs the same in every round. By default glibc
+    serves an allocation above its mmap threshold (128 KiB at first) with a new mapping,
+    page-faulted in on first write and unmapped when freed, and raises the threshold as
+    such blocks are freed: how fast a bare numpy pass with megabyte temporaries runs then
+    depends on what the process did before (the pipeline bench's full-featured bare
+    reference read 29,000-34,000 windows/s run alone and 44,000 inside `make bench`).
+    Returns whether it was set (False off glibc)."""
+    import ctypes
+    import ctypes.util
+
+    name = ctypes.util.find_library("c")
+    try:
+        libc = ctypes.CDLL(name or "libc.so.6")
+        mallopt = libc.mallopt
+    except (OSError, AttributeError):
+        return False
+    return bool(mallopt(_M_MMAP_THRESHOLD, _MMAP_MAX)) and \
+        bool(mallopt(_M_TRIM_THRESHOLD, 2 * _MMAP_MAX))
+
+
 def machine() -> dict[str, Any]:
     return {"cpu_count": os.cpu_count(), "cpu_model": cpu_model(),
             "machine": platform.machine(), "python": platform.python_version(),
