@@ -59,7 +59,9 @@ def steady_allocator() -> bool:
     such blocks are freed: how fast a bare numpy pass with megabyte temporaries runs then
     depends on what the process did before (the pipeline bench's full-featured bare
     reference read 29,000-34,000 windows/s run alone and 44,000 inside `make bench`).
-    Returns whether it was set (False off glibc)."""
+    It holds for the rest of the process (glibc keeps a fixed threshold once set), so in
+    `make bench` the benchmarks after the one that calls it run with it too. Returns
+    whether it was set (False off glibc)."""
     import ctypes
     import ctypes.util
 
