@@ -77,6 +77,48 @@ def psd(x: np.ndarray, fs: float) -> tuple[np.ndarray, np.ndarray]:
     return np.fft.rfftfreq(n, 1.0 / fs), p
 
 
+class _Plan:
+    """What the features of segments of n samples at fs under one config need besides
+    the samples (the window, the bins, the scales, the band weights), made once per
+    (n, fs, config): the arithmetic is the same as making them every call."""
+
+    __slots__ = ("a_scale", "df", "freqs", "masks", "nyq", "p_scale", "w", "weight", "width")
+
+    def __init__(self, n: int, fs: float, spec: SpectrumConfig) -> None:
+        self.w = hann(n)
+        self.freqs = np.fft.rfftfreq(n, 1.0 / fs)
+        self.df = fs / n
+        self.nyq = fs / 2.0
+        c = _one_sided(n)
+        self.p_scale = c / (fs * float(np.sum(self.w * self.w)))
+        self.a_scale = c / float(np.sum(self.w))
+        # The bands' masks as columns, and the velocity weight: the features are their
+        # products with the power spectrum, times df (made as they were made per call).
+        masks = np.stack([band_mask(self.freqs, lo, hi, self.nyq) for lo, hi in spec.bands_hz]) \
+            if spec.bands_hz else None
+        self.masks = masks.T.astype(np.float64) if masks is not None else None
+        self.weight = None
+        if spec.velocity_rms:
+            lo, hi = VELOCITY_BAND_HZ
+            band = band_mask(self.freqs, lo, min(hi, self.nyq), self.nyq) & (self.freqs > 0)
+            self.weight = np.zeros_like(self.freqs)
+            self.weight[band] = 1.0 / (2.0 * np.pi * self.freqs[band]) ** 2
+        self.width = len(spec.feature_names())
+
+
+_PLANS: dict[tuple[int, float, SpectrumConfig], _Plan] = {}
+
+
+def _plan(n: int, fs: float, spec: SpectrumConfig) -> _Plan:
+    key = (n, fs, spec)
+    got = _PLANS.get(key)
+    if got is None:
+        if len(_PLANS) > 64:
+            _PLANS.clear()
+        got = _PLANS[key] = _Plan(n, fs, spec)
+    return got
+
+
 def _group_features(x: np.ndarray, fs: float, spec: SpectrumConfig,
                     speed_hz: np.ndarray, work: WorkArrays | None = None) -> np.ndarray:
     """Features of equal-length segments x [M, N] sharing a config: [M, n_features].
@@ -85,43 +127,39 @@ def _group_features(x: np.ndarray, fs: float, spec: SpectrumConfig,
     every call, a third of the time at 2,560 Hz x 5 s); the arithmetic is the same."""
     m, n = x.shape
     nf = n // 2 + 1
-    w = hann(n)
+    pl = _plan(n, float(fs), spec)
+    freqs, df = pl.freqs, pl.df
     d = np.subtract(x, x.mean(axis=1, keepdims=True), out=work_array(work, "sp_d", (m, n)))
-    spec_c = np.fft.rfft(np.multiply(d, w, out=work_array(work, "sp_dw", (m, n))), axis=1,
-                         out=work_array(work, "sp_c", (m, nf), complex_=True))
+    spec_c = np.fft.rfft(np.multiply(d, pl.w, out=work_array(work, "sp_dw", (m, n))),
+                         axis=1, out=work_array(work, "sp_c", (m, nf), complex_=True))
     mag = np.abs(spec_c, out=work_array(work, "sp_mag", (m, nf)))
-    freqs = np.fft.rfftfreq(n, 1.0 / fs)
-    df = fs / n
-    nyq = fs / 2.0
-    c = _one_sided(n)
     p = np.multiply(mag, mag, out=work_array(work, "sp_p", (m, nf)))
-    p *= c / (fs * float(np.sum(w * w)))
-    amp = np.multiply(mag, c / float(np.sum(w)), out=work_array(work, "sp_amp", (m, nf)))
-    cols: list[np.ndarray] = []
-    if spec.bands_hz:
-        masks = np.stack([band_mask(freqs, lo, hi, nyq) for lo, hi in spec.bands_hz])
-        cols.extend((p @ masks.T.astype(np.float64) * df).T)
+    p *= pl.p_scale
+    amp = np.multiply(mag, pl.a_scale, out=work_array(work, "sp_amp", (m, nf)))
+    out = np.empty((m, pl.width))
+    nb = len(spec.bands_hz)
+    if pl.masks is not None:
+        out[:, :nb] = p @ pl.masks * df
     k = 1 + np.argmax(amp[:, 1:], axis=1)
     rows = np.arange(m)
-    cols.append(freqs[k])
-    cols.append(amp[rows, k])
+    out[:, nb] = freqs[k]
+    out[:, nb + 1] = amp[rows, k]
+    col = nb + 2
     kmax = amp.shape[1] - 1
     for order in spec.orders:
         target = np.rint(order * speed_hz / df)
         ok = np.isfinite(target) & (speed_hz > 0) & (target <= kmax)
         t = np.clip(np.where(ok, target, 1), 1, kmax).astype(np.int64)
-        nb = np.stack([amp[rows, np.clip(t + j, 1, kmax)] for j in (-1, 0, 1)])
-        cols.append(np.where(ok, nb.max(axis=0), 0.0))
+        near = np.stack([amp[rows, np.clip(t + j, 1, kmax)] for j in (-1, 0, 1)])
+        out[:, col] = np.where(ok, near.max(axis=0), 0.0)
+        col += 1
     if spec.envelope_hz is not None:
-        cols.append(_envelope_std(d, freqs, spec.envelope_hz, nyq, work))
-    if spec.velocity_rms:
-        lo, hi = VELOCITY_BAND_HZ
-        band = band_mask(freqs, lo, min(hi, nyq), nyq) & (freqs > 0)
-        weight = np.zeros_like(freqs)
-        weight[band] = 1.0 / (2.0 * np.pi * freqs[band]) ** 2
-        ms = (p @ weight) * df * spec.accel_to_m_s2 ** 2
-        cols.append(np.sqrt(ms) * 1000.0)
-    return np.stack(cols, axis=1) if cols else np.empty((m, 0))
+        out[:, col] = _envelope_std(d, freqs, spec.envelope_hz, pl.nyq, work)
+        col += 1
+    if pl.weight is not None:
+        ms = (p @ pl.weight) * df * spec.accel_to_m_s2 ** 2
+        out[:, col] = np.sqrt(ms) * 1000.0
+    return out
 
 
 def _envelope_std(d: np.ndarray, freqs: np.ndarray, band_hz: tuple[float, float],
@@ -163,6 +201,22 @@ def spectral_features(segments: Sequence[np.ndarray], rates_hz: Sequence[float],
     flat, starts = spectral_flat(segments, rates_hz, specs, speeds_hz, work)
     return [flat[a:a + len(spec.feature_names())]
             for a, spec in zip(starts.tolist(), specs, strict=True)]
+
+
+def spectral_rows(x: np.ndarray, fs: float, spec: SpectrumConfig, speeds_hz: np.ndarray,
+                  work: WorkArrays | None = None) -> np.ndarray:
+    """`spectral_features` of every row of x [M, N] (one rate and config; `speeds_hz`
+    per row) as one [M, n_features] matrix, in the chunks `spectral_flat` would cut
+    such a group into (the same values)."""
+    m, n = x.shape
+    if n < MIN_SAMPLES:
+        return np.full((m, len(spec.feature_names())), np.nan)
+    step = max(1, CHUNK_SAMPLES // n)
+    if m <= step:
+        return _group_features(x, fs, spec, speeds_hz, work)
+    return np.concatenate([_group_features(x[c0:c0 + step], fs, spec,
+                                           speeds_hz[c0:c0 + step], work)
+                           for c0 in range(0, m, step)])
 
 
 Segment = np.ndarray | tuple[np.ndarray, int]

@@ -33,7 +33,7 @@ from agent.core.features import (
     stack_rows,
     work_array,
 )
-from agent.core.spectral import Segment, spectral_flat
+from agent.core.spectral import Segment, spectral_flat, spectral_rows
 from agent.core.windows.closed import ClosedWindow
 from agent.pipeline.runtime import AssetLayout, AssetRuntime
 
@@ -292,17 +292,30 @@ def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None) -> np.ndarray:
         b, r = lay.chan_at[lay.speed_index]
         # As `_spectral` reads it: each window's speed samples' mean, in rev/min.
         speeds = al.bases[b][r::al.rows[b]].mean(axis=1) / 60.0
-    segs: list[Segment] = []
-    for jj in range(n):
-        for ci in lay.spectral:
-            b, r = lay.chan_at[ci]
-            segs.append((al.bases[b], jj * al.rows[b] + r))
-    rates = [fs for _, fs in t.spectra] * n
-    cfgs = [sp for sp, _ in t.spectra] * n
-    spec_flat, spec_starts = spectral_flat(segs, rates, cfgs,
-                                           np.repeat(speeds, t.n_spec).tolist(), work)
-    flats.append(spec_flat)
-    sp = spec_starts.reshape(n, t.n_spec) + pos
+    chans = [(lay.chan_at[ci], spec, fs) for ci, (spec, fs) in zip(lay.spectral, t.spectra,
+                                                                       strict=True)]
+    if len({(al.bases[b].shape[1], float(fs), spec) for (b, _), spec, fs in chans}) \
+            == len(chans):
+        # Each spectral channel a group of its own (as `spectral_flat` would group its
+        # segments): its rows of the block matrix straight to the FFT.
+        got = [spectral_rows(al.bases[b][r::al.rows[b]] if al.rows[b] > 1 else al.bases[b],
+                             fs, spec, speeds, work) for (b, r), spec, fs in chans]
+        block = np.concatenate(got, axis=1) if len(got) > 1 else got[0]
+        flats.append(block.reshape(-1))
+        offs = np.cumsum([0] + [g.shape[1] for g in got[:-1]])
+        sp = pos + block.shape[1] * np.arange(n, dtype=np.int64)[:, None] + offs
+    else:
+        segs: list[Segment] = []
+        for jj in range(n):
+            for ci in lay.spectral:
+                b, r = lay.chan_at[ci]
+                segs.append((al.bases[b], jj * al.rows[b] + r))
+        rates = [fs for _, fs in t.spectra] * n
+        cfgs = [sp for sp, _ in t.spectra] * n
+        spec_flat, spec_starts = spectral_flat(segs, rates, cfgs,
+                                               np.repeat(speeds, t.n_spec).tolist(), work)
+        flats.append(spec_flat)
+        sp = spec_starts.reshape(n, t.n_spec) + pos
     td = np.concatenate([td, sp], axis=1)
     flat = np.concatenate(flats) if len(flats) > 1 else flats[0]
     return flat[td[:, t.slot] + t.const]

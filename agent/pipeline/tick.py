@@ -149,10 +149,9 @@ class Pipeline:
         self._judged = [bool(rt.layout.checked) or rt.modes is not None for rt in runtimes]
         self._stale_at = [bool(rt.layout.stale_channels) for rt in runtimes]
         # For the scoring stages: its name, and whether it has limits or velocity
-        # gauges (`Judge.limits`); each runtime's position.
+        # gauges (`Judge.limits`).
         self._names = [rt.cfg.name for rt in runtimes]
         self._limited = [bool(rt.limits or rt.layout.velocity_at) for rt in runtimes]
-        self._index = {id(rt): ai for ai, rt in enumerate(runtimes)}
         # (models, mode, bundle, positions) of its last window (`Models` is replaced whole)
         self._serving: list[tuple[Any, ...]] = [(None, "", None, None)] * len(runtimes)
 
@@ -276,12 +275,17 @@ class Pipeline:
         pending: list[Pending | None] = []
         wins: list[tuple[AssetRuntime, ClosedWindow]] = []
         at: list[int] = []  # where each of `wins` goes in `pending`
+        ais: list[int] = []  # and its asset's position
         n_closed = 0
+        # The assets whose staleness is judged now (`_cut_notes` says when).
+        held = self._stale_held
+        wake = set(np.flatnonzero(self._stale_wake <= now + STALE_MARGIN_S).tolist()) \
+            if self.judge_stale else None
         for ai, res, late, (ahead, steps) in zip(due, results, lates, notes, strict=True):
             rt = runtimes[ai]
             if (late or ahead or steps or res.error is not None or res.empty_skipped
-                    or self._stale_at[ai]) and not self._cut_notes(ai, rt, res, late, ahead,
-                                                                   steps, now):
+                    or (wake is not None and (held[ai] or ai in wake))) \
+                    and not self._cut_notes(ai, rt, res, late, ahead, steps, now):
                 continue
             windows = res.windows
             if not windows:
@@ -292,6 +296,7 @@ class Pipeline:
                 for w in windows:
                     wins.append((rt, w))
                     at.append(len(pending))
+                    ais.append(ai)
                     pending.append(None)
             elif not (failed and rt.cfg.name in failed):
                 for w in windows:
@@ -300,7 +305,7 @@ class Pipeline:
                                            else "incomplete", None, ai))
         stats.windows_closed += n_closed
         if wins:
-            self._judge_windows(wins, pending, at)
+            self._judge_windows(wins, pending, at, ais)
         if failed or wins:  # an asset failing at its second window drops its first too
             return [p for p in pending
                     if p is not None and not (failed and p.rt.cfg.name in failed)]
@@ -342,23 +347,28 @@ class Pipeline:
         return True
 
     def _judge_windows(self, wins: list[tuple[AssetRuntime, ClosedWindow]],
-                       pending: list[Pending | None], at: list[int]) -> None:
+                       pending: list[Pending | None], at: list[int], ais: list[int]) -> None:
         """Sensor health (quiet channels judged together first) and modes of the closed
-        windows of assets with checks or modes, each into its place `at` in `pending`
-        (left None when its asset fails)."""
+        windows of assets with checks or modes (`ais` their positions), each into its
+        place `at` in `pending` (left None when its asset fails)."""
         judge = self.judge
         failed = self._failed_now
         try:
             pre: Prejudged | None = judge.prejudge(wins, failed)
         except Exception:  # each window's own check_window decides which asset fails
             pre = None
+        window = judge.window
         for wi, (rt, w) in enumerate(wins):
             if failed and rt.cfg.name in failed:
                 continue
-            self._covered(rt, w)
+            rt.empty_streak = 0  # `_covered`, without the calls
+            cov = rt.coverage = w.min_coverage
+            if cov != rt.shown_coverage:
+                self.metrics.coverage.labels(rt.cfg.name).set(cov)
+                rt.shown_coverage = cov
             try:
-                p = pending[at[wi]] = judge.window(rt, w, pre, wi)
-                p.ai = self._index[id(rt)]
+                p = pending[at[wi]] = window(rt, w, pre, wi)
+                p.ai = ais[wi]
             except Exception as exc:
                 self._failed(rt, "health", exc)
 

@@ -4,8 +4,9 @@ The usual case of a tick (exactly the next window of an asset due, its rows star
 in step) is cut for all such assets together: one copy per sample count over the
 stacked rows of every asset, instead of a handful of numpy calls per asset; the
 blocks of the cut are rows of one matrix (`Block.base`), which the feature pass takes
-whole. Its commonest shape (one rate group, every pending sample in the window) is
-planned and cut in one loop over the assemblers first (`_plan_steady`). When samples
+whole. Its commonest shape (every rate group's rows in step, every pending sample in
+the window) is planned in one loop over the assemblers and cut in one more
+(`_plan_steady`, `_cut_steady`). When samples
 past the window's end are pending (a block straddling it, one channel's next reading
 in, a hopping window), the rows are first counted for all such assets at once, in a
 band around where a sensor at its rate puts the end (`row_counts`). Rows starting
@@ -90,17 +91,14 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     results: list[AssembleResult | None] = [None] * len(assemblers)
     todo, more, steady = _plan_steady(assemblers, now, results)
     if not todo:
-        for m, members in steady.items():
-            try:
-                _cut_steady(m, members, results)
-            except Exception:  # each unfinished alone, contained
-                for i, a, *_ in members:
-                    if results[i] is None:
-                        results[i] = _alone(a, now)
+        try:
+            _cut_steady(steady, results)
+        except Exception:  # each unfinished alone, contained
+            for i, a, *_ in steady:
+                if results[i] is None:
+                    results[i] = _alone(a, now)
     else:  # cut with the others' (one matrix in the assemblers' order)
-        seed = [(i, a, start, end, [(g, lo0, m)])
-                for m, members in steady.items() for i, a, g, lo0, start, end in members]
-        more = sorted((*more, *_close_next(assemblers, todo, now, results, seed)))
+        more = sorted((*more, *_close_next(assemblers, todo, now, results, steady)))
     todo = [i for i in more if results[i].error is None]  # type: ignore[union-attr]
     while todo:
         more = _close_next(assemblers, todo, now, results)
@@ -109,27 +107,27 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
 
 
 # What `_plan_steady` keeps of an assembler whose window it cuts: its position, the
-# assembler, its one rate group, the group's first pending index, the window's start
-# and end.
-_Steady = tuple[int, WindowAssembler, _Group, int, float, float]
+# assembler, the window's start and end, and per rate group (the group, its first
+# pending index, the samples each of its rows holds in the window): an `Item`.
+_Steady = Item
 
 
 def _plan_steady(assemblers: Sequence[WindowAssembler], now: float,
                  results: list[AssembleResult | None]
-                 ) -> tuple[list[int], list[int], dict[int, list[_Steady]]]:
+                 ) -> tuple[list[int], list[int], list[_Steady]]:
     """The first pass of `close_many` over the usual shape, in one loop: an assembler
-    of one rate group whose next tumbling window is due with every pending sample
-    before its end, the same number m > 0 in every row, rows starting in step (`_plan`'s
-    `full` item of one group), kept by m for `_cut_steady`; one with nothing due gets an
-    empty result. Returns the positions of every other shape (for `_close_next`), those
-    with a window after the kept one due too, and the kept."""
+    whose next tumbling window is due with every pending sample before its end, in
+    every rate group the same number m > 0 in every row and the rows starting in step
+    (`_plan`'s `full` item), kept in order for `_cut_steady`; one with nothing due gets
+    an empty result. Returns the positions of every other shape (for
+    `_close_next`), those with a window after the kept one due too, and the kept."""
     others: list[int] = []
     more: list[int] = []
-    by_m: dict[int, list[_Steady]] = {}
+    steady: list[_Steady] = []
     for i, a in enumerate(assemblers):
         try:
-            k, groups = a._next_k, a._groups
-            if k is None or a._span_k != 1 or len(groups) != 1 or a._any_unsorted:
+            k = a._next_k
+            if k is None or a._span_k != 1 or a._any_unsorted:
                 others.append(i)
                 continue
             max_ts = a._max_ts
@@ -139,54 +137,87 @@ def _plan_steady(assemblers: Sequence[WindowAssembler], now: float,
             if not (max_ts >= a._due_ts or reach >= a._due_reach):
                 results[i] = AssembleResult()
                 continue
-            g = groups[0]
-            lo, hi = g.lo, g.hi
-            lo0, n = lo[0], len(lo)
-            m = hi[0] - lo0
             hop = a.cfg.hop_s
             end = (k + 1) * hop  # as `_bounds`
-            if m <= 0 or max_ts >= end or lo.count(lo0) != n or hi.count(lo0 + m) != n:
+            if max_ts >= end:
                 others.append(i)
                 continue
-            after = max_ts >= a._due2_ts or reach >= a._due2_reach
+            spans = []
+            for g in a._groups:
+                lo, hi = g.lo, g.hi
+                lo0, n = lo[0], len(lo)
+                m = hi[0] - lo0
+                if m <= 0 or lo.count(lo0) != n or hi.count(lo0 + m) != n:
+                    break
+                spans.append((g, lo0, m))
+            else:
+                steady.append((i, a, k * hop, end, spans))
+                if max_ts >= a._due2_ts or reach >= a._due2_reach:
+                    more.append(i)
+                continue
+            others.append(i)
+        except Exception:  # `_close_next` plans it again, contained (its error its result)
+            others.append(i)
+    return others, more, steady
+
+
+class _Cut:
+    """`_cut_steady`'s copy of every member's rows of one segment length: the values,
+    the times of the members keeping them, the times as rows of one matrix beside the
+    values (only when every member kept them), where the next member's rows start."""
+
+    __slots__ = ("off", "t", "t_off", "tb", "v")
+
+    def __init__(self, v: np.ndarray, t: np.ndarray | None, tb: np.ndarray | None) -> None:
+        self.v, self.t, self.tb = v, t, tb
+        self.off = self.t_off = 0
+
+
+def _cut_steady(members: list[_Steady], results: list[AssembleResult | None]) -> None:
+    """`_plan_steady`'s windows: per segment length m, one copy of every member's rows
+    of m samples, each window's block a row range of it (`_close_whole` for such items,
+    in fewer steps)."""
+    by_m: dict[int, list[tuple[_Group, int]]] = {}
+    for mb in members:
+        for g, lo0, m in mb[4]:
             got = by_m.get(m)
             if got is None:
                 got = by_m[m] = []
-            got.append((i, a, g, lo0, k * hop, end))
-            if after:
-                more.append(i)
-        except Exception:  # `_close_next` plans it again, contained (its error its result)
-            others.append(i)
-    return others, more, by_m
-
-
-def _cut_steady(m: int, members: list[_Steady], results: list[AssembleResult | None]) -> None:
-    """`_plan_steady`'s windows of m samples per row: one copy of every member's rows,
-    each window's block a row range of it (`_close_whole` for such items)."""
-    v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + m] for mb in members])
-    kept = [mb for mb in members if mb[2].keep_times]
-    t = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + m] for mb in kept]) if kept else None
-    tb = t if len(kept) == len(members) else None  # as in `_close_whole`
-    off = t_off = n_last = 0
-    full: tuple[int, ...] = ()
-    for i, a, g, lo0, start, end in members:
-        chans = g.chans
-        n = len(chans)
-        if n != n_last:
-            full, n_last = _full(n, m), n
-        if t is not None and g.keep_times:
-            blk = Block(chans, t[t_off:t_off + n], v[off:off + n], full, True, v, off, tb)
-            t_off += n
-        else:
-            blk = Block.rows_of(v, off, chans, full)
-        off += n
-        exp = g.expected
-        cov = m / exp if exp else 1.0
-        w = ClosedWindow.of_blocks(start, end, not (exp and cov < a.cfg.min_coverage), (blk,),
-                                   a._expected, cov)
-        g.lo = [lo0 + m] * n  # still in step
+            got.append((g, lo0))
+    cuts: dict[int, _Cut] = {}
+    for m, gs in by_m.items():
+        v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0 in gs])
+        kept = [(g, lo0) for g, lo0 in gs if g.keep_times]
+        t = np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0 in kept]) if kept else None
+        cuts[m] = _Cut(v, t, t if len(kept) == len(gs) else None)
+    for i, a, start, end, spans in members:
+        min_cov = a.cfg.min_coverage
+        complete = True
+        cov = 1.0
+        blocks = []
+        for gi, (g, lo0, m) in enumerate(spans):
+            cut = cuts[m]
+            v, t, off = cut.v, cut.t, cut.off
+            chans = g.chans
+            n = len(chans)
+            full = (m,) * n  # the counts (cheaper made than looked up)
+            if t is not None and g.keep_times:
+                t_off = cut.t_off
+                blocks.append(Block(chans, t[t_off:t_off + n], v[off:off + n], full, True, v,
+                                    off, cut.tb))
+                cut.t_off = t_off + n
+            else:
+                blocks.append(Block.rows_of(v, off, chans, full))
+            cut.off = off + n
+            exp = g.expected
+            c = m / exp if exp else 1.0
+            cov = min(cov, c) if gi else c
+            if exp and c < min_cov:
+                complete = False
+            g.lo = [lo0 + m] * n  # still in step
         a._step_next()
-        results[i] = AssembleResult(None, [w])
+        results[i] = AssembleResult(None, [ClosedWindow.of_blocks(
+            start, end, complete, tuple(blocks), a._expected, cov)])
 
 
 def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now: float,
