@@ -6,7 +6,7 @@ stacked rows of every asset, instead of a handful of numpy calls per asset; the
 blocks of the cut are rows of one matrix (`Block.base`), which the feature pass takes
 whole. Its commonest shape (every rate group's rows in step, every pending sample in
 the window) is planned in one loop over the assemblers and cut in one more
-(`_plan_steady`, `_cut_steady`). When samples
+(`steady.py`). When samples
 past the window's end are pending (a block straddling it, one channel's next reading
 in, a hopping window), the rows are first counted for all such assets at once, in a
 band around where a sensor at its rate puts the end (`row_counts`). Rows starting
@@ -30,6 +30,7 @@ from agent.core.windows.assembler import (
     _Group,
 )
 from agent.core.windows.counting import Drops, Item, row_counts
+from agent.core.windows.steady import cut_steady, plan_steady
 
 # What `_plan` found for an assembler (`_MORE`: placed, and a window after it is due).
 _NOTHING, _PLACED, _ALONE, _MORE = 0, 1, 2, 3
@@ -89,10 +90,10 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     exception (`AssembleResult.error`); the others' windows are cut as usual.
     """
     results: list[AssembleResult | None] = [None] * len(assemblers)
-    todo, more, steady = _plan_steady(assemblers, now, results)
+    todo, more, steady, by_m = plan_steady(assemblers, now, results)
     if not todo:
         try:
-            _cut_steady(steady, results)
+            cut_steady(steady, by_m, results)
         except Exception:  # each unfinished alone, contained
             for i, a, *_ in steady:
                 if results[i] is None:
@@ -104,120 +105,6 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
         more = _close_next(assemblers, todo, now, results)
         todo = [i for i in more if results[i].error is None]  # type: ignore[union-attr]
     return [r if r is not None else AssembleResult() for r in results]
-
-
-# What `_plan_steady` keeps of an assembler whose window it cuts: its position, the
-# assembler, the window's start and end, and per rate group (the group, its first
-# pending index, the samples each of its rows holds in the window): an `Item`.
-_Steady = Item
-
-
-def _plan_steady(assemblers: Sequence[WindowAssembler], now: float,
-                 results: list[AssembleResult | None]
-                 ) -> tuple[list[int], list[int], list[_Steady]]:
-    """The first pass of `close_many` over the usual shape, in one loop: an assembler
-    whose next tumbling window is due with every pending sample before its end, in
-    every rate group the same number m > 0 in every row and the rows starting in step
-    (`_plan`'s `full` item), kept in order for `_cut_steady`; one with nothing due gets
-    an empty result. Returns the positions of every other shape (for
-    `_close_next`), those with a window after the kept one due too, and the kept."""
-    others: list[int] = []
-    more: list[int] = []
-    steady: list[_Steady] = []
-    for i, a in enumerate(assemblers):
-        try:
-            k = a._next_k
-            if k is None or a._span_k != 1 or a._any_unsorted:
-                others.append(i)
-                continue
-            max_ts = a._max_ts
-            idle = now - a._last_arrival
-            reach = (max_ts + idle if idle != math.inf else -math.inf) if idle > 0.0 \
-                else max_ts
-            if not (max_ts >= a._due_ts or reach >= a._due_reach):
-                results[i] = AssembleResult()
-                continue
-            hop = a.cfg.hop_s
-            end = (k + 1) * hop  # as `_bounds`
-            if max_ts >= end:
-                others.append(i)
-                continue
-            spans = []
-            for g in a._groups:
-                lo, hi = g.lo, g.hi
-                lo0, n = lo[0], len(lo)
-                m = hi[0] - lo0
-                if m <= 0 or lo.count(lo0) != n or hi.count(lo0 + m) != n:
-                    break
-                spans.append((g, lo0, m))
-            else:
-                steady.append((i, a, k * hop, end, spans))
-                if max_ts >= a._due2_ts or reach >= a._due2_reach:
-                    more.append(i)
-                continue
-            others.append(i)
-        except Exception:  # `_close_next` plans it again, contained (its error its result)
-            others.append(i)
-    return others, more, steady
-
-
-class _Cut:
-    """`_cut_steady`'s copy of every member's rows of one segment length: the values,
-    the times of the members keeping them, the times as rows of one matrix beside the
-    values (only when every member kept them), where the next member's rows start."""
-
-    __slots__ = ("off", "t", "t_off", "tb", "v")
-
-    def __init__(self, v: np.ndarray, t: np.ndarray | None, tb: np.ndarray | None) -> None:
-        self.v, self.t, self.tb = v, t, tb
-        self.off = self.t_off = 0
-
-
-def _cut_steady(members: list[_Steady], results: list[AssembleResult | None]) -> None:
-    """`_plan_steady`'s windows: per segment length m, one copy of every member's rows
-    of m samples, each window's block a row range of it (`_close_whole` for such items,
-    in fewer steps)."""
-    by_m: dict[int, list[tuple[_Group, int]]] = {}
-    for mb in members:
-        for g, lo0, m in mb[4]:
-            got = by_m.get(m)
-            if got is None:
-                got = by_m[m] = []
-            got.append((g, lo0))
-    cuts: dict[int, _Cut] = {}
-    for m, gs in by_m.items():
-        v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0 in gs])
-        kept = [(g, lo0) for g, lo0 in gs if g.keep_times]
-        t = np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0 in kept]) if kept else None
-        cuts[m] = _Cut(v, t, t if len(kept) == len(gs) else None)
-    for i, a, start, end, spans in members:
-        min_cov = a.cfg.min_coverage
-        complete = True
-        cov = 1.0
-        blocks = []
-        for gi, (g, lo0, m) in enumerate(spans):
-            cut = cuts[m]
-            v, t, off = cut.v, cut.t, cut.off
-            chans = g.chans
-            n = len(chans)
-            full = (m,) * n  # the counts (cheaper made than looked up)
-            if t is not None and g.keep_times:
-                t_off = cut.t_off
-                blocks.append(Block(chans, t[t_off:t_off + n], v[off:off + n], full, True, v,
-                                    off, cut.tb))
-                cut.t_off = t_off + n
-            else:
-                blocks.append(Block.rows_of(v, off, chans, full))
-            cut.off = off + n
-            exp = g.expected
-            c = m / exp if exp else 1.0
-            cov = min(cov, c) if gi else c
-            if exp and c < min_cov:
-                complete = False
-            g.lo = [lo0 + m] * n  # still in step
-        a._step_next()
-        results[i] = AssembleResult(None, [ClosedWindow.of_blocks(
-            start, end, complete, tuple(blocks), a._expected, cov)])
 
 
 def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now: float,

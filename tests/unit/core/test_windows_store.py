@@ -230,7 +230,7 @@ def test_close_many_when_the_joint_cut_raises_fails_that_assembler_alone(late, b
     alone by `close_due`), or its bookkeeping (reading it to plan the cut raises), and
     only the broken one's result carries the error; the others' windows are cut as
     close_due cuts them. `late` 1.5: windows closed by the timeout, all their samples in
-    (the steady pass, `_plan_steady`); 0.2: closed as the next window's samples arrive
+    (the steady pass, `steady.plan_steady`); 0.2: closed as the next window's samples arrive
     (counted first)."""
     from agent.core.windows.batch import close_many
 
@@ -405,7 +405,7 @@ def test_close_many_keeps_the_assemblers_order_in_the_cut_matrix() -> None:
 @example([(0.0, 1, False, False), (10.0, 2, True, False), (20.0, 1, False, False)], 0.0)
 def test_close_many_steady_assets_of_several_sizes(assets, late) -> None:
     """The usual shape (one rate group, the window holding every pending sample, rows
-    in step; `_plan_steady`) at two rates, with and without kept times, beside assets
+    in step; `steady.plan_steady`) at two rates, with and without kept times, beside assets
     whose next window's first sample is in and assets of two rate groups (rate 0.0
     here: n channels at 10 Hz, n at 20 Hz): close_many cuts what close_due cuts, and
     the blocks of windows holding all their samples are, size by size, rows of one

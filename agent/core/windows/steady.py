@@ -1,0 +1,157 @@
+"""The commonest shape of the joint cut (`batch.close_many`), planned and cut in two
+loops: an asset whose next tumbling window is due, every pending sample of every rate
+group before its end, each group's rows in step holding the same number of samples.
+Pure.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+
+import numpy as np
+
+from agent.core.windows.assembler import (
+    AssembleResult,
+    Block,
+    ClosedWindow,
+    WindowAssembler,
+    _Group,
+)
+from agent.core.windows.counting import Item
+
+# What `plan_steady` keeps of an assembler whose window it cuts: its position, the
+# assembler, the window's start and end, and per rate group (the group, its first
+# pending index, the samples each of its rows holds in the window): an `Item`.
+_Steady = Item
+_ByM = dict[int, list[tuple[_Group, int]]]
+
+
+def plan_steady(assemblers: Sequence[WindowAssembler], now: float,
+                 results: list[AssembleResult | None]
+                 ) -> tuple[list[int], list[int], list[_Steady], _ByM]:
+    """The first pass of `close_many` over the usual shape, in one loop: an assembler
+    whose next tumbling window is due with every pending sample before its end, in
+    every rate group the same number m > 0 in every row and the rows starting in step
+    (`_plan`'s `full` item), kept in order for `cut_steady`; one with nothing due gets
+    an empty result. Returns the positions of every other shape (for
+    `_close_next`), those with a window after the kept one due too, the kept, and their
+    groups by m (each group's first pending index), in the same order."""
+    others: list[int] = []
+    more: list[int] = []
+    steady: list[_Steady] = []
+    by_m: _ByM = {}
+    for i, a in enumerate(assemblers):
+        try:
+            k = a._next_k
+            if k is None or a._span_k != 1 or a._any_unsorted:
+                others.append(i)
+                continue
+            max_ts = a._max_ts
+            idle = now - a._last_arrival
+            reach = (max_ts + idle if idle != math.inf else -math.inf) if idle > 0.0 \
+                else max_ts
+            if not (max_ts >= a._due_ts or reach >= a._due_reach):
+                results[i] = AssembleResult()
+                continue
+            hop = a.cfg.hop_s
+            end = (k + 1) * hop  # as `_bounds`
+            if max_ts >= end:
+                others.append(i)
+                continue
+            spans = []
+            for g in a._groups:
+                lo, hi = g.lo, g.hi
+                lo0, n = lo[0], len(lo)
+                m = hi[0] - lo0
+                if m <= 0 or lo.count(lo0) != n or hi.count(lo0 + m) != n:
+                    break
+                spans.append((g, lo0, m))
+            else:
+                steady.append((i, a, k * hop, end, spans))
+                for g, lo0, m in spans:
+                    got = by_m.get(m)
+                    if got is None:
+                        got = by_m[m] = []
+                    got.append((g, lo0))
+                if max_ts >= a._due2_ts or reach >= a._due2_reach:
+                    more.append(i)
+                continue
+            others.append(i)
+        except Exception:  # `_close_next` plans it again, contained (its error its result)
+            others.append(i)
+    return others, more, steady, by_m
+
+
+class _Cut:
+    """`cut_steady`'s copy of every member's rows of one segment length: the values,
+    the times of the members keeping them, the times as rows of one matrix beside the
+    values (only when every member kept them), where the next member's rows start."""
+
+    __slots__ = ("off", "t", "t_off", "tb", "v")
+
+    def __init__(self, v: np.ndarray, t: np.ndarray | None, tb: np.ndarray | None) -> None:
+        self.v, self.t, self.tb = v, t, tb
+        self.off = self.t_off = 0
+
+
+def cut_steady(members: list[_Steady], by_m: _ByM,
+                results: list[AssembleResult | None]) -> None:
+    """`plan_steady`'s windows: per segment length m, one copy of every member's rows
+    of m samples (`by_m`), each window's block a row range of it (`_close_whole` for
+    such items, in fewer steps)."""
+    cuts: dict[int, _Cut] = {}
+    for m, gs in by_m.items():
+        v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0 in gs])
+        kept = [(g, lo0) for g, lo0 in gs if g.keep_times]
+        t = np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0 in kept]) if kept else None
+        cuts[m] = _Cut(v, t, t if len(kept) == len(gs) else None)
+    for i, a, start, end, spans in members:
+        min_cov = a.cfg.min_coverage
+        if len(spans) == 1:  # the commonest: one rate group
+            g, lo0, m = spans[0]
+            cut = cuts[m]
+            v, t, off = cut.v, cut.t, cut.off
+            chans = g.chans
+            n = len(chans)
+            if t is not None and g.keep_times:
+                t_off = cut.t_off
+                blk = Block(chans, t[t_off:t_off + n], v[off:off + n], (m,) * n, True, v,
+                            off, cut.tb)
+                cut.t_off = t_off + n
+            else:
+                blk = Block.rows_of(v, off, chans, (m,) * n)
+            cut.off = off + n
+            exp = g.expected
+            cov = m / exp if exp else 1.0
+            g.lo = [lo0 + m] * n  # still in step
+            a._step_next()
+            results[i] = AssembleResult(None, [ClosedWindow.of_blocks(
+                start, end, not (exp and cov < min_cov), (blk,), a._expected, cov)])
+            continue
+        complete = True
+        cov = 1.0
+        blocks = []
+        for gi, (g, lo0, m) in enumerate(spans):
+            cut = cuts[m]
+            v, t, off = cut.v, cut.t, cut.off
+            chans = g.chans
+            n = len(chans)
+            full = (m,) * n  # the counts (cheaper made than looked up)
+            if t is not None and g.keep_times:
+                t_off = cut.t_off
+                blocks.append(Block(chans, t[t_off:t_off + n], v[off:off + n], full, True, v,
+                                    off, cut.tb))
+                cut.t_off = t_off + n
+            else:
+                blocks.append(Block.rows_of(v, off, chans, full))
+            cut.off = off + n
+            exp = g.expected
+            c = m / exp if exp else 1.0
+            cov = min(cov, c) if gi else c
+            if exp and c < min_cov:
+                complete = False
+            g.lo = [lo0 + m] * n  # still in step
+        a._step_next()
+        results[i] = AssembleResult(None, [ClosedWindow.of_blocks(
+            start, end, complete, tuple(blocks), a._expected, cov)])
