@@ -39,12 +39,14 @@ class Block:
 
     @classmethod
     def rows_of(cls, base: np.ndarray, row0: int, chans: tuple[int, ...],
-                counts: Sequence[int]) -> Block:
-        """Rows row0.. of `base` (one per channel), every row full, timestamps not kept
-        (NaN): the joint cut's usual block, its views made when first read."""
+                counts: Sequence[int], tbase: np.ndarray | None = None) -> Block:
+        """Rows row0.. of `base` (one per channel), every row full, their timestamps the
+        same rows of `tbase` (None: not kept, NaN): the joint cut's usual block, its
+        views made when first read."""
         b = cls.__new__(cls)
         b.chans = chans
-        b._timestamps = b._values = b.tbase = None
+        b._timestamps = b._values = None
+        b.tbase = tbase
         b.counts = counts
         b.base = base
         b.row0 = row0
@@ -63,7 +65,9 @@ class Block:
     def timestamps(self) -> np.ndarray:
         t = self._timestamps
         if t is None:
-            t = self._timestamps = _no_times(len(self.chans), self.values.shape[1])
+            tb = self.tbase
+            t = self._timestamps = _no_times(len(self.chans), self.values.shape[1]) \
+                if tb is None else tb[self.row0:self.row0 + len(self.chans)]
         return t
 
 

@@ -114,7 +114,9 @@ def cut_steady(members: list[_Steady], by_m: _ByM,
             v, t, off = cut.v, cut.t, cut.off
             chans = g.chans
             n = len(chans)
-            if t is not None and g.keep_times:
+            if cut.tb is not None:  # every member's times, row for row with `v`
+                blk = Block.rows_of(v, off, chans, (m,) * n, cut.tb)
+            elif t is not None and g.keep_times:
                 t_off = cut.t_off
                 blk = Block(chans, t[t_off:t_off + n], v[off:off + n], (m,) * n, True, v,
                             off, cut.tb)
@@ -138,7 +140,9 @@ def cut_steady(members: list[_Steady], by_m: _ByM,
             chans = g.chans
             n = len(chans)
             full = (m,) * n  # the counts (cheaper made than looked up)
-            if t is not None and g.keep_times:
+            if cut.tb is not None:  # every member's times, row for row with `v`
+                blocks.append(Block.rows_of(v, off, chans, full, cut.tb))
+            elif t is not None and g.keep_times:
                 t_off = cut.t_off
                 blocks.append(Block(chans, t[t_off:t_off + n], v[off:off + n], full, True, v,
                                     off, cut.tb))
