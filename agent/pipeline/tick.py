@@ -201,12 +201,6 @@ class Pipeline:
             self.metrics.coverage.labels(rt.cfg.name).set(cov)
             rt.shown_coverage = cov
 
-    def _covered(self, rt: AssetRuntime, w: ClosedWindow) -> None:
-        """A window of `rt` closed: its coverage is the asset's, its run of empty
-        windows is over."""
-        rt.empty_streak = 0
-        self._set_coverage(rt, w.min_coverage)
-
     def _due(self, now: float) -> list[int]:
         """The assets with something to do at `now`: a window due
         (`WindowAssembler.due`), late samples, refused or stepped times or liveness
@@ -300,7 +294,12 @@ class Pipeline:
                     pending.append(None)
             elif not (failed and rt.cfg.name in failed):
                 for w in windows:
-                    self._covered(rt, w)
+                    # A window closed: its coverage is the asset's (`_set_coverage`).
+                    rt.empty_streak = 0
+                    cov = rt.coverage = w.min_coverage
+                    if cov != rt.shown_coverage:
+                        self.metrics.coverage.labels(rt.cfg.name).set(cov)
+                        rt.shown_coverage = cov
                     pending.append(Pending(rt, w, rt.mode, (), None if w.complete
                                            else "incomplete", None, ai))
         stats.windows_closed += n_closed
@@ -361,7 +360,8 @@ class Pipeline:
         for wi, (rt, w) in enumerate(wins):
             if failed and rt.cfg.name in failed:
                 continue
-            rt.empty_streak = 0  # `_covered`, without the calls
+            # A window closed: its coverage is the asset's (`_set_coverage`).
+            rt.empty_streak = 0
             cov = rt.coverage = w.min_coverage
             if cov != rt.shown_coverage:
                 self.metrics.coverage.labels(rt.cfg.name).set(cov)

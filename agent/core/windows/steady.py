@@ -24,7 +24,7 @@ from agent.core.windows.counting import Item
 # assembler, the window's start and end, and per rate group (the group, its first
 # pending index, the samples each of its rows holds in the window): an `Item`.
 _Steady = Item
-_ByM = dict[int, list[tuple[_Group, int]]]
+_ByM = dict[int, list[tuple[_Group, int, _Steady]]]
 
 
 def plan_steady(assemblers: Sequence[WindowAssembler], now: float,
@@ -36,7 +36,8 @@ def plan_steady(assemblers: Sequence[WindowAssembler], now: float,
     (`_plan`'s `full` item), kept in order for `cut_steady`; one with nothing due gets
     an empty result. Returns the positions of every other shape (for
     `_close_next`), those with a window after the kept one due too, the kept, and their
-    groups by m (each group's first pending index), in the same order."""
+    groups by m (with each group's first pending index and its item), in the same
+    order."""
     others: list[int] = []
     more: list[int] = []
     steady: list[_Steady] = []
@@ -59,28 +60,44 @@ def plan_steady(assemblers: Sequence[WindowAssembler], now: float,
             if max_ts >= end:
                 others.append(i)
                 continue
-            spans = []
-            for g in a._groups:
-                lo, hi = g.lo, g.hi
-                lo0, n = lo[0], len(lo)
-                m = hi[0] - lo0
-                if m <= 0 or lo.count(lo0) != n or hi.count(lo0 + m) != n:
-                    break
-                spans.append((g, lo0, m))
-            else:
-                steady.append((i, a, k * hop, end, spans))
-                for g, lo0, m in spans:
-                    got = by_m.get(m)
-                    if got is None:
-                        got = by_m[m] = []
-                    got.append((g, lo0))
-                if max_ts >= a._due2_ts or reach >= a._due2_reach:
-                    more.append(i)
+            spans = _in_step(a._groups)
+            if spans is None:
+                others.append(i)
                 continue
-            others.append(i)
+            item: _Steady = (i, a, k * hop, end, spans)
+            for g, lo0, m in spans:
+                got = by_m.get(m)
+                if got is None:
+                    got = by_m[m] = []
+                got.append((g, lo0, item))
+            steady.append(item)
+            if max_ts >= a._due2_ts or reach >= a._due2_reach:
+                more.append(i)
         except Exception:  # `_close_next` plans it again, contained (its error its result)
             others.append(i)
     return others, more, steady, by_m
+
+
+def _in_step(groups: list[_Group]) -> list[tuple[_Group, int, int]] | None:
+    """Per rate group (the group, its first pending index, m) when every group's rows
+    start in step and hold the same number m > 0 of samples; else None."""
+    if len(groups) == 1:  # the commonest
+        g = groups[0]
+        lo, hi = g.lo, g.hi
+        lo0, n = lo[0], len(lo)
+        m = hi[0] - lo0
+        if m <= 0 or lo.count(lo0) != n or hi.count(lo0 + m) != n:
+            return None
+        return [(g, lo0, m)]
+    spans = []
+    for g in groups:
+        lo, hi = g.lo, g.hi
+        lo0, n = lo[0], len(lo)
+        m = hi[0] - lo0
+        if m <= 0 or lo.count(lo0) != n or hi.count(lo0 + m) != n:
+            return None
+        spans.append((g, lo0, m))
+    return spans
 
 
 class _Cut:
@@ -100,37 +117,51 @@ def cut_steady(members: list[_Steady], by_m: _ByM,
     """`plan_steady`'s windows: per segment length m, one copy of every member's rows
     of m samples (`by_m`), each window's block a row range of it (`_close_whole` for
     such items, in fewer steps)."""
+    if sum(map(len, by_m.values())) != len(members):  # an asset of several rate groups
+        _cut_groups(members, by_m, results)
+        return
+    for m, gs in by_m.items():  # every asset one rate group: one copy per m, in order
+        v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0, _ in gs])
+        kept = [(g, lo0) for g, lo0, _ in gs if g.keep_times]
+        t = np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0 in kept]) if kept else None
+        tb = t if len(kept) == len(gs) else None  # as in `_close_whole`
+        off = t_off = n_last = 0
+        full: tuple[int, ...] = ()
+        for g, lo0, (i, a, start, end, _) in gs:
+            chans = g.chans
+            n = len(chans)
+            if n != n_last:
+                full, n_last = (m,) * n, n
+            if tb is not None:  # every member's times, row for row with `v`
+                blk = Block.rows_of(v, off, chans, full, tb)
+            elif t is not None and g.keep_times:
+                blk = Block(chans, t[t_off:t_off + n], v[off:off + n], full, True, v, off,
+                            None)
+                t_off += n
+            else:
+                blk = Block.rows_of(v, off, chans, full)
+            off += n
+            exp = g.expected
+            cov = m / exp if exp else 1.0
+            w = ClosedWindow.of_blocks(start, end, not (exp and cov < a.cfg.min_coverage),
+                                       (blk,), a._expected, cov)
+            g.lo = [lo0 + m] * n  # still in step
+            a._step_next()
+            results[i] = AssembleResult(None, [w])
+
+
+def _cut_groups(members: list[_Steady], by_m: _ByM,
+                results: list[AssembleResult | None]) -> None:
+    """`cut_steady` when some member has several rate groups: the copies first, then
+    each member's blocks from them."""
     cuts: dict[int, _Cut] = {}
     for m, gs in by_m.items():
-        v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0 in gs])
-        kept = [(g, lo0) for g, lo0 in gs if g.keep_times]
+        v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0, _ in gs])
+        kept = [(g, lo0) for g, lo0, _ in gs if g.keep_times]
         t = np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0 in kept]) if kept else None
         cuts[m] = _Cut(v, t, t if len(kept) == len(gs) else None)
     for i, a, start, end, spans in members:
         min_cov = a.cfg.min_coverage
-        if len(spans) == 1:  # the commonest: one rate group
-            g, lo0, m = spans[0]
-            cut = cuts[m]
-            v, t, off = cut.v, cut.t, cut.off
-            chans = g.chans
-            n = len(chans)
-            if cut.tb is not None:  # every member's times, row for row with `v`
-                blk = Block.rows_of(v, off, chans, (m,) * n, cut.tb)
-            elif t is not None and g.keep_times:
-                t_off = cut.t_off
-                blk = Block(chans, t[t_off:t_off + n], v[off:off + n], (m,) * n, True, v,
-                            off, cut.tb)
-                cut.t_off = t_off + n
-            else:
-                blk = Block.rows_of(v, off, chans, (m,) * n)
-            cut.off = off + n
-            exp = g.expected
-            cov = m / exp if exp else 1.0
-            g.lo = [lo0 + m] * n  # still in step
-            a._step_next()
-            results[i] = AssembleResult(None, [ClosedWindow.of_blocks(
-                start, end, not (exp and cov < min_cov), (blk,), a._expected, cov)])
-            continue
         complete = True
         cov = 1.0
         blocks = []
@@ -145,7 +176,7 @@ def cut_steady(members: list[_Steady], by_m: _ByM,
             elif t is not None and g.keep_times:
                 t_off = cut.t_off
                 blocks.append(Block(chans, t[t_off:t_off + n], v[off:off + n], full, True, v,
-                                    off, cut.tb))
+                                    off, None))
                 cut.t_off = t_off + n
             else:
                 blocks.append(Block.rows_of(v, off, chans, full))
