@@ -3,7 +3,9 @@
 Most windows change nothing: every checked channel is calm (`ChannelHealth.calm`) and
 its window gives no reason, and the mode channel's mean stays in the current mode's
 band. `prejudge` finds those with array operations, one pass per matrix the joint cut
-made (`Block.base` / `Block.tbase`), and leaves to the channels' state machines only
+made (`Block.base` / `Block.tbase`; in the usual tick, alike assets' windows as rows of
+those matrices in order, the rows are gathered for all windows at once:
+`_gather_aligned`), and leaves to the channels' state machines only
 the rest (`judge_rows` says which rows are quiet; a quiet row changes nothing but the
 channel's `_last`, which is written here).
 
@@ -19,6 +21,9 @@ import math
 from collections import Counter
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from itertools import repeat
+from operator import attrgetter, eq, ge, is_, itemgetter
+from typing import cast
 
 import numpy as np
 
@@ -52,6 +57,9 @@ class AssetPlan:
     # channel
     blocks: tuple[tuple[int, _Rows, tuple[int, ...], int], ...]
     n_blocks: int  # how many blocks a window has at least
+    # What plans alike in it lay out alike (`_gather_aligned`): n_blocks, and per block
+    # its index, channels, mode row and whether it has checked channels.
+    shape: tuple[object, ...]
 
     @classmethod
     def of(cls, rt: AssetRuntime, table: HealthTable) -> AssetPlan:
@@ -75,7 +83,10 @@ class AssetPlan:
                 timed = any(h.limits.max_rate_per_s is not None for h in health)
                 blocks.append((b, _Rows(chans, offs, tuple(chans[r] for r in offs), health,
                                         slots, timed), chans, mode_r))
-        return cls(rt, tuple(blocks), max((b for b, *_ in blocks), default=-1) + 1)
+        n_blocks = max((b for b, *_ in blocks), default=-1) + 1
+        return cls(rt, tuple(blocks), n_blocks,
+                   (n_blocks, tuple((b, chans, mode_r, bool(rows.offs))
+                                    for b, rows, chans, mode_r in blocks)))
 
 
 @dataclass(frozen=True, slots=True)
@@ -133,6 +144,23 @@ class Prejudged:
     mode_value: list[float | None]
 
 
+def _judgeable(mats: dict[int, _Matrix], eligible: list[bool]) -> dict[int, _Matrix]:
+    """`mats` without those with nothing to judge or no times where a rate-of-change
+    check reads them (their windows not eligible)."""
+    for key, m in list(mats.items()):
+        if m.base.shape[1] == 0 or (m.tbase is None and any(p.timed for p in m.parts)):
+            for wi in m.wi:
+                eligible[wi] = False
+            del mats[key]
+    return mats
+
+
+_RT, _SHAPE = attrgetter("rt"), attrgetter("shape")  # of an AssetPlan
+_FIRST = itemgetter(0)  # of a (runtime, window) pair
+_BASE, _ROW0 = attrgetter("base"), attrgetter("row0")  # of a Block
+_UNIFORM, _CHANS = attrgetter("uniform"), attrgetter("chans")
+
+
 class HealthBatch:
     """`prejudge` with the asset plans and matrix layouts it keeps between ticks."""
 
@@ -181,8 +209,12 @@ class HealthBatch:
                 eligible: list[bool]) -> dict[int, _Matrix]:
         """The rows of every cut matrix the windows' checked channels and mode channels
         are in; whether each window is eligible, into `eligible`."""
-        mats: dict[int, _Matrix] = {}
         ids = [id(rt) for rt, _ in wins]
+        if not failed:
+            got = self._gather_aligned(wins, ids, eligible)
+            if got is not None:
+                return got
+        mats: dict[int, _Matrix] = {}
         many = None if len(set(ids)) == len(ids) else Counter(ids)  # assets with 2+ windows
         plans = self._plans
         for wi, (key, (rt, w)) in enumerate(zip(ids, wins, strict=True)):
@@ -213,13 +245,46 @@ class HealthBatch:
                 if mode_r >= 0:
                     m.modes.append((blk.row0 + mode_r, wi))
             eligible[wi] = ok
-        for key, m in list(mats.items()):
-            # Nothing to judge, or no times where a rate-of-change check reads them.
-            if m.base.shape[1] == 0 or (m.tbase is None and any(p.timed for p in m.parts)):
-                for wi in m.wi:
-                    eligible[wi] = False
-                del mats[key]
-        return mats
+        return _judgeable(mats, eligible)
+
+    def _gather_aligned(self, wins: Sequence[tuple[AssetRuntime, ClosedWindow]],
+                        ids: list[int], eligible: list[bool]) -> dict[int, _Matrix] | None:
+        """`_gather` of the usual tick, every question put to all windows at once: one
+        window per asset, every asset's plan made and of one shape, and block by block
+        the windows' blocks full rows of one matrix in window order (the joint cut's).
+        None when the tick is not such (`_gather` then goes window by window)."""
+        n = len(wins)
+        got = list(map(self._plans.get, ids))
+        if len(set(ids)) != n or any(map(is_, got, repeat(None))):
+            return None
+        plans = cast(list[AssetPlan], got)
+        plan0 = plans[0]
+        shape = plan0.shape
+        if not plan0.blocks or not all(map(is_, map(_RT, plans), map(_FIRST, wins))) \
+                or not all(map(eq, map(_SHAPE, plans), repeat(shape))):
+            return None
+        blocks = [w.blocks for _, w in wins]
+        if not all(map(ge, map(len, blocks), repeat(plan0.n_blocks))):
+            return None
+        mats: dict[int, _Matrix] = {}
+        for k, (b, rows, chans, mode_r) in enumerate(plan0.blocks):
+            of_b = [bl[b] for bl in blocks]
+            base, r = of_b[0].base, len(chans)
+            if (base is None or base.shape[0] != n * r or id(base) in mats
+                    or not all(map(is_, map(_BASE, of_b), repeat(base)))
+                    or list(map(_ROW0, of_b)) != list(range(0, n * r, r))
+                    or not all(map(_UNIFORM, of_b))
+                    or not all(map(eq, map(_CHANS, of_b), repeat(chans)))):
+                return None
+            m = mats[id(base)] = _Matrix(base, of_b[0].tbase)
+            if rows.offs:
+                m.parts = [p.blocks[k][1] for p in plans]
+                m.row0 = list(range(0, n * r, r))
+                m.wi = list(range(n))
+            if mode_r >= 0:
+                m.modes = list(zip(range(mode_r, n * r, r), range(n), strict=True))
+        eligible[:] = [True] * n
+        return _judgeable(mats, eligible)
 
     def _layout(self, parts: Sequence[_Rows]) -> _Layout:
         key = tuple(map(id, parts))  # the _Rows live as long as their plans
