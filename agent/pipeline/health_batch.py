@@ -148,7 +148,7 @@ def _judgeable(mats: dict[int, _Matrix], eligible: list[bool]) -> dict[int, _Mat
     """`mats` without those with nothing to judge or no times where a rate-of-change
     check reads them (their windows not eligible)."""
     for key, m in list(mats.items()):
-        if m.base.shape[1] == 0 or (m.tbase is None and any(p.timed for p in m.parts)):
+        if m.base.shape[1] == 0 or (m.tbase is None and any(map(_TIMED, m.parts))):
             for wi in m.wi:
                 eligible[wi] = False
             del mats[key]
@@ -159,6 +159,7 @@ _RT, _SHAPE = attrgetter("rt"), attrgetter("shape")  # of an AssetPlan
 _FIRST = itemgetter(0)  # of a (runtime, window) pair
 _BASE, _ROW0 = attrgetter("base"), attrgetter("row0")  # of a Block
 _UNIFORM, _CHANS = attrgetter("uniform"), attrgetter("chans")
+_TIMED = attrgetter("timed")  # of a _Rows
 
 
 class HealthBatch:

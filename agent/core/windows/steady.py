@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from operator import attrgetter, itemgetter
 
 import numpy as np
 
@@ -94,10 +95,27 @@ def _in_step(groups: list[_Group]) -> list[tuple[_Group, int, int]] | None:
         lo, hi = g.lo, g.hi
         lo0, n = lo[0], len(lo)
         m = hi[0] - lo0
-        if m <= 0 or lo.count(lo0) != n or hi.count(lo0 + m) != n:
+        if m <= 0 or (n > 1 and (lo.count(lo0) != n or hi.count(lo0 + m) != n)):
             return None
         spans.append((g, lo0, m))
     return spans
+
+
+def _times(gs: list[tuple[_Group, int, _Steady]], m: int
+           ) -> tuple[np.ndarray | None, np.ndarray | None]:
+    """The times of the groups `gs` keeping them, m per row from each one's first
+    pending index, stacked (None when none keeps them); and the same when every group
+    keeps them (row for row with the values' copy, as in `_close_whole`), else None."""
+    keeps = list(map(_KEEPS, map(_GROUP, gs)))
+    if True not in keeps:
+        return None, None
+    if False not in keeps:
+        t = np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0, _ in gs])
+        return t, t
+    return np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0, _ in gs if g.keep_times]), None
+
+
+_GROUP, _KEEPS = itemgetter(0), attrgetter("keep_times")
 
 
 class _Cut:
@@ -122,9 +140,7 @@ def cut_steady(members: list[_Steady], by_m: _ByM,
         return
     for m, gs in by_m.items():  # every asset one rate group: one copy per m, in order
         v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0, _ in gs])
-        kept = [(g, lo0) for g, lo0, _ in gs if g.keep_times]
-        t = np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0 in kept]) if kept else None
-        tb = t if len(kept) == len(gs) else None  # as in `_close_whole`
+        t, tb = _times(gs, m)
         off = t_off = n_last = 0
         full: tuple[int, ...] = ()
         for g, lo0, (i, a, start, end, _) in gs:
@@ -157,9 +173,7 @@ def _cut_groups(members: list[_Steady], by_m: _ByM,
     cuts: dict[int, _Cut] = {}
     for m, gs in by_m.items():
         v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0, _ in gs])
-        kept = [(g, lo0) for g, lo0, _ in gs if g.keep_times]
-        t = np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0 in kept]) if kept else None
-        cuts[m] = _Cut(v, t, t if len(kept) == len(gs) else None)
+        cuts[m] = _Cut(v, *_times(gs, m))
     for i, a, start, end, spans in members:
         min_cov = a.cfg.min_coverage
         complete = True
