@@ -147,6 +147,8 @@ class Emitter:
         self._topic_cache: dict[str, tuple[str, str, str]] = {}
         self.out: list[OutMessage] = []
         self.stats = TickStats()
+        # The assets whose sequence number moved since the tick started, with it now.
+        self.moved: dict[str, int] = {}
         self._anomaly = AnomalyStep(self)
 
     def start_tick(self) -> tuple[list[OutMessage], TickStats]:
@@ -155,6 +157,7 @@ class Emitter:
         self._times_json.clear()
         self.out = []
         self.stats = TickStats()
+        self.moved = {}
         return self.out, self.stats
 
     def time(self, ts: float) -> str:
@@ -199,6 +202,7 @@ class Emitter:
         rt.sequence += 1
         data["sequence"] = rt.sequence
         name = rt.cfg.name
+        self.moved[name] = rt.sequence
         ev = make_event(etype, self.source.for_asset(name), name, time_s, data, id_key=id_key)
         rt.last_event = {"type": ev["type"], "id": ev["id"], "time": ev["time"]}
         self.metrics.events.labels(etype.value).inc()

@@ -236,7 +236,6 @@ class Pipeline:
         due = self.last_due = self._due(now)
         runtimes = self.runtimes
         self._failed_now = set()
-        seq_before = [runtimes[ai].sequence for ai in due]
         for ai in due:
             if self._inboxes[ai].liveness:  # Sparkplug deaths and births, before windows
                 try:
@@ -248,11 +247,9 @@ class Pipeline:
             self._score(pending)
         self._account(due)
         if out:
-            seqs = {runtimes[ai].cfg.name: runtimes[ai].sequence
-                    for ai, b in zip(due, seq_before, strict=True)
-                    if runtimes[ai].sequence != b}
+            seqs = self.emit.moved  # the assets whose events moved their sequence numbers
             if seqs:
-                self.sink.submit(out, sequences=seqs)
+                self.sink.submit(out, sequences=dict(seqs))
             else:
                 self.sink.submit(out)
             stats.messages = len(out)
@@ -376,7 +373,9 @@ class Pipeline:
         """After the tick's work: which assets work again, and whether all fail."""
         failed = self._failed_now
         runtimes = self.runtimes
-        for ai in due:
+        # Nothing to note while every asset has worked and none is failing (an asset
+        # failing in this tick is counted failing).
+        for ai in due if self._n_worked < len(runtimes) or self._n_failing else ():
             rt = runtimes[ai]
             if not rt.worked:
                 rt.worked = True
