@@ -124,12 +124,14 @@ def stack_rows(parts: Sequence[np.ndarray], buffer: str = "x", *,
 
 
 def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES, *,
-                   work: WorkArrays | None = None, out: np.ndarray | None = None
-                   ) -> np.ndarray:
+                   work: WorkArrays | None = None, out: np.ndarray | None = None,
+                   extremes: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
     """The features of each row of `x` [segments, samples] (all rows full length):
     [segments, len(FEATURES)] float64, NaN in the columns not in `needed`; written into
     `out` when given (of that shape: a caller's reusable array, not fresh memory the
-    first write into faults in each time), else into a new array.
+    first write into faults in each time), else into a new array. `extremes`, when
+    given, are `x.min(axis=1)` and `x.max(axis=1)` found already (the tick's sensor
+    health reads them of the same rows): not reduced again.
 
     The same definitions as `segment_features` (agreement to rounding is tested).
     """
@@ -163,8 +165,8 @@ def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES, *,
             m4 = np.einsum("ij,ij->i", d2, d2) * inv
             cols["kurtosis"] = np.where(flat, 0.0, m4 / (safe * safe))
     if needed & {"min", "max", "peak_to_peak", "crest_factor"}:
-        mn = row_extreme(x, np.minimum)
-        mx = row_extreme(x, np.maximum)
+        mn, mx = extremes if extremes is not None else \
+            (row_extreme(x, np.minimum), row_extreme(x, np.maximum))
         cols["min"], cols["max"], cols["peak_to_peak"] = mn, mx, mx - mn
     if needed & {"rms", "crest_factor"}:
         rms = np.sqrt(np.einsum("ij,ij->i", x, x) * inv)

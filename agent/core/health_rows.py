@@ -49,14 +49,17 @@ class RowLimits(NamedTuple):
 class RowVerdicts:
     """What `judge_rows` found of many rows: which are quiet, and each row's numbers."""
 
-    __slots__ = ("_rate", "_rate_has", "hi", "lo", "quiet", "ts", "values")
+    __slots__ = ("_rate", "_rate_has", "hi", "lo", "quiet", "row_reduced", "ts", "values")
 
     def __init__(self, values: np.ndarray, ts: np.ndarray, quiet: np.ndarray,
-                 lo: np.ndarray, hi: np.ndarray, rate: np.ndarray, rate_has: np.ndarray
-                 ) -> None:
+                 lo: np.ndarray, hi: np.ndarray, rate: np.ndarray, rate_has: np.ndarray,
+                 row_reduced: bool = False) -> None:
         self.values, self.ts = values, ts
         self.quiet = quiet
         self.lo, self.hi = lo, hi
+        # Whether lo and hi are `values.min(axis=1)` and `.max(axis=1)` exactly (long
+        # rows; short ones are reduced samples-major, which can differ in a zero's sign).
+        self.row_reduced = row_reduced
         self._rate, self._rate_has = rate, rate_has
 
     def stats(self, i: int, rate_at: int) -> WindowStats | None:
@@ -112,7 +115,7 @@ def judge_rows(lim: RowLimits, values: np.ndarray, ts: np.ndarray, calm: np.ndar
         gap = np.where(fwd, ft - last_t, 1.0)
         loud |= fwd & (np.abs(fv - last_v) / gap > lim.rate_lim)
         quiet[sel] &= ~loud
-    return RowVerdicts(values, ts, quiet, lo, hi, rate, has)
+    return RowVerdicts(values, ts, quiet, lo, hi, rate, has, not short)
 
 
 def _rates(v: np.ndarray, t: np.ndarray, axis: int) -> tuple[np.ndarray, np.ndarray]:

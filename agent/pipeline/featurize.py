@@ -39,6 +39,8 @@ from agent.pipeline.runtime import AssetLayout, AssetRuntime
 
 NF = len(FEATURE_INDEX)
 _BASE, _ROW0, _UNIFORM = attrgetter("base"), attrgetter("row0"), attrgetter("uniform")
+# Per cut matrix (by id): the matrix, its rows' lowest and highest values (`feature_rows`).
+Extremes = dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]]
 
 
 class Pending(Protocol):
@@ -165,14 +167,17 @@ def _place_all(todo: Sequence[Pending]) -> _Placed:
     return _Placed(by_len, n_by_len, whole, ragged, lens, offs)
 
 
-def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None
-                 ) -> list[np.ndarray] | np.ndarray:
+def feature_rows(todo: Sequence[Pending], work: WorkArrays | None = None,
+                 extremes: Extremes | None = None) -> list[np.ndarray] | np.ndarray:
     """The full feature row of each window (module docstring), the passes in `work`'s
     reusable arrays. Rows are views of one array per class of windows; the aligned
-    tick's (`_aligned`) come as that one [windows, features] matrix, row j window j's."""
+    tick's (`_aligned`) come as that one [windows, features] matrix, row j window j's.
+    `extremes`: per cut matrix (by id) the matrix and its rows' lowest and highest
+    values, found already (sensor health's), which the aligned pass does not reduce
+    again."""
     al = _aligned(todo)
     if al is not None:
-        return _aligned_rows(al, len(todo), work)
+        return _aligned_rows(al, len(todo), work, extremes or {})
     needed = frozenset().union(*{p.rt.layout.td_needed for p in todo})
     pl = _place_all(todo)
     flats: list[np.ndarray] = []
@@ -269,15 +274,18 @@ def _shared(lays: list[AssetLayout]) -> tuple[_Template, AssetLayout, frozenset[
     return got
 
 
-def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None) -> np.ndarray:
+def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None, extremes: Extremes
+                  ) -> np.ndarray:
     """`feature_rows` of the n windows of `al`: one time-domain pass per block matrix,
     the spectra of its rows, every row gathered in one step."""
     flats: list[np.ndarray] = []
     starts: list[int] = []
     pos = 0
     for b, base in enumerate(al.bases):
+        ext = extremes.get(id(base))
         f = block_features(base, al.needed, work=work,
-                           out=work_array(work, f"td_{b}", (base.shape[0], NF)))
+                           out=work_array(work, f"td_{b}", (base.shape[0], NF)),
+                           extremes=ext[1:] if ext is not None and ext[0] is base else None)
         starts.append(pos)
         flats.append(f.reshape(-1))
         pos += f.size

@@ -142,6 +142,10 @@ class Prejudged:
     eligible: list[bool]
     stats: list[dict[int, WindowStats | None] | None]
     mode_value: list[float | None]
+    # Per cut matrix judged whole (by id): the matrix and its rows' lowest and highest
+    # values, `min(axis=1)` / `max(axis=1)` exactly (the feature pass reads them).
+    extremes: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = \
+        field(default_factory=dict)
 
 
 def _judgeable(mats: dict[int, _Matrix], eligible: list[bool]) -> dict[int, _Matrix]:
@@ -319,6 +323,8 @@ class HealthBatch:
             calm &= np.array(eligible, dtype=bool)[lay.seg]
         rs = lay.rate_slots
         verdict = judge_rows(lay.limits, vals, times, calm, table.last_v[rs], table.last_t[rs])
+        if vals is m.base and verdict.row_reduced:
+            out.extremes[id(vals)] = (vals, verdict.lo, verdict.hi)
         quiet = verdict.quiet
         sel = lay.limits.rate_rows
         if sel.size:

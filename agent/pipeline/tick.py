@@ -51,7 +51,7 @@ from agent.ops.logs import RateLimited, kv
 from agent.ops.metrics import Metrics
 from agent.pipeline.contain import contained
 from agent.pipeline.emit import AssetMetrics, Emitter, TickStats
-from agent.pipeline.featurize import feature_rows
+from agent.pipeline.featurize import Extremes, feature_rows
 from agent.pipeline.health_batch import Prejudged
 from agent.pipeline.infer import Item, Scored, Scorer
 from agent.pipeline.judge import Judge, Pending
@@ -87,14 +87,10 @@ class Pipeline:
                  observes: WindowWanted | None = None) -> None:
         """`observer` gets every scoreable window with its feature row; `observes(asset)`
         says whether it wants an asset's windows now (without it, it wants all)."""
-        self.cfg = cfg
-        self.buffers = buffers
-        self.sink = sink
-        self.metrics = metrics
+        self.cfg, self.buffers, self.sink, self.metrics = cfg, buffers, sink, metrics
         self.log = logger
         self.runtimes = runtimes
-        self.observer = observer
-        self.observes = observes
+        self.observer, self.observes = observer, observes
         self._m = {rt.cfg.name: AssetMetrics.of(metrics, rt.cfg.name) for rt in runtimes}
         self._m_at = [self._m[rt.cfg.name] for rt in runtimes]
         self._per_asset(runtimes)
@@ -136,6 +132,7 @@ class Pipeline:
         self._n_worked = sum(1 for rt in runtimes if rt.worked)
         self._n_failing = sum(1 for rt in runtimes if rt.error is not None)
         self._errlog = RateLimited(logger)
+        self._extremes: Extremes = {}  # what sensor health found of the tick's rows
         self._ahead = metrics.messages_rejected.labels(Reason.AHEAD.value)
         for rt in runtimes:
             rt.shown_threshold = rt.shown_anomalous = None
@@ -236,6 +233,7 @@ class Pipeline:
         due = self.last_due = self._due(now)
         runtimes = self.runtimes
         self._failed_now = set()
+        self._extremes = {}
         for ai in due:
             if self._inboxes[ai].liveness:  # Sparkplug deaths and births, before windows
                 try:
@@ -353,6 +351,8 @@ class Pipeline:
             pre: Prejudged | None = judge.prejudge(wins, failed)
         except Exception:  # each window's own check_window decides which asset fails
             pre = None
+        if pre is not None:
+            self._extremes = pre.extremes
         window = judge.window
         for wi, (rt, w) in enumerate(wins):
             if failed and rt.cfg.name in failed:
@@ -455,7 +455,7 @@ class Pipeline:
 
         def work(part: Sequence[Pending]) -> None:
             t0 = time.perf_counter()
-            rows = feature_rows(part, self._work)
+            rows = feature_rows(part, self._work, self._extremes)
             self.metrics.feature_seconds.observe(time.perf_counter() - t0)
             for p, r in zip(part, rows, strict=True):
                 p.row = r

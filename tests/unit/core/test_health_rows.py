@@ -137,3 +137,32 @@ def test_which_rows_are_quiet() -> None:
     last_v[7], last_t[7] = np.nan, np.nan  # no last sample
     got = judge_rows(lim, vals, ts, calm, last_v, last_t)
     assert got.quiet.tolist() == [True, False, False, False, False, False, False, True]
+
+
+@settings(max_examples=100, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1), n=st.sampled_from([1, 7, 64, 65, 300, 1024]),
+       rows=st.integers(1, 8))
+def test_row_reduced_extremes_are_numpys_row_min_and_max(seed: int, n: int,
+                                                         rows: int) -> None:
+    """Where `judge_rows` says its lo and hi are row reductions (`row_reduced`: long
+    rows), they are `values.min(axis=1)` and `.max(axis=1)` bit for bit, signed zeros
+    and NaN rows included: the feature pass takes them instead of reducing again."""
+    from agent.core.features import ALL_FEATURES, block_features
+
+    rng = np.random.default_rng(seed)
+    vals = rng.normal(0, 1, (rows, n))
+    vals[rng.random((rows, n)) < 0.02] = np.nan
+    vals[rng.random(rows) < 0.3] = -0.0
+    vals[rng.random((rows, n)) < 0.05] = 0.0
+    ts = np.broadcast_to(np.arange(n, dtype=np.float64), (rows, n))
+    lim = RowLimits.of([LIMITS[1]] * rows)
+    nan = np.full(lim.rate_rows.size, np.nan)
+    got = judge_rows(lim, vals, ts, np.ones(rows, dtype=bool), nan, nan)
+    assert got.row_reduced == (n > 64)
+    if got.row_reduced:
+        for a, b in ((got.lo, vals.min(axis=1)), (got.hi, vals.max(axis=1))):
+            assert a.tobytes() == b.tobytes()
+        with np.errstate(invalid="ignore", divide="ignore"):
+            want = block_features(vals, ALL_FEATURES)
+            shared = block_features(vals, ALL_FEATURES, extremes=(got.lo, got.hi))
+        assert shared.tobytes() == want.tobytes()

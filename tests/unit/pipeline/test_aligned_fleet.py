@@ -7,7 +7,8 @@ the general paths they shortcut:
   sequences and status over ticks with range faults, flatlines, limits and mode
   changes;
 * the feature rows of an aligned tick with spectra (each spectral channel's rows of
-  the cut matrix straight to `spectral_rows`) against the general path, bit for bit.
+  the cut matrix straight to `spectral_rows`; the rows' extremes taken from sensor
+  health) against the general path, bit for bit.
 """
 
 from __future__ import annotations
@@ -103,7 +104,13 @@ def test_aligned_rows_with_spectra_are_the_general_paths(
     taken = 0
     for todo in seen:
         got = featurize.feature_rows(todo)
-        taken += real(todo) is not None
+        al = real(todo)
+        taken += al is not None
+        if al is not None:  # with sensor health's row extremes (as the tick hands them)
+            ext = {id(b): (b, b.min(axis=1), b.max(axis=1)) for b in al.bases}
+            shared = featurize.feature_rows(todo, None, ext)
+            assert isinstance(got, np.ndarray) and isinstance(shared, np.ndarray)
+            assert shared.tobytes() == got.tobytes()
         monkeypatch.setattr(featurize, "_aligned", lambda todo: None)
         want = featurize.feature_rows(todo)
         monkeypatch.setattr(featurize, "_aligned", real)

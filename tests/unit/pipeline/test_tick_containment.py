@@ -33,10 +33,10 @@ def _scores(tmp: Path, broken: str | None, stage: str,
     if broken is not None and stage == "features":
         real = tick_mod.feature_rows
 
-        def rows(todo: Any, work: Any) -> Any:
+        def rows(todo: Any, work: Any, *rest: Any) -> Any:
             if any(p.rt.cfg.name == broken for p in todo):
                 raise RuntimeError("features broken for the test")
-            return real(todo, work)
+            return real(todo, work, *rest)
 
         monkeypatch.setattr(tick_mod, "feature_rows", rows)
     if broken is not None and stage == "inference":
