@@ -231,3 +231,19 @@ def sparkplug_payload(seq: int | None, metrics: list[dict[str, Any]],
         for k, v in spec.items():
             setattr(m, k, v)
     return p.SerializeToString()
+
+
+def rows_both_ways(todo: Any, monkeypatch: Any) -> tuple[Any, Any]:
+    """`featurize.feature_rows(todo)` held row for row, bit for bit, to the general
+    path's (the aligned shortcut turned off); returns the rows and `_aligned(todo)`."""
+    from agent.pipeline import featurize
+
+    real = featurize._aligned
+    got = featurize.feature_rows(todo)
+    monkeypatch.setattr(featurize, "_aligned", lambda todo: None)
+    want = featurize.feature_rows(todo)
+    monkeypatch.setattr(featurize, "_aligned", real)
+    assert len(got) == len(want) == len(todo)
+    for g, w in zip(got, want, strict=True):
+        np.testing.assert_array_equal(g, w)
+    return got, real(todo)

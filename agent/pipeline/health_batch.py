@@ -30,6 +30,7 @@ import numpy as np
 from agent.core.health import ChannelHealth, HealthTable, WindowStats
 from agent.core.health_rows import RowLimits, judge_rows
 from agent.core.windows.closed import ClosedWindow
+from agent.pipeline.featurize import Extremes
 from agent.pipeline.runtime import AssetRuntime
 
 _CACHE_MAX = 64  # matrix layouts kept (`_Layouts`)
@@ -144,8 +145,7 @@ class Prejudged:
     mode_value: list[float | None]
     # Per cut matrix judged whole (by id): the matrix and its rows' lowest and highest
     # values, `min(axis=1)` / `max(axis=1)` exactly (the feature pass reads them).
-    extremes: dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]] = \
-        field(default_factory=dict)
+    extremes: Extremes = field(default_factory=dict)
 
 
 def _judgeable(mats: dict[int, _Matrix], eligible: list[bool]) -> dict[int, _Matrix]:

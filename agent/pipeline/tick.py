@@ -133,6 +133,7 @@ class Pipeline:
         self._n_failing = sum(1 for rt in runtimes if rt.error is not None)
         self._errlog = RateLimited(logger)
         self._extremes: Extremes = {}  # what sensor health found of the tick's rows
+        self._wake: set[int] | None = None  # assets whose staleness is due (`_due`)
         self._ahead = metrics.messages_rejected.labels(Reason.AHEAD.value)
         for rt in runtimes:
             rt.shown_threshold = rt.shown_anomalous = None
@@ -210,11 +211,12 @@ class Pipeline:
         takes it); what is closed is decided again under the locks."""
         due = [ai for ai, (asm, ib) in enumerate(self._screen)
                if asm.due(now) or ib.late or ib.liveness or ib.ahead or ib.steps]
+        self._wake = None
         if self.judge_stale:
             # A margin for rounding: a visit a little early changes nothing.
-            stale = np.flatnonzero(self._stale_wake <= now + STALE_MARGIN_S)
-            if stale.size:
-                due = sorted(set(due).union(stale.tolist()))
+            self._wake = set(np.flatnonzero(self._stale_wake <= now + STALE_MARGIN_S).tolist())
+            if self._wake:
+                due = sorted(self._wake.union(due))
         return due
 
     def tick(self, now: float) -> TickStats:
@@ -267,9 +269,7 @@ class Pipeline:
         ais: list[int] = []  # and its asset's position
         n_closed = 0
         # The assets whose staleness is judged now (`_cut_notes` says when).
-        held = self._stale_held
-        wake = set(np.flatnonzero(self._stale_wake <= now + STALE_MARGIN_S).tolist()) \
-            if self.judge_stale else None
+        held, wake = self._stale_held, self._wake
         for ai, res, late, (ahead, steps) in zip(due, results, lates, notes, strict=True):
             rt = runtimes[ai]
             if (late or ahead or steps or res.error is not None or res.empty_skipped
@@ -289,12 +289,8 @@ class Pipeline:
                     pending.append(None)
             elif not (failed and rt.cfg.name in failed):
                 for w in windows:
-                    # A window closed: its coverage is the asset's (`_set_coverage`).
-                    rt.empty_streak = 0
-                    cov = rt.coverage = w.min_coverage
-                    if cov != rt.shown_coverage:
-                        self.metrics.coverage.labels(rt.cfg.name).set(cov)
-                        rt.shown_coverage = cov
+                    rt.empty_streak = 0  # a window closed: its coverage is the asset's
+                    self._set_coverage(rt, w.min_coverage)
                     pending.append(Pending(rt, w, rt.mode, (), None if w.complete
                                            else "incomplete", None, ai))
         stats.windows_closed += n_closed
@@ -357,12 +353,8 @@ class Pipeline:
         for wi, (rt, w) in enumerate(wins):
             if failed and rt.cfg.name in failed:
                 continue
-            # A window closed: its coverage is the asset's (`_set_coverage`).
-            rt.empty_streak = 0
-            cov = rt.coverage = w.min_coverage
-            if cov != rt.shown_coverage:
-                self.metrics.coverage.labels(rt.cfg.name).set(cov)
-                rt.shown_coverage = cov
+            rt.empty_streak = 0  # a window closed: its coverage is the asset's
+            self._set_coverage(rt, w.min_coverage)
             try:
                 p = pending[at[wi]] = window(rt, w, pre, wi)
                 p.ai = ais[wi]

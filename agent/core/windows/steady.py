@@ -82,14 +82,6 @@ def plan_steady(assemblers: Sequence[WindowAssembler], now: float,
 def _in_step(groups: list[_Group]) -> list[tuple[_Group, int, int]] | None:
     """Per rate group (the group, its first pending index, m) when every group's rows
     start in step and hold the same number m > 0 of samples; else None."""
-    if len(groups) == 1:  # the commonest
-        g = groups[0]
-        lo, hi = g.lo, g.hi
-        lo0, n = lo[0], len(lo)
-        m = hi[0] - lo0
-        if m <= 0 or lo.count(lo0) != n or hi.count(lo0 + m) != n:
-            return None
-        return [(g, lo0, m)]
     spans = []
     for g in groups:
         lo, hi = g.lo, g.hi
