@@ -30,7 +30,7 @@ from agent.core.windows.assembler import (
     _Group,
 )
 from agent.core.windows.counting import Drops, Item, row_counts
-from agent.core.windows.steady import cut_steady, plan_steady
+from agent.core.windows.steady import close_whole, cut_steady, plan_steady
 
 # What `_plan` found for an assembler (`_MORE`: placed, and a window after it is due).
 _NOTHING, _PLACED, _ALONE, _MORE = 0, 1, 2, 3
@@ -137,9 +137,9 @@ def _close_next(assemblers: Sequence[WindowAssembler], todo: Sequence[int], now:
         for i, a in alone:  # hopping windows that do not fit the joint cut
             got[i] = _alone(a, now)
         if full and (whole or seed):  # the assemblers' order: the feature pass's aligned path
-            _close_whole(sorted(full + whole, key=_position), got, drops)
+            close_whole(sorted(full + whole, key=_position), got, drops)
         elif full or whole:
-            _close_whole(full or whole, got, drops)
+            close_whole(full or whole, got, drops)
         if rest:
             _finish(rest, _cut_blocks(rest, counts), got, now)
     except Exception:
@@ -178,7 +178,7 @@ def _split(items: list[Item]) -> tuple[
         list[Item], list[Item], list[tuple[int, WindowAssembler]],
         dict[int, list[list[int]]], Drops]:
     """`close_many`'s items that are not full as those cut together by
-    `_close_whole`: those whose every group's rows all hold the same number c > 0 of
+    `close_whole`: those whose every group's rows all hold the same number c > 0 of
     samples before the end (the next window's samples are
     pending, or the window hops: counted first, `row_counts`), as if c were all they
     held (a hopping window's rows also dropping alike, `drops`); the rest of the
@@ -202,82 +202,6 @@ def _split(items: list[Item]) -> tuple[
         else:
             whole.append((*item[:4], cut[i]))
     return whole, rest, alone, got.rows, drops
-
-
-def _close_whole(whole: list[Item], results: list[AssembleResult | None],
-                 drops: Drops) -> None:
-    """The joint cut of items whose every rate group's rows are in step with m > 0
-    samples before the window's end (all it cuts: the spans' m): one copy per segment
-    length, every block rows of that copy. An item of one rate group is finished as
-    its block is made, the others once all copies are made. Each group's rows then
-    drop those m samples, or for a hopping window what `drops` says."""
-    # Per segment length: (the item's blocks, None for an item of one group; the group's
-    # index; the item; the group; its first pending index).
-    by_width: dict[int, list[tuple[list[Block | None] | None, int, Item, _Group, int]]] = {}
-    several: list[tuple[Item, list[Block | None]]] = []
-    for item in whole:
-        spans = item[4]
-        if len(spans) == 1:
-            g, lo0, m = spans[0]
-            got = by_width.get(m)
-            if got is None:
-                got = by_width[m] = []
-            got.append((None, 0, item, g, lo0))
-            continue
-        blocks: list[Block | None] = [None] * len(spans)
-        several.append((item, blocks))
-        for gi, (g, lo0, m) in enumerate(spans):
-            got = by_width.get(m)
-            if got is None:
-                got = by_width[m] = []
-            got.append((blocks, gi, item, g, lo0))
-    for m, members in by_width.items():
-        v = np.concatenate([mb[3].vals[:, mb[4]:mb[4] + m] for mb in members])
-        kept = [mb for mb in members if mb[3].keep_times]
-        t = np.concatenate([mb[3].ts[:, mb[4]:mb[4] + m] for mb in kept]) if kept else None
-        # The blocks' times as rows of one matrix, row for row with `v`: only when every
-        # member kept its times.
-        tb = t if len(kept) == len(members) else None
-        off = t_off = n_last = 0
-        full: tuple[int, ...] = ()
-        for bl, gi, item, g, _ in members:
-            n = len(g.chans)
-            if n != n_last:
-                full, n_last = _full(n, m), n
-            if t is not None and g.keep_times:
-                blk = Block(g.chans, t[t_off:t_off + n], v[off:off + n], full, True, v, off,
-                            tb)
-                t_off += n
-            else:
-                blk = Block.rows_of(v, off, g.chans, full)
-            off += n
-            if bl is None:  # an item of one group: finished now
-                _done(item, (blk,), results, drops.get(item[0]) if drops else None)
-            else:
-                bl[gi] = blk
-    for item, bl in several:
-        _done(item, tuple(bl), results, drops.get(item[0]))  # type: ignore[arg-type]
-
-
-def _done(item: Item, blocks: tuple[Block, ...], results: list[AssembleResult | None],
-          drop: list[int] | None) -> None:
-    """`_close_whole`'s window of `item` from its blocks (group g's coverage m /
-    expected), and its assembler moved past it (each group's rows dropping m samples,
-    or `drop[g]` for a hopping window)."""
-    i, a, start, end, spans = item
-    min_cov = a.cfg.min_coverage
-    complete = True
-    cov = 1.0
-    for gi, (g, lo0, m) in enumerate(spans):
-        exp = g.expected
-        c = m / exp if exp else 1.0
-        cov = min(cov, c) if gi else c
-        if exp and c < min_cov:
-            complete = False
-        g.lo = [lo0 + (m if drop is None else drop[gi])] * len(g.chans)  # still in step
-    a._step_next()
-    results[i] = AssembleResult(None, [ClosedWindow.of_blocks(start, end, complete, blocks,
-                                                              a._expected, cov)])
 
 
 _FULL: dict[tuple[int, int], tuple[int, ...]] = {}
@@ -320,7 +244,7 @@ def _cut_blocks(fast: list[Item], counts: dict[int, list[list[int]]]
         v = np.concatenate([mb[2].vals[:, mb[3]:mb[3] + c] for mb in cut])
         kept = [mb for mb in cut if mb[2].keep_times]
         t = np.concatenate([mb[2].ts[:, mb[3]:mb[3] + c] for mb in kept]) if kept else None
-        tb = t if len(kept) == len(cut) else None  # as in `_close_whole`
+        tb = t if len(kept) == len(cut) else None  # as in `steady._times`
         off = t_off = 0
         for fi, gi, g, _ in cut:
             n = len(g.chans)

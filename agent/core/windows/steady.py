@@ -1,7 +1,8 @@
-"""The commonest shape of the joint cut (`batch.close_many`), planned and cut in two
-loops: an asset whose next tumbling window is due, every pending sample of every rate
-group before its end, each group's rows in step holding the same number of samples.
-Pure.
+"""The joint cut (`batch.close_many`) of windows whose rate groups' rows are in step,
+each holding the same number of samples before the window's end (`close_whole`: one
+copy per segment length, every block rows of it), and its commonest shape planned and
+cut in two loops (`plan_steady`, `cut_steady`): an asset whose next tumbling window is
+due with every pending sample of every rate group before its end. Pure.
 """
 
 from __future__ import annotations
@@ -19,7 +20,7 @@ from agent.core.windows.assembler import (
     WindowAssembler,
     _Group,
 )
-from agent.core.windows.counting import Item
+from agent.core.windows.counting import Drops, Item
 
 # What `plan_steady` keeps of an assembler whose window it cuts: its position, the
 # assembler, the window's start and end, and per rate group (the group, its first
@@ -97,7 +98,7 @@ def _times(gs: list[tuple[_Group, int, _Steady]], m: int
            ) -> tuple[np.ndarray | None, np.ndarray | None]:
     """The times of the groups `gs` keeping them, m per row from each one's first
     pending index, stacked (None when none keeps them); and the same when every group
-    keeps them (row for row with the values' copy, as in `_close_whole`), else None."""
+    keeps them (row for row with the values' copy), else None."""
     keeps = list(map(_KEEPS, map(_GROUP, gs)))
     if True not in keeps:
         return None, None
@@ -111,7 +112,7 @@ _GROUP, _KEEPS = itemgetter(0), attrgetter("keep_times")
 
 
 class _Cut:
-    """`cut_steady`'s copy of every member's rows of one segment length: the values,
+    """`close_whole`'s copy of every member's rows of one segment length: the values,
     the times of the members keeping them, the times as rows of one matrix beside the
     values (only when every member kept them), where the next member's rows start."""
 
@@ -125,10 +126,10 @@ class _Cut:
 def cut_steady(members: list[_Steady], by_m: _ByM,
                 results: list[AssembleResult | None]) -> None:
     """`plan_steady`'s windows: per segment length m, one copy of every member's rows
-    of m samples (`by_m`), each window's block a row range of it (`_close_whole` for
-    such items, in fewer steps)."""
+    of m samples (`by_m`), each window's block a row range of it (`close_whole`, with
+    a shorter loop when every asset has one rate group)."""
     if sum(map(len, by_m.values())) != len(members):  # an asset of several rate groups
-        _cut_groups(members, by_m, results)
+        close_whole(members, results, {}, by_m)
         return
     for m, gs in by_m.items():  # every asset one rate group: one copy per m, in order
         v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0, _ in gs])
@@ -158,15 +159,27 @@ def cut_steady(members: list[_Steady], by_m: _ByM,
             results[i] = AssembleResult(None, [w])
 
 
-def _cut_groups(members: list[_Steady], by_m: _ByM,
-                results: list[AssembleResult | None]) -> None:
-    """`cut_steady` when some member has several rate groups: the copies first, then
-    each member's blocks from them."""
+def close_whole(items: list[Item], results: list[AssembleResult | None], drops: Drops,
+                by_m: _ByM | None = None) -> None:
+    """The joint cut of items whose every rate group's rows are in step with m > 0
+    samples before the window's end (all it cuts: the spans' m): one copy per segment
+    length (`by_m`: the items' groups by m in item order, gathered here when not given),
+    every block rows of that copy. Each group's rows then drop those m samples, or for a
+    hopping window what `drops` says."""
+    if by_m is None:
+        by_m = {}
+        for item in items:
+            for g, lo0, m in item[4]:
+                got = by_m.get(m)
+                if got is None:
+                    got = by_m[m] = []
+                got.append((g, lo0, item))
     cuts: dict[int, _Cut] = {}
     for m, gs in by_m.items():
         v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0, _ in gs])
         cuts[m] = _Cut(v, *_times(gs, m))
-    for i, a, start, end, spans in members:
+    for i, a, start, end, spans in items:
+        drop = drops.get(i) if drops else None
         min_cov = a.cfg.min_coverage
         complete = True
         cov = 1.0
@@ -192,7 +205,7 @@ def _cut_groups(members: list[_Steady], by_m: _ByM,
             cov = min(cov, c) if gi else c
             if exp and c < min_cov:
                 complete = False
-            g.lo = [lo0 + m] * n  # still in step
+            g.lo = [lo0 + (m if drop is None else drop[gi])] * n  # still in step
         a._step_next()
         results[i] = AssembleResult(None, [ClosedWindow.of_blocks(
             start, end, complete, tuple(blocks), a._expected, cov)])
