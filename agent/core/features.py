@@ -125,13 +125,15 @@ def stack_rows(parts: Sequence[np.ndarray], buffer: str = "x", *,
 
 def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES, *,
                    work: WorkArrays | None = None, out: np.ndarray | None = None,
-                   extremes: tuple[np.ndarray, np.ndarray] | None = None) -> np.ndarray:
+                   extremes: tuple[np.ndarray, np.ndarray] | None = None,
+                   sums: np.ndarray | None = None) -> np.ndarray:
     """The features of each row of `x` [segments, samples] (all rows full length):
     [segments, len(FEATURES)] float64, NaN in the columns not in `needed`; written into
     `out` when given (of that shape: a caller's reusable array, not fresh memory the
     first write into faults in each time), else into a new array. `extremes`, when
     given, are `x.min(axis=1)` and `x.max(axis=1)` found already (the tick's sensor
-    health reads them of the same rows): not reduced again.
+    health reads them of the same rows): not reduced again. `sums`, when given, is
+    `x.sum(axis=1)` found already (the spectral pass divides the same sums for its means).
 
     The same definitions as `segment_features` (agreement to rounding is tested).
     """
@@ -145,7 +147,7 @@ def block_features(x: np.ndarray, needed: frozenset[str] = ALL_FEATURES, *,
     x = np.asarray(x, dtype=np.float64)
     inv = 1.0 / length
     cols: dict[str, np.ndarray] = {}
-    mean = x.sum(axis=1) * inv
+    mean = (x.sum(axis=1) if sums is None else sums) * inv
     cols["mean"] = mean
     if needed & {"std", "skewness", "kurtosis"}:
         # Central moments from deviations about each row's own mean (see segment_features).

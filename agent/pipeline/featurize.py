@@ -281,11 +281,15 @@ def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None, extremes: Extre
     flats: list[np.ndarray] = []
     starts: list[int] = []
     pos = 0
+    # Each matrix's row sums, reduced once: the time-domain means and the spectra's
+    # means are both these sums over the row length.
+    sums = [base.sum(axis=1) for base in al.bases]
     for b, base in enumerate(al.bases):
         ext = extremes.get(id(base))
         f = block_features(base, al.needed, work=work,
                            out=work_array(work, f"td_{b}", (base.shape[0], NF)),
-                           extremes=ext[1:] if ext is not None and ext[0] is base else None)
+                           extremes=ext[1:] if ext is not None and ext[0] is base else None,
+                           sums=sums[b])
         starts.append(pos)
         flats.append(f.reshape(-1))
         pos += f.size
@@ -307,7 +311,9 @@ def _aligned_rows(al: _Aligned, n: int, work: WorkArrays | None, extremes: Extre
         # Each spectral channel a group of its own (as `spectral_flat` would group its
         # segments): its rows of the block matrix straight to the FFT.
         got = [spectral_rows(al.bases[b][r::al.rows[b]] if al.rows[b] > 1 else al.bases[b],
-                             fs, spec, speeds, work) for (b, r), spec, fs in chans]
+                             fs, spec, speeds, work,
+                             sums[b][r::al.rows[b]] if al.rows[b] > 1 else sums[b])
+               for (b, r), spec, fs in chans]
         block = np.concatenate(got, axis=1) if len(got) > 1 else got[0]
         flats.append(block.reshape(-1))
         offs = np.cumsum([0] + [g.shape[1] for g in got[:-1]])

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from agent.config.load import SpectrumConfig
-from agent.core.features import WorkArrays
-from agent.core.spectral import spectral_features
+from agent.core.features import ALL_FEATURES, WorkArrays, block_features
+from agent.core.spectral import CHUNK_SAMPLES, spectral_features, spectral_rows
 
 SPEC = SpectrumConfig(bands_hz=((10.0, 200.0), (200.0, 1280.0)), velocity_rms=True,
                       orders=(1.0, 2.0), envelope_hz=(600.0, 1100.0))
@@ -55,6 +55,27 @@ def test_work_arrays_change_nothing() -> None:
     (row,) = spectral_features([x], [2560.0], [SPEC], [49.5], work)
     assert row[SPEC.feature_names().index("envelope_rms")] == pytest.approx(
         np.abs(np.fft.ifft(analytic)).std(), rel=1e-12)
+
+
+@pytest.mark.parametrize("n", [1024, 1000, 2560])
+def test_shared_row_sums_change_no_bit(n: int) -> None:
+    """The tick reduces each row's sum once for the time-domain and the spectral means
+    (`sums=`): every feature is byte for byte what each pass reducing its own rows
+    gives, over more rows than one FFT chunk holds, for strided rows (every second
+    row of a matrix), and rows of very different scales."""
+    rng = np.random.default_rng(n)
+    rows = 2 * (CHUNK_SAMPLES // n) + 5
+    base = rng.normal(size=(2 * rows, n)) * rng.uniform(1e-3, 1e4, (2 * rows, 1)) + 7.0
+    x = base[1::2]
+    sums = base.sum(axis=1)[1::2]
+    speeds = rng.uniform(10.0, 60.0, rows)
+    for spec in (SPEC, SpectrumConfig(bands_hz=((10.0, 100.0),), velocity_rms=True)):
+        own = spectral_rows(x, 2560.0, spec, speeds, WorkArrays())
+        shared = spectral_rows(x, 2560.0, spec, speeds, WorkArrays(), sums)
+        assert own.tobytes() == shared.tobytes()
+    own_td = block_features(base, ALL_FEATURES)
+    shared_td = block_features(base, ALL_FEATURES, sums=base.sum(axis=1))
+    assert own_td.tobytes() == shared_td.tobytes()
 
 
 def test_short_segment_is_nan_and_unknown_speed_is_zero_orders() -> None:
