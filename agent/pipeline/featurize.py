@@ -34,11 +34,12 @@ from agent.core.features import (
     work_array,
 )
 from agent.core.spectral import Segment, spectral_flat, spectral_rows
-from agent.core.windows.closed import ClosedWindow
+from agent.core.windows.closed import ClosedWindow, whole_cut
 from agent.pipeline.runtime import AssetLayout, AssetRuntime
 
 NF = len(FEATURE_INDEX)
 _BASE, _ROW0, _UNIFORM = attrgetter("base"), attrgetter("row0"), attrgetter("uniform")
+_W = attrgetter("w")  # of a Pending
 # Per cut matrix (by id): the matrix, its rows' lowest and highest values (`feature_rows`).
 Extremes = dict[int, tuple[np.ndarray, np.ndarray, np.ndarray]]
 
@@ -225,10 +226,14 @@ def _aligned(todo: Sequence[Pending]) -> _Aligned | None:
 
     Asked once per tick of every window: each question is put to all the windows at
     once (attribute reads mapped over them), not window by window."""
+    n = len(todo)
+    cut = whole_cut(list(map(_W, todo)))
+    if cut is not None:  # the joint cut's windows, alike: its matrices
+        shared = _shared([p.rt.layout for p in todo])
+        return None if shared is None else _Aligned(cut.bases, cut.rows, *shared)
     first = todo[0].w.blocks
     if not first or any(b.base is None or not b.uniform for b in first):
         return None
-    n = len(todo)
     blocks = [p.w.blocks for p in todo]
     if any(map(ne, map(len, blocks), repeat(len(first)))):
         return None

@@ -29,7 +29,7 @@ import numpy as np
 
 from agent.core.health import ChannelHealth, HealthTable, WindowStats
 from agent.core.health_rows import RowLimits, judge_rows
-from agent.core.windows.closed import ClosedWindow
+from agent.core.windows.closed import ClosedWindow, whole_cut
 from agent.pipeline.featurize import Extremes
 from agent.pipeline.runtime import AssetRuntime
 
@@ -160,7 +160,8 @@ def _judgeable(mats: dict[int, _Matrix], eligible: list[bool]) -> dict[int, _Mat
 
 
 _RT, _SHAPE = attrgetter("rt"), attrgetter("shape")  # of an AssetPlan
-_FIRST = itemgetter(0)  # of a (runtime, window) pair
+_FIRST, _SECOND = itemgetter(0), itemgetter(1)  # of a (runtime, window) pair
+_WCHANS = attrgetter("_chans")  # of a ClosedWindow of a RowsCut: its blocks' channels
 _BASE, _ROW0 = attrgetter("base"), attrgetter("row0")  # of a Block
 _UNIFORM, _CHANS = attrgetter("uniform"), attrgetter("chans")
 _TIMED = attrgetter("timed")  # of a _Rows
@@ -268,20 +269,33 @@ class HealthBatch:
         if not plan0.blocks or not all(map(is_, map(_RT, plans), map(_FIRST, wins))) \
                 or not all(map(eq, map(_SHAPE, plans), repeat(shape))):
             return None
-        blocks = [w.blocks for _, w in wins]
-        if not all(map(ge, map(len, blocks), repeat(plan0.n_blocks))):
-            return None
+        ws = list(map(_SECOND, wins))
+        cut = whole_cut(ws)
+        if cut is not None:  # the joint cut's windows, alike: are the channels too?
+            chans0 = ws[0]._chans
+            if not all(map(eq, map(_WCHANS, ws), repeat(chans0))):
+                return None
+        else:
+            blocks = [w.blocks for w in ws]
+            if not all(map(ge, map(len, blocks), repeat(plan0.n_blocks))):
+                return None
         mats: dict[int, _Matrix] = {}
         for k, (b, rows, chans, mode_r) in enumerate(plan0.blocks):
-            of_b = [bl[b] for bl in blocks]
-            base, r = of_b[0].base, len(chans)
-            if (base is None or base.shape[0] != n * r or id(base) in mats
-                    or not all(map(is_, map(_BASE, of_b), repeat(base)))
-                    or list(map(_ROW0, of_b)) != list(range(0, n * r, r))
-                    or not all(map(_UNIFORM, of_b))
-                    or not all(map(eq, map(_CHANS, of_b), repeat(chans)))):
-                return None
-            m = mats[id(base)] = _Matrix(base, of_b[0].tbase)
+            r = len(chans)
+            if cut is not None:
+                base, tbase = cut.bases[b], cut.tbases[b]
+                if cut.rows[b] != r or id(base) in mats or chans0[b] != chans:
+                    return None
+            else:
+                of_b = [bl[b] for bl in blocks]
+                base, tbase = of_b[0].base, of_b[0].tbase
+                if (base is None or base.shape[0] != n * r or id(base) in mats
+                        or not all(map(is_, map(_BASE, of_b), repeat(base)))
+                        or list(map(_ROW0, of_b)) != list(range(0, n * r, r))
+                        or not all(map(_UNIFORM, of_b))
+                        or not all(map(eq, map(_CHANS, of_b), repeat(chans)))):
+                    return None
+            m = mats[id(base)] = _Matrix(base, tbase)
             if rows.offs:
                 m.parts = [p.blocks[k][1] for p in plans]
                 m.row0 = list(range(0, n * r, r))

@@ -56,11 +56,12 @@ class _Group:
     and the store doubles when that is not enough room.
     """
 
-    __slots__ = ("bound", "chans", "expected", "hi", "keep_times", "lo", "near", "rows", "ts",
-                 "vals")
+    __slots__ = ("bound", "chans", "expected", "hi", "keep_times", "lo", "near", "pos", "rows",
+                 "ts", "vals")
 
-    def __init__(self, chans: tuple[int, ...], expected: float) -> None:
+    def __init__(self, chans: tuple[int, ...], expected: float, pos: int = 0) -> None:
         k = len(chans)
+        self.pos = pos  # its index in its assembler's groups (a closed window's block)
         cap = max(16, int(2 * expected) + 16)
         self.chans = chans
         self.expected = expected
@@ -207,7 +208,12 @@ class WindowAssembler:
         by_rate: dict[float, list[int]] = {}
         for c, r in enumerate(rates_hz):
             by_rate.setdefault(r, []).append(c)
-        self._groups = [_Group(tuple(cs), r * window.length_s) for r, cs in by_rate.items()]
+        self._groups = [_Group(tuple(cs), r * window.length_s, gi)
+                        for gi, (r, cs) in enumerate(by_rate.items())]
+        self._chans = tuple(g.chans for g in self._groups)  # a window's blocks' channels
+        # (complete, lowest coverage) of a window whose groups hold m samples per row, by
+        # the groups' m (`steady.close_whole`)
+        self._covs: dict[tuple[int, ...], tuple[bool, float]] = {}
         self._where: list[tuple[_Group, int]] = [(self._groups[0], 0)] * len(rates_hz)
         for g in self._groups:
             for r, c in enumerate(g.chans):

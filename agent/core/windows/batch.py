@@ -30,7 +30,7 @@ from agent.core.windows.assembler import (
     _Group,
 )
 from agent.core.windows.counting import Drops, Item, row_counts
-from agent.core.windows.steady import close_whole, cut_steady, plan_steady
+from agent.core.windows.steady import close_whole, plan_steady
 
 # What `_plan` found for an assembler (`_MORE`: placed, and a window after it is due).
 _NOTHING, _PLACED, _ALONE, _MORE = 0, 1, 2, 3
@@ -93,7 +93,7 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     todo, more, steady, by_m = plan_steady(assemblers, now, results)
     if not todo:
         try:
-            cut_steady(steady, by_m, results)
+            close_whole(steady, results, {}, by_m)
         except Exception:  # each unfinished alone, contained
             for i, a, *_ in steady:
                 if results[i] is None:

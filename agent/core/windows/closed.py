@@ -7,6 +7,8 @@ pipeline reads them. Pure.
 from __future__ import annotations
 
 from collections.abc import Sequence
+from itertools import repeat
+from operator import attrgetter, is_
 
 import numpy as np
 
@@ -84,15 +86,31 @@ def _no_times(n: int, m: int) -> np.ndarray:
     return got
 
 
+class RowsCut:
+    """Windows the joint cut made alike (`steady.close_whole`): window j's block b is
+    rows `j * rows[b]` .. of `bases[b]`, every row full (`counts[b]`), its times the same
+    rows of `tbases[b]` (None: not kept); `n` windows, every one of them its window j
+    (`ClosedWindow.cut`). The stages that take a tick's windows as rows of matrices ask
+    this instead of every block."""
+
+    __slots__ = ("bases", "counts", "n", "rows", "tbases")
+
+    def __init__(self, bases: tuple[np.ndarray, ...], tbases: tuple[np.ndarray | None, ...],
+                 rows: tuple[int, ...], n: int) -> None:
+        self.bases, self.tbases, self.rows, self.n = bases, tbases, rows, n
+        self.counts = tuple((b.shape[1],) * r for b, r in zip(bases, rows, strict=True))
+
+
 class ClosedWindow:
     """One closed window of one asset: per channel the samples inside it.
 
-    Built either from per-channel arrays or from rate-group `blocks`; `values`,
+    Built either from per-channel arrays or from rate-group `blocks`, or as window j of
+    a `RowsCut` (`cut`, `j`: its blocks are made when first read); `values`,
     `timestamps` and `coverage` are per-channel tuples in channel order either way.
     """
 
-    __slots__ = ("_cov", "_min_cov", "_ts", "_vals", "blocks", "complete", "end", "expected",
-                 "start")
+    __slots__ = ("_blocks", "_chans", "_cov", "_min_cov", "_ts", "_vals", "complete", "cut",
+                 "end", "expected", "j", "start")
 
     def __init__(self, start: float, end: float, values: Sequence[np.ndarray] | None,
                  timestamps: Sequence[np.ndarray] | None, coverage: Sequence[float] | None,
@@ -102,7 +120,10 @@ class ClosedWindow:
         self.start = start
         self.end = end
         self.complete = complete
-        self.blocks = blocks
+        self._blocks: tuple[Block, ...] | None = blocks
+        self.cut: RowsCut | None = None
+        self.j = 0
+        self._chans: tuple[tuple[int, ...], ...] = ()
         self.expected = expected
         self._vals = tuple(values) if values is not None else None
         self._ts = tuple(timestamps) if timestamps is not None else None
@@ -119,11 +140,46 @@ class ClosedWindow:
         w.start = start
         w.end = end
         w.complete = complete
-        w.blocks = blocks
+        w._blocks = blocks
+        w.cut = None
+        w.j = 0
+        w._chans = ()
         w.expected = expected
         w._vals = w._ts = w._cov = None
         w._min_cov = min_coverage
         return w
+
+    @classmethod
+    def of_cut(cls, start: float, end: float, complete: bool, cut: RowsCut, j: int,
+               chans: tuple[tuple[int, ...], ...], expected: tuple[float, ...],
+               min_coverage: float) -> ClosedWindow:
+        """Window j of `cut`, block b holding the channels `chans[b]` (its blocks made
+        when first read, as `Block.rows_of` of the cut's rows)."""
+        w = cls.__new__(cls)
+        w.start = start
+        w.end = end
+        w.complete = complete
+        w._blocks = None
+        w.cut = cut
+        w.j = j
+        w._chans = chans
+        w.expected = expected
+        w._vals = w._ts = w._cov = None
+        w._min_cov = min_coverage
+        return w
+
+    @property
+    def blocks(self) -> tuple[Block, ...]:
+        """Per rate group a block of [channels, samples]."""
+        got = self._blocks
+        if got is None:
+            cut, j = self.cut, self.j
+            assert cut is not None
+            got = self._blocks = tuple(
+                Block.rows_of(base, j * r, chans, counts, tbase)
+                for base, tbase, r, counts, chans in zip(cut.bases, cut.tbases, cut.rows,
+                                                         cut.counts, self._chans, strict=True))
+        return got
 
     def _split(self) -> None:
         n = len(self.expected)
@@ -177,3 +233,17 @@ class ClosedWindow:
 
     def __repr__(self) -> str:
         return f"ClosedWindow(start={self.start!r}, end={self.end!r}, complete={self.complete})"
+
+
+_CUT, _J = attrgetter("cut"), attrgetter("j")
+
+
+def whole_cut(windows: Sequence[ClosedWindow]) -> RowsCut | None:
+    """The `RowsCut` that `windows` are, every one of its windows in order (window j
+    its window j), else None. Asked of all windows at once (attribute reads mapped)."""
+    cut = windows[0].cut
+    if cut is None or cut.n != len(windows) \
+            or not all(map(is_, map(_CUT, windows), repeat(cut))) \
+            or list(map(_J, windows)) != list(range(cut.n)):
+        return None
+    return cut

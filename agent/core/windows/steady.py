@@ -1,15 +1,17 @@
 """The joint cut (`batch.close_many`) of windows whose rate groups' rows are in step,
 each holding the same number of samples before the window's end (`close_whole`: one
-copy per segment length, every block rows of it), and its commonest shape planned and
-cut in two loops (`plan_steady`, `cut_steady`): an asset whose next tumbling window is
-due with every pending sample of every rate group before its end. Pure.
+copy per segment length, every block rows of it; when every asset's groups are alike,
+the windows are those of one `RowsCut`, their blocks made only if read), and its
+commonest shape planned in one loop (`plan_steady`): an asset whose next tumbling
+window is due with every pending sample of every rate group before its end. Pure.
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from operator import attrgetter, itemgetter
+from itertools import repeat
+from operator import attrgetter, eq, is_, itemgetter
 
 import numpy as np
 
@@ -20,6 +22,7 @@ from agent.core.windows.assembler import (
     WindowAssembler,
     _Group,
 )
+from agent.core.windows.closed import RowsCut
 from agent.core.windows.counting import Drops, Item
 
 # What `plan_steady` keeps of an assembler whose window it cuts: its position, the
@@ -35,7 +38,7 @@ def plan_steady(assemblers: Sequence[WindowAssembler], now: float,
     """The first pass of `close_many` over the usual shape, in one loop: an assembler
     whose next tumbling window is due with every pending sample before its end, in
     every rate group the same number m > 0 in every row and the rows starting in step
-    (`_plan`'s `full` item), kept in order for `cut_steady`; one with nothing due gets
+    (`_plan`'s `full` item), kept in order for `close_whole`; one with nothing due gets
     an empty result. Returns the positions of every other shape (for
     `_close_next`), those with a window after the kept one due too, the kept, and their
     groups by m (with each group's first pending index and its item), in the same
@@ -108,7 +111,9 @@ def _times(gs: list[tuple[_Group, int, _Steady]], m: int
     return np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0, _ in gs if g.keep_times]), None
 
 
-_GROUP, _KEEPS = itemgetter(0), attrgetter("keep_times")
+_GROUP, _ITEM, _KEEPS = itemgetter(0), itemgetter(2), attrgetter("keep_times")
+_POS, _CHANS = attrgetter("pos"), attrgetter("chans")  # of a _Group
+_ASM, _WCHANS = itemgetter(1), attrgetter("_chans")  # of an item, of its assembler
 
 
 class _Cut:
@@ -123,49 +128,14 @@ class _Cut:
         self.off = self.t_off = 0
 
 
-def cut_steady(members: list[_Steady], by_m: _ByM,
-                results: list[AssembleResult | None]) -> None:
-    """`plan_steady`'s windows: per segment length m, one copy of every member's rows
-    of m samples (`by_m`), each window's block a row range of it (`close_whole`, with
-    a shorter loop when every asset has one rate group)."""
-    if sum(map(len, by_m.values())) != len(members):  # an asset of several rate groups
-        close_whole(members, results, {}, by_m)
-        return
-    for m, gs in by_m.items():  # every asset one rate group: one copy per m, in order
-        v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0, _ in gs])
-        t, tb = _times(gs, m)
-        off = t_off = n_last = 0
-        full: tuple[int, ...] = ()
-        for g, lo0, (i, a, start, end, _) in gs:
-            chans = g.chans
-            n = len(chans)
-            if n != n_last:
-                full, n_last = (m,) * n, n
-            if tb is not None:  # every member's times, row for row with `v`
-                blk = Block.rows_of(v, off, chans, full, tb)
-            elif t is not None and g.keep_times:
-                blk = Block(chans, t[t_off:t_off + n], v[off:off + n], full, True, v, off,
-                            None)
-                t_off += n
-            else:
-                blk = Block.rows_of(v, off, chans, full)
-            off += n
-            exp = g.expected
-            cov = m / exp if exp else 1.0
-            w = ClosedWindow.of_blocks(start, end, not (exp and cov < a.cfg.min_coverage),
-                                       (blk,), a._expected, cov)
-            g.lo = [lo0 + m] * n  # still in step
-            a._step_next()
-            results[i] = AssembleResult(None, [w])
-
-
 def close_whole(items: list[Item], results: list[AssembleResult | None], drops: Drops,
                 by_m: _ByM | None = None) -> None:
     """The joint cut of items whose every rate group's rows are in step with m > 0
     samples before the window's end (all it cuts: the spans' m): one copy per segment
     length (`by_m`: the items' groups by m in item order, gathered here when not given),
-    every block rows of that copy. Each group's rows then drop those m samples, or for a
-    hopping window what `drops` says."""
+    every block rows of that copy (alike items' windows: one `RowsCut`, `_rows_cut`).
+    Each group's rows then drop those m samples, or for a hopping window what `drops`
+    says."""
     if by_m is None:
         by_m = {}
         for item in items:
@@ -178,6 +148,10 @@ def close_whole(items: list[Item], results: list[AssembleResult | None], drops: 
     for m, gs in by_m.items():
         v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0, _ in gs])
         cuts[m] = _Cut(v, *_times(gs, m))
+    rc = None if drops else _rows_cut(items, by_m, cuts)
+    if rc is not None:
+        _close_alike(items, results, rc)
+        return
     for i, a, start, end, spans in items:
         drop = drops.get(i) if drops else None
         min_cov = a.cfg.min_coverage
@@ -209,3 +183,66 @@ def close_whole(items: list[Item], results: list[AssembleResult | None], drops: 
         a._step_next()
         results[i] = AssembleResult(None, [ClosedWindow.of_blocks(
             start, end, complete, tuple(blocks), a._expected, cov)])
+
+
+def _rows_cut(items: list[Item], by_m: _ByM, cuts: dict[int, _Cut]) -> RowsCut | None:
+    """The cut as a `RowsCut` when its windows are alike: every item has, group for
+    group in its assembler's order, groups of the same number of rows and the same m
+    as the first (one group per m), and every group of one m keeps its times or none
+    does; else None."""
+    spans0 = items[0][4]
+    n, n_groups = len(items), len(spans0)
+    if len(by_m) != n_groups or not all(map(eq, map(len, map(_WCHANS, map(_ASM, items))),
+                                            repeat(n_groups))):
+        return None
+    bases: list[np.ndarray] = []
+    tbases: list[np.ndarray | None] = []
+    rows: list[int] = []
+    for b, (g0, _, m) in enumerate(spans0):
+        gs, cut = by_m[m], cuts[m]
+        r = len(g0.chans)
+        # Item j's group of this m is its group b, of r rows: then its rows of the
+        # cut start at j * r.
+        if (len(gs) != n or (cut.t is not None and cut.tb is None)
+                or not all(map(is_, map(_ITEM, gs), items))
+                or not all(map(eq, map(_POS, map(_GROUP, gs)), repeat(b)))
+                or not all(map(eq, map(len, map(_CHANS, map(_GROUP, gs))), repeat(r)))):
+            return None
+        bases.append(cut.v)
+        tbases.append(cut.tb)
+        rows.append(r)
+    return RowsCut(tuple(bases), tuple(tbases), tuple(rows), n)
+
+
+def _close_alike(items: list[Item], results: list[AssembleResult | None], rc: RowsCut
+                 ) -> None:
+    """`close_whole` of items `_rows_cut` found alike: item j's window is window j of
+    `rc`, each group's rows drop the m samples cut."""
+    ms = tuple(m for _, _, m in items[0][4])
+    for j, (i, a, start, end, spans) in enumerate(items):
+        for g, lo0, m in spans:
+            g.lo = [lo0 + m] * len(g.chans)  # still in step
+        got = a._covs.get(ms)
+        if got is None:
+            got = _coverage(a, ms)
+        a._step_next()
+        results[i] = AssembleResult(None, [ClosedWindow.of_cut(
+            start, end, got[0], rc, j, a._chans, a._expected, got[1])])
+
+
+def _coverage(a: WindowAssembler, ms: tuple[int, ...]) -> tuple[bool, float]:
+    """Whether a window of `a` whose groups hold `ms` samples per row is complete, and
+    its lowest coverage (as `close_whole` finds them group by group); kept in `a._covs`."""
+    min_cov = a.cfg.min_coverage
+    complete = True
+    cov = 1.0
+    for gi, (g, m) in enumerate(zip(a._groups, ms, strict=True)):
+        exp = g.expected
+        c = m / exp if exp else 1.0
+        cov = min(cov, c) if gi else c
+        if exp and c < min_cov:
+            complete = False
+    if len(a._covs) > 16:
+        a._covs.clear()
+    got = a._covs[ms] = (complete, cov)
+    return got

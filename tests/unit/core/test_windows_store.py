@@ -452,3 +452,48 @@ def test_close_many_steady_assets_of_several_sizes(assets, late) -> None:
                     assert len({id(b.base) for b in blocks}) == 1
                     rows = [b.row0 for b in blocks]
                     assert rows == sorted(rows)
+
+
+@pytest.mark.parametrize("rates_of", [
+    [(10.0, 100.0), (10.0, 100.0), (10.0, 100.0)],  # alike: one RowsCut
+    [(10.0, 100.0), (100.0, 10.0), (10.0, 100.0)],  # a group order swapped
+    [(10.0, 100.0), (10.0, 10.0, 100.0), (10.0, 100.0)],  # a group of more rows
+    [(10.0, 100.0), (10.0, 100.0, 20.0), (10.0, 100.0)],  # one more group
+])
+def test_alike_windows_share_one_rows_cut_and_unlike_ones_keep_their_blocks(rates_of) -> None:
+    """Steady windows cut together are window j of one `RowsCut` only when every asset's
+    groups are alike, group for group (rows, samples, order); their blocks, made when
+    first read, are the rows of the cut's matrices, and every window holds what
+    `close_due` cuts of its twin."""
+    from agent.core.windows.batch import close_many
+    from agent.core.windows.closed import whole_cut
+
+    cfg = WindowConfig(1.0, 1.0, 0.0, 1.0, 0.5)
+    one = [WindowAssembler(cfg, r) for r in rates_of]
+    many = [WindowAssembler(cfg, r) for r in rates_of]
+    rng = np.random.default_rng(3)
+    for k in range(4):
+        for a1, a2 in zip(one, many, strict=True):
+            for c, r in enumerate(a1.rates_hz):
+                ts = T0 + k + np.arange(int(r)) / r
+                vals = rng.normal(size=ts.size)
+                for a in (a1, a2):
+                    a.add(c, ts, vals, T0 + k + 1.0, presorted=True)
+        now = T0 + k + 1.0
+        want = [a.close_due(now) for a in one]
+        got = close_many(many, now)
+        wins = [w for res in got for w in res.windows]
+        if k and wins:
+            cut = whole_cut(wins)
+            assert (cut is not None) == (len(set(rates_of)) == 1)
+            if cut is not None:
+                for j, w in enumerate(wins):
+                    for b, blk in enumerate(w.blocks):
+                        assert blk.base is cut.bases[b] and blk.row0 == j * cut.rows[b]
+        for w_res, g_res in zip(want, got, strict=True):
+            for w, g in zip(w_res.windows, g_res.windows, strict=True):
+                assert (g.start, g.end, g.complete, g.coverage) == \
+                    (w.start, w.end, w.complete, w.coverage)
+                for c in range(len(w.values)):
+                    np.testing.assert_array_equal(g.values[c], w.values[c])
+                    np.testing.assert_array_equal(g.timestamps[c], w.timestamps[c])
