@@ -142,7 +142,7 @@ def _group_features(x: np.ndarray, fs: float, spec: SpectrumConfig,
     mag = np.abs(spec_c, out=work_array(work, "sp_mag", (m, nf)))
     p = np.multiply(mag, mag, out=work_array(work, "sp_p", (m, nf)))
     p *= pl.p_scale
-    amp = np.multiply(mag, pl.a_scale, out=work_array(work, "sp_amp", (m, nf)))
+    amp = np.multiply(mag, pl.a_scale, out=mag)  # the magnitudes are not read again
     out = np.empty((m, pl.width))
     nb = len(spec.bands_hz)
     if pl.masks is not None:

@@ -38,6 +38,7 @@ from agent.config.schema import WindowConfig
 from agent.core.windows.closed import Block, ClosedWindow
 
 _AR = np.arange(1024, dtype=np.int64)
+_SHAPES: dict[tuple[int, ...], tuple[int, ...]] = {}  # `WindowAssembler._shape`s
 
 
 def _arange(n: int) -> np.ndarray:
@@ -211,6 +212,9 @@ class WindowAssembler:
         self._groups = [_Group(tuple(cs), r * window.length_s, gi)
                         for gi, (r, cs) in enumerate(by_rate.items())]
         self._chans = tuple(g.chans for g in self._groups)  # a window's blocks' channels
+        # The rows of each group: one object for every assembler of that shape.
+        rows = tuple(len(g.chans) for g in self._groups)
+        self._shape = _SHAPES.setdefault(rows, rows)
         # (complete, lowest coverage) of a window whose groups hold m samples per row, by
         # the groups' m (`steady.close_whole`)
         self._covs: dict[tuple[int, ...], tuple[bool, float]] = {}

@@ -111,9 +111,9 @@ def _times(gs: list[tuple[_Group, int, _Steady]], m: int
     return np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0, _ in gs if g.keep_times]), None
 
 
-_GROUP, _ITEM, _KEEPS = itemgetter(0), itemgetter(2), attrgetter("keep_times")
-_POS, _CHANS = attrgetter("pos"), attrgetter("chans")  # of a _Group
-_ASM, _WCHANS = itemgetter(1), attrgetter("_chans")  # of an item, of its assembler
+_GROUP, _KEEPS = itemgetter(0), attrgetter("keep_times")
+_POS = attrgetter("pos")  # of a _Group
+_ASM, _SHAPE = itemgetter(1), attrgetter("_shape")  # of an item, of its assembler
 
 
 class _Cut:
@@ -186,32 +186,26 @@ def close_whole(items: list[Item], results: list[AssembleResult | None], drops: 
 
 
 def _rows_cut(items: list[Item], by_m: _ByM, cuts: dict[int, _Cut]) -> RowsCut | None:
-    """The cut as a `RowsCut` when its windows are alike: every item has, group for
-    group in its assembler's order, groups of the same number of rows and the same m
-    as the first (one group per m), and every group of one m keeps its times or none
-    does; else None."""
+    """The cut as a `RowsCut` when its windows are alike: every item's assembler has
+    groups of the same rows, and group for group the same m as the first item's (one
+    group per m), and every group of one m keeps its times or none does; else None."""
     spans0 = items[0][4]
-    n, n_groups = len(items), len(spans0)
-    if len(by_m) != n_groups or not all(map(eq, map(len, map(_WCHANS, map(_ASM, items))),
-                                            repeat(n_groups))):
+    n, shape = len(items), items[0][1]._shape
+    if len(by_m) != len(spans0) or len(shape) != len(spans0) \
+            or not all(map(is_, map(_SHAPE, map(_ASM, items)), repeat(shape))):
         return None
     bases: list[np.ndarray] = []
     tbases: list[np.ndarray | None] = []
-    rows: list[int] = []
-    for b, (g0, _, m) in enumerate(spans0):
+    for b, (_, _, m) in enumerate(spans0):
         gs, cut = by_m[m], cuts[m]
-        r = len(g0.chans)
-        # Item j's group of this m is its group b, of r rows: then its rows of the
-        # cut start at j * r.
+        # n groups of this m, each one its item's group b (an item has one), in item
+        # order: item j's rows of the cut start at j * shape[b].
         if (len(gs) != n or (cut.t is not None and cut.tb is None)
-                or not all(map(is_, map(_ITEM, gs), items))
-                or not all(map(eq, map(_POS, map(_GROUP, gs)), repeat(b)))
-                or not all(map(eq, map(len, map(_CHANS, map(_GROUP, gs))), repeat(r)))):
+                or not all(map(eq, map(_POS, map(_GROUP, gs)), repeat(b)))):
             return None
         bases.append(cut.v)
         tbases.append(cut.tb)
-        rows.append(r)
-    return RowsCut(tuple(bases), tuple(tbases), tuple(rows), n)
+    return RowsCut(tuple(bases), tuple(tbases), shape, n)
 
 
 def _close_alike(items: list[Item], results: list[AssembleResult | None], rc: RowsCut
