@@ -59,7 +59,8 @@ class AssetPlan:
     blocks: tuple[tuple[int, _Rows, tuple[int, ...], int], ...]
     n_blocks: int  # how many blocks a window has at least
     # What plans alike in it lay out alike (`_gather_aligned`): n_blocks, and per block
-    # its index, channels, mode row and whether it has checked channels.
+    # its index, channels, mode row and whether it has checked channels (plans of one
+    # shape share this object).
     shape: tuple[object, ...]
 
     @classmethod
@@ -85,9 +86,13 @@ class AssetPlan:
                 blocks.append((b, _Rows(chans, offs, tuple(chans[r] for r in offs), health,
                                         slots, timed), chans, mode_r))
         n_blocks = max((b for b, *_ in blocks), default=-1) + 1
-        return cls(rt, tuple(blocks), n_blocks,
-                   (n_blocks, tuple((b, chans, mode_r, bool(rows.offs))
-                                    for b, rows, chans, mode_r in blocks)))
+        shape = (n_blocks, tuple((b, chans, mode_r, bool(rows.offs))
+                                 for b, rows, chans, mode_r in blocks))
+        return cls(rt, tuple(blocks), n_blocks, _SHAPES.setdefault(shape, shape))
+
+
+# Every plan shape made, so that plans of one shape share one object (`AssetPlan.shape`).
+_SHAPES: dict[tuple[object, ...], tuple[object, ...]] = {}
 
 
 @dataclass(frozen=True, slots=True)
@@ -132,6 +137,7 @@ class _Matrix:
     row0: list[int] = field(default_factory=list)
     wi: list[int] = field(default_factory=list)
     modes: list[tuple[int, int]] = field(default_factory=list)  # (mode channel row, window)
+    layout: _Layout | None = None  # the layout of `parts`, when known already
 
 
 @dataclass(slots=True)
@@ -176,11 +182,17 @@ class HealthBatch:
         self._moved = 0  # `table.moved_out` when the plans were made
         self._plans: dict[int, AssetPlan] = {}
         self._layouts: dict[tuple[int, ...], _Layout] = {}
+        # The last aligned tick's assets (`ids`), their plans, and per plan block the
+        # checked rows of every asset and their layout: the same assets close windows
+        # tick after tick (`_gather_aligned`). Dropped whenever a plan is made.
+        self._alike: tuple[list[int], list[AssetPlan],
+                           list[tuple[list[_Rows], _Layout] | None]] | None = None
 
     def plan(self, rt: AssetRuntime) -> AssetPlan:
         got = self._plans.get(id(rt))
         if got is None or got.rt is not rt:
             got = self._plans[id(rt)] = AssetPlan.of(rt, self.table)
+            self._alike = None
         return got
 
     def prejudge(self, wins: Sequence[tuple[AssetRuntime, ClosedWindow]],
@@ -192,6 +204,7 @@ class HealthBatch:
         if self.table.moved_out != self._moved:  # a channel went to another batch's table
             self._plans.clear()
             self._layouts.clear()
+            self._alike = None
             self._moved = self.table.moved_out
         mats = self._gather(wins, failed, out.eligible)
         writes: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
@@ -260,14 +273,14 @@ class HealthBatch:
         the windows' blocks full rows of one matrix in window order (the joint cut's).
         None when the tick is not such (`_gather` then goes window by window)."""
         n = len(wins)
-        got = list(map(self._plans.get, ids))
-        if len(set(ids)) != n or any(map(is_, got, repeat(None))):
-            return None
-        plans = cast(list[AssetPlan], got)
+        alike = self._alike
+        if alike is None or alike[0] != ids:  # not the assets of the last aligned tick
+            alike = self._alike_plans(ids)
+            if alike is None:
+                return None
+        _, plans, rows_of = alike
         plan0 = plans[0]
-        shape = plan0.shape
-        if not plan0.blocks or not all(map(is_, map(_RT, plans), map(_FIRST, wins))) \
-                or not all(map(eq, map(_SHAPE, plans), repeat(shape))):
+        if not all(map(is_, map(_RT, plans), map(_FIRST, wins))):
             return None
         ws = list(map(_SECOND, wins))
         cut = whole_cut(ws)
@@ -280,7 +293,7 @@ class HealthBatch:
             if not all(map(ge, map(len, blocks), repeat(plan0.n_blocks))):
                 return None
         mats: dict[int, _Matrix] = {}
-        for k, (b, rows, chans, mode_r) in enumerate(plan0.blocks):
+        for k, (b, _, chans, mode_r) in enumerate(plan0.blocks):
             r = len(chans)
             if cut is not None:
                 base, tbase = cut.bases[b], cut.tbases[b]
@@ -296,14 +309,33 @@ class HealthBatch:
                         or not all(map(eq, map(_CHANS, of_b), repeat(chans)))):
                     return None
             m = mats[id(base)] = _Matrix(base, tbase)
-            if rows.offs:
-                m.parts = [p.blocks[k][1] for p in plans]
+            got_rows = rows_of[k]
+            if got_rows is not None:
+                m.parts, m.layout = got_rows
                 m.row0 = list(range(0, n * r, r))
                 m.wi = list(range(n))
             if mode_r >= 0:
                 m.modes = list(zip(range(mode_r, n * r, r), range(n), strict=True))
         eligible[:] = [True] * n
         return _judgeable(mats, eligible)
+
+    def _alike_plans(self, ids: list[int]) -> tuple[list[int], list[AssetPlan], list[
+            tuple[list[_Rows], _Layout] | None]] | None:
+        """`_alike` for the assets `ids` when each is there once, its plan is made, and
+        the plans are of one shape with a block to judge; else None."""
+        got = list(map(self._plans.get, ids))
+        if len(set(ids)) != len(ids) or any(map(is_, got, repeat(None))):
+            return None
+        plans = cast(list[AssetPlan], got)
+        shape = plans[0].shape
+        if not plans[0].blocks or not all(map(is_, map(_SHAPE, plans), repeat(shape))):
+            return None
+        rows_of: list[tuple[list[_Rows], _Layout] | None] = []
+        for k, (_, rows, _, _) in enumerate(plans[0].blocks):
+            parts = [p.blocks[k][1] for p in plans] if rows.offs else None
+            rows_of.append(None if parts is None else (parts, self._layout(parts)))
+        self._alike = (ids, plans, rows_of)
+        return self._alike
 
     def _layout(self, parts: Sequence[_Rows]) -> _Layout:
         key = tuple(map(id, parts))  # the _Rows live as long as their plans
@@ -317,7 +349,7 @@ class HealthBatch:
     def _judge_matrix(self, m: _Matrix, out: Prejudged,
                       writes: list[tuple[np.ndarray, np.ndarray, np.ndarray]]) -> None:
         wis = m.wi
-        lay = self._layout(m.parts)
+        lay = m.layout if m.layout is not None else self._layout(m.parts)
         # Without times (`_gather` let only matrices whose rows read none through), NaN.
         tbase = m.tbase if m.tbase is not None else np.broadcast_to(np.nan, m.base.shape)
         if m.row0 == lay.whole_at and m.base.shape[0] == lay.offs.size:
