@@ -285,7 +285,7 @@ FAMILIES: tuple[Family, ...] = (
            "1 for the asset's current operating mode, 0 for the others", ("asset", "mode")),
     Family("sensor_fault", _G, "watchkeep_sensor_fault", "1 while the channel has a sensor fault",
            _AC),
-    Family("velocity_rms", _G, "watchkeep_vibration_velocity_rms_meters_per_second",
+    Family("velocity_rms", _PG, "watchkeep_vibration_velocity_rms_meters_per_second",
            "Velocity RMS (10 Hz - 1 kHz) of the channel's last window", _AC),
     Family("vibration_zone", _G, "watchkeep_vibration_zone",
            "ISO 10816-3 zone of the channel's velocity RMS: 1 A, 2 B, 3 C, 4 D", _AC),
@@ -359,7 +359,7 @@ class Metrics:
     gaps: Counter
     mode: Gauge
     sensor_fault: Gauge
-    velocity_rms: Gauge
+    velocity_rms: PlainFamily
     vibration_zone: Gauge
     asset_errors: Counter
     asset_failing: Gauge

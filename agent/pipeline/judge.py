@@ -32,7 +32,7 @@ from agent.core.modes import UNKNOWN_MODE
 from agent.core.windows.closed import ClosedWindow
 from agent.ingest.buffers import Buffers
 from agent.ops.logs import kv
-from agent.ops.metrics import Metrics
+from agent.ops.metrics import Metrics, PlainFamily
 from agent.pipeline.emit import Emitter, reset_detector
 from agent.pipeline.health_batch import HealthBatch, Prejudged
 from agent.pipeline.runtime import AssetRuntime
@@ -239,7 +239,7 @@ class Judge:
         """Set a gauge child to `value` unless it holds it already."""
         self.shown(family, labels).set(value)
 
-    def shown(self, family: Gauge, labels: tuple[str, ...]) -> Shown:
+    def shown(self, family: Gauge | PlainFamily, labels: tuple[str, ...]) -> Shown:
         """The one `Shown` of a gauge child."""
         got = self._gauges.get((id(family), labels))
         if got is None:
@@ -253,7 +253,7 @@ class Shown:
 
     __slots__ = ("child", "family", "labels", "value")
 
-    def __init__(self, family: Gauge, labels: tuple[str, ...]) -> None:
+    def __init__(self, family: Gauge | PlainFamily, labels: tuple[str, ...]) -> None:
         self.family, self.labels = family, labels
         self.child: Any = None
         self.value: float | None = None

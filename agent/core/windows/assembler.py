@@ -191,6 +191,12 @@ class AssembleResult:
 class WindowAssembler:
     """Cuts one asset's samples into windows; one instance per asset."""
 
+    # Every tick reads a few of these of every asset (`due`, `steady.plan_steady`):
+    # slots keep them in the object itself, a few cache lines per asset.
+    __slots__ = ("_any_unsorted", "_chans", "_covs", "_due2_reach", "_due2_ts", "_due_reach",
+                 "_due_ts", "_expected", "_first_start", "_groups", "_last_arrival", "_max_ts",
+                 "_next_k", "_shape", "_span_k", "_unsorted", "_where", "cfg", "rates_hz")
+
     def __init__(self, window: WindowConfig, rates_hz: tuple[float, ...]) -> None:
         self.cfg = window
         self.rates_hz = rates_hz
