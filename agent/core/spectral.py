@@ -147,7 +147,11 @@ def _group_features(x: np.ndarray, fs: float, spec: SpectrumConfig,
     nb = len(spec.bands_hz)
     if pl.masks is not None:
         out[:, :nb] = p @ pl.masks * df
-    k = 1 + np.argmax(amp[:, 1:], axis=1)
+    # The strongest line above DC: `1 + argmax(amp[:, 1:])`, taken over whole rows (an
+    # argmax over a column slice copies the array first) with DC, never read again,
+    # below every amplitude (ties and NaN: the first, as before).
+    amp[:, 0] = -np.inf
+    k = np.argmax(amp, axis=1)
     rows = np.arange(m)
     out[:, nb] = freqs[k]
     out[:, nb + 1] = amp[rows, k]

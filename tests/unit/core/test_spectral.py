@@ -78,6 +78,34 @@ def test_shared_row_sums_change_no_bit(n: int) -> None:
     assert own_td.tobytes() == shared_td.tobytes()
 
 
+def test_dominant_line_is_the_first_strongest_bin_above_dc() -> None:
+    """dominant_hz / dominant_amp are bin `1 + argmax(amp[:, 1:])` of the one-sided
+    amplitude spectrum of the windowed, mean-removed rows (numpy's rfft, Hann window),
+    byte for byte: random rows, a constant row (every bin 0: the first bin above DC),
+    a row with a NaN sample (every bin NaN: the first), a pure line."""
+    from agent.core.spectral import hann
+
+    n, fs = 1024, 1024.0
+    rng = np.random.default_rng(9)
+    x = rng.normal(size=(6, n))
+    x[1] = 3.0
+    x[2, 17] = np.nan
+    x[3] = np.sin(2 * np.pi * 50.0 * np.arange(n) / fs)
+    spec = SpectrumConfig(bands_hz=((10.0, 100.0),))
+    got = spectral_rows(x, fs, spec, np.full(6, np.nan))
+    w = hann(n)
+    mag = np.abs(np.fft.rfft((x - x.mean(axis=1, keepdims=True)) * w, axis=1))
+    scale = np.full(n // 2 + 1, 2.0)
+    scale[0] = scale[-1] = 1.0
+    amp = mag * (scale / w.sum())
+    k = 1 + np.argmax(amp[:, 1:], axis=1)
+    names = spec.feature_names()
+    want_hz = np.fft.rfftfreq(n, 1 / fs)[k]
+    assert got[:, names.index("dominant_hz")].tobytes() == want_hz.tobytes()
+    assert got[:, names.index("dominant_amp")].tobytes() == amp[np.arange(6), k].tobytes()
+    assert got[1, names.index("dominant_hz")] == 1.0 and got[3, names.index("dominant_hz")] == 50.0
+
+
 def test_short_segment_is_nan_and_unknown_speed_is_zero_orders() -> None:
     """Too few samples -> NaN row (never scored); unknown speed -> orders 0."""
     rows = spectral_features([np.ones(3), np.random.default_rng(2).normal(size=512)],
