@@ -12,7 +12,6 @@ Messages are read by their typed fields (`OutMessage.asset`, `.event`, `.score`,
 
 from __future__ import annotations
 
-import dataclasses
 import json
 import logging
 from collections.abc import Callable, Mapping, Sequence
@@ -29,7 +28,7 @@ Guard = Callable[[Job, float, list[OutMessage]], None]
 def with_learning(m: OutMessage, summary: Mapping[str, object]) -> OutMessage:
     """A state message with `"learning": summary` added as its last key."""
     extra = json.dumps({"learning": summary}, separators=(",", ":")).encode()
-    return dataclasses.replace(m, payload=m.payload[:-1] + b"," + extra[1:])
+    return m._replace(payload=m.payload[:-1] + b"," + extra[1:])
 
 
 def far_ratio(score: float | None, threshold: float | None, line: float) -> float | None:

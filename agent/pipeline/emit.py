@@ -44,6 +44,10 @@ from agent.pipeline.runtime import AssetRuntime
 _Numbers = tuple[list[float], list[bytes]]
 _SCALES = np.array([1e6, 1e3])  # 10**digits of the score, of its ratio
 
+# `OutMessage(...)` given every field, made as the tuple it is (no Python-level
+# `__new__`): the quiet window's state message, one per window.
+_MESSAGE = tuple.__new__
+
 
 class ScoredWindow(Protocol):
     """A scored window on its way through the tick: whose, its bounds, its mode."""
@@ -261,11 +265,11 @@ class Emitter:
                on_error: Callable[[AssetRuntime, Exception], None]) -> None:
         """Count and publish each scored window (`got[j]` by `bundles[j]`), step its
         asset's detector and say what changed, in order (an asset's windows in time
-        order). Left out: windows whose model failed, assets in `failed` (which
-        `on_error` adds to), non-finite scores (`on_skip`). A quiet window (NORMAL, not
-        above a positive threshold, no suspect) changes nothing but the history of its
-        detector and escalation tracker; the rest take `AnomalyStep.step` (`_loud`)."""
-        score, sqs, ok = got.score, got.sq, got.ok
+        order). Left out: windows whose model failed, assets in `failed` (`on_error`
+        adds to it), non-finite scores (`on_skip`). A quiet window (NORMAL, not above a
+        positive threshold, no suspect) changes only its detector's and escalation
+        tracker's history; the rest take `AnomalyStep.step` (`_loud`)."""
+        score, sqs, ok, out_append = got.score, got.sq, got.ok, self.out.append
         rounded, js = numbers = self._numbers(score, got.threshold)
         get, normal, plain, n = self._slots.get, State.NORMAL, not self.publish_scores, len(js)
         counted, last_end, end_json, retained = 0, math.nan, b"", Kind.STATE  # read once
@@ -310,9 +314,9 @@ class Emitter:
                     continue
                 if end != last_end:  # windows of a tick mostly end together
                     last_end, end_json = end, self.time_json(end)
-                self.out.append(OutMessage(
+                out_append(_MESSAGE(OutMessage, (
                     slot.state_topic, tpl.fmt % (js[j], js[n // 2 + j], end_json), retained,
-                    1, True, slot.state_topic, slot.name, None, None, rounded[j], threshold))
+                    1, True, slot.state_topic, slot.name, None, None, rounded[j], threshold)))
             except Exception as exc:
                 on_error(rt, exc)
         self.stats.windows_scored += counted

@@ -4,9 +4,8 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from dataclasses import dataclass
 from enum import IntEnum
-from typing import Any
+from typing import Any, NamedTuple
 
 import numpy as np
 import orjson
@@ -27,11 +26,9 @@ class Kind(IntEnum):
         return self.name.lower()
 
 
-@dataclass(slots=True)
-class OutMessage:
-    """One message for the upstream broker; treat it as immutable (it is not frozen
-    only because a frozen dataclass costs twice as much to make, and the pipeline makes
-    two per window).
+class OutMessage(NamedTuple):
+    """One message for the upstream broker (immutable: a named tuple, the cheapest
+    immutable record to make; the pipeline makes one or two per window).
 
     `key` names what a newer message of the same key supersedes (the state topic);
     `None` for messages that must each be delivered.

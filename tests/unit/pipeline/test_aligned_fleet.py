@@ -112,3 +112,28 @@ def test_aligned_rows_with_spectra_are_the_general_paths(
             assert isinstance(got, np.ndarray) and isinstance(shared, np.ndarray)
             assert shared.tobytes() == got.tobytes()
     assert taken >= 3
+
+
+def test_quiet_windows_state_messages_carry_every_field(tmp_path: Path) -> None:
+    """The quiet window's state message (made as the named tuple it is, field by field
+    in `Emitter.scored`) is an `OutMessage` whose typed fields say what its payload
+    says, as the first state message of each asset (made by the constructor) does."""
+    import orjson
+
+    from agent.pipeline.messages import Kind, OutMessage
+
+    f = Fleet(tmp_path, seed=6, n_assets=N_ASSETS)
+    rec: list[Any] = []
+    f.pipe.sink = type("S", (), {"submit": lambda self, msgs, sequences=None:
+                                 rec.extend(msgs)})()
+    for _ in range(6):
+        f.feed()
+        f.pipe.tick(f.k + 1.0)
+    states = [m for m in rec if m.kind is Kind.STATE]
+    assert len(states) >= 4 * N_ASSETS
+    for m in states:
+        doc = orjson.loads(m.payload)
+        assert type(m) is OutMessage and len(m) == len(OutMessage._fields)
+        assert (m.qos, m.retain, m.key, m.event, m.event_id) == (1, True, m.topic, None, None)
+        assert m.asset is not None and f"/assets/{m.asset}/" in m.topic
+        assert (m.score, m.threshold) == (doc["score"], doc["threshold"])
