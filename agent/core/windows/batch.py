@@ -27,10 +27,10 @@ from agent.core.windows.assembler import (
     Block,
     ClosedWindow,
     WindowAssembler,
-    _Group,
 )
 from agent.core.windows.counting import Drops, Item, row_counts
 from agent.core.windows.steady import close_whole, plan_steady
+from agent.core.windows.store import _Group
 
 # What `_plan` found for an assembler (`_MORE`: placed, and a window after it is due).
 _NOTHING, _PLACED, _ALONE, _MORE = 0, 1, 2, 3

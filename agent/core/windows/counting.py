@@ -11,7 +11,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from agent.core.windows.assembler import WindowAssembler, _arange, _Group
+from agent.core.windows.assembler import WindowAssembler
+from agent.core.windows.store import _arange, _Group
 
 # One item of the joint cut: (position in `close_many`'s list, the assembler, the
 # window's start and end, per rate group (the group, its first pending index, how many

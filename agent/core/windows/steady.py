@@ -20,10 +20,10 @@ from agent.core.windows.assembler import (
     Block,
     ClosedWindow,
     WindowAssembler,
-    _Group,
 )
 from agent.core.windows.closed import RowsCut
 from agent.core.windows.counting import Drops, Item
+from agent.core.windows.store import _Group
 
 # What `plan_steady` keeps of an assembler whose window it cuts: its position, the
 # assembler, the window's start and end, and per rate group (the group, its first
@@ -106,9 +106,10 @@ def _times(gs: list[tuple[_Group, int, _Steady]], m: int
     if True not in keeps:
         return None, None
     if False not in keeps:
-        t = np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0, _ in gs])
+        t = np.concatenate([(g.views.get((lo0, m)) or g.span(lo0, m))[1] for g, lo0, _ in gs])
         return t, t
-    return np.concatenate([g.ts[:, lo0:lo0 + m] for g, lo0, _ in gs if g.keep_times]), None
+    return np.concatenate([(g.views.get((lo0, m)) or g.span(lo0, m))[1]
+                           for g, lo0, _ in gs if g.keep_times]), None
 
 
 _GROUP, _KEEPS = itemgetter(0), attrgetter("keep_times")
@@ -146,7 +147,8 @@ def close_whole(items: list[Item], results: list[AssembleResult | None], drops: 
                 got.append((g, lo0, item))
     cuts: dict[int, _Cut] = {}
     for m, gs in by_m.items():
-        v = np.concatenate([g.vals[:, lo0:lo0 + m] for g, lo0, _ in gs])
+        # Each group's rows as views kept from its last window cut there (`_Group.span`).
+        v = np.concatenate([(g.views.get((lo0, m)) or g.span(lo0, m))[0] for g, lo0, _ in gs])
         cuts[m] = _Cut(v, *_times(gs, m))
     rc = None if drops else _rows_cut(items, by_m, cuts)
     if rc is not None:
