@@ -167,7 +167,7 @@ def _judgeable(mats: dict[int, _Matrix], eligible: list[bool]) -> dict[int, _Mat
 
 _RT, _SHAPE = attrgetter("rt"), attrgetter("shape")  # of an AssetPlan
 _FIRST, _SECOND = itemgetter(0), itemgetter(1)  # of a (runtime, window) pair
-_WCHANS = attrgetter("_chans")  # of a ClosedWindow of a RowsCut: its blocks' channels
+_WCHANS = attrgetter("block_chans")  # of a ClosedWindow of a RowsCut
 _BASE, _ROW0 = attrgetter("base"), attrgetter("row0")  # of a Block
 _UNIFORM, _CHANS = attrgetter("uniform"), attrgetter("chans")
 _TIMED = attrgetter("timed")  # of a _Rows
@@ -285,8 +285,9 @@ class HealthBatch:
         ws = list(map(_SECOND, wins))
         cut = whole_cut(ws)
         if cut is not None:  # the joint cut's windows, alike: are the channels too?
-            chans0 = ws[0]._chans
-            if not all(map(eq, map(_WCHANS, ws), repeat(chans0))):
+            chans0 = ws[0].block_chans
+            if len(chans0) < plan0.n_blocks or not all(map(eq, map(_WCHANS, ws),
+                                                           repeat(chans0))):
                 return None
         else:
             blocks = [w.blocks for w in ws]

@@ -109,7 +109,7 @@ class ClosedWindow:
     `timestamps` and `coverage` are per-channel tuples in channel order either way.
     """
 
-    __slots__ = ("_blocks", "_chans", "_cov", "_min_cov", "_ts", "_vals", "complete", "cut",
+    __slots__ = ("_blocks", "_cov", "_min_cov", "_ts", "_vals", "block_chans", "complete", "cut",
                  "end", "expected", "j", "start")
 
     def __init__(self, start: float, end: float, values: Sequence[np.ndarray] | None,
@@ -123,7 +123,7 @@ class ClosedWindow:
         self._blocks: tuple[Block, ...] | None = blocks
         self.cut: RowsCut | None = None
         self.j = 0
-        self._chans: tuple[tuple[int, ...], ...] = ()
+        self.block_chans: tuple[tuple[int, ...], ...] = ()  # of a RowsCut window
         self.expected = expected
         self._vals = tuple(values) if values is not None else None
         self._ts = tuple(timestamps) if timestamps is not None else None
@@ -143,7 +143,7 @@ class ClosedWindow:
         w._blocks = blocks
         w.cut = None
         w.j = 0
-        w._chans = ()
+        w.block_chans = ()
         w.expected = expected
         w._vals = w._ts = w._cov = None
         w._min_cov = min_coverage
@@ -162,7 +162,7 @@ class ClosedWindow:
         w._blocks = None
         w.cut = cut
         w.j = j
-        w._chans = chans
+        w.block_chans = chans
         w.expected = expected
         w._vals = w._ts = w._cov = None
         w._min_cov = min_coverage
@@ -178,7 +178,7 @@ class ClosedWindow:
             got = self._blocks = tuple(
                 Block.rows_of(base, j * r, chans, counts, tbase)
                 for base, tbase, r, counts, chans in zip(cut.bases, cut.tbases, cut.rows,
-                                                         cut.counts, self._chans, strict=True))
+                                                         cut.counts, self.block_chans, strict=True))
         return got
 
     def _split(self) -> None:
