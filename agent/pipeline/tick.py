@@ -290,7 +290,8 @@ class Pipeline:
             elif not (failed and rt.cfg.name in failed):
                 for w in windows:
                     rt.empty_streak = 0  # a window closed: its coverage is the asset's
-                    self._set_coverage(rt, w.min_coverage)
+                    if w.min_coverage != rt.shown_coverage or w.min_coverage != rt.coverage:
+                        self._set_coverage(rt, w.min_coverage)
                     pending.append(Pending(rt, w, rt.mode, (), None if w.complete
                                            else "incomplete", None, ai))
         stats.windows_closed += n_closed
@@ -354,7 +355,8 @@ class Pipeline:
             if failed and rt.cfg.name in failed:
                 continue
             rt.empty_streak = 0  # a window closed: its coverage is the asset's
-            self._set_coverage(rt, w.min_coverage)
+            if w.min_coverage != rt.shown_coverage or w.min_coverage != rt.coverage:
+                self._set_coverage(rt, w.min_coverage)  # else it holds what it would set
             try:
                 p = pending[at[wi]] = window(rt, w, pre, wi)
                 p.ai = ais[wi]

@@ -109,8 +109,8 @@ class ClosedWindow:
     `timestamps` and `coverage` are per-channel tuples in channel order either way.
     """
 
-    __slots__ = ("_blocks", "_cov", "_min_cov", "_ts", "_vals", "block_chans", "complete", "cut",
-                 "end", "expected", "j", "start")
+    __slots__ = ("_blocks", "_cov", "_ts", "_vals", "block_chans", "complete", "cut", "end",
+                 "expected", "j", "min_coverage", "start")
 
     def __init__(self, start: float, end: float, values: Sequence[np.ndarray] | None,
                  timestamps: Sequence[np.ndarray] | None, coverage: Sequence[float] | None,
@@ -128,7 +128,9 @@ class ClosedWindow:
         self._vals = tuple(values) if values is not None else None
         self._ts = tuple(timestamps) if timestamps is not None else None
         self._cov = tuple(coverage) if coverage is not None else None
-        self._min_cov = min_coverage
+        # The lowest channel's coverage (1.0 without channels).
+        self.min_coverage = min(self.coverage, default=1.0) if min_coverage is None \
+            else min_coverage
 
     @classmethod
     def of_blocks(cls, start: float, end: float, complete: bool, blocks: tuple[Block, ...],
@@ -146,7 +148,7 @@ class ClosedWindow:
         w.block_chans = ()
         w.expected = expected
         w._vals = w._ts = w._cov = None
-        w._min_cov = min_coverage
+        w.min_coverage = min_coverage
         return w
 
     @classmethod
@@ -165,7 +167,7 @@ class ClosedWindow:
         w.block_chans = chans
         w.expected = expected
         w._vals = w._ts = w._cov = None
-        w._min_cov = min_coverage
+        w.min_coverage = min_coverage
         return w
 
     @property
@@ -223,13 +225,6 @@ class ClosedWindow:
             return self.values[ci]
         blk = self.blocks[at[0]]
         return blk.values[at[1], :blk.counts[at[1]]]
-
-    @property
-    def min_coverage(self) -> float:
-        """The lowest channel's coverage (1.0 without channels)."""
-        if self._min_cov is None:
-            self._min_cov = min(self.coverage, default=1.0)
-        return self._min_cov
 
     def __repr__(self) -> str:
         return f"ClosedWindow(start={self.start!r}, end={self.end!r}, complete={self.complete})"

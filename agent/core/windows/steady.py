@@ -65,8 +65,17 @@ def plan_steady(assemblers: Sequence[WindowAssembler], now: float,
             if max_ts >= end:
                 others.append(i)
                 continue
-            spans = _in_step(a._groups)
-            if spans is None:
+            # Per rate group (the group, its first pending index, m) while every
+            # group's rows start in step and hold the same number m > 0 of samples.
+            spans: list[tuple[_Group, int, int]] = []
+            for g in a._groups:
+                lo, hi = g.lo, g.hi
+                lo0, n = lo[0], len(lo)
+                m = hi[0] - lo0
+                if m <= 0 or (n > 1 and (lo.count(lo0) != n or hi.count(lo0 + m) != n)):
+                    break
+                spans.append((g, lo0, m))
+            if len(spans) != len(a._groups):  # a group out of step or empty
                 others.append(i)
                 continue
             item: _Steady = (i, a, k * hop, end, spans)
@@ -81,20 +90,6 @@ def plan_steady(assemblers: Sequence[WindowAssembler], now: float,
         except Exception:  # `_close_next` plans it again, contained (its error its result)
             others.append(i)
     return others, more, steady, by_m
-
-
-def _in_step(groups: list[_Group]) -> list[tuple[_Group, int, int]] | None:
-    """Per rate group (the group, its first pending index, m) when every group's rows
-    start in step and hold the same number m > 0 of samples; else None."""
-    spans = []
-    for g in groups:
-        lo, hi = g.lo, g.hi
-        lo0, n = lo[0], len(lo)
-        m = hi[0] - lo0
-        if m <= 0 or (n > 1 and (lo.count(lo0) != n or hi.count(lo0 + m) != n)):
-            return None
-        spans.append((g, lo0, m))
-    return spans
 
 
 def _times(gs: list[tuple[_Group, int, _Steady]], m: int
