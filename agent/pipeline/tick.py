@@ -194,6 +194,8 @@ class Pipeline:
                                 jump_s=round(st.jump_s, 3)))
 
     def _set_coverage(self, rt: AssetRuntime, cov: float) -> None:
+        """The asset's coverage and its gauge (after this, `rt.shown_coverage` is what
+        `rt.coverage` holds: the tick calls it only when a window's coverage differs)."""
         rt.coverage = cov
         if cov != rt.shown_coverage:
             self.metrics.coverage.labels(rt.cfg.name).set(cov)
@@ -290,7 +292,7 @@ class Pipeline:
             elif not (failed and rt.cfg.name in failed):
                 for w in windows:
                     rt.empty_streak = 0  # a window closed: its coverage is the asset's
-                    if w.min_coverage != rt.shown_coverage or w.min_coverage != rt.coverage:
+                    if w.min_coverage != rt.shown_coverage:  # else shown and held already
                         self._set_coverage(rt, w.min_coverage)
                     pending.append(Pending(rt, w, rt.mode, (), None if w.complete
                                            else "incomplete", None, ai))
@@ -355,8 +357,8 @@ class Pipeline:
             if failed and rt.cfg.name in failed:
                 continue
             rt.empty_streak = 0  # a window closed: its coverage is the asset's
-            if w.min_coverage != rt.shown_coverage or w.min_coverage != rt.coverage:
-                self._set_coverage(rt, w.min_coverage)  # else it holds what it would set
+            if w.min_coverage != rt.shown_coverage:  # else shown and held already
+                self._set_coverage(rt, w.min_coverage)
             try:
                 p = pending[at[wi]] = window(rt, w, pre, wi)
                 p.ai = ais[wi]

@@ -138,25 +138,17 @@ class ClosedWindow:
         """`ClosedWindow(start, end, None, None, None, complete, blocks=blocks,
         expected=expected, min_coverage=min_coverage)`, made the cheaper way (the joint
         cut makes one per asset and tick)."""
-        w = cls.__new__(cls)
-        w.start = start
-        w.end = end
-        w.complete = complete
+        w = cls.of_cut(start, end, complete, None, 0, (), expected, min_coverage)
         w._blocks = blocks
-        w.cut = None
-        w.j = 0
-        w.block_chans = ()
-        w.expected = expected
-        w._vals = w._ts = w._cov = None
-        w.min_coverage = min_coverage
         return w
 
     @classmethod
-    def of_cut(cls, start: float, end: float, complete: bool, cut: RowsCut, j: int,
+    def of_cut(cls, start: float, end: float, complete: bool, cut: RowsCut | None, j: int,
                chans: tuple[tuple[int, ...], ...], expected: tuple[float, ...],
                min_coverage: float) -> ClosedWindow:
         """Window j of `cut`, block b holding the channels `chans[b]` (its blocks made
-        when first read, as `Block.rows_of` of the cut's rows)."""
+        when first read, as `Block.rows_of` of the cut's rows; `of_blocks` gives None
+        and sets the blocks)."""
         w = cls.__new__(cls)
         w.start = start
         w.end = end
