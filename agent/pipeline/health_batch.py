@@ -29,7 +29,7 @@ import numpy as np
 
 from agent.core.health import ChannelHealth, HealthTable, WindowStats
 from agent.core.health_rows import RowLimits, judge_rows
-from agent.core.windows.closed import ClosedWindow, whole_cut
+from agent.core.windows.closed import ClosedWindow, no_times, whole_cut
 from agent.pipeline.featurize import Extremes
 from agent.pipeline.runtime import AssetRuntime
 
@@ -352,7 +352,7 @@ class HealthBatch:
         wis = m.wi
         lay = m.layout if m.layout is not None else self._layout(m.parts)
         # Without times (`_gather` let only matrices whose rows read none through), NaN.
-        tbase = m.tbase if m.tbase is not None else np.broadcast_to(np.nan, m.base.shape)
+        tbase = m.tbase if m.tbase is not None else no_times(*m.base.shape)
         if m.row0 == lay.whole_at and m.base.shape[0] == lay.offs.size:
             vals, times = m.base, tbase  # every row, in order, as last time: no gather
         else:
@@ -365,9 +365,10 @@ class HealthBatch:
                 vals, times = m.base[rows], tbase[rows]
         table = self.table
         calm = table.calm[lay.slots]
-        eligible = [out.eligible[wi] for wi in wis]
-        if False in eligible:
-            calm &= np.array(eligible, dtype=bool)[lay.seg]
+        if False in out.eligible:  # else every window of this matrix is eligible too
+            eligible = [out.eligible[wi] for wi in wis]
+            if False in eligible:
+                calm &= np.array(eligible, dtype=bool)[lay.seg]
         rs = lay.rate_slots
         verdict = judge_rows(lay.limits, vals, times, calm, table.last_v[rs], table.last_t[rs])
         if vals is m.base and verdict.row_reduced:

@@ -68,7 +68,7 @@ class Block:
         t = self._timestamps
         if t is None:
             tb = self.tbase
-            t = self._timestamps = _no_times(len(self.chans), self.values.shape[1]) \
+            t = self._timestamps = no_times(len(self.chans), self.values.shape[1]) \
                 if tb is None else tb[self.row0:self.row0 + len(self.chans)]
         return t
 
@@ -76,8 +76,9 @@ class Block:
 _NO_TIMES: dict[tuple[int, int], np.ndarray] = {}
 
 
-def _no_times(n: int, m: int) -> np.ndarray:
-    """The timestamps of a block whose assembler does not keep them: NaN (read-only)."""
+def no_times(n: int, m: int) -> np.ndarray:
+    """The timestamps of a block whose assembler does not keep them: NaN (read-only,
+    one array per shape)."""
     got = _NO_TIMES.get((n, m))
     if got is None:
         if len(_NO_TIMES) > 64:
