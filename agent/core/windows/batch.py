@@ -90,10 +90,10 @@ def close_many(assemblers: Sequence[WindowAssembler], now: float) -> list[Assemb
     exception (`AssembleResult.error`); the others' windows are cut as usual.
     """
     results: list[AssembleResult | None] = [None] * len(assemblers)
-    todo, more, steady, by_m = plan_steady(assemblers, now, results)
+    todo, more, steady = plan_steady(assemblers, now, results)
     if not todo:
         try:
-            close_whole(steady, results, {}, by_m)
+            close_whole(steady, results, {})
         except Exception:  # each unfinished alone, contained
             for i, a, *_ in steady:
                 if results[i] is None:

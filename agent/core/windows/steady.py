@@ -34,19 +34,16 @@ _ByM = dict[int, list[tuple[_Group, int, _Steady]]]
 
 def plan_steady(assemblers: Sequence[WindowAssembler], now: float,
                  results: list[AssembleResult | None]
-                 ) -> tuple[list[int], list[int], list[_Steady], _ByM]:
+                 ) -> tuple[list[int], list[int], list[_Steady]]:
     """The first pass of `close_many` over the usual shape, in one loop: an assembler
     whose next tumbling window is due with every pending sample before its end, in
     every rate group the same number m > 0 in every row and the rows starting in step
     (`_plan`'s `full` item), kept in order for `close_whole`; one with nothing due gets
     an empty result. Returns the positions of every other shape (for
-    `_close_next`), those with a window after the kept one due too, the kept, and their
-    groups by m (with each group's first pending index and its item), in the same
-    order."""
+    `_close_next`), those with a window after the kept one due too, and the kept."""
     others: list[int] = []
     more: list[int] = []
     steady: list[_Steady] = []
-    by_m: _ByM = {}
     for i, a in enumerate(assemblers):
         try:
             k = a._next_k
@@ -78,36 +75,31 @@ def plan_steady(assemblers: Sequence[WindowAssembler], now: float,
             if len(spans) != len(a._groups):  # a group out of step or empty
                 others.append(i)
                 continue
-            item: _Steady = (i, a, k * hop, end, spans)
-            for g, lo0, m in spans:
-                got = by_m.get(m)
-                if got is None:
-                    got = by_m[m] = []
-                got.append((g, lo0, item))
-            steady.append(item)
+            steady.append((i, a, k * hop, end, spans))
             if max_ts >= a._due2_ts or reach >= a._due2_reach:
                 more.append(i)
         except Exception:  # `_close_next` plans it again, contained (its error its result)
             others.append(i)
-    return others, more, steady, by_m
+    return others, more, steady
 
 
-def _times(gs: list[tuple[_Group, int, _Steady]], m: int
+def _times(gs: list[tuple[_Group, int, _Steady]],
+           views: list[tuple[np.ndarray, np.ndarray]]
            ) -> tuple[np.ndarray | None, np.ndarray | None]:
-    """The times of the groups `gs` keeping them, m per row from each one's first
-    pending index, stacked (None when none keeps them); and the same when every group
-    keeps them (row for row with the values' copy), else None."""
+    """The times of the groups `gs` keeping them (`views`: each group's (values,
+    times) of the window), stacked (None when none keeps them); and the same when every
+    group keeps them (row for row with the values' copy), else None."""
     keeps = list(map(_KEEPS, map(_GROUP, gs)))
     if True not in keeps:
         return None, None
     if False not in keeps:
-        t = np.concatenate([(g.views.get((lo0, m)) or g.span(lo0, m))[1] for g, lo0, _ in gs])
+        t = np.concatenate(list(map(_TIMES, views)))
         return t, t
-    return np.concatenate([(g.views.get((lo0, m)) or g.span(lo0, m))[1]
-                           for g, lo0, _ in gs if g.keep_times]), None
+    return np.concatenate([t for (_, t), keep in zip(views, keeps, strict=True) if keep]), None
 
 
 _GROUP, _KEEPS = itemgetter(0), attrgetter("keep_times")
+_VALUES, _TIMES = itemgetter(0), itemgetter(1)  # of a group's (values, times) views
 _POS = attrgetter("pos")  # of a _Group
 _ASM, _SHAPE = itemgetter(1), attrgetter("_shape")  # of an item, of its assembler
 
@@ -124,27 +116,25 @@ class _Cut:
         self.off = self.t_off = 0
 
 
-def close_whole(items: list[Item], results: list[AssembleResult | None], drops: Drops,
-                by_m: _ByM | None = None) -> None:
+def close_whole(items: list[Item], results: list[AssembleResult | None], drops: Drops
+                ) -> None:
     """The joint cut of items whose every rate group's rows are in step with m > 0
     samples before the window's end (all it cuts: the spans' m): one copy per segment
-    length (`by_m`: the items' groups by m in item order, gathered here when not given),
-    every block rows of that copy (alike items' windows: one `RowsCut`, `_rows_cut`).
-    Each group's rows then drop those m samples, or for a hopping window what `drops`
-    says."""
-    if by_m is None:
-        by_m = {}
-        for item in items:
-            for g, lo0, m in item[4]:
-                got = by_m.get(m)
-                if got is None:
-                    got = by_m[m] = []
-                got.append((g, lo0, item))
+    length (the items' groups by m, in item order), every block rows of that copy
+    (alike items' windows: one `RowsCut`, `_rows_cut`). Each group's rows then drop
+    those m samples, or for a hopping window what `drops` says."""
+    by_m: _ByM = {}
+    for item in items:
+        for g, lo0, m in item[4]:
+            got = by_m.get(m)
+            if got is None:
+                got = by_m[m] = []
+            got.append((g, lo0, item))
     cuts: dict[int, _Cut] = {}
     for m, gs in by_m.items():
         # Each group's rows as views kept from its last window cut there (`_Group.span`).
-        v = np.concatenate([(g.views.get((lo0, m)) or g.span(lo0, m))[0] for g, lo0, _ in gs])
-        cuts[m] = _Cut(v, *_times(gs, m))
+        views = [g.views.get((lo0, m)) or g.span(lo0, m) for g, lo0, _ in gs]
+        cuts[m] = _Cut(np.concatenate(list(map(_VALUES, views))), *_times(gs, views))
     rc = None if drops else _rows_cut(items, by_m, cuts)
     if rc is not None:
         _close_alike(items, results, rc)
